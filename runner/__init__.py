@@ -1,0 +1,6 @@
+"""dyadperm: permutation inference (QAP, MRQAP) for network data."""
+
+from .dyadic import Dyadic, gap, pair_sum, receiver, reverse, same, sender
+from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, RunFileError
+
+__version__ = "0.1.0"

@@ -1,0 +1,261 @@
+"""Networks as the engine sees them, and predictors derived from node attributes.
+
+A network is an n x n (one-mode) or n x m (two-mode) array of dyad values with node
+labels. NaN marks a missing dyad value; ``excluded`` marks dyads that cannot exist by
+design (they are fixed and never enter a fit). The diagonal of one-mode data never enters.
+
+Derived predictors (``same``, ``gap``, ``sender``, ``receiver``, ``pair_sum``) hold one
+value per node and are turned into dyad values only when the engine needs them;
+``reverse`` holds another network and stands for its transpose (reciprocity).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Sequence
+
+import numpy as np
+
+from .errors import InputError
+
+DERIVED_KINDS = ("same", "gap", "sender", "receiver", "pair_sum")
+
+
+@dataclass(frozen=True, eq=False)
+class Dyadic:
+    """One network over labelled nodes.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, m), float64
+        Dyad values; NaN marks a missing value. One-mode when ``col_labels`` is None.
+    labels : tuple of str, length n
+        Row node labels (all node labels for one-mode data).
+    col_labels : tuple of str or None
+        Column node labels for two-mode data; None for one-mode.
+    directed : bool or None
+        None means: infer from symmetry of the values.
+    excluded : ndarray of bool, shape (n, m), or None
+        Structurally excluded dyads (fixed, never enter the dyad set).
+    name : str or None
+        Name used in messages and result tables.
+    """
+
+    values: np.ndarray
+    labels: tuple[str, ...]
+    col_labels: tuple[str, ...] | None = None
+    directed: bool | None = None
+    excluded: np.ndarray | None = None
+    name: str | None = None
+
+    def __post_init__(self) -> None:
+        what = self.name or "network"
+        v = self.values
+        if not isinstance(v, np.ndarray) or v.ndim != 2:
+            raise InputError(f"{what} must be a 2-d array; got {type(v).__name__} "
+                             f"with shape {getattr(v, 'shape', '?')}")
+        if v.dtype != np.float64:
+            raise InputError(f"{what} must hold float64 values; got dtype {v.dtype}")
+        n, m = v.shape
+        if len(self.labels) != n:
+            raise InputError(f"{what} has {n} rows but {len(self.labels)} row labels")
+        if self.col_labels is None:
+            if n != m:
+                raise InputError(f"{what} must be square for one-mode data; got {n} x {m}"
+                                 " (give col_labels for two-mode data)")
+        elif len(self.col_labels) != m:
+            raise InputError(f"{what} has {m} columns but {len(self.col_labels)} column labels")
+        if np.isinf(v).any():
+            i, j = np.argwhere(np.isinf(v))[0]
+            raise InputError(f"{what} has an infinite value at row {self.labels[i]!r}, column "
+                             f"{self.col_node_labels[j]!r}; use NaN for a missing value")
+        if self.excluded is not None:
+            ex = self.excluded
+            if not isinstance(ex, np.ndarray) or ex.shape != v.shape or ex.dtype != bool:
+                raise InputError(f"{what}: excluded must be a boolean array of shape {v.shape}")
+
+    @property
+    def two_mode(self) -> bool:
+        return self.col_labels is not None
+
+    @property
+    def col_node_labels(self) -> tuple[str, ...]:
+        return self.labels if self.col_labels is None else self.col_labels
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.values.shape
+
+    def is_symmetric(self) -> bool:
+        """True when one-mode and equal to its transpose off the diagonal (NaN equal NaN)."""
+        if self.two_mode:
+            return False
+        v = self.values.copy()
+        np.fill_diagonal(v, 0.0)
+        return bool(np.array_equal(v, v.T, equal_nan=True))
+
+
+@dataclass(frozen=True, eq=False)
+class NodeDerived:
+    """A predictor computed from one value per node (see the module docstring).
+
+    ``values`` holds the row nodes' attribute (all nodes for one-mode data), in node order
+    or as a mapping label -> value; ``col_values`` the column nodes' for two-mode data.
+    """
+
+    kind: str
+    values: Any
+    col_values: Any = None
+    name: str | None = None
+
+    def __post_init__(self) -> None:
+        if self.kind not in DERIVED_KINDS:
+            raise InputError(f"derived predictor kind must be one of {', '.join(DERIVED_KINDS)};"
+                             f" got {self.kind!r}")
+
+    def dense(self, row_labels: Sequence[str], col_labels: Sequence[str] | None = None) -> np.ndarray:
+        """Dyad values as an (n, m) float64 array (diagonal left as computed)."""
+        two_mode = col_labels is not None
+        a = _node_vector(self.values, row_labels, self.name or self.kind)
+        if two_mode:
+            cv = self.col_values
+            if cv is None and self.kind != "sender":
+                raise InputError(f"{self.name or self.kind}: two-mode data need col_values "
+                                 "(the column nodes' attribute)")
+            b = _node_vector(cv, col_labels, self.name or self.kind) if cv is not None else None
+        else:
+            b = a
+        return derived_values(self.kind, a, b, len(col_labels) if two_mode else len(row_labels))
+
+
+def derived_values(kind: str, a: np.ndarray, b: np.ndarray | None, m: int) -> np.ndarray:
+    """Dyad values of a derived predictor from row attribute ``a`` and column attribute ``b``.
+
+    same: 1[a_i == b_j]; gap: |a_i - b_j|; sender: a_i; receiver: b_j; pair_sum: a_i + b_j.
+    """
+    n = a.shape[0]
+    if kind == "sender":
+        return np.repeat(a.astype(np.float64)[:, None], m, axis=1)
+    if kind == "receiver":
+        return np.repeat(b.astype(np.float64)[None, :], n, axis=0)
+    if kind == "same":
+        return (a[:, None] == b[None, :]).astype(np.float64)
+    if a.dtype.kind not in "fiub" or b.dtype.kind not in "fiub":
+        raise InputError(f"derived predictor '{kind}' needs a numeric attribute; got text values")
+    if kind == "gap":
+        return np.abs(a[:, None].astype(np.float64) - b[None, :].astype(np.float64))
+    if kind == "pair_sum":
+        return a[:, None].astype(np.float64) + b[None, :].astype(np.float64)
+    raise InputError(f"unknown derived predictor kind {kind!r}")
+
+
+def _node_vector(values: Any, labels: Sequence[str], what: str) -> np.ndarray:
+    if isinstance(values, dict):
+        missing = [lab for lab in labels if lab not in values]
+        if missing:
+            raise InputError(f"{what}: no attribute value for node {missing[0]!r}")
+        values = [values[lab] for lab in labels]
+    arr = np.asarray(values)
+    if arr.ndim != 1 or arr.shape[0] != len(labels):
+        raise InputError(f"{what}: need one attribute value per node ({len(labels)}); "
+                         f"got shape {arr.shape}")
+    if arr.dtype.kind == "f" and np.isinf(arr).any():
+        raise InputError(f"{what}: attribute has an infinite value; use NaN for missing")
+    if arr.dtype.kind == "O":
+        arr = arr.astype(str)
+    return arr
+
+
+@dataclass(frozen=True, eq=False)
+class Reverse:
+    """The transpose of a network: the value at (i, j) is the network's value at (j, i)."""
+
+    network: Any
+    name: str | None = None
+
+
+def same(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:
+    """Predictor 1 if the attribute of i equals that of j, else 0."""
+    return NodeDerived("same", values, col_values, name)
+
+
+def gap(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:
+    """Predictor |a_i - a_j|, the absolute difference of a numeric attribute."""
+    return NodeDerived("gap", values, col_values, name)
+
+
+def sender(values: Any, *, name: str | None = None) -> NodeDerived:
+    """Predictor a_i: the attribute of the tie's source (row node)."""
+    return NodeDerived("sender", values, None, name)
+
+
+def receiver(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:
+    """Predictor a_j: the attribute of the tie's target (column node).
+
+    For two-mode data pass the column nodes' attribute as ``values`` or ``col_values``.
+    """
+    if col_values is None:
+        return NodeDerived("receiver", values, values, name)
+    return NodeDerived("receiver", values, col_values, name)
+
+
+def pair_sum(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:
+    """Predictor a_i + a_j."""
+    return NodeDerived("pair_sum", values, col_values, name)
+
+
+def reverse(network: Any, *, name: str | None = None) -> Reverse:
+    """Predictor M[j, i] of a one-mode network M: reciprocity."""
+    return Reverse(network, name)
+
+
+def as_dyadic(obj: Any, *, name: str, labels: Sequence[str] | None = None,
+              col_labels: Sequence[str] | None = None) -> Dyadic:
+    """Coerce a network given by the user into a :class:`Dyadic`.
+
+    Accepts a Dyadic, a 2-d numpy array (square: one-mode; rectangular: two-mode), a
+    scipy.sparse matrix (densified; the sparse engine path takes them without this), or a
+    networkx graph (edge attribute ``weight`` if present, else 1).
+    """
+    if isinstance(obj, Dyadic):
+        if obj.name is None:
+            return Dyadic(obj.values, obj.labels, obj.col_labels, obj.directed, obj.excluded, name)
+        return obj
+    directed = None
+    try:
+        import scipy.sparse as sp
+        if sp.issparse(obj):
+            obj = obj.toarray()
+    except ImportError:  # pragma: no cover - scipy is a dependency
+        pass
+    if _is_networkx(obj):
+        import networkx as nx
+        nodes = list(obj.nodes())
+        labels = [str(v) for v in nodes]
+        weighted = any("weight" in d for _, _, d in obj.edges(data=True))
+        obj = nx.to_numpy_array(obj, nodelist=nodes, weight="weight" if weighted else None,
+                                dtype=np.float64)
+    if isinstance(obj, (list, tuple)):
+        obj = np.asarray(obj)
+    if not isinstance(obj, np.ndarray):
+        raise InputError(f"{name}: cannot use an object of type {type(obj).__name__} as a "
+                         "network (give a numpy array, scipy.sparse matrix, networkx graph or "
+                         "dyadperm.Dyadic)")
+    if obj.ndim != 2:
+        raise InputError(f"{name} must be a 2-d array; got {obj.ndim} dimensions")
+    if obj.dtype.kind not in "fiub":
+        raise InputError(f"{name} must hold numbers; got dtype {obj.dtype}")
+    values = np.ascontiguousarray(obj, dtype=np.float64)
+    n, m = values.shape
+    if labels is None:
+        labels = [str(i) for i in range(n)]
+    two_mode = col_labels is not None or n != m
+    if two_mode and col_labels is None:
+        col_labels = [str(j) for j in range(m)]
+    return Dyadic(values, tuple(labels), tuple(col_labels) if two_mode else None,
+                  directed, None, name)
+
+
+def _is_networkx(obj: Any) -> bool:
+    mod = type(obj).__module__
+    return mod.startswith("networkx") and hasattr(obj, "nodes") and hasattr(obj, "edges")
