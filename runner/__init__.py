@@ -4,3 +4,5 @@ from .dyadic import Dyadic, gap, pair_sum, receiver, reverse, same, sender
 from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, RunFileError
 
 __version__ = "0.1.0"
+from .api import correlate, regress
+from .result import CorrelationResult, RegressionResult

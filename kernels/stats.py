@@ -1,0 +1,124 @@
+"""Per-permutation regression and correlation statistics from Gram matrices.
+
+Each permutation's fit is summarised by the Gram matrix G = V'V of the vector
+v = [1, relabelled layers, fixed layers] over its dyad set. A scheme's regression is a
+linear map T of v to [design columns, tested column last, response]; its statistic comes
+from the Cholesky factor of T'GT (the R of a QR of the data), one permutation at a time.
+"""
+
+import numpy as np
+from numba import njit
+
+from .options import KERNEL_OPTIONS
+
+# A pivot this small relative to its column's sum of squares marks a singular design.
+SINGULAR_PIVOT = 1e-10
+
+
+@njit(**KERNEL_OPTIONS)
+def fill_gram(cross, gram0, out):
+    """Gram matrices of complete-data permutations.
+
+    Parameters
+    ----------
+    cross : float64 (B, R, Q)
+        Relabelled-by-fixed cross products from ``gather_cross``.
+    gram0 : float64 (d, d), d = 1 + R + Q
+        The entries that no relabelling changes (sums, relabelled-by-relabelled and
+        fixed-by-fixed products over an invariant dyad set).
+    out : float64 (B, d, d)
+        Written: gram0 with the cross block (rows 1..R, columns 1+R..) and its transpose.
+    """
+    n_perm, n_rel, n_fix = cross.shape
+    for b in range(n_perm):
+        out[b, :, :] = gram0
+        for a in range(n_rel):
+            for c in range(n_fix):
+                out[b, 1 + a, 1 + n_rel + c] = cross[b, a, c]
+                out[b, 1 + n_rel + c, 1 + a] = cross[b, a, c]
+
+
+@njit(**KERNEL_OPTIONS)
+def regression_stats(gram, transforms, scale, use_t, out):
+    """t statistics (or coefficients) of each tested term from each permutation's Gram.
+
+    Parameters
+    ----------
+    gram : float64 (B, d, d)
+        Gram matrix of v = [1, ...] over the permutation's dyad set (gram[b, 0, 0] = N).
+    transforms : float64 (K, d, p + 1)
+        For term k: columns 0..p-2 the other design columns, p-1 the tested column,
+        p the response, each as a combination of v.
+    scale : float64 (K,)
+        Factor taking a coefficient back to the user's units (used when not ``use_t``).
+    use_t : bool
+        True: t statistic; False: coefficient.
+    out : float64 (B, K)
+        Written; NaN where the permuted design is singular or has no residual df.
+    """
+    n_perm, d, _ = gram.shape
+    n_terms, _, p1 = transforms.shape
+    p = p1 - 1
+    g = np.empty((p1, p1))
+    tmp = np.empty((d, p1))
+    for b in range(n_perm):
+        df = gram[b, 0, 0] - p
+        for k in range(n_terms):
+            # g = T' G T, in two steps
+            for r in range(d):
+                for c in range(p1):
+                    s = 0.0
+                    for e in range(d):
+                        s += gram[b, r, e] * transforms[k, e, c]
+                    tmp[r, c] = s
+            for r in range(p1):
+                for c in range(r + 1):
+                    s = 0.0
+                    for e in range(d):
+                        s += transforms[k, e, r] * tmp[e, c]
+                    g[r, c] = s
+            # lower Cholesky factor in place: g = L L'
+            ok = True
+            for c in range(p1):
+                s = g[c, c]
+                for e in range(c):
+                    s -= g[c, e] * g[c, e]
+                if c < p:
+                    if not (s > SINGULAR_PIVOT * g[c, c]) or not (s > 0.0):
+                        ok = False
+                        break
+                    g[c, c] = np.sqrt(s)
+                else:
+                    g[c, c] = np.sqrt(s) if s > 0.0 else 0.0
+                for r in range(c + 1, p1):
+                    s2 = g[r, c]
+                    for e in range(c):
+                        s2 -= g[r, e] * g[c, e]
+                    g[r, c] = s2 / g[c, c]
+            if not ok or df <= 0.0:
+                out[b, k] = np.nan
+                continue
+            w = g[p, p - 1]  # projection of the response on the tested column's new part
+            if use_t:
+                # t = beta / se = w / sqrt(RSS / df), RSS = L[p, p]^2
+                out[b, k] = w / np.sqrt(g[p, p] * g[p, p] / df)
+            else:
+                out[b, k] = w / g[p - 1, p - 1] * scale[k]
+
+
+@njit(**KERNEL_OPTIONS)
+def correlation_stats(gram, out):
+    """Pearson correlation of layers 1 and 2 of v = [1, a, b] from each Gram matrix.
+
+    gram : float64 (B, 3, 3); out : float64 (B,), written (NaN at zero variance).
+    r = (S_ab - S_a S_b / N) / sqrt((S_aa - S_a^2 / N)(S_bb - S_b^2 / N)).
+    """
+    for b in range(gram.shape[0]):
+        n = gram[b, 0, 0]
+        cov = gram[b, 1, 2] - gram[b, 0, 1] * gram[b, 0, 2] / n
+        va = gram[b, 1, 1] - gram[b, 0, 1] * gram[b, 0, 1] / n
+        vb = gram[b, 2, 2] - gram[b, 0, 2] * gram[b, 0, 2] / n
+        if va > 0.0 and vb > 0.0:
+            out[b] = cov / np.sqrt(va * vb)
+        else:
+            out[b] = np.nan

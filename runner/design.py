@@ -1,0 +1,376 @@
+"""From user inputs to aligned arrays: dyad set, relabelling blocks, observed fit.
+
+``prepare`` turns a response and predictors (arrays, Dyadic, networkx, scipy.sparse or
+derived predictors) into float64 matrices on one node order, decides directedness, builds
+the dyad set and the relabelling blocks (groups become contiguous ranges of an internal
+node order), and checks the inputs. ``observed_fit`` gives the classical coefficients and
+standard errors by a streaming QR over the dyads (no N x p matrix is built at once).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
+from .errors import DyadpermWarning, InputError
+from .permutations import Blocks
+
+# Rows of dyads handled at once by streaming passes (keeps temporaries small).
+STREAM_DYADS = 1 << 20
+# Condition number (of the standardised design) above which a warning is given.
+COND_WARN = 1e6
+# Relative size of a QR pivot below which a predictor counts as perfectly collinear.
+COLLINEAR_PIVOT = 1e-9
+
+
+@dataclass(frozen=True, eq=False)
+class Prepared:
+    """Inputs on the engine's internal node order.
+
+    ``matrices`` holds the predictors then the response, each (n, m) float64 in internal
+    order, NaN where missing or structurally excluded. ``mask`` marks the structural dyad
+    set. ``row_order``/``col_order`` map internal positions to the user's node positions.
+    """
+
+    names: tuple[str, ...]
+    response_name: str
+    matrices: tuple[np.ndarray, ...]
+    mask: np.ndarray
+    blocks: Blocks
+    col_start: np.ndarray
+    col_stop: np.ndarray
+    row_order: np.ndarray
+    col_order: np.ndarray
+    labels: tuple[str, ...]
+    col_labels: tuple[str, ...] | None
+    directed: bool
+    complete: bool
+    n_dyads: int
+
+    @property
+    def two_mode(self) -> bool:
+        return self.col_labels is not None
+
+    @property
+    def k(self) -> int:
+        return len(self.names)
+
+
+def name_predictors(predictors: Any) -> list[tuple[str, Any]]:
+    """Predictors as (name, object) pairs: dict keys, or names/x1, x2, ... for a list."""
+    if isinstance(predictors, Mapping):
+        items = [(str(k), v) for k, v in predictors.items()]
+    elif isinstance(predictors, (list, tuple)):
+        items = []
+        for i, v in enumerate(predictors):
+            name = getattr(v, "name", None) if isinstance(v, (Dyadic, NodeDerived, Reverse)) else None
+            items.append((name or f"x{i + 1}", v))
+    else:
+        items = [(getattr(predictors, "name", None) or "x1", predictors)]
+    if not items:
+        raise InputError("predictors: give at least one predictor")
+    names = [n for n, _ in items]
+    dup = {n for n in names if names.count(n) > 1}
+    if dup:
+        raise InputError(f"predictors: duplicate name {sorted(dup)[0]!r}")
+    if "intercept" in names:
+        raise InputError("predictors: the name 'intercept' is reserved for the constant term")
+    return items
+
+
+def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: Any = None,
+            dyads: str | None = None, response_name: str = "response") -> Prepared:
+    """Align the response and predictors, and build the dyad set and relabelling blocks."""
+    resp = as_dyadic(y, name=getattr(y, "name", None) or response_name)
+    labels = resp.labels
+    col_labels = resp.col_labels
+    two_mode = resp.two_mode
+    items = name_predictors(predictors)
+
+    mats: list[np.ndarray] = []
+    dyadics: list[tuple[str, Dyadic | None]] = []
+    for name, obj in items:
+        mat, dy = _predictor_matrix(name, obj, resp)
+        mats.append(mat)
+        dyadics.append((name, dy))
+    mats.append(resp.values)
+    dyadics.append((resp.name, resp))
+    names = tuple(n for n, _ in items)
+    for name, mat in zip(names + (resp.name,), mats):
+        if mat.shape != resp.shape:
+            raise InputError(f"predictor {name!r} has shape {mat.shape[0]} x {mat.shape[1]}; "
+                             f"the response has {resp.shape[0]} x {resp.shape[1]}")
+        if np.isinf(mat).any():
+            raise InputError(f"{name!r} has an infinite value; use NaN for a missing value")
+
+    n, m = resp.shape
+    if (n < 2 or m < 2) if two_mode else n < 3:
+        raise InputError(f"too few nodes: got {n} x {m}; need at least 3 nodes (2 x 2 two-mode)")
+
+    # directedness
+    if two_mode:
+        if directed is False:
+            raise InputError("directed=False does not apply to two-mode (rectangular) data")
+        is_directed = True
+    else:
+        asym = [nm for nm, mat in zip(names + (resp.name,), mats) if not _symmetric(mat)]
+        explicit = [dy.directed for _, dy in dyadics if dy is not None and dy.directed is not None]
+        if directed is None and explicit:
+            directed = any(explicit)
+        if directed is False and asym:
+            raise InputError(f"directed=False but {asym[0]!r} is not symmetric")
+        is_directed = bool(asym) if directed is None else bool(directed)
+
+    # groups and blocks
+    row_order, row_blocks, codes = _group_order(groups, n, "groups")
+    if groups is None and dyads is not None:
+        raise InputError("dyads: 'within' and 'all' need groups")
+    if groups is not None and two_mode:
+        raise InputError("groups: supported for one-mode networks only")
+    dyads = dyads or ("within" if groups is not None else "all")
+    if dyads not in ("within", "all"):
+        raise InputError(f"dyads must be 'within' or 'all'; got {dyads!r}")
+    if two_mode:
+        col_order = np.arange(m, dtype=np.int64)
+        blocks = Blocks(n, m, ((0, n),), ((0, m),))
+    else:
+        col_order = row_order
+        blocks = Blocks(n, n, row_blocks, None)
+
+    # structural dyad set, internal order
+    if two_mode:
+        mask = np.ones((n, m), dtype=bool)
+    else:
+        mask = ~np.eye(n, dtype=bool)
+        if not is_directed:
+            mask &= np.triu(np.ones((n, n), dtype=bool), 1)
+        if groups is not None and dyads == "within":
+            c = codes[row_order]
+            mask &= c[:, None] == c[None, :]
+    excluded = None
+    for _, dy in dyadics:
+        if dy is not None and dy.excluded is not None:
+            ex = dy.excluded[np.ix_(row_order, col_order)]
+            excluded = ex if excluded is None else (excluded | ex)
+    if excluded is not None:
+        mask &= ~excluded
+
+    col_start, col_stop = _column_ranges(mask, two_mode, is_directed, groups is not None and dyads == "within",
+                                         row_blocks)
+    internal = []
+    identity = np.array_equal(row_order, np.arange(n)) and np.array_equal(col_order, np.arange(m))
+    for mat in mats:
+        a = np.array(mat, dtype=np.float64, copy=True) if identity else mat[np.ix_(row_order, col_order)]
+        a[~mask] = np.nan
+        internal.append(a)
+    if not is_directed:
+        # dyad values live in the upper triangle; mirror so relabelled reads see them
+        for a in internal:
+            lower = np.tril_indices(n, -1)
+            a[lower] = a.T[lower]
+    complete = excluded is None and not any(np.isnan(a[mask]).any() for a in internal)
+    n_dyads = int(mask.sum())
+    labels_out = tuple(labels)
+    return Prepared(names, resp.name, tuple(internal), mask, blocks, col_start, col_stop,
+                    row_order, col_order, labels_out, tuple(col_labels) if two_mode else None,
+                    is_directed, complete, n_dyads)
+
+
+def _predictor_matrix(name: str, obj: Any, resp: Dyadic) -> tuple[np.ndarray, Dyadic | None]:
+    labels, col_labels = resp.labels, resp.col_labels
+    if isinstance(obj, NodeDerived):
+        d = NodeDerived(obj.kind, obj.values, obj.col_values, obj.name or name)
+        return d.dense(labels, col_labels), None
+    if isinstance(obj, Reverse):
+        if resp.two_mode:
+            raise InputError(f"predictor {name!r}: reverse needs one-mode data")
+        net = resp if obj.network is None else _align(name, obj.network, resp)
+        return np.ascontiguousarray(net.values.T), net
+    dy = _align(name, obj, resp)
+    return dy.values, dy
+
+
+def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
+    """A network on the response's node order (by label when both carry labels)."""
+    if isinstance(obj, Dyadic) and obj is resp:
+        return resp
+    dy = as_dyadic(obj, name=name, labels=None if isinstance(obj, Dyadic) else resp.labels,
+                   col_labels=None if isinstance(obj, Dyadic) else resp.col_labels)
+    if dy.two_mode != resp.two_mode:
+        raise InputError(f"predictor {name!r} is {'two' if dy.two_mode else 'one'}-mode but the "
+                         f"response is {'two' if resp.two_mode else 'one'}-mode")
+    if dy.labels == resp.labels and dy.col_node_labels == resp.col_node_labels:
+        return dy
+    rows = _reorder(name, dy.labels, resp.labels, "row")
+    cols = _reorder(name, dy.col_node_labels, resp.col_node_labels, "column")
+    ex = None if dy.excluded is None else dy.excluded[np.ix_(rows, cols)]
+    return Dyadic(dy.values[np.ix_(rows, cols)], resp.labels, resp.col_labels, dy.directed, ex, name)
+
+
+def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> np.ndarray:
+    pos = {lab: i for i, lab in enumerate(have)}
+    extra = [lab for lab in have if lab not in set(want)]
+    if extra:
+        raise InputError(f"predictor {name!r}: unknown node label {extra[0]!r} "
+                         f"(not a {what} node of the response)")
+    missing = [lab for lab in want if lab not in pos]
+    if missing:
+        raise InputError(f"predictor {name!r}: no {what} for node {missing[0]!r}")
+    return np.array([pos[lab] for lab in want], dtype=np.int64)
+
+
+def _symmetric(mat: np.ndarray) -> bool:
+    a = mat.copy()
+    np.fill_diagonal(a, 0.0)
+    return bool(np.array_equal(a, a.T, equal_nan=True))
+
+
+def _group_order(groups: Any, n: int, what: str):
+    if groups is None:
+        return np.arange(n, dtype=np.int64), ((0, n),), None
+    g = np.asarray(groups)
+    if g.ndim != 1 or g.shape[0] != n:
+        raise InputError(f"{what}: need one label per node ({n}); got shape {g.shape}")
+    if g.dtype.kind == "f" and np.isnan(g).any():
+        raise InputError(f"{what}: node {int(np.flatnonzero(np.isnan(g))[0])} has no group (NaN)")
+    _, codes = np.unique(g.astype(str) if g.dtype.kind == "O" else g, return_inverse=True)
+    order = np.argsort(codes, kind="stable").astype(np.int64)
+    sorted_codes = codes[order]
+    cuts = np.flatnonzero(np.diff(sorted_codes)) + 1
+    starts = np.concatenate([[0], cuts])
+    stops = np.concatenate([cuts, [n]])
+    blocks = tuple((int(s), int(e)) for s, e in zip(starts, stops))
+    return order, blocks, codes
+
+
+def _column_ranges(mask, two_mode, directed, within, row_blocks):
+    n, m = mask.shape
+    start = np.zeros(n, dtype=np.int64)
+    stop = np.full(n, m, dtype=np.int64)
+    if two_mode:
+        return start, stop
+    if within:
+        for s, e in row_blocks:
+            start[s:e] = s
+            stop[s:e] = e
+    if not directed:
+        start = np.maximum(start, np.arange(n, dtype=np.int64) + 1)
+        stop = np.maximum(stop, start)
+    return start, stop
+
+
+def iter_dyad_rows(prep: Prepared, arrays: Sequence[np.ndarray]):
+    """Yield, block of rows by block, the values of ``arrays`` on the dyad set (N_block, L)."""
+    n = prep.mask.shape[0]
+    m = prep.mask.shape[1]
+    step = max(1, STREAM_DYADS // max(m, 1))
+    for i0 in range(0, n, step):
+        sel = prep.mask[i0:i0 + step]
+        yield np.stack([a[i0:i0 + step][sel] for a in arrays], axis=1)
+
+
+@dataclass(frozen=True)
+class ObservedFit:
+    """Classical least-squares fit on the observed dyads (intercept first)."""
+
+    coef: np.ndarray
+    se: np.ndarray
+    t: np.ndarray
+    r2: float
+    n_dyads: int
+    rss: float
+    cond: float
+
+
+def observed_fit(prep: Prepared) -> ObservedFit:
+    """OLS by a streaming QR of [1, X, y] over the complete observed dyads.
+
+    Each block of dyads is stacked under the running R factor and re-factorised
+    (tall-skinny QR), which is as stable as a QR of the whole N x (p + 1) matrix.
+    """
+    k = prep.k
+    p = k + 1
+    r_acc = np.zeros((0, p + 1))
+    n_obs = 0
+    sums = np.zeros(p + 1)
+    for block in iter_dyad_rows(prep, prep.matrices):
+        ok = ~np.isnan(block).any(axis=1)
+        block = block[ok]
+        if block.shape[0] == 0:
+            continue
+        n_obs += block.shape[0]
+        sums[1:] += block.sum(axis=0)
+        a = np.concatenate([np.ones((block.shape[0], 1)), block], axis=1)
+        r_acc = np.linalg.qr(np.concatenate([r_acc, a], axis=0), mode="r")
+    if n_obs <= p:
+        raise InputError(f"too few dyads for the model: {n_obs} complete dyads for {p} terms")
+    r = r_acc[:p + 1, :p + 1]
+    # column scales for a relative pivot test
+    scale = np.sqrt(np.maximum((r * r).sum(axis=0), 1e-300))
+    rx = r[:p, :p]
+    piv = np.abs(np.diag(rx)) / scale[:p]
+    bad = [j for j in range(1, p) if piv[j] < COLLINEAR_PIVOT]
+    if bad:
+        name = prep.names[bad[0] - 1]
+        others = ", ".join(prep.names[: bad[0] - 1]) or "the intercept"
+        raise InputError(f"predictor {name!r} is constant or perfectly collinear with "
+                         f"{others} over the dyad set")
+    y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
+    ymean = sums[-1] / n_obs
+    tss = 0.0
+    for block in iter_dyad_rows(prep, prep.matrices):
+        ok = ~np.isnan(block).any(axis=1)
+        tss += float(((block[ok, -1] - ymean) ** 2).sum())
+    if tss <= 0.0:
+        raise InputError(f"response {prep.response_name!r} has no variation over the dyad set")
+    coef = np.linalg.solve(np.triu(rx), r[:p, p]) if p else np.zeros(0)
+    rinv = np.linalg.solve(np.triu(rx), np.eye(p))
+    rss = float(y_piv ** 2)
+    sigma2 = rss / (n_obs - p)
+    se = np.sqrt(sigma2 * (rinv * rinv).sum(axis=1))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = coef / se
+    cond = _standardised_condition(rx, k, prep.names)
+    return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
+
+
+def _standardised_condition(rx: np.ndarray, k: int, names: Sequence[str]) -> float:
+    """Condition number of the centred, unit-length predictors; warn when large."""
+    if k < 2:
+        return 1.0
+    # With [1, X] = QR, the lower-right block of R is an R factor of the centred X
+    # (X_c'X_c = X'X - N xbar xbar' = R_xx'R_xx).
+    rc = rx[1:, 1:]
+    norms = np.sqrt((rc * rc).sum(axis=0))
+    rs = rc / norms
+    sv = np.linalg.svd(rs, compute_uv=False)
+    cond = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
+    if cond > COND_WARN:
+        corr = rs.T @ rs
+        np.fill_diagonal(corr, 0.0)
+        a, b = np.unravel_index(np.argmax(np.abs(corr)), corr.shape)
+        warnings.warn(f"predictors are nearly collinear (condition number {cond:.3g}; most "
+                      f"correlated pair {names[a]!r} and {names[b]!r}, r = {corr[a, b]:.6f}): "
+                      "estimates are unstable", DyadpermWarning, stacklevel=3)
+    return cond
+
+
+def standardise(prep: Prepared) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and standard deviation of each matrix over the observed complete dyads."""
+    count = 0
+    s1 = np.zeros(len(prep.matrices))
+    for block in iter_dyad_rows(prep, prep.matrices):
+        block = block[~np.isnan(block).any(axis=1)]
+        count += block.shape[0]
+        s1 += block.sum(axis=0)
+    mean = s1 / max(count, 1)
+    s2 = np.zeros_like(mean)
+    for block in iter_dyad_rows(prep, prep.matrices):
+        block = block[~np.isnan(block).any(axis=1)]
+        s2 += ((block - mean) ** 2).sum(axis=0)
+    sd = np.sqrt(s2 / max(count, 1))
+    return mean, sd

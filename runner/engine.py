@@ -1,0 +1,93 @@
+"""Chunks of relabellings -> kernels -> statistics, spread over workers.
+
+A chunk is a fixed-size run of consecutive permutation indices; it is the unit of
+parallel work, of storage and of resume. Chunk ``c`` holds permutations
+``c * chunk_size`` .. ``(c + 1) * chunk_size - 1`` (the last chunk may be shorter), each
+drawn from its own stream (see ``permutations``), so a chunk's statistics depend only on
+the seed and its index. Only this module knows about workers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Iterable, Iterator
+
+import numpy as np
+
+from .permutations import Blocks, draw, enumerate_exact
+from .schemes import Plan
+
+# Work per chunk (dyads x cross products) the default chunk size aims at: about a
+# tenth of a second to a second of kernel time, so progress, storage and resume stay fine.
+CHUNK_WORK = 2e8
+MAX_CHUNK = 1000
+
+
+@dataclass(frozen=True)
+class Draws:
+    """Which relabellings a run uses: random (by seed entropy) or the full enumeration."""
+
+    blocks: Blocks
+    total: int
+    chunk_size: int
+    exact: bool
+    entropy: int
+
+    @property
+    def n_chunks(self) -> int:
+        return -(-self.total // self.chunk_size)
+
+    def chunk_rows(self, c: int) -> tuple[int, int]:
+        """(first permutation index, number of permutations) of chunk ``c``."""
+        first = c * self.chunk_size
+        return first, min(self.chunk_size, self.total - first)
+
+    def permutations(self, c: int) -> tuple[np.ndarray, np.ndarray]:
+        first, count = self.chunk_rows(c)
+        if self.exact:
+            return enumerate_exact(self.blocks, first, count)
+        return draw(self.blocks, self.entropy, first, count)
+
+
+def default_chunk_size(plan: Plan) -> int:
+    """A chunk size that keeps one chunk's kernel work near ``CHUNK_WORK``."""
+    per_perm = plan.n_dyads * sum((p.rel_idx.size + 1) * (p.fix_idx.size + 1) for p in plan.passes)
+    return int(np.clip(CHUNK_WORK // max(per_perm, 1), 1, MAX_CHUNK))
+
+
+def compute_chunk(plan: Plan, draws: Draws, c: int) -> tuple[int, np.ndarray]:
+    """Statistics (count, k) of chunk ``c``."""
+    rows, cols = draws.permutations(c)
+    return c, plan.statistics(rows, cols)
+
+
+def iter_chunks(plan: Plan, draws: Draws, chunk_ids: Iterable[int], *, jobs: int = 1,
+                backend: str = "threads") -> Iterator[tuple[int, np.ndarray]]:
+    """Yield (chunk index, statistics) as chunks finish, in any order.
+
+    ``jobs`` = 1 runs in this thread; otherwise joblib spreads chunks over ``jobs``
+    workers (-1: all cores). ``backend``: "threads" (default; kernels release the GIL,
+    inputs are shared, not copied) or "processes" (loky).
+    """
+    chunk_ids = list(chunk_ids)
+    if jobs == 1 or len(chunk_ids) <= 1:
+        for c in chunk_ids:
+            yield compute_chunk(plan, draws, c)
+        return
+    from joblib import Parallel, delayed
+
+    prefer = {"threads": "threading", "processes": "loky"}[backend]
+    parallel = Parallel(n_jobs=jobs, backend=prefer, return_as="generator_unordered")
+    yield from parallel(delayed(compute_chunk)(plan, draws, c) for c in chunk_ids)
+
+
+def run_all(plan: Plan, draws: Draws, *, jobs: int = 1, backend: str = "threads",
+            on_chunk: Callable[[int, np.ndarray], None] | None = None) -> np.ndarray:
+    """Every chunk's statistics assembled in permutation order (total, k)."""
+    null = np.empty((draws.total, plan.k))
+    for c, stats in iter_chunks(plan, draws, range(draws.n_chunks), jobs=jobs, backend=backend):
+        first, count = draws.chunk_rows(c)
+        null[first:first + count] = stats
+        if on_chunk is not None:
+            on_chunk(c, stats)
+    return null
