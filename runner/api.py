@@ -94,7 +94,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             jobs: int = 1, directed: bool | None = None, groups: Any = None,
             dyads: str | None = None, exact: Any = "auto", chunk_size: int | None = None,
             out: Any = None, progress: bool | Callable[[int, int], None] = False,
-            provenance: dict | None = None) -> RegressionResult:
+            storage: str = "float64", provenance: dict | None = None) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
@@ -130,6 +130,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Run file to write (HDF5).
     progress : bool or callable(done, total)
         Progress callback.
+    storage : {"float64", "float32"}
+        Precision of the stored layers the kernels read (sums are always float64).
 
     Returns
     -------
@@ -152,7 +154,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         raise InputError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep)
-    plan = build_plan(prep, scheme=scheme, statistic=statistic)
+    plan = build_plan(prep, scheme=scheme, statistic=statistic, storage=storage)
     draws, observed, null = _run(prep, plan, permutations=permutations, seed=seed, jobs=jobs,
                                  exact=exact, chunk_size=chunk_size, progress=progress)
     if statistic == "t":
@@ -194,7 +196,7 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
               groups: Any = None, dyads: str | None = None, exact: Any = "auto",
               chunk_size: int | None = None, out: Any = None,
               progress: bool | Callable[[int, int], None] = False,
-              provenance: dict | None = None) -> CorrelationResult:
+              storage: str = "float64", provenance: dict | None = None) -> CorrelationResult:
     """QAP correlation of two networks (the Mantel test for matrices).
 
     Pearson r (or Spearman's, on average ranks of the dyad values) over the dyad set, with
@@ -208,7 +210,7 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     bname = getattr(b, "name", None) or "b"
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
                            response_name=getattr(a, "name", None) or "a")
-    plan = build_correlation_plan(prep, method=method)
+    plan = build_correlation_plan(prep, method=method, storage=storage)
     draws, observed, null = _run(prep, plan, permutations=permutations, seed=seed, jobs=jobs,
                                  exact=exact, chunk_size=chunk_size, progress=progress)
     pv = pvalues(null, observed, exact=draws.exact)
