@@ -635,7 +635,7 @@ def _align_edges(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
             both = back >= 0
             for a in np.flatnonzero(both):
                 b = back[a]
-                wa, wb = w[a], w[b]
+                wa, wb = float(w[a]), float(w[b])
                 if not (wa == wb or (np.isnan(wa) and np.isnan(wb))):
                     raise InputError(
                         f"{shown}: directed = false but {rows[i[a]]!r} -> {rows[j[a]]!r} has "
@@ -688,6 +688,6 @@ def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
         if diff.any():
             a, b = np.argwhere(diff)[0]
             raise InputError(f"{shown}: directed = false but the block is not symmetric: "
-                             f"value {out[a, b]!r} at ({row_names[a]}, {col_names[b]}) and "
-                             f"{out[b, a]!r} at ({row_names[b]}, {col_names[a]})")
+                             f"value {float(out[a, b])!r} at ({row_names[a]}, {col_names[b]}) and "
+                             f"{float(out[b, a])!r} at ({row_names[b]}, {col_names[a]})")
     return out, notes
