@@ -1,0 +1,244 @@
+"""Slow, plain-numpy twins of the kernels and brute-force oracles of the schemes.
+
+Everything here is written for obviousness, not speed: relabelled matrices are built with
+``M[np.ix_(p, q)]``, every fit is a full ``np.linalg.lstsq`` refit, exact p-values loop over
+all relabellings with ``itertools.permutations``. The formulas are those of
+``shared/methods.md`` (Krackhardt 1988 for the Y-permutation; Dekker, Krackhardt & Snijders
+2007 for DSP; Freedman & Lane 1983), written here from the text, not from the engine.
+
+Tolerances used across the tests live here, as named constants, in one place.
+"""
+
+from __future__ import annotations
+
+import itertools
+from typing import Iterator, Sequence
+
+import numpy as np
+
+# --- tolerances (one place) -------------------------------------------------------------
+#: kernel vs its numpy twin: same sums in another order (numba fastmath may reassociate).
+KERNEL_RTOL = 1e-10
+KERNEL_ATOL = 1e-10
+#: engine statistics (dot-product updates) vs full lstsq refits / statsmodels.
+STAT_RTOL = 1e-8
+STAT_ATOL = 1e-10
+#: two statistics closer than this (relative) count as tied: the rule of methods.md.
+TIE_RTOL = 1e-9
+#: p-values are counts over a known total; compare them to this absolute tolerance.
+P_ATOL = 1e-12
+#: Clopper-Pearson end points: scipy's binomtest finds them by root finding (about 1e-10
+#: relative), a beta quantile gives them directly; both are the same interval.
+INTERVAL_RTOL = 1e-8
+
+SCHEMES = ("y", "dsp", "freedman-lane")
+
+
+# --- kernel twin --------------------------------------------------------------------------
+def gather_cross_ref(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop,
+                     out=None):
+    """Twin of ``kernels.gather.gather_cross``.
+
+    out[b, a, c] = sum_i sum_{col_start[i] <= j < col_stop[i]}
+                   rel[row_perms[b, i], col_perms[b, j], rel_idx[a]] * fix[i, j, fix_idx[c]]
+    """
+    n, m = fix.shape[0], fix.shape[1]
+    B = row_perms.shape[0]
+    R, Q = len(rel_idx), len(fix_idx)
+    jj = np.arange(m)[None, :]
+    mask = (jj >= np.asarray(col_start)[:, None]) & (jj < np.asarray(col_stop)[:, None])
+    res = np.empty((B, R, Q))
+    for b in range(B):
+        moved = rel[np.ix_(row_perms[b], col_perms[b])]          # (n, m, Lr)
+        for a in range(R):
+            for c in range(Q):
+                prod = moved[:, :, rel_idx[a]] * fix[:, :, fix_idx[c]]
+                res[b, a, c] = np.sum(prod[mask])
+    if out is not None:
+        out[...] = res
+        return out
+    return res
+
+
+# --- dyad sets, vectors, relabelling ------------------------------------------------------
+def dyads(n: int, m: int | None = None, directed: bool = True, two_mode: bool = False):
+    """Index arrays (rows, cols) of the dyad set (methods.md, "Dyads and relabelling").
+
+    directed one-mode: all i != j; undirected: i < j; two-mode: every (i, j) of n x m.
+    """
+    if two_mode:
+        rows, cols = np.meshgrid(np.arange(n), np.arange(m), indexing="ij")
+        return rows.ravel(), cols.ravel()
+    if m is not None and m != n:
+        raise ValueError(f"one-mode data need n == m; got {n} x {m}")
+    rows, cols = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
+    keep = rows < cols if not directed else rows != cols
+    return rows[keep], cols[keep]
+
+
+def vec(M: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """Dyad values of M over the dyad set, in the order of (rows, cols)."""
+    return np.asarray(M, dtype=np.float64)[rows, cols]
+
+
+def unvec(v: np.ndarray, rows, cols, shape, directed: bool, two_mode: bool) -> np.ndarray:
+    """Matrix holding v on the dyad set and 0 elsewhere.
+
+    For undirected data a dyad is an unordered pair {i, j}: its value goes in both cells,
+    so relabelling can move it to either triangle without losing it.
+    """
+    E = np.zeros(shape)
+    E[rows, cols] = v
+    if not directed and not two_mode:
+        E[cols, rows] = v
+    return E
+
+
+def relabel(M: np.ndarray, prow, pcol) -> np.ndarray:
+    """M'[i, j] = M[prow[i], pcol[j]] (methods.md; one-mode uses prow == pcol)."""
+    return np.asarray(M)[np.ix_(np.asarray(prow), np.asarray(pcol))]
+
+
+# --- ordinary least squares -------------------------------------------------------------
+def ols_t(X: np.ndarray, y: np.ndarray):
+    """Classical OLS by ``np.linalg.lstsq``: (coefficients, standard errors, t statistics)."""
+    beta, *_ = np.linalg.lstsq(X, y, rcond=None)
+    resid = y - X @ beta
+    N, p = X.shape
+    sigma2 = resid @ resid / (N - p)
+    se = np.sqrt(sigma2 * np.diag(np.linalg.inv(X.T @ X)))
+    return beta, se, beta / se
+
+
+def design(Xs: Sequence[np.ndarray], rows, cols) -> np.ndarray:
+    """[1, x_1, ..., x_k] over the dyad set."""
+    return np.column_stack([np.ones(len(rows))] + [vec(X, rows, cols) for X in Xs])
+
+
+def residualise(v: np.ndarray, Z: np.ndarray) -> np.ndarray:
+    """M_Z v = v - Z (Z'Z)^-1 Z'v, by lstsq."""
+    g, *_ = np.linalg.lstsq(Z, v, rcond=None)
+    return v - Z @ g
+
+
+# --- the brute-force scheme oracle -------------------------------------------------------
+def scheme_stat(Y, Xs, scheme: str, statistic: str, prow, pcol, directed: bool = True,
+                two_mode: bool = False) -> np.ndarray:
+    """The k permuted statistics for one relabelling (prow, pcol), by full refits.
+
+    scheme "y": relabel Y, regress on X, take term j (Krackhardt 1988).
+    scheme "dsp": for term j, e = M_Z x_j (Z = [1, other x]) back into a matrix E, relabel
+        E, regress y on [Z, e_pi], take the e_pi term (Dekker et al. 2007).
+    scheme "freedman-lane": r = M_Z y into a matrix R, relabel R, y* = Z g + r_pi, regress
+        y* on the full X, take term j (Freedman & Lane 1983).
+    statistic "t" takes the t statistic, "coef" the coefficient.
+    """
+    Y = np.asarray(Y, dtype=np.float64)
+    n, m = Y.shape
+    rows, cols = dyads(n, m, directed, two_mode)
+    X = design(Xs, rows, cols)
+    y = vec(Y, rows, cols)
+    k = len(Xs)
+    pick = 0 if statistic == "coef" else 2
+    if statistic not in ("t", "coef"):
+        raise ValueError(f"statistic must be 't' or 'coef'; got {statistic!r}")
+    out = np.empty(k)
+    if scheme == "y":
+        y_pi = vec(relabel(Y, prow, pcol), rows, cols)
+        out[:] = ols_t(X, y_pi)[pick][1:]
+        return out
+    for j in range(k):
+        col = j + 1
+        Z = np.delete(X, col, axis=1)
+        if scheme == "dsp":
+            e = residualise(X[:, col], Z)
+            E = unvec(e, rows, cols, Y.shape, directed, two_mode)
+            e_pi = vec(relabel(E, prow, pcol), rows, cols)
+            fit = ols_t(np.column_stack([Z, e_pi]), y)
+            out[j] = fit[pick][-1]
+        elif scheme == "freedman-lane":
+            g, *_ = np.linalg.lstsq(Z, y, rcond=None)
+            r = y - Z @ g
+            R = unvec(r, rows, cols, Y.shape, directed, two_mode)
+            y_star = Z @ g + vec(relabel(R, prow, pcol), rows, cols)
+            out[j] = ols_t(X, y_star)[pick][col]
+        else:
+            raise ValueError(f"scheme must be one of {SCHEMES}; got {scheme!r}")
+    return out
+
+
+def all_relabellings(n: int, m: int | None = None, two_mode: bool = False
+                     ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Every relabelling, the identity included: n! (one-mode) or n! * m! (two-mode)."""
+    if two_mode:
+        for pr, pc in itertools.product(itertools.permutations(range(n)),
+                                        itertools.permutations(range(m))):
+            yield np.array(pr), np.array(pc)
+    else:
+        for p in itertools.permutations(range(n)):
+            a = np.array(p)
+            yield a, a
+
+
+def exact_null(Y, Xs, scheme, statistic, directed=True, two_mode=False):
+    """(observed statistics (k,), null (total x k)) over all relabellings."""
+    Y = np.asarray(Y, dtype=np.float64)
+    n, m = Y.shape
+    ident_r, ident_c = np.arange(n), np.arange(m)
+    obs = scheme_stat(Y, Xs, scheme, statistic, ident_r, ident_c, directed, two_mode)
+    null = np.array([scheme_stat(Y, Xs, scheme, statistic, pr, pc, directed, two_mode)
+                     for pr, pc in all_relabellings(n, m, two_mode)])
+    return obs, null
+
+
+def counts(obs: np.ndarray, null: np.ndarray):
+    """(b_two_sided, b_greater, b_less) with the tie rule of methods.md (relative 1e-9)."""
+    obs = np.asarray(obs, dtype=np.float64)
+    tol = TIE_RTOL * np.abs(obs)
+    b2 = np.sum(np.abs(null) >= np.abs(obs) - tol, axis=0)
+    bg = np.sum(null >= obs - tol, axis=0)
+    bl = np.sum(null <= obs + tol, axis=0)
+    return b2, bg, bl
+
+
+def exact_pvalues(Y, Xs, scheme, statistic, directed=True, two_mode=False):
+    """Exact (two-sided, greater, less) p-values: p = b / total, the identity included."""
+    obs, null = exact_null(Y, Xs, scheme, statistic, directed, two_mode)
+    b2, bg, bl = counts(obs, null)
+    total = null.shape[0]
+    return b2 / total, bg / total, bl / total
+
+
+def random_pvalues(obs, null):
+    """(b+1)/(m+1) p-values for m random relabellings (Phipson & Smyth 2010)."""
+    b2, bg, bl = counts(obs, null)
+    m = null.shape[0]
+    return (b2 + 1) / (m + 1), (bg + 1) / (m + 1), (bl + 1) / (m + 1)
+
+
+# --- correlation oracle ------------------------------------------------------------------
+def dyad_corr(A, B, method="pearson", directed=True, two_mode=False) -> float:
+    """Pearson r over the dyad set; Spearman = Pearson of average ranks (methods.md)."""
+    from scipy.stats import rankdata
+
+    A = np.asarray(A, dtype=np.float64)
+    n, m = A.shape
+    rows, cols = dyads(n, m, directed, two_mode)
+    a, b = vec(A, rows, cols), vec(B, rows, cols)
+    if method == "spearman":
+        a, b = rankdata(a), rankdata(b)
+    elif method != "pearson":
+        raise ValueError(f"method must be 'pearson' or 'spearman'; got {method!r}")
+    a = a - a.mean()
+    b = b - b.mean()
+    return float(a @ b / np.sqrt((a @ a) * (b @ b)))
+
+
+def exact_corr_null(A, B, method="pearson", directed=True, two_mode=False):
+    """(observed r, null r over all relabellings of B)."""
+    A = np.asarray(A, dtype=np.float64)
+    n, m = A.shape
+    obs = dyad_corr(A, B, method, directed, two_mode)
+    null = np.array([dyad_corr(A, relabel(B, pr, pc), method, directed, two_mode)
+                     for pr, pc in all_relabellings(n, m, two_mode)])
+    return obs, null
