@@ -192,8 +192,8 @@ def make_demo(seed: int = DEMO_SEED, n_farms: int = 90) -> DemoData:
     -----
     Steps: extended families settle at random points along the canal and their farms
     spread around that point; kinship is high within a family and occasional (marriage)
-    between families; the main crop depends on the stretch of canal (olives and vines
-    upstream, maize and vegetables downstream) with some farms going their own way; the
+    between families; the main crop is each farm's own choice, independent of place, kin
+    and sharing (so that ``same_crop`` is a true null, see the module docstring); the
     volume follows the latent model of the module docstring, with farm-level giver and
     taker effects and reciprocally correlated noise.
     """
@@ -246,7 +246,6 @@ def make_demo(seed: int = DEMO_SEED, n_farms: int = 90) -> DemoData:
               + giver[:, None] + taker[None, :] + noise)
     volume = DEMO_VOLUME_UNIT * np.round(np.maximum(latent, 0.0) / DEMO_VOLUME_UNIT)
     np.fill_diagonal(volume, 0.0)
-    volume += 0.0  # turn any -0.0 into 0.0
 
     farm_ids = tuple(f"F{k:0{len(str(n))}d}" for k in range(1, n + 1))
     return DemoData(
