@@ -6,3 +6,4 @@ from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, 
 __version__ = "0.1.0"
 from .api import correlate, regress
 from .result import CorrelationResult, RegressionResult
+from .study import Study, load_study

@@ -36,7 +36,7 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     groups = "district"       # optional node-table column; relabelling stays within groups
     dyads = "within"          # within | all (only with groups; default within)
     jobs = 1                  # integer >= 1, or -1 for all cores
-    chunk_size = 256          # integer >= 1
+    chunk_size = 256          # integer >= 1; omitted = the engine's choice
 
     [output]
     file = "water_run.h5"     # optional run file, relative to the study file
@@ -91,7 +91,7 @@ _CHOICES = {
 _REGRESSION_ONLY = ("model", "scheme", "statistic")
 _DEFAULTS = {"kind": "regression", "model": "linear", "scheme": "dsp", "statistic": "t",
              "method": "pearson", "permutations": 10_000, "seed": None, "alpha": 0.05,
-             "exact": "auto", "groups": None, "dyads": None, "jobs": 1, "chunk_size": 256}
+             "exact": "auto", "groups": None, "dyads": None, "jobs": 1, "chunk_size": None}
 _RESERVED_NAMES = ("intercept",)
 
 
@@ -530,7 +530,7 @@ class _Loader:
             elif "reverse" in p:
                 predictors[name] = reverse(networks[p["reverse"]], name=name)
             else:
-                predictors[name] = self.derived(section, p, nodes, col_nodes)
+                predictors[name] = self.derived(section, p, nodes, col_nodes, len(rows))
         groups = None
         if test["groups"] is not None:
             groups = self.attribute("[test]", "groups", nodes, test["groups"], need_all=True)
@@ -588,7 +588,7 @@ class _Loader:
         return values
 
     def derived(self, section: str, p: dict, nodes: NodeTable | None,
-                col_nodes: NodeTable | None) -> NodeDerived:
+                col_nodes: NodeTable | None, n_rows: int) -> NodeDerived:
         kind = next(k for k in _DERIVED if k in p)
         column, name = p[kind], p["name"]
         numeric, need_all = kind in _NUMERIC_KINDS, kind == "same"
@@ -601,8 +601,9 @@ class _Loader:
             col_values = self.attribute(section, kind, col_nodes, column, numeric=numeric,
                                         need_all=need_all)
         if kind == "receiver":
-            # the row nodes' attribute plays no part in a receiver term of two-mode data
-            return receiver(None, col_values, name=name)
+            # A receiver term of two-mode data uses only the column nodes' attribute; the row
+            # values never enter it, but NodeDerived.dense wants one per row node: NaN.
+            return receiver(np.full(n_rows, np.nan), col_values, name=name)
         values = self.attribute(section, kind, nodes, column, numeric=numeric,
                                 need_all=need_all)
         if kind == "sender":
