@@ -92,6 +92,24 @@ def test_gather_cross_matches_twin(rng, n, m, Lr, Lf, B, two_mode, ranges, kind)
         np.testing.assert_array_equal(before, after)  # inputs are read-only
 
 
+@pytest.mark.parametrize("two_mode", [False, True])
+def test_gather_cross_float32_layers_accumulate_in_float64(rng, two_mode):
+    # the engine may store layers as float32 (storage="float32"); sums stay float64, so the
+    # kernel must equal the twin evaluated in float64 on the same float32 values
+    n, m = (9, 9) if not two_mode else (9, 5)
+    args = list(_inputs(rng, n, m, 3, 3, 7, two_mode=two_mode,
+                        ranges="full" if two_mode else "upper"))
+    args[0] = args[0].astype(np.float32)
+    args[2] = args[2].astype(np.float32)
+    out = np.empty((7, len(args[1]), len(args[3])))
+    gather_cross(*args, out)
+    twin_args = list(args)
+    twin_args[0] = args[0].astype(np.float64)
+    twin_args[2] = args[2].astype(np.float64)
+    expected = gather_cross_ref(*twin_args)
+    np.testing.assert_allclose(out, expected, rtol=KERNEL_RTOL, atol=KERNEL_ATOL)
+
+
 def test_gather_cross_empty_ranges_give_zero(rng):
     # every row's range empty: the sums are empty, so 0 (not the garbage left in out)
     n, m = 4, 4
