@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
+import dyadperm as dp
 from dyadperm import InputError
 from dyadperm.demo import (
     CROPS,
@@ -29,7 +30,6 @@ from dyadperm.demo import (
     write_demo,
     write_example_institute,
 )
-from dyadperm.study import load_study  # the public name is dyadperm.load_study (design.md)
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 
@@ -283,7 +283,7 @@ def test_committed_study_recovers_planted_effects(study, effects):
     # statistic's sign the planted sign) and the true null is not (p > 0.05) on the fixed
     # seed of the study file. Only the demo's outcome is checked here; the engine's
     # correctness is tested elsewhere.
-    res = load_study(CONFIGS / study).run(permutations=STUDY_PERMUTATIONS, jobs=1)
+    res = dp.load_study(CONFIGS / study).run(permutations=STUDY_PERMUTATIONS, jobs=1)
     assert res.terms == ("intercept", *(name for name, _ in effects))
     assert res.permutations == STUDY_PERMUTATIONS
     for k, (name, coef) in enumerate(effects, start=1):
