@@ -578,7 +578,7 @@ class _Loader:
         if numeric and values.dtype.kind != "f":
             r = next(k for k, v in enumerate(values) if v != "" and not _is_number(v))
             raise self.check.error(section, key, f"{key} needs numbers; {place} line "
-                                   f"{table.lines[r]} holds {values[r]!r}", column)
+                                   f"{table.lines[r]} holds {str(values[r])!r}", column)
         if need_all:
             empty = np.isnan(values) if values.dtype.kind == "f" else values == ""
             if empty.any():
