@@ -4,6 +4,6 @@ from .dyadic import Dyadic, gap, pair_sum, receiver, reverse, same, sender
 from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, RunFileError
 
 __version__ = "0.1.0"
-from .api import correlate, regress
+from .api import correlate, open_result, regress
 from .result import CorrelationResult, RegressionResult
 from .study import Study, load_study

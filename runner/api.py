@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import json
 import warnings
+from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
 
 from . import design as _design
-from .engine import Draws, default_chunk_size, run_all
+from . import store as _store
+from .engine import Draws, default_chunk_size, iter_chunks, run_all
 from .errors import DyadpermWarning, InputError
 from .permutations import EXACT_LIMIT, Blocks
 from .pvalues import pvalues
@@ -68,25 +71,86 @@ def _draws(blocks: Blocks, *, permutations: int, exact: Any, entropy: int,
     return Draws(blocks, total, chunk_size, use_exact, entropy)
 
 
-def _run(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, progress,
-         backend: str = "threads"):
+def _identity(prep, draws: Draws, settings: dict) -> dict:
+    """Everything that must agree for a run file to belong to this run."""
+    ident = dict(settings)
+    ident.update(seed=None if draws.exact else str(draws.entropy), exact=draws.exact,
+                 chunk_size=draws.chunk_size, directed=prep.directed)
+    ident["mask"] = _store.fingerprint(prep.mask)
+    ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
+    for name, mat in zip(prep.names + (prep.response_name,), prep.matrices):
+        ident[f"fingerprint:{name}"] = _store.fingerprint(mat)
+    return ident
+
+
+def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, progress,
+             out, settings: dict, summary: dict, observed_fit: dict, provenance: dict | None,
+             shard: str = "", backend: str = "threads"):
+    """Run every missing chunk; return (draws, observed statistic, null or None for a shard).
+
+    With ``out`` the chunks stream to a run file; an existing file of the same run is
+    resumed (and grown when more permutations are asked for); one of another run is refused.
+    """
     entropy = _entropy(seed)
     cs = int(chunk_size) if chunk_size is not None else default_chunk_size(plan)
-    draws = _draws(prep.blocks, permutations=permutations, exact=exact, entropy=entropy,
-                   chunk_size=cs)
-    # the observed statistic goes through the same kernels as the permuted ones
     n, m = prep.mask.shape
-    ident = np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :]
-    observed = plan.statistics(*ident)[0]
-    on_chunk = None
-    if progress:
-        done = [0]
-
-        def on_chunk(c: int, stats: np.ndarray) -> None:
-            done[0] += stats.shape[0]
-            progress(done[0], draws.total) if callable(progress) else None
-    null = run_all(plan, draws, jobs=jobs, backend=backend, on_chunk=on_chunk)
+    # the observed statistic goes through the same kernels as the permuted ones
+    ident_perm = np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :]
+    observed = plan.statistics(*ident_perm)[0]
+    out = Path(out) if out is not None else None
+    if out is not None and out.exists():
+        hdr = _store.read_header(out)
+        if seed is None and hdr.identity.get("seed") is not None:
+            entropy = int(hdr.identity["seed"])  # resuming a run that drew its own seed
+        if chunk_size is None:
+            cs = hdr.chunk_size
+        draws = _draws(prep.blocks, permutations=permutations, exact=exact, entropy=entropy,
+                       chunk_size=cs)
+        _store.check_same_run(out, hdr, _identity(prep, draws, settings))
+        if draws.total > hdr.permutations:
+            _store.grow(out, draws.total)
+        elif draws.total < hdr.permutations:
+            draws = Draws(draws.blocks, hdr.permutations, cs, draws.exact, draws.entropy)
+    else:
+        draws = _draws(prep.blocks, permutations=permutations, exact=exact, entropy=entropy,
+                       chunk_size=cs)
+        if out is not None:
+            prov = provenance or {}
+            _store.create(out, _store.RunHeader(
+                identity=_identity(prep, draws, settings), terms=tuple(summary["terms"]),
+                tested=tuple(summary["tested"]), permutations=draws.total,
+                chunk_size=draws.chunk_size, exact=draws.exact, shard=shard,
+                study_text=prov.get("study_text", ""), study_path=prov.get("study_path", ""),
+                summary=summary, observed={**observed_fit, "kernel_stat": observed}))
+    tick = _ticker(progress, draws.total)
+    if out is None:
+        null = run_all(plan, draws, jobs=jobs, backend=backend,
+                       on_chunk=None if tick is None else (lambda c, st: tick(st.shape[0])))
+        return draws, observed, null
+    with _store.Writer(out) as w:
+        done = w.done_chunks()
+        todo = _store.missing_chunks(done, shard)
+        if tick is not None:
+            tick(sum(draws.chunk_rows(c)[1] for c in np.flatnonzero(done)))
+        for c, stats in iter_chunks(plan, draws, todo, jobs=jobs, backend=backend):
+            w.write_chunk(c, draws.chunk_rows(c)[0], stats)
+            if tick is not None:
+                tick(stats.shape[0])
+    if shard:
+        return draws, observed, None
+    _, null, _ = _store.load(out)
     return draws, observed, null
+
+
+def _ticker(progress, total: int):
+    if not progress or not callable(progress):
+        return None
+    done = [0]
+
+    def tick(rows: int) -> None:
+        done[0] += rows
+        progress(done[0], total)
+    return tick
 
 
 def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "dsp",
@@ -155,29 +219,69 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep)
     plan = build_plan(prep, scheme=scheme, statistic=statistic, storage=storage)
-    draws, observed, null = _run(prep, plan, permutations=permutations, seed=seed, jobs=jobs,
-                                 exact=exact, chunk_size=chunk_size, progress=progress)
+    settings = dict(kind="regression", model=model, scheme=scheme, statistic=statistic,
+                    method=None, storage=storage, dyads=dyads,
+                    groups=None if groups is None else _store.fingerprint(np.asarray(groups).astype(str)))
+    summary = _summary(prep, kind="regression", model=model, scheme=scheme,
+                       statistic=statistic, method=None, n_dyads=fit.n_dyads,
+                       terms=("intercept",) + prep.names)
+    fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
+                      fit=np.array([fit.r2, np.nan]))
+    draws, observed, null = _execute(
+        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
+        chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
+        observed_fit=fit_arrays, provenance=provenance)
     if statistic == "t":
         _check_agreement(observed, fit.t[1:], prep.names)
-    pv = pvalues(null, observed, exact=draws.exact)
-    k = prep.k
+    return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
+                        exact=draws.exact, chunk_size=draws.chunk_size,
+                        seed=None if draws.exact else draws.entropy)
+
+
+def _summary(prep, *, kind, model, scheme, statistic, method, n_dyads, terms) -> dict:
+    n, m = prep.mask.shape
+    return dict(kind=kind, model=model, scheme=scheme, statistic=statistic, method=method,
+                terms=list(terms), tested=list(prep.names), response=prep.response_name,
+                n_nodes=n + m if prep.two_mode else n, n_dyads=int(n_dyads),
+                directed=prep.directed, two_mode=prep.two_mode, notes=[])
+
+
+def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk_size: int,
+                 seed: int | None):
+    """The result object from what a run stores: used by live runs and by open_result."""
+    pv = pvalues(np.asarray(null), np.asarray(observed["kernel_stat"], dtype=np.float64),
+                 exact=exact)
+    common = dict(
+        terms=tuple(summary["terms"]), se=np.asarray(observed["se"], dtype=np.float64),
+        stat=np.asarray(observed["stat"], dtype=np.float64),
+        null=null, permutations=int(np.shape(null)[0]), exact=bool(exact),
+        n_nodes=int(summary["n_nodes"]), n_dyads=int(summary["n_dyads"]),
+        scheme=summary["scheme"], model=summary["model"], statistic=summary["statistic"],
+        seed=seed, directed=bool(summary["directed"]), two_mode=bool(summary["two_mode"]),
+        response=summary["response"], exceed=pv.exceed, failed=pv.failed,
+        chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())))
+    if summary["kind"] == "correlation":
+        return CorrelationResult(p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less,
+                                 p_se=pv.p_se, p_interval=pv.p_interval,
+                                 r=np.asarray(observed["coef"], dtype=np.float64),
+                                 method=summary["method"], **common)
     nan1 = np.full(1, np.nan)
-    stat_obs = fit.t if statistic == "t" else fit.coef
-    res = RegressionResult(
-        terms=("intercept",) + prep.names,
-        se=fit.se, stat=stat_obs,
+    fitv = np.asarray(observed["fit"], dtype=np.float64)
+    return RegressionResult(
         p=np.concatenate([nan1, pv.p]), p_greater=np.concatenate([nan1, pv.p_greater]),
         p_less=np.concatenate([nan1, pv.p_less]), p_se=np.concatenate([nan1, pv.p_se]),
         p_interval=np.concatenate([np.full((1, 2), np.nan), pv.p_interval]),
-        null=null, permutations=draws.total, exact=draws.exact,
-        n_nodes=prep.mask.shape[0] if not prep.two_mode else prep.mask.shape[0] + prep.mask.shape[1],
-        n_dyads=fit.n_dyads, scheme=scheme, model=model, statistic=statistic,
-        seed=None if draws.exact else draws.entropy, directed=prep.directed,
-        two_mode=prep.two_mode, response=prep.response_name, exceed=pv.exceed,
-        failed=pv.failed, chunk_size=draws.chunk_size, notes=(),
-        coef=fit.coef, r2=fit.r2, deviance=float("nan"))
-    assert k == null.shape[1]
-    return res
+        coef=np.asarray(observed["coef"], dtype=np.float64), r2=float(fitv[0]),
+        deviance=float(fitv[1]), **common)
+
+
+def open_result(path: Any):
+    """Read a finished run file back into its result object (null memory-mapped)."""
+    hdr, null, _ = _store.load(path)
+    ident = hdr.identity
+    seed = None if hdr.exact or ident.get("seed") is None else int(ident["seed"])
+    return build_result(hdr.summary, hdr.observed, null, exact=hdr.exact,
+                        chunk_size=hdr.chunk_size, seed=seed)
 
 
 def _check_agreement(kernel_t: np.ndarray, qr_t: np.ndarray, names) -> None:
@@ -211,22 +315,25 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
                            response_name=getattr(a, "name", None) or "a")
     plan = build_correlation_plan(prep, method=method, storage=storage)
-    draws, observed, null = _run(prep, plan, permutations=permutations, seed=seed, jobs=jobs,
-                                 exact=exact, chunk_size=chunk_size, progress=progress)
-    pv = pvalues(null, observed, exact=draws.exact)
-    r = observed
     n_dy = prep.n_dyads if prep.complete else int(_count_complete(prep))
+    settings = dict(kind="correlation", model="correlation", scheme="y", statistic="r",
+                    method=method, storage=storage, dyads=dyads,
+                    groups=None if groups is None else _store.fingerprint(np.asarray(groups).astype(str)))
+    summary = _summary(prep, kind="correlation", model="correlation", scheme="y",
+                       statistic="r", method=method, n_dyads=n_dy, terms=prep.names)
+    ident_perm = (np.arange(prep.mask.shape[0], dtype=np.int64)[None, :],
+                  np.arange(prep.mask.shape[1], dtype=np.int64)[None, :])
+    r = plan.statistics(*ident_perm)[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         se = np.sqrt((1 - r ** 2) / (n_dy - 2))
-    return CorrelationResult(
-        terms=(prep.names[0],), se=se, stat=r.copy(), p=pv.p, p_greater=pv.p_greater,
-        p_less=pv.p_less, p_se=pv.p_se, p_interval=pv.p_interval, null=null,
-        permutations=draws.total, exact=draws.exact,
-        n_nodes=prep.mask.shape[0] if not prep.two_mode else sum(prep.mask.shape),
-        n_dyads=n_dy, scheme="y", model="correlation", statistic="r",
-        seed=None if draws.exact else draws.entropy, directed=prep.directed,
-        two_mode=prep.two_mode, response=prep.response_name, exceed=pv.exceed,
-        failed=pv.failed, chunk_size=draws.chunk_size, notes=(), r=r, method=method)
+    fit_arrays = dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan]))
+    draws, observed, null = _execute(
+        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
+        chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
+        observed_fit=fit_arrays, provenance=provenance)
+    return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
+                        exact=draws.exact, chunk_size=draws.chunk_size,
+                        seed=None if draws.exact else draws.entropy)
 
 
 def _count_complete(prep) -> int:
