@@ -167,14 +167,24 @@ def _parse_number(cell: str, missing: str | None, where: str) -> float:
     return x
 
 
+def _check_marker(missing: str | None) -> str | None:
+    """The extra missing-value marker, stripped like every cell."""
+    if missing is None:
+        return None
+    if not isinstance(missing, str):
+        raise InputError(f"missing-value marker must be a string; got {missing!r}")
+    return missing.strip()
+
+
 def _parse_row(cells: Sequence[str], missing: str | None, where_of) -> np.ndarray:
     """A row of number cells -> float64 array. ``where_of(k)`` names cell k in messages."""
-    try:  # fast path: every cell a plain number
-        row = np.asarray(cells, dtype=np.float64)
-    except ValueError:
-        row = None
-    if row is not None and not np.isinf(row).any():
-        return row
+    if missing is None or missing not in cells:
+        try:  # fast path: every cell a plain number
+            row = np.asarray(cells, dtype=np.float64)
+        except ValueError:
+            row = None
+        if row is not None and not np.isinf(row).any():
+            return row
     return np.array([_parse_number(c, missing, where_of(k)) for k, c in enumerate(cells)],
                     dtype=np.float64)
 
@@ -253,6 +263,7 @@ def read_node_table(path: str | Path, id_column: str, *, missing: str | None = N
     """
     path = Path(path)
     shown = str(path)
+    missing = _check_marker(missing)
     rows = _csv_rows(path, shown)
     try:
         header_line, header = next(rows)
@@ -348,10 +359,7 @@ def read_network(path: str | Path, *, fmt: str = "auto", missing: str | None = N
     """
     if fmt not in FORMATS:
         raise InputError(f"format must be one of {', '.join(FORMATS)}; got {fmt!r}")
-    if missing is not None and not isinstance(missing, str):
-        raise InputError(f"missing-value marker must be a string; got {missing!r}")
-    if missing is not None:
-        missing = missing.strip()
+    missing = _check_marker(missing)
     text = str(path)
     h5 = split_h5_path(text)
     if h5 is not None or text.lower().endswith(".npy"):

@@ -177,6 +177,18 @@ def test_edge_list_errors(tmp_path, text, match):
         read_network(p)
 
 
+def test_number_like_missing_marker(tmp_path):
+    # a marker that reads as a number must still mean "missing", in matrices and edge lists
+    m = write_text(tmp_path / "m.csv", "id,a,b\na,-99,1\nb,2,-99\n")
+    assert_same(read_network(m, missing=" -99 ").values, np.array([[np.nan, 1], [2, np.nan]]))
+    e = write_text(tmp_path / "e.csv", "source,target,weight\na,b,-99\nb,a,3\n")
+    assert_same(read_network(e, missing="-99").weights, np.array([np.nan, 3.0]))
+    n = write_text(tmp_path / "n.csv", "id,x\na,-99\nb,4\n")
+    assert_same(read_node_table(n, "id", missing="-99").columns["x"], np.array([np.nan, 4.0]))
+    with pytest.raises(dp.InputError, match=r"missing-value marker must be a string; got -99"):
+        read_network(m, missing=-99)
+
+
 def test_non_number_message_names_the_marker(tmp_path):
     p = write_text(tmp_path / "e.csv", "source,target,weight\na,b,n/a\n")
     with pytest.raises(dp.InputError, match=r"found 'n/a' \(missing-value marker is 'NA'\)"):
