@@ -151,6 +151,40 @@ def test_exact_pvalues_two_mode_match_oracle(rng, scheme, statistic):
     _check_exact(res, obs, null)
 
 
+DERIVED = {
+    # kind: (lazy predictor from node values v, the same predictor as a dense matrix)
+    # source: the formulas of glossary.md / methods.md, written out densely here
+    "same": (lambda v: dp.same(v), lambda v: (v[:, None] == v[None, :]).astype(float)),
+    "gap": (lambda v: dp.gap(v), lambda v: np.abs(v[:, None] - v[None, :])),
+    "sender": (lambda v: dp.sender(v), lambda v: np.repeat(v[:, None], len(v), axis=1)),
+    "receiver": (lambda v: dp.receiver(v), lambda v: np.repeat(v[None, :], len(v), axis=0)),
+    "pair_sum": (lambda v: dp.pair_sum(v), lambda v: v[:, None] + v[None, :]),
+}
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+@pytest.mark.parametrize("kind", [*DERIVED, "reverse"])
+def test_derived_predictors_exact_match_oracle(rng, kind, scheme):
+    # relabelling nodes permutes the attribute vector (methods.md): the lazy predictor must
+    # give the exact null of its dense matrix relabelled by M[np.ix_(p, p)]
+    n = 5
+    Y = rng.normal(size=(n, n))
+    X = rng.normal(size=(n, n))
+    if kind == "reverse":
+        W = rng.normal(size=(n, n))
+        lazy, dense = dp.reverse(W), W.T.copy()
+    elif kind == "same":
+        v = np.array([0.0, 1.0, 0.0, 2.0, 1.0])
+        lazy, dense = DERIVED[kind][0](v), DERIVED[kind][1](v)
+    else:
+        v = rng.normal(size=n)
+        lazy, dense = DERIVED[kind][0](v), DERIVED[kind][1](v)
+    Y = Y + 0.7 * dense
+    res = dp.regress(Y, {"x": X, "d": lazy}, scheme=scheme, exact=True, seed=0)
+    obs, null = exact_null(Y, [X, dense], scheme, "t", True)  # source: exact enumeration
+    _check_exact(res, obs, null)
+
+
 def test_exact_auto_switches_on_count(rng):
     n = 5  # 5! = 120 relabellings
     Y, X = rng.normal(size=(n, n)), rng.normal(size=(n, n))
@@ -258,6 +292,10 @@ def test_karate_same_club(karate, scheme):
     assert res.p[1] < 0.01
     assert res.p_greater[1] < 0.01
     assert res.p_less[1] > 0.99
+    # a scipy.sparse response (networkx's sparse export) gives the same fit
+    sparse = dp.regress(nx.to_scipy_sparse_array(G, nodelist=list(G), weight="weight"),
+                        {"same_club": dp.same(clubs)}, scheme=scheme, permutations=19, seed=1)
+    np.testing.assert_allclose(sparse.stat, res.stat, rtol=STAT_RTOL, atol=STAT_ATOL)
     # the derived predictor gives the same fit and null as the dense same-club matrix
     dense = dp.regress(G, {"same_club": S}, scheme=scheme, permutations=2000, seed=2024)
     np.testing.assert_allclose(dense.stat, res.stat, rtol=STAT_RTOL, atol=STAT_ATOL)
