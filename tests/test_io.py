@@ -18,7 +18,7 @@ import h5py
 import networkx as nx
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 import dyadperm as dp
@@ -597,6 +597,10 @@ _FAST = settings(max_examples=60, deadline=None,
 
 @_FAST
 @given(networks())
+@example((np.array([[np.nan]]), ["a"], ["a"], False, None))                 # 1 x 1, missing
+@example((np.array([[0.0, -1.5], [2.0, np.nan]]), ['x,"1"', "y"], ['x,"1"', "y"],
+          False, "NA"))                                                      # 2 x 2, quoted
+@example((np.array([[1.0, np.nan, 3.0]]), ["r"], ["r", "c 2", "c,3"], True, "-"))  # 1 x 3
 def test_property_matrix_csv_round_trip(net):
     v, rows, cols, tm, marker = net
     with tempfile.TemporaryDirectory() as d:
