@@ -19,6 +19,7 @@ from .result import CorrelationResult, RegressionResult
 from .schemes import SCHEMES, STATISTICS, Plan, build_correlation_plan, build_plan
 
 MODELS = ("linear",)
+BACKENDS = ("threads", "processes", "dask")
 # The permutation statistic of the identity relabelling must agree with the classical
 # t statistic of the QR fit to this relative tolerance, else the Gram route lost precision.
 AGREEMENT = 1e-6
@@ -85,7 +86,7 @@ def _identity(prep, draws: Draws, settings: dict) -> dict:
 
 def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, progress,
              out, settings: dict, summary: dict, observed_fit: dict, provenance: dict | None,
-             shard: str = "", backend: str = "threads"):
+             shard: str = "", backend: str = "threads", scheduler: str | None = None):
     """Run every missing chunk; return (draws, observed statistic, null or None for a shard).
 
     With ``out`` the chunks stream to a run file; an existing file of the same run is
@@ -93,6 +94,14 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
     """
     entropy = _entropy(seed)
     cs = int(chunk_size) if chunk_size is not None else default_chunk_size(plan)
+    if shard:
+        _store.parse_shard(shard)
+        if out is None:
+            raise InputError("shard: needs out= (each shard writes its own run file)")
+    if backend not in BACKENDS:
+        raise InputError(f"backend must be one of {', '.join(BACKENDS)}; got {backend!r}")
+    if (backend == "dask") != (scheduler is not None):
+        raise InputError("backend 'dask' and a scheduler address go together")
     n, m = prep.mask.shape
     # the observed statistic goes through the same kernels as the permuted ones
     ident_perm = np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :]
@@ -124,7 +133,7 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
                 summary=summary, observed={**observed_fit, "kernel_stat": observed}))
     tick = _ticker(progress, draws.total)
     if out is None:
-        null = run_all(plan, draws, jobs=jobs, backend=backend,
+        null = run_all(plan, draws, jobs=jobs, backend=backend, scheduler=scheduler,
                        on_chunk=None if tick is None else (lambda c, st: tick(st.shape[0])))
         return draws, observed, null
     with _store.Writer(out) as w:
@@ -132,7 +141,8 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
         todo = _store.missing_chunks(done, shard)
         if tick is not None:
             tick(sum(draws.chunk_rows(c)[1] for c in np.flatnonzero(done)))
-        for c, stats in iter_chunks(plan, draws, todo, jobs=jobs, backend=backend):
+        for c, stats in iter_chunks(plan, draws, todo, jobs=jobs, backend=backend,
+                                    scheduler=scheduler):
             w.write_chunk(c, draws.chunk_rows(c)[0], stats)
             if tick is not None:
                 tick(stats.shape[0])
@@ -158,7 +168,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             jobs: int = 1, directed: bool | None = None, groups: Any = None,
             dyads: str | None = None, exact: Any = "auto", chunk_size: int | None = None,
             out: Any = None, progress: bool | Callable[[int, int], None] = False,
-            storage: str = "float64", provenance: dict | None = None) -> RegressionResult:
+            storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
+            shard: str | None = None, provenance: dict | None = None) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
@@ -196,6 +207,10 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Progress callback.
     storage : {"float64", "float32"}
         Precision of the stored layers the kernels read (sums are always float64).
+    backend : {"threads", "processes", "dask"}
+        Where chunks run; "dask" sends them to the Dask cluster at ``scheduler``.
+    shard : str "i/N", optional
+        Compute only shard i of N of the chunks into ``out`` (join with merge); returns None.
 
     Returns
     -------
@@ -230,7 +245,10 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     draws, observed, null = _execute(
         prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
         chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
-        observed_fit=fit_arrays, provenance=provenance)
+        observed_fit=fit_arrays, provenance=provenance, shard=shard or "", backend=backend,
+        scheduler=scheduler)
+    if null is None:
+        return None
     if statistic == "t":
         _check_agreement(observed, fit.t[1:], prep.names)
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
@@ -300,7 +318,8 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
               groups: Any = None, dyads: str | None = None, exact: Any = "auto",
               chunk_size: int | None = None, out: Any = None,
               progress: bool | Callable[[int, int], None] = False,
-              storage: str = "float64", provenance: dict | None = None) -> CorrelationResult:
+              storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
+            shard: str | None = None, provenance: dict | None = None) -> CorrelationResult:
     """QAP correlation of two networks (the Mantel test for matrices).
 
     Pearson r (or Spearman's, on average ranks of the dyad values) over the dyad set, with
@@ -330,7 +349,10 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     draws, observed, null = _execute(
         prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
         chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
-        observed_fit=fit_arrays, provenance=provenance)
+        observed_fit=fit_arrays, provenance=provenance, shard=shard or "", backend=backend,
+        scheduler=scheduler)
+    if null is None:
+        return None
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
                         seed=None if draws.exact else draws.entropy)

@@ -62,14 +62,20 @@ def compute_chunk(plan: Plan, draws: Draws, c: int) -> tuple[int, np.ndarray]:
 
 
 def iter_chunks(plan: Plan, draws: Draws, chunk_ids: Iterable[int], *, jobs: int = 1,
-                backend: str = "threads") -> Iterator[tuple[int, np.ndarray]]:
+                backend: str = "threads", scheduler: str | None = None
+                ) -> Iterator[tuple[int, np.ndarray]]:
     """Yield (chunk index, statistics) as chunks finish, in any order.
 
     ``jobs`` = 1 runs in this thread; otherwise joblib spreads chunks over ``jobs``
     workers (-1: all cores). ``backend``: "threads" (default; kernels release the GIL,
-    inputs are shared, not copied) or "processes" (loky).
+    inputs are shared, not copied), "processes" (loky), or "dask": chunks go to the
+    Dask distributed scheduler at ``scheduler`` through joblib's Dask backend, with the
+    plan (the input layers) scattered to the workers once.
     """
     chunk_ids = list(chunk_ids)
+    if backend == "dask":
+        yield from _iter_dask(plan, draws, chunk_ids, scheduler)
+        return
     if jobs == 1 or len(chunk_ids) <= 1:
         for c in chunk_ids:
             yield compute_chunk(plan, draws, c)
@@ -81,11 +87,28 @@ def iter_chunks(plan: Plan, draws: Draws, chunk_ids: Iterable[int], *, jobs: int
     yield from parallel(delayed(compute_chunk)(plan, draws, c) for c in chunk_ids)
 
 
+def _iter_dask(plan: Plan, draws: Draws, chunk_ids: list[int], scheduler: str | None):
+    try:
+        from distributed import Client
+    except ImportError:
+        from .errors import InputError
+        raise InputError("backend 'dask' needs the dask extra: pip install 'dyadperm[dask]'") from None
+    import joblib
+    from joblib import Parallel, delayed
+
+    with Client(scheduler, set_as_default=False) as client:
+        with joblib.parallel_config(backend="dask", client=client, scatter=[plan]):
+            parallel = Parallel(n_jobs=-1, return_as="generator_unordered")
+            yield from parallel(delayed(compute_chunk)(plan, draws, c) for c in chunk_ids)
+
+
 def run_all(plan: Plan, draws: Draws, *, jobs: int = 1, backend: str = "threads",
+            scheduler: str | None = None,
             on_chunk: Callable[[int, np.ndarray], None] | None = None) -> np.ndarray:
     """Every chunk's statistics assembled in permutation order (total, k)."""
     null = np.empty((draws.total, plan.k))
-    for c, stats in iter_chunks(plan, draws, range(draws.n_chunks), jobs=jobs, backend=backend):
+    for c, stats in iter_chunks(plan, draws, range(draws.n_chunks), jobs=jobs, backend=backend,
+                                scheduler=scheduler):
         first, count = draws.chunk_rows(c)
         null[first:first + count] = stats
         if on_chunk is not None:

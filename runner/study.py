@@ -380,8 +380,9 @@ class Study:
                 f"predictors={list(self.predictors)!r}, kind={self.spec['test']['kind']!r})")
 
     def run(self, *, permutations: int | None = None, seed: int | None = None,
-            jobs: int | None = None, out: str | Path | None = None, progress: bool = False,
-            chunk_size: int | None = None) -> Any:
+            jobs: int | None = None, out: str | Path | None = None, progress: Any = False,
+            chunk_size: int | None = None, backend: str = "threads",
+            scheduler: str | None = None, shard: str | None = None) -> Any:
         """Run the study with the engine; arguments left as None use the file's settings.
 
         Parameters
@@ -394,10 +395,13 @@ class Study:
             Workers (>= 1, or -1 for all cores).
         out : str or Path, optional
             Run file; default ``[output] file`` (or no run file).
-        progress : bool
-            Show a progress bar.
+        progress : bool or callable(done, total)
+            Progress callback (the CLI passes its progress bar).
         chunk_size : int, optional
             Permutations per chunk (>= 1).
+        backend, scheduler, shard : str, optional
+            Where chunks run ("threads", "processes", "dask" with a scheduler address) and
+            which shard "i/N" of the chunks to compute (see ``dyadperm.regress``).
 
         Returns
         -------
@@ -425,7 +429,10 @@ class Study:
             exact=t["exact"],
             chunk_size=t["chunk_size"] if chunk_size is None else chunk_size,
             out=self.output if out is None else Path(out),
-            progress=bool(progress),
+            progress=progress,
+            backend=backend,
+            scheduler=scheduler,
+            shard=shard,
             provenance={"study_text": self.text, "study_path": str(self.path)},
         )
         if t["kind"] == "correlation":

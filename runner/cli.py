@@ -1,0 +1,246 @@
+"""The ``dyadperm`` command line (Typer). Thin: parse options, call one function, print.
+
+Exit codes: 0 done; 1 the run failed; 2 bad input or usage (one line on stderr naming
+the file, row/column or setting at fault; ``--debug`` shows the traceback instead).
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+import warnings
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, RunFileError
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+                  help="Permutation tests (QAP, MRQAP) for network data.")
+
+_state = {"debug": False}
+
+
+@app.callback()
+def _main(debug: bool = typer.Option(False, "--debug", help="Show tracebacks on errors.")) -> None:
+    _state["debug"] = debug
+
+
+def _say(msg: str) -> None:
+    typer.echo(msg, err=True)
+
+
+class Progress:
+    """A one-line progress bar on stderr: permutations done, rate, time left."""
+
+    def __init__(self, label: str = "permutations") -> None:
+        self.label = label
+        self.t0 = time.perf_counter()
+        self.last = 0.0
+        self.base: int | None = None
+
+    def __call__(self, done: int, total: int) -> None:
+        now = time.perf_counter()
+        if self.base is None:
+            self.base = done if done < total else 0
+            self.t0 = now
+        if now - self.last < 0.2 and done < total:
+            return
+        self.last = now
+        rate = (done - self.base) / max(now - self.t0, 1e-9)
+        left = (total - done) / rate if rate > 0 else float("inf")
+        width = 30
+        fill = int(width * done / max(total, 1))
+        eta = f"{left:5.0f}s left" if left != float("inf") else "  ...   "
+        sys.stderr.write(f"\r{self.label} [{'#' * fill}{'.' * (width - fill)}] {done:,}/{total:,}"
+                         f"  {rate:,.0f}/s  {eta}")
+        if done >= total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+def _progress(progress: Optional[bool]):
+    show = sys.stderr.isatty() if progress is None else progress
+    return Progress() if show else False
+
+
+def _print_result(res, as_json: bool) -> None:
+    if as_json:
+        typer.echo(json.dumps(res.to_dict(), indent=2))
+    else:
+        typer.echo(res.table())
+
+
+@app.command()
+def run(
+    study: Path = typer.Argument(..., help="Study file (TOML)."),
+    permutations: Optional[int] = typer.Option(None, help="Random relabellings (overrides the file)."),
+    seed: Optional[int] = typer.Option(None, help="Seed entropy (overrides the file)."),
+    jobs: Optional[int] = typer.Option(None, help="Workers; -1 uses every core."),
+    out: Optional[Path] = typer.Option(None, help="Run file to write (HDF5)."),
+    backend: str = typer.Option("threads", help="threads, processes or dask."),
+    scheduler: Optional[str] = typer.Option(None, help="Dask scheduler address (with --backend dask)."),
+    shard: Optional[str] = typer.Option(None, help="Compute shard i/N of the chunks into --out."),
+    chunk_size: Optional[int] = typer.Option(None, help="Permutations per chunk."),
+    progress: Optional[bool] = typer.Option(None, "--progress/--quiet",
+                                            help="Progress bar (default: on a terminal)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+) -> None:
+    """Run a study and print its table (and keep a run file with --out)."""
+    from .study import load_study
+
+    st = load_study(study)
+    target = out if out is not None else st.output
+    if target is not None and Path(target).exists():
+        raise RunFileError(f"{target}: run file exists; resume it or add permutations with "
+                           f"`dyadperm extend {target}`, or remove it")
+    if shard is not None and target is None:
+        raise InputError("--shard needs --out (or [output] file): each shard writes its own run file")
+    res = st.run(permutations=permutations, seed=seed, jobs=jobs, out=target,
+                 progress=_progress(progress), chunk_size=chunk_size,
+                 backend=backend, scheduler=scheduler, shard=shard)
+    for note in st.notes:
+        _say(f"note: {note}")
+    if shard is not None:
+        typer.echo(f"shard {shard} written to {target}; join the shards with "
+                   f"`dyadperm merge OUT.h5 SHARD.h5 ...`")
+        return
+    _print_result(res, as_json)
+
+
+@app.command()
+def extend(
+    run_file: Path = typer.Argument(..., help="Run file of a study run (finished or interrupted)."),
+    permutations: Optional[int] = typer.Option(None, help="New total (default: finish the planned total)."),
+    jobs: Optional[int] = typer.Option(None, help="Workers; -1 uses every core."),
+    backend: str = typer.Option("threads", help="threads, processes or dask."),
+    scheduler: Optional[str] = typer.Option(None, help="Dask scheduler address."),
+    progress: Optional[bool] = typer.Option(None, "--progress/--quiet"),
+    as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+) -> None:
+    """Finish the missing chunks of a run, then add permutations up to --permutations."""
+    from . import store
+    from .study import load_study
+
+    hdr = store.read_header(run_file)
+    if not hdr.study_path:
+        raise RunFileError(f"{run_file}: was made from Python, not a study file; extend it by "
+                           "calling dyadperm.regress with the same inputs and out=")
+    if hdr.shard:
+        raise RunFileError(f"{run_file}: is shard {hdr.shard}; join the shards with "
+                           "`dyadperm merge` first")
+    study_path = Path(hdr.study_path)
+    if not study_path.exists():
+        raise RunFileError(f"{run_file}: its study file {study_path} is gone")
+    if study_path.read_text(encoding="utf-8") != hdr.study_text:
+        raise RunFileError(f"{run_file}: study file {study_path} changed since the run was made")
+    total = hdr.permutations if permutations is None else permutations
+    if total < hdr.permutations:
+        raise InputError(f"--permutations: the run already has {hdr.permutations}; ask for at "
+                         "least that many")
+    seed = hdr.identity.get("seed")
+    st = load_study(study_path)
+    res = st.run(permutations=total, seed=None if seed is None else int(seed), jobs=jobs,
+                 out=run_file, progress=_progress(progress), chunk_size=hdr.chunk_size,
+                 backend=backend, scheduler=scheduler)
+    _print_result(res, as_json)
+
+
+@app.command()
+def merge(
+    out: Path = typer.Argument(..., help="Run file to write."),
+    shards: list[Path] = typer.Argument(..., help="Shard run files."),
+) -> None:
+    """Join shard run files of one run, after checking they belong together."""
+    from . import store
+
+    if out.exists():
+        raise RunFileError(f"{out}: exists; choose a new file for the merged run")
+    hdr = store.merge(out, shards)
+    typer.echo(f"merged {len(shards)} shards ({hdr.permutations:,} permutations) into {out}")
+
+
+@app.command()
+def report(
+    run_file: Path = typer.Argument(..., help="Run file."),
+    as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+) -> None:
+    """Print the result table of a run file."""
+    from .api import open_result
+
+    _print_result(open_result(run_file), as_json)
+
+
+@app.command()
+def check(study: Path = typer.Argument(..., help="Study file (TOML).")) -> None:
+    """Validate a study's inputs and describe what was read."""
+    from .describe import describe_study
+
+    typer.echo(describe_study(study).text())
+
+
+@app.command()
+def demo(
+    dir: Path = typer.Option(Path("dyadperm-demo"), "--dir", help="Folder to write the demo into."),
+    jobs: int = typer.Option(-1, help="Workers; -1 uses every core."),
+    progress: Optional[bool] = typer.Option(None, "--progress/--quiet"),
+) -> None:
+    """Write the invented irrigation-cooperative study and its data, then run it."""
+    from .demo import write_demo
+    from .study import load_study
+
+    t0 = time.perf_counter()
+    path = write_demo(dir)
+    typer.echo(f"demo study written to {path}")
+    st = load_study(path)
+    res = st.run(jobs=jobs, progress=_progress(progress))
+    typer.echo(f"{st.title}\n")
+    typer.echo(res.table())
+    typer.echo(f"\n(finished in {time.perf_counter() - t0:.1f} s; planted effects are listed "
+               f"at the top of {path})")
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    _say(f"dyadperm: warning: {message}")
+
+
+def main() -> None:
+    """Console entry point: typed errors become one line and an exit code."""
+    old = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        app(standalone_mode=False)
+    except (InputError, RunFileError) as exc:
+        if _state["debug"]:
+            raise
+        _say(f"dyadperm: error: {exc}")
+        raise SystemExit(2) from None
+    except (NumericalError, DyadpermError) as exc:
+        if _state["debug"]:
+            raise
+        _say(f"dyadperm: error: {exc}")
+        raise SystemExit(1) from None
+    except typer.Abort:
+        _say("dyadperm: aborted")
+        raise SystemExit(1) from None
+    except SystemExit:
+        raise
+    except Exception as exc:  # click usage errors and anything unexpected
+        import click
+
+        if isinstance(exc, click.exceptions.ClickException):
+            _say(f"dyadperm: error: {exc.format_message()}")
+            raise SystemExit(exc.exit_code) from None
+        if _state["debug"]:
+            raise
+        _say(f"dyadperm: internal error: {type(exc).__name__}: {exc} (rerun with --debug for "
+             "the traceback)")
+        raise SystemExit(1) from None
+    finally:
+        warnings.showwarning = old
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()
