@@ -206,6 +206,12 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
     _say(f"dyadperm: warning: {message}")
 
 
+def _is_usage_error(exc: Exception) -> bool:
+    """Typer ships its own copy of click in newer releases: match by the click base class."""
+    return any(c.__name__ == "ClickException" for c in type(exc).__mro__) \
+        and hasattr(exc, "format_message")
+
+
 def main() -> None:
     """Console entry point: typed errors become one line and an exit code."""
     old = warnings.showwarning
@@ -227,10 +233,8 @@ def main() -> None:
         raise SystemExit(1) from None
     except SystemExit:
         raise
-    except Exception as exc:  # click usage errors and anything unexpected
-        import click
-
-        if isinstance(exc, click.exceptions.ClickException):
+    except Exception as exc:  # usage errors and anything unexpected
+        if _is_usage_error(exc):
             _say(f"dyadperm: error: {exc.format_message()}")
             raise SystemExit(exc.exit_code) from None
         if _state["debug"]:
