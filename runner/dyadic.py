@@ -116,24 +116,28 @@ class NodeDerived:
     def dense(self, row_labels: Sequence[str], col_labels: Sequence[str] | None = None) -> np.ndarray:
         """Dyad values as an (n, m) float64 array (diagonal left as computed)."""
         two_mode = col_labels is not None
-        a = _node_vector(self.values, row_labels, self.name or self.kind)
-        if two_mode:
+        cols = col_labels if two_mode else row_labels
+        what = self.name or self.kind
+        a = None if self.kind == "receiver" else _node_vector(self.values, row_labels, what)
+        b = None
+        if self.kind != "sender":
             cv = self.col_values
-            if cv is None and self.kind != "sender":
-                raise InputError(f"{self.name or self.kind}: two-mode data need col_values "
+            if cv is None and not two_mode:
+                cv = self.values
+            if cv is None:
+                raise InputError(f"{what}: two-mode data need col_values "
                                  "(the column nodes' attribute)")
-            b = _node_vector(cv, col_labels, self.name or self.kind) if cv is not None else None
-        else:
-            b = a
-        return derived_values(self.kind, a, b, len(col_labels) if two_mode else len(row_labels))
+            b = _node_vector(cv, cols, what)
+        return derived_values(self.kind, a, b, len(row_labels), len(cols))
 
 
-def derived_values(kind: str, a: np.ndarray, b: np.ndarray | None, m: int) -> np.ndarray:
+def derived_values(kind: str, a: np.ndarray | None, b: np.ndarray | None, n: int,
+                   m: int) -> np.ndarray:
     """Dyad values of a derived predictor from row attribute ``a`` and column attribute ``b``.
 
     same: 1[a_i == b_j]; gap: |a_i - b_j|; sender: a_i; receiver: b_j; pair_sum: a_i + b_j.
+    ``a`` is unused (None) for receiver, ``b`` for sender.
     """
-    n = a.shape[0]
     if kind == "sender":
         return np.repeat(a.astype(np.float64)[:, None], m, axis=1)
     if kind == "receiver":
@@ -192,11 +196,9 @@ def sender(values: Any, *, name: str | None = None) -> NodeDerived:
 def receiver(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:
     """Predictor a_j: the attribute of the tie's target (column node).
 
-    For two-mode data pass the column nodes' attribute as ``values`` or ``col_values``.
+    For two-mode data pass the column nodes' attribute as ``values`` (or ``col_values``).
     """
-    if col_values is None:
-        return NodeDerived("receiver", values, values, name)
-    return NodeDerived("receiver", values, col_values, name)
+    return NodeDerived("receiver", None, values if col_values is None else col_values, name)
 
 
 def pair_sum(values: Any, col_values: Any = None, *, name: str | None = None) -> NodeDerived:

@@ -608,9 +608,8 @@ class _Loader:
             col_values = self.attribute(section, kind, col_nodes, column, numeric=numeric,
                                         need_all=need_all)
         if kind == "receiver":
-            # A receiver term of two-mode data uses only the column nodes' attribute; the row
-            # values never enter it, but NodeDerived.dense wants one per row node: NaN.
-            return receiver(np.full(n_rows, np.nan), col_values, name=name)
+            # a receiver term of two-mode data uses only the column nodes' attribute
+            return receiver(col_values, name=name)
         values = self.attribute(section, kind, nodes, column, numeric=numeric,
                                 need_all=need_all)
         if kind == "sender":

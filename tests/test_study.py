@@ -106,7 +106,8 @@ def test_load_full_study(folder):
                        ("ages", "pair_sum")):
         d = s.predictors[name]
         assert isinstance(d, NodeDerived) and d.kind == kind and d.name == name
-        np.testing.assert_array_equal(d.values, ages)
+        # a receiver term holds the column nodes' attribute (all nodes, one-mode)
+        np.testing.assert_array_equal(d.col_values if kind == "receiver" else d.values, ages)
     # dense dyad values by the published definitions (glossary): |a_i - a_j| etc.
     np.testing.assert_array_equal(s.predictors["age_gap"].dense(s.node_ids),
                                   np.abs(ages[:, None] - ages[None, :]))
