@@ -1,0 +1,536 @@
+"""Logistic regression of a binary network on others, with permutation p-values.
+
+``dyadperm.regress(..., model="logistic")`` lands here. The response must hold 0/1 dyad
+values (NaN: missing). Dyads, groups, two-mode data and missing values come from
+:func:`dyadperm.design.prepare` exactly as for the linear model: every fit uses the dyads
+that are complete in every matrix of that fit (methods.md).
+
+Fit
+---
+Maximum likelihood by Newton's method (IRLS, ``kernels.irls``) on the dyad vectors, with
+the predictors standardised over the observed complete dyads (the z statistics do not
+depend on it; coefficients are reported in the user's units). The default statistic is
+the Wald z = b_j / se_j with se from (X'WX)^-1 at the estimate; ``statistic="coef"`` takes
+b_j; ``statistic="score"`` the signed score statistic below. ``deviance`` in the result is
+-2 log L of the observed fit (a 0/1 response has a saturated log likelihood of 0); ``r2`` is
+NaN.
+
+Separation (Albert & Anderson 1984, Biometrika 71:1-10): when some combination of the
+predictors splits the 0s from the 1s, the likelihood has no maximum and Newton's
+coefficients diverge. The observed fit detects that (no convergence), names the
+predictor — first by the one-predictor check (max x among 0s <= min x among 1s, or the
+reverse), else by the linear programme "maximise sum_d s_d x_d'b subject to s_d x_d'b >= 0,
+-1 <= b <= 1", s_d = 2 y_d - 1, whose optimum is positive exactly when the data are
+(quasi-)separated — and raises :class:`NumericalError` suggesting Firth's penalised
+likelihood (Firth 1993, Biometrika 80:27-38; Heinze & Schemper 2002, Stat. Med.
+21:2409-2419) or dropping or merging categories. A permuted fit that fails gives a NaN
+statistic, which the p-value counts as at least as extreme (conservative); the number of
+such fits is reported as ``failed``.
+
+Schemes
+-------
+Notation: X = [1, x_1 .. x_k]; for a tested term j, Z = X without x_j; reduced model
+logit P(y = 1) = Z g with estimate g^, mu = expit(Z g^), W = diag(mu (1 - mu)).
+
+- ``y`` — Y-permutation (Krackhardt 1988, Social Networks 10:359-381): relabel the
+  response, refit the full model, take the z of term j.
+- ``dsp`` — Potter (2005, Stat. Med. 24:693-708): residualise the focal predictor by least
+  squares on the other terms, e = x_j - Z c (c from OLS over the observed complete dyads),
+  put e back into a matrix, relabel it, and fit y on [Z, e_pi]; the statistic belongs to
+  e_pi. This is the double semi-partialling idea (Dekker, Krackhardt & Snijders 2007) for
+  logistic models. [memory] on the exact statistic Potter used; the scheme's behaviour is
+  pinned by the brute-force enumeration in the tests. The observed statistic equals the
+  full model's: [Z, e] spans the same columns as [Z, x_j] and the map between the two
+  parametrisations leaves the coefficient of the last column and its variance unchanged
+  (the logistic analogue of Frisch-Waugh-Lovell).
+- ``freedman-lane`` is not offered for the logistic model. Freedman & Lane (1983) relabel
+  the reduced-model residuals r = y - mu and refit on y* = mu + r_pi. For a 0/1 response y*
+  is not 0/1 (it ranges over (-1, 2)), so the binomial likelihood of the refit is not
+  defined, and the residuals are not even approximately exchangeable under the null since
+  Var(r_d) = mu_d (1 - mu_d) differs from dyad to dyad. No variant keeps both a binary
+  response and the dyadic dependence of the data, so the scheme is refused with a clear
+  error rather than approximated.
+
+Per-relabelling refits start from the observed fits: for ``dsp`` from the observed reduced
+fit of term j with 0 for e_pi (the expected value of its coefficient under relabelling);
+for ``y`` from the observed fit of the intercept alone, logit(mean y) and zero slopes (the
+expected fit of a relabelled response; starting from the observed slopes costs more Newton
+steps whenever the effects are large — see benchmarks/RESULTS.md).
+
+Score statistic (``statistic="score"``)
+---------------------------------------
+Rao's score test (Rao 1948, Proc. Camb. Philos. Soc. 44:50-57) of H0: b_j = 0 needs only
+the reduced fit: U = x'(y - mu), I = x'Wx - (Z'Wx)'(Z'WZ)^-1(Z'Wx) (the information of b_j
+adjusted for the other terms), statistic U / sqrt(I), asymptotically N(0, 1) under H0 and
+equivalent to the Wald z (Cox & Hinkley 1974, Theoretical Statistics, ch. 9 [memory]).
+Which quantities stay fixed under relabelling:
+
+- ``dsp``: the reduced model y ~ Z does not involve the relabelled column at all, so with
+  complete data r = y - mu, W and (Z'WZ)^-1 are fixed; per relabelling only dot products
+  of e_pi with fixed vectors change: U = e_pi'r, Q = sum w e_pi^2, s = Z'W e_pi (p - 1
+  products), statistic U / sqrt(Q - s'(Z'WZ)^-1 s) — p + 1 dot products, no refit. With
+  missing dyads the dyad set of the fit changes with the relabelling, and the reduced
+  model is refitted on each relabelling's dyads (warm-started from the observed one).
+- ``y``: the reduced model is fitted to the relabelled response and must in general be
+  refitted per relabelling and per tested term. One invariance: for the canonical link the
+  reduced fit depends on y_pi only through Z'y_pi (the sufficient statistic), so when
+  Z'y_pi = Z'y the observed reduced fit is reused and the statistic is
+  (x'y_pi - x'mu) / sqrt(I) with x'mu and I fixed — one dot product, the cost of the linear
+  y scheme. That holds for every relabelling when Z is the intercept alone (one predictor)
+  and no dyad is missing, since sum y_pi = sum y. With two or more predictors the y scheme's
+  score statistic costs k reduced refits per relabelling, more than one full refit: use
+  ``dsp`` for the fast path.
+
+Its observed value equals the full model's score test of b_j (for ``dsp`` because
+Z'(y - mu) = 0 at the reduced fit, so e and x_j have the same U and I).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+
+from . import api as _api
+from . import design as _design
+from . import store as _store
+from .engine import CHUNK_WORK, MAX_CHUNK
+from .errors import DyadpermWarning, InputError, NumericalError
+from .kernels.irls import (irls_logistic, refit_dsp, refit_y, score_dsp_fixed, score_dsp_refit,
+                           score_logistic, score_y)
+
+SCHEMES = ("y", "dsp")
+STATISTICS = ("t", "coef", "score")
+# Newton steps allowed per fit; a converging fit from a warm start needs under ten.
+MAX_ITER = 50
+# Converged when no coefficient (standardised predictors) moves more than TOL * (1 + |b|).
+TOL = 1e-8
+# Newton steps assumed per refit when sizing chunks.
+STEPS_GUESS = 6
+# A separating direction found by the linear programme must leave no dyad on the wrong
+# side by more than this (relative to its largest margin).
+SEPARATION_SLACK = 1e-9
+# Weight (of the largest) above which a predictor is named as part of a separating direction.
+SEPARATION_SHARE = 1e-3
+
+
+# --- checks ---------------------------------------------------------------------------------
+def check_settings(*, scheme: Any, statistic: Any, storage: Any) -> None:
+    """Scheme, statistic and storage of a logistic regression."""
+    if scheme == "freedman-lane":
+        raise InputError("scheme 'freedman-lane' is not offered for model='logistic': fitted "
+                         "probabilities plus relabelled residuals are not 0/1, so the "
+                         "logistic likelihood of the refit is undefined; use 'dsp' or 'y'")
+    if scheme not in SCHEMES:
+        raise InputError(f"scheme must be one of {', '.join(SCHEMES)} for model='logistic'; "
+                         f"got {scheme!r}")
+    if statistic not in STATISTICS:
+        raise InputError(f"statistic must be one of {', '.join(STATISTICS)} for "
+                         f"model='logistic'; got {statistic!r}")
+    if storage != "float64":
+        raise InputError(f"storage must be 'float64' for model='logistic'; got {storage!r}")
+
+
+def check_binary(prep: _design.Prepared) -> None:
+    """Raise InputError naming the first response value (user's order) that is not 0 or 1."""
+    Y = prep.matrices[-1]
+    bad = prep.mask & ~np.isnan(Y) & (Y != 0.0) & (Y != 1.0)
+    if not bad.any():
+        return
+    ii, jj = np.nonzero(bad)
+    ui, uj = prep.row_order[ii], prep.col_order[jj]
+    if not prep.directed and not prep.two_mode:
+        ui, uj = np.minimum(ui, uj), np.maximum(ui, uj)
+    first = np.lexsort((uj, ui))[0]
+    col_labels = prep.col_labels if prep.two_mode else prep.labels
+    raise InputError(f"model='logistic' needs a 0/1 response; {prep.response_name!r} has "
+                     f"{float(Y[ii[first], jj[first]])!r} at row {prep.labels[ui[first]]!r}, "
+                     f"column {col_labels[uj[first]]!r}")
+
+
+# --- dyad vectors and the observed fit ------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class DyadData:
+    """The dyad set as vectors: dyad d is (rows[d], cols[d]) of the internal node order.
+
+    ``X`` (N, p) = [1, standardised x_1 .. x_k] (NaN where missing), ``y`` (N,),
+    ``complete`` (N,) the dyads where every matrix is finite, ``mean``/``sd`` (k,) the
+    standardisation of the predictors over the complete dyads.
+    """
+
+    rows: np.ndarray
+    cols: np.ndarray
+    X: np.ndarray
+    y: np.ndarray
+    complete: np.ndarray
+    mean: np.ndarray
+    sd: np.ndarray
+
+
+def dyad_data(prep: _design.Prepared) -> DyadData:
+    rows, cols = np.nonzero(prep.mask)
+    rows = rows.astype(np.int64)
+    cols = cols.astype(np.int64)
+    k = prep.k
+    raw = np.empty((rows.shape[0], k))
+    for c in range(k):
+        raw[:, c] = prep.matrices[c][rows, cols]
+    y = np.ascontiguousarray(prep.matrices[k][rows, cols])
+    complete = ~np.isnan(raw).any(axis=1) & ~np.isnan(y)
+    mean = raw[complete].mean(axis=0)
+    sd = raw[complete].std(axis=0)
+    X = np.empty((rows.shape[0], k + 1))
+    X[:, 0] = 1.0
+    X[:, 1:] = (raw - mean) / sd
+    return DyadData(rows, cols, X, y, complete, mean, sd)
+
+
+@dataclass(frozen=True)
+class LogisticFit:
+    """Observed maximum-likelihood fit (intercept first, the user's units)."""
+
+    coef: np.ndarray
+    se: np.ndarray
+    z: np.ndarray
+    deviance: float
+    n_dyads: int
+    beta_std: np.ndarray  # estimate on the standardised predictors
+    iterations: int
+
+
+def fit_logistic(X: np.ndarray, cols: np.ndarray, y: np.ndarray, valid: np.ndarray,
+                 beta0: np.ndarray) -> tuple[int, np.ndarray, np.ndarray]:
+    """One fit through the kernel: (status, estimate, covariance)."""
+    q = cols.shape[0]
+    beta = np.empty(q)
+    cov = np.empty((q, q))
+    status = irls_logistic(X, np.ascontiguousarray(cols, dtype=np.int64), y, valid,
+                           np.ascontiguousarray(beta0, dtype=np.float64),
+                           np.empty((2 * q + 5, q)), beta, cov, MAX_ITER, TOL)
+    return int(status), beta, cov
+
+
+def _null_start(y: np.ndarray, valid: np.ndarray, q: int) -> np.ndarray:
+    """logit(mean y) and zeros: the fit of the intercept alone."""
+    ybar = float(y[valid].mean())
+    start = np.zeros(q)
+    start[0] = math.log(ybar / (1.0 - ybar))
+    return start
+
+
+def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
+    """The observed fit; NumericalError on separation or failed convergence."""
+    k = prep.k
+    p = k + 1
+    valid = dd.complete
+    ybar = dd.y[valid].mean()
+    if ybar in (0.0, 1.0):
+        raise InputError(f"response {prep.response_name!r} has no variation over the dyad set "
+                         f"(every value is {int(ybar)})")
+    status, beta, cov = fit_logistic(dd.X, np.arange(p), dd.y, valid, _null_start(dd.y, valid, p))
+    if status < 0:
+        raise NumericalError(_failure_message(prep, dd, status))
+    # back to the user's units: b_c = beta_c / sd_c, b_0 = beta_0 - sum beta_c mean_c / sd_c
+    A = np.zeros((p, p))
+    A[0, 0] = 1.0
+    A[0, 1:] = -dd.mean / dd.sd
+    A[1:, 1:] = np.diag(1.0 / dd.sd)
+    coef = A @ beta
+    se = np.sqrt(np.diag(A @ cov @ A.T))
+    eta = dd.X[valid] @ beta
+    deviance = float(2.0 * np.sum(np.logaddexp(0.0, eta) - dd.y[valid] * eta))
+    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, status)
+
+
+def _failure_message(prep: _design.Prepared, dd: DyadData, status: int) -> str:
+    names = separating_predictors(dd.X[dd.complete], dd.y[dd.complete], prep.names)
+    resp = prep.response_name
+    if names:
+        who = f"predictor {names[0]!r}" + (
+            f" together with {', '.join(repr(n) for n in names[1:])}" if len(names) > 1 else "")
+        return (f"logistic fit of {resp!r}: the 0s and 1s are separated by {who}, so the "
+                f"coefficients have no finite maximum-likelihood value (Albert & Anderson "
+                f"1984); use Firth's penalised likelihood (Firth 1993; Heinze & Schemper 2002) "
+                f"or drop or merge categories of {names[0]!r}")
+    return (f"logistic fit of {resp!r} did not converge (kernel code {status}) in "
+            f"{MAX_ITER} Newton steps, although no predictor separates the 0s from the 1s; "
+            "check for nearly collinear predictors")
+
+
+def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str]) -> list[str]:
+    """Predictors that separate the 0s from the 1s (Albert & Anderson 1984), or [].
+
+    ``X`` (N, p) holds [1, standardised predictors] on the complete dyads. First a single
+    predictor with the intercept: it separates when every x among the 0s is <= every x
+    among the 1s, or the reverse. Otherwise the linear programme of the module docstring;
+    a separating direction b is confirmed by its margins, and the predictors carrying it
+    are named, largest weight first.
+    """
+    from scipy.optimize import linprog
+
+    ones = y == 1.0
+    for c, name in enumerate(names):
+        x = X[:, c + 1]
+        if x[~ones].max() <= x[ones].min() or x[ones].max() <= x[~ones].min():
+            return [name]
+    A = np.where(ones, 1.0, -1.0)[:, None] * X
+    res = linprog(-A.sum(axis=0), A_ub=-A, b_ub=np.zeros(A.shape[0]),
+                  bounds=[(-1.0, 1.0)] * X.shape[1], method="highs")
+    if res.status != 0:
+        return []
+    margins = A @ res.x
+    top = margins.max()
+    if not top > 0.0 or margins.min() < -SEPARATION_SLACK * top:
+        return []
+    w = np.abs(res.x[1:])
+    if not w.max() > 0.0:
+        return []
+    order = np.argsort(-w, kind="stable")
+    return [names[c] for c in order if w[c] > SEPARATION_SHARE * w.max()]
+
+
+# --- the plan -------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class LogisticPlan:
+    """Everything the engine needs to turn relabellings into logistic statistics.
+
+    ``kind`` is one of "refit-y", "refit-dsp", "score-y", "score-dsp-fixed",
+    "score-dsp-refit"; ``arrays`` holds that driver's inputs (see ``kernels.irls``);
+    ``scale`` (k,) multiplies coefficients back into the user's units.
+    """
+
+    kind: str
+    arrays: dict
+    k: int
+    n_dyads: int
+    use_z: bool
+    scale: np.ndarray
+    work_per_permutation: float
+    passes: tuple = ()
+
+    def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
+        """Statistics (B, k) of the relabellings given as row/column permutations."""
+        a = self.arrays
+        out = np.empty((row_perms.shape[0], self.k))
+        rp = np.ascontiguousarray(row_perms, dtype=np.int64)
+        cp = rp if col_perms is row_perms else np.ascontiguousarray(col_perms, dtype=np.int64)
+        common = (a["rows"], a["cols"], rp, cp, a["X"])
+        if self.kind == "refit-y":
+            refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], out, MAX_ITER, TOL,
+                    self.use_z)
+        elif self.kind == "refit-dsp":
+            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"], out,
+                      MAX_ITER, TOL, self.use_z)
+        elif self.kind == "score-dsp-fixed":
+            score_dsp_fixed(a["layer"], *common, a["zcols"], a["fit_resid"], a["fit_weight"],
+                            a["cinv"], out)
+        elif self.kind == "score-dsp-refit":
+            score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["gamma0"],
+                            out, MAX_ITER, TOL)
+        else:
+            score_y(a["layer"], *common, a["fixed_ok"], a["zcols"], a["gamma0"], a["suff0"],
+                    a["fixed_score"], a["complete"], out, MAX_ITER, TOL)
+        if not self.use_z:
+            out *= self.scale
+        return out
+
+    def chunk_size(self) -> int:
+        """Permutations per chunk, aiming at the engine's work per chunk."""
+        return int(np.clip(CHUNK_WORK // max(self.work_per_permutation, 1.0), 1, MAX_CHUNK))
+
+
+def _reduced_columns(k: int) -> np.ndarray:
+    """(k, k) columns of X in each term's reduced model: the intercept and the other terms."""
+    return np.array([[0] + [c + 1 for c in range(k) if c != j] for j in range(k)], dtype=np.int64)
+
+
+def _reduced_fits(prep, dd: DyadData, zcols: np.ndarray, valid: np.ndarray):
+    """Observed reduced fits (estimate, (Z'WZ)^-1) of every term over ``valid``."""
+    k, q = zcols.shape
+    gam = np.empty((k, q))
+    cinv = np.empty((k, q, q))
+    for j in range(k):
+        status, g, c = fit_logistic(dd.X, zcols[j], dd.y, valid, _null_start(dd.y, valid, q))
+        if status < 0:
+            others = [prep.names[i] for i in range(k) if i != j] or ["the intercept"]
+            raise NumericalError(f"logistic fit of {prep.response_name!r} without "
+                                 f"{prep.names[j]!r} (the reduced model of its test) did not "
+                                 f"converge: the 0s and 1s are separated by "
+                                 f"{', '.join(map(repr, others))}; use statistic='t' or "
+                                 "Firth's penalised likelihood (Firth 1993)")
+        gam[j], cinv[j] = g, c
+    return gam, cinv
+
+
+def _residual_layers(prep, dd: DyadData) -> np.ndarray:
+    """(n, m, k): each standardised predictor's residual on the other terms, as a matrix.
+
+    Coefficients by least squares over the observed complete dyads (Potter 2005); the
+    matrix is NaN wherever the predictor or one of the others is missing, so missing
+    values move with it under relabelling.
+    """
+    k = prep.k
+    n, m = prep.mask.shape
+    std = [(prep.matrices[c] - dd.mean[c]) / dd.sd[c] for c in range(k)]
+    out = np.empty((n, m, k))
+    Xc = dd.X[dd.complete]
+    for j in range(k):
+        others = [c for c in range(k) if c != j]
+        Z = Xc[:, [0] + [c + 1 for c in others]]
+        g, *_ = np.linalg.lstsq(Z, Xc[:, j + 1], rcond=None)
+        E = std[j] - g[0]
+        for c, gc in zip(others, g[1:]):
+            E = E - gc * std[c]
+        out[:, :, j] = E
+    return out
+
+
+def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme: str,
+               statistic: str) -> LogisticPlan:
+    """Driver and fixed inputs of a logistic scheme (see the module docstring)."""
+    k = prep.k
+    p = k + 1
+    N = dd.rows.shape[0]
+    X = np.ascontiguousarray(dd.X)
+    fixed_x = ~np.isnan(X).any(axis=1)
+    zcols = _reduced_columns(k)
+    common = dict(rows=dd.rows, cols=dd.cols, X=X)
+    use_z = statistic != "coef"
+    scale = 1.0 / dd.sd
+    refit_work = STEPS_GUESS * N * p * p
+    if scheme == "y":
+        layer = np.ascontiguousarray(prep.matrices[k])
+        if statistic != "score":
+            arrays = dict(common, layer=layer, fixed_ok=fixed_x,
+                          beta0=_null_start(dd.y, dd.complete, p))
+            return LogisticPlan("refit-y", arrays, k, prep.n_dyads, use_z, scale, refit_work)
+        gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+        valid = dd.complete
+        suff0 = np.empty((k, k))
+        fixed_score = np.empty((k, 2))
+        for j in range(k):
+            Z = X[valid][:, zcols[j]]
+            suff0[j] = Z.T @ dd.y[valid]
+            mu = 1.0 / (1.0 + np.exp(-(Z @ gam[j])))
+            x = X[valid, j + 1]
+            w = mu * (1.0 - mu)
+            s = Z.T @ (w * x)
+            fixed_score[j] = (x @ mu, (w * x) @ x - s @ cinv[j] @ s)
+        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gam,
+                      suff0=suff0, fixed_score=fixed_score, complete=bool(prep.complete))
+        reuse = prep.complete and k == 1
+        work = N * p + (0 if reuse else k * refit_work)
+        return LogisticPlan("score-y", arrays, k, prep.n_dyads, True, scale, work)
+
+    layer = _residual_layers(prep, dd)
+    fixed_ok = np.empty((k, N), dtype=bool)
+    yok = ~np.isnan(dd.y)
+    for j in range(k):
+        fixed_ok[j] = yok & ~np.isnan(X[:, zcols[j]]).any(axis=1)
+    gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+    if statistic != "score":
+        design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
+        beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
+        arrays = dict(common, layer=layer, y=dd.y, fixed_ok=fixed_ok, design=design,
+                      beta0=beta0)
+        return LogisticPlan("refit-dsp", arrays, k, prep.n_dyads, use_z, scale, k * refit_work)
+    if prep.complete:
+        fit_resid = np.empty((N, k))
+        fit_weight = np.empty((N, k))
+        for j in range(k):
+            mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
+            fit_resid[:, j] = dd.y - mu
+            fit_weight[:, j] = mu * (1.0 - mu)
+        arrays = dict(common, layer=layer, zcols=zcols, fit_resid=fit_resid,
+                      fit_weight=fit_weight, cinv=cinv)
+        return LogisticPlan("score-dsp-fixed", arrays, k, prep.n_dyads, True, scale,
+                            N * k * (p + 2))
+    arrays = dict(common, layer=layer, y=dd.y, fixed_ok=fixed_ok, zcols=zcols, gamma0=gam)
+    return LogisticPlan("score-dsp-refit", arrays, k, prep.n_dyads, True, scale,
+                        k * refit_work)
+
+
+def observed_score(dd: DyadData, prep: _design.Prepared) -> np.ndarray:
+    """Full-model score statistic of each term, straight from its reduced fit (a check on
+    the plan's fast paths)."""
+    k = prep.k
+    zcols = _reduced_columns(k)
+    gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+    out = np.empty(k)
+    for j in range(k):
+        out[j] = score_logistic(dd.X, zcols[j], j + 1, dd.y, dd.complete, gam[j], cinv[j],
+                                np.empty((2, k)))
+    return out
+
+
+# --- entry point ----------------------------------------------------------------------------
+def regress(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
+            permutations: int = 10_000, seed: Any = None, jobs: int = 1,
+            directed: bool | None = None, groups: Any = None, dyads: str | None = None,
+            exact: Any = "auto", chunk_size: int | None = None, out: Any = None,
+            progress: Any = False, storage: str = "float64", backend: str = "threads",
+            scheduler: str | None = None, shard: str | None = None,
+            provenance: dict | None = None):
+    """Logistic regression with permutation p-values: ``dyadperm.regress(model="logistic")``.
+
+    Parameters are those of :func:`dyadperm.regress`; here ``scheme`` is "y" or "dsp" and
+    ``statistic`` is "t" (the Wald z, default), "coef" or "score" (the signed score
+    statistic of each term under its reduced model). The result's ``coef``/``se`` are the
+    Wald fit's, ``deviance`` is -2 log L, ``r2`` is NaN; with "score" its ``stat`` holds
+    the score statistics (NaN for the intercept, which is not tested).
+    """
+    _api._check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
+                       chunk_size=chunk_size)
+    check_settings(scheme=scheme, statistic=statistic, storage=storage)
+    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    check_binary(prep)
+    _design.observed_fit(prep)  # the shared checks: too few dyads, collinear, no variation
+    dd = dyad_data(prep)
+    fit = observed_fit(prep, dd)
+    plan = build_plan(prep, dd, fit, scheme=scheme, statistic=statistic)
+    if statistic == "score":
+        direct = observed_score(dd, prep)
+        stat = np.concatenate([[np.nan], direct])
+        note = ("statistic 'score': signed score statistic of each term under its reduced "
+                "model (Rao 1948); estimates and std.errors are the Wald fit's")
+    else:
+        direct = fit.z[1:] if statistic == "t" else fit.coef[1:]
+        stat = fit.z if statistic == "t" else fit.coef
+        note = ("model 'logistic': the t column holds Wald z statistics"
+                if statistic == "t" else "model 'logistic': estimates are log odds ratios")
+    model = "logistic"
+    settings = dict(kind="regression", model=model, scheme=scheme, statistic=statistic,
+                    method=None, storage=storage, dyads=dyads,
+                    groups=None if groups is None else _store.fingerprint(
+                        np.asarray(groups).astype(str)))
+    summary = _api._summary(prep, kind="regression", model=model, scheme=scheme,
+                            statistic=statistic, method=None, n_dyads=fit.n_dyads,
+                            terms=("intercept",) + prep.names)
+    summary["notes"] = [note]
+    fit_arrays = dict(coef=fit.coef, se=fit.se, stat=stat, fit=np.array([np.nan, fit.deviance]))
+    draws, observed, null = _api._execute(
+        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
+        chunk_size=plan.chunk_size() if chunk_size is None else chunk_size, progress=progress,
+        out=out, settings=settings, summary=summary, observed_fit=fit_arrays,
+        provenance=provenance, shard=shard or "", backend=backend, scheduler=scheduler)
+    if null is None:
+        return None
+    _check_agreement(observed, direct, prep.names, statistic)
+    return _api.build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
+                             exact=draws.exact, chunk_size=draws.chunk_size,
+                             seed=None if draws.exact else draws.entropy)
+
+
+def _check_agreement(kernel: np.ndarray, direct: np.ndarray, names, statistic: str) -> None:
+    """The identity relabelling through the plan must give the directly computed statistic."""
+    with np.errstate(invalid="ignore"):
+        gap = np.abs(kernel - direct) / np.maximum(1.0, np.abs(direct))
+    if np.any(~(gap <= _api.AGREEMENT)):
+        j = int(np.nanargmax(np.where(np.isnan(gap), np.inf, gap)))
+        warnings.warn(f"logistic permutation statistic ({statistic}) of {names[j]!r} is "
+                      f"{kernel[j]:.10g} through the permutation kernels but {direct[j]:.10g} "
+                      "from the observed fit; treat its p-value with caution",
+                      DyadpermWarning, stacklevel=3)
