@@ -2,30 +2,341 @@
 
 No relabelled matrix is ever built: the value of a relabelled layer at dyad (i, j) is read
 from the stored layer at (row_perm[i], col_perm[j]).
+
+How ``gather_cross`` reaches the memory floor (one read of the relabelled layers per
+permutation):
+
+- Row-wise gathers. For permutation b and row i, every relabelled value of the row comes
+  from one stored row, ``rel[row_perms[b, i]]``, at the columns ``col_perms[b, j]``. That
+  row is small enough for the first-level caches, so the random column reads hit cache
+  once the row is there.
+- Prefetch of the next row. While row i of permutation b is gathered, the stored row that
+  row i + 1 will read is requested line by line (a software prefetch, spread over the
+  gather so it streams at memory bandwidth instead of waiting on one miss at a time).
+- Blocks of permutations. ``block`` permutations go through row i one after the other,
+  so the fixed row i (all its fixed layers) is loaded from memory once per block, not
+  once per permutation.
+- Register accumulators. Products are summed in local scalars (up to 4 fixed layers at
+  a time, two interleaved partial sums each), never by ``out[b, a, c] +=`` per dyad.
+
+Summation order (what makes results bit-identical for any chunk size, number of jobs or
+block size): for each permutation b and pair (a, c), the products of row i are summed in
+two partial sums, one over the columns at even and one at odd offsets from
+``col_start[i]``, each in increasing column order; the row's sum is (even + odd), and
+the row sums are added in increasing row order. Nothing in this order depends on which
+other permutations share a block, so a permutation gives the same bits alone or in any
+batch. ``fastmath`` leaves out ``reassoc`` (kernels/options.py), so the compiler keeps
+this order.
 """
 
 import numpy as np
-from numba import njit
+from numba import config, njit, types
+from numba.core import cgutils
+from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
 
-# Permutations processed together per pass over the fixed layers: their gathers share
-# each load of the fixed values. Each permutation's sum still runs over (i, j) in the
-# same order, so results do not depend on this constant.
+# Permutations processed together per pass over the fixed rows: their gathers share each
+# load of a fixed row. Results do not depend on this constant (see the module notes).
 PERM_BLOCK = 8
+# Fixed layers summed together per pass over a row (the register accumulators of one
+# pass: 2 partial sums x up to this many layers).
+FIX_GROUP = 4
+# Bytes of one cache line, the unit of prefetching (64 on current x86-64 and ARM cores).
+CACHE_LINE = 64
+
+
+if config.DISABLE_JIT:
+    def prefetch(arr, idx):
+        """No-op twin of the prefetch hint (the kernels run as Python code)."""
+        return None
+else:
+    @intrinsic
+    def prefetch(typingctx, arr, idx):
+        """Hint: load the cache line holding ``arr[idx]`` (1-D array, idx unsigned).
+
+        Emits LLVM's ``llvm.prefetch`` (read, keep in all cache levels). A hint only: it
+        changes no value and cannot fault, even for an address past the array.
+        """
+        if not isinstance(arr, types.Array) or arr.ndim != 1:
+            return None
+        sig = types.void(arr, idx)
+
+        def codegen(context, builder, signature, args):
+            from llvmlite import ir
+            aryty = signature.args[0]
+            ary = context.make_array(aryty)(context, builder, args[0])
+            ptr = builder.gep(ary.data, [args[1]])
+            i8p = ir.IntType(8).as_pointer()
+            i32 = ir.IntType(32)
+            fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+            fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0")
+            builder.call(fn, [builder.bitcast(ptr, i8p), i32(0), i32(3), i32(1)])
+            return context.get_dummy_value()
+        return sig, codegen
+
+
+# --- fused gather + dot of one row against a group of fixed layers ---------------------
+# Each helper sums, over the columns j in [js, je) of one row,
+#     s_c = sum_j rel[rb + co[j]] * fix[fb + (j - js) * lf + f_c]
+# in two partial sums (even / odd offsets from js), and meanwhile issues ``pf_n``
+# prefetches per 8 columns of the line offsets pf, pf + line, ... below pf_end.
+# They return the sums and the next prefetch offset.
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _prefetch_some(relf, pf, pf_end, pf_n, line):
+    for _ in range(pf_n):
+        if pf < pf_end:
+            prefetch(relf, np.uint64(pf))
+            pf += line
+    return pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _dot1(relf, rb, co, fixf, fb, lf, f0, js, je, pf, pf_end, pf_n, line):
+    a0 = 0.0
+    b0 = 0.0
+    o = fb
+    j = js
+    while j + 1 < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
+        # a_c += rel_pi[i, j] * fix[i, j, c]; b_c likewise at column j + 1
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        o += lf
+        b0 += v * np.float64(fixf[np.uint64(o + f0)])
+        o += lf
+        j += 2
+    if j < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+    return a0 + b0, pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _dot2(relf, rb, co, fixf, fb, lf, f0, f1, js, je, pf, pf_end, pf_n, line):
+    a0 = 0.0
+    a1 = 0.0
+    b0 = 0.0
+    b1 = 0.0
+    o = fb
+    j = js
+    while j + 1 < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+        o += lf
+        b0 += v * np.float64(fixf[np.uint64(o + f0)])
+        b1 += v * np.float64(fixf[np.uint64(o + f1)])
+        o += lf
+        j += 2
+    if j < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+    return a0 + b0, a1 + b1, pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _dot3(relf, rb, co, fixf, fb, lf, f0, f1, f2, js, je, pf, pf_end, pf_n, line):
+    a0 = 0.0
+    a1 = 0.0
+    a2 = 0.0
+    b0 = 0.0
+    b1 = 0.0
+    b2 = 0.0
+    o = fb
+    j = js
+    while j + 1 < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+        a2 += u * np.float64(fixf[np.uint64(o + f2)])
+        o += lf
+        b0 += v * np.float64(fixf[np.uint64(o + f0)])
+        b1 += v * np.float64(fixf[np.uint64(o + f1)])
+        b2 += v * np.float64(fixf[np.uint64(o + f2)])
+        o += lf
+        j += 2
+    if j < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+        a2 += u * np.float64(fixf[np.uint64(o + f2)])
+    return a0 + b0, a1 + b1, a2 + b2, pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _dot4(relf, rb, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end, pf_n, line):
+    a0 = 0.0
+    a1 = 0.0
+    a2 = 0.0
+    a3 = 0.0
+    b0 = 0.0
+    b1 = 0.0
+    b2 = 0.0
+    b3 = 0.0
+    o = fb
+    j = js
+    while j + 1 < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+        a2 += u * np.float64(fixf[np.uint64(o + f2)])
+        a3 += u * np.float64(fixf[np.uint64(o + f3)])
+        o += lf
+        b0 += v * np.float64(fixf[np.uint64(o + f0)])
+        b1 += v * np.float64(fixf[np.uint64(o + f1)])
+        b2 += v * np.float64(fixf[np.uint64(o + f2)])
+        b3 += v * np.float64(fixf[np.uint64(o + f3)])
+        o += lf
+        j += 2
+    if j < je:
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
+        a0 += u * np.float64(fixf[np.uint64(o + f0)])
+        a1 += u * np.float64(fixf[np.uint64(o + f1)])
+        a2 += u * np.float64(fixf[np.uint64(o + f2)])
+        a3 += u * np.float64(fixf[np.uint64(o + f3)])
+    return a0 + b0, a1 + b1, a2 + b2, a3 + b3, pf
 
 
 @njit(**KERNEL_OPTIONS)
-def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop, out):
+def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, col_perms,
+               col_start, col_stop, block, coloff, tot, out):
+    """Cross products of relabelled with fixed layers, row-wise, ``block`` permutations at once.
+
+    Parameters
+    ----------
+    relf : float64 or float32 (n_src * m * Lr,)
+        The relabelled layers, an (n_src, m, Lr) C-ordered array flattened.
+    n_rel_cols : int
+        Lr, the layers interleaved in ``relf``.
+    rel_idx : int64 (R,)
+        Which of the Lr layers take part.
+    fixf : float64 or float32 (n * m * Lf,)
+        The fixed layers, an (n, m, Lf) C-ordered array flattened.
+    n_fix_cols : int
+        Lf.
+    fix_idx : int64 (Q,)
+        Which of the Lf layers take part.
+    row_perms : int64 (B, n); col_perms : int64 (B, m)
+        Relabellings, values in [0, n_src) and [0, m).
+    col_start, col_stop : int64 (n,)
+        Row i uses the columns [col_start[i], col_stop[i]).
+    block : int
+        Permutations that share one pass over the fixed rows (>= 1). Results do not
+        depend on it.
+    coloff : int64 workspace (block, m)
+    tot : float64 workspace (block, R, Q)
+    out : float64 (B, R, Q)
+        Written: out[b, a, c] = sum_ij rel[row_perms[b, i], col_perms[b, j], rel_idx[a]]
+        * fix[i, j, fix_idx[c]], summed in the order of the module notes, in float64.
+    """
+    n_perm = row_perms.shape[0]
+    n_rows = row_perms.shape[1]
+    m = col_perms.shape[1]
+    n_rel = rel_idx.shape[0]
+    n_fix = fix_idx.shape[0]
+    lr = n_rel_cols
+    lf = n_fix_cols
+    rowlen = m * lr
+    line = max(1, CACHE_LINE // relf.itemsize)  # elements per cache line
+    row_lines = (rowlen + line - 1) // line
+    for b0 in range(0, n_perm, block):
+        nb = min(block, n_perm - b0)
+        for q in range(nb):
+            for j in range(m):
+                # offset of column col_perms[b, j] inside a stored row
+                coloff[q, j] = col_perms[b0 + q, j] * lr
+            pf = row_perms[b0 + q, 0] * rowlen
+            for _ in range(row_lines):
+                prefetch(relf, np.uint64(pf))
+                pf += line
+        tot[:] = 0.0
+        for i in range(n_rows):
+            js = col_start[i]
+            je = col_stop[i]
+            fb = (i * m + js) * lf
+            # prefetches per 8 columns so the next stored row arrives within this row
+            eighths = (je - js + 7) // 8
+            pf_n = (row_lines + eighths - 1) // eighths if eighths > 0 else 0
+            for q in range(nb):
+                b = b0 + q
+                co = coloff[q]
+                rb0 = row_perms[b, i] * rowlen
+                nxt = row_perms[b, i + 1] * rowlen if i + 1 < n_rows else rb0
+                pf = nxt
+                pf_end = nxt + row_lines * line
+                for a in range(n_rel):
+                    rb = rb0 + rel_idx[a]
+                    c = 0
+                    while c < n_fix:
+                        width = min(FIX_GROUP, n_fix - c)
+                        pfn = pf_n if (a == 0 and c == 0) else 0
+                        if width == 4:
+                            s0, s1, s2, s3, pf = _dot4(
+                                relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
+                                fix_idx[c + 2], fix_idx[c + 3], js, je, pf, pf_end, pfn, line)
+                            tot[q, a, c] += s0
+                            tot[q, a, c + 1] += s1
+                            tot[q, a, c + 2] += s2
+                            tot[q, a, c + 3] += s3
+                        elif width == 3:
+                            s0, s1, s2, pf = _dot3(
+                                relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
+                                fix_idx[c + 2], js, je, pf, pf_end, pfn, line)
+                            tot[q, a, c] += s0
+                            tot[q, a, c + 1] += s1
+                            tot[q, a, c + 2] += s2
+                        elif width == 2:
+                            s0, s1, pf = _dot2(relf, rb, co, fixf, fb, lf, fix_idx[c],
+                                               fix_idx[c + 1], js, je, pf, pf_end, pfn, line)
+                            tot[q, a, c] += s0
+                            tot[q, a, c + 1] += s1
+                        else:
+                            s0, pf = _dot1(relf, rb, co, fixf, fb, lf, fix_idx[c], js, je,
+                                           pf, pf_end, pfn, line)
+                            tot[q, a, c] += s0
+                        c += width
+                while pf < pf_end:  # rows shorter than the next stored row
+                    prefetch(relf, np.uint64(pf))
+                    pf += line
+        for q in range(nb):
+            for a in range(n_rel):
+                for c in range(n_fix):
+                    out[b0 + q, a, c] = tot[q, a, c]
+
+
+def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop, out,
+                 *, block=PERM_BLOCK):
     """Cross products of relabelled layers with fixed layers over a dyad set.
 
     Parameters
     ----------
-    rel : float64 (n, m, Lr)
+    rel : float64 or float32 (n, m, Lr)
         Layers read through the relabelling.
     rel_idx : int64 (R,)
         Which layers of ``rel`` take part.
-    fix : float64 (n, m, Lf)
+    fix : float64 or float32 (n, m, Lf)
         Layers read in place.
     fix_idx : int64 (Q,)
         Which layers of ``fix`` take part.
@@ -37,28 +348,29 @@ def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, co
         Row i uses the columns j in [col_start[i], col_stop[i]).
     out : float64 (B, R, Q)
         Written: out[b, a, c] = sum_ij rel[row_perms[b, i], col_perms[b, j], rel_idx[a]]
-        * fix[i, j, fix_idx[c]].
+        * fix[i, j, fix_idx[c]], accumulated in float64 whatever the layers' dtype.
+    block : int
+        Permutations per pass over the fixed rows; the results are the same bits for any
+        value (see the module notes).
+
+    Notes
+    -----
+    A thin dispatcher: flattens the layer arrays (views; a copy only for an array that is
+    not C-contiguous) and hands them to ``cross_rows`` with its workspaces. Releases the
+    GIL inside the kernel, so threads run side by side.
     """
+    rel = np.ascontiguousarray(rel)
+    fix = np.ascontiguousarray(fix)
     n_perm = row_perms.shape[0]
-    n_rows = fix.shape[0]
-    n_rel = rel_idx.shape[0]
-    n_fix = fix_idx.shape[0]
-    fixed = np.empty(n_fix)
-    out[:] = 0.0
-    for b0 in range(0, n_perm, PERM_BLOCK):
-        b1 = min(b0 + PERM_BLOCK, n_perm)
-        for i in range(n_rows):
-            for j in range(col_start[i], col_stop[i]):
-                for c in range(n_fix):
-                    fixed[c] = fix[i, j, fix_idx[c]]
-                for b in range(b0, b1):
-                    pi = row_perms[b, i]
-                    pj = col_perms[b, j]
-                    for a in range(n_rel):
-                        v = rel[pi, pj, rel_idx[a]]
-                        for c in range(n_fix):
-                            # out[b, a, c] += R_pi[i, j, a] * F[i, j, c]
-                            out[b, a, c] += v * fixed[c]
+    m = fix.shape[1]
+    block = int(max(1, min(block, max(n_perm, 1))))
+    coloff = np.empty((block, m), dtype=np.int64)
+    tot = np.empty((block, len(rel_idx), len(fix_idx)))
+    cross_rows(rel.reshape(-1), rel.shape[2], np.asarray(rel_idx, np.int64), fix.reshape(-1),
+               fix.shape[2], np.asarray(fix_idx, np.int64), np.asarray(row_perms, np.int64),
+               np.asarray(col_perms, np.int64), np.asarray(col_start, np.int64),
+               np.asarray(col_stop, np.int64), block, coloff, tot, out)
+    return out
 
 
 @njit(**KERNEL_OPTIONS)
