@@ -50,7 +50,8 @@ def regression_stats(gram, transforms, scale, use_t, out):
         For term k: columns 0..p-2 the other design columns, p-1 the tested column,
         p the response, each as a combination of v.
     scale : float64 (K,)
-        Factor taking a coefficient back to the user's units (used when not ``use_t``).
+        Factor applied to the statistic: the sign of the tested column's direction (t),
+        or the factor taking its coefficient back to the user's units (coef).
     use_t : bool
         True: t statistic; False: coefficient.
     out : float64 (B, K)
@@ -101,7 +102,7 @@ def regression_stats(gram, transforms, scale, use_t, out):
             w = g[p, p - 1]  # projection of the response on the tested column's new part
             if use_t:
                 # t = beta / se = w / sqrt(RSS / df), RSS = L[p, p]^2
-                out[b, k] = w / np.sqrt(g[p, p] * g[p, p] / df)
+                out[b, k] = w / np.sqrt(g[p, p] * g[p, p] / df) * scale[k]
             else:
                 out[b, k] = w / g[p - 1, p - 1] * scale[k]
 

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
 import numpy as np
+from scipy.linalg import solve_triangular
 
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
 from .errors import DyadpermWarning, InputError
@@ -23,8 +24,10 @@ from .permutations import Blocks
 STREAM_DYADS = 1 << 20
 # Condition number (of the standardised design) above which a warning is given.
 COND_WARN = 1e6
-# Relative size of a QR pivot below which a predictor counts as perfectly collinear.
-COLLINEAR_PIVOT = 1e-9
+# Residual norm of a standardised predictor on the ones before it (sqrt(1 - R^2)) below
+# which it counts as constant or perfectly collinear. Condition numbers up to about
+# 1e11 pass; exact collinearity leaves rounding noise near 1e-15.
+COLLINEAR_PIVOT = 1e-12
 
 
 @dataclass(frozen=True, eq=False)
@@ -309,16 +312,8 @@ def observed_fit(prep: Prepared) -> ObservedFit:
     if n_obs <= p:
         raise InputError(f"too few dyads for the model: {n_obs} complete dyads for {p} terms")
     r = r_acc[:p + 1, :p + 1]
-    # column scales for a relative pivot test
-    scale = np.sqrt(np.maximum((r * r).sum(axis=0), 1e-300))
     rx = r[:p, :p]
-    piv = np.abs(np.diag(rx)) / scale[:p]
-    bad = [j for j in range(1, p) if piv[j] < COLLINEAR_PIVOT]
-    if bad:
-        name = prep.names[bad[0] - 1]
-        others = ", ".join(prep.names[: bad[0] - 1]) or "the intercept"
-        raise InputError(f"predictor {name!r} is constant or perfectly collinear with "
-                         f"{others} over the dyad set")
+    _check_collinear(rx, prep.names)
     y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
     ymean = sums[-1] / n_obs
     tss = 0.0
@@ -327,8 +322,8 @@ def observed_fit(prep: Prepared) -> ObservedFit:
         tss += float(((block[ok, -1] - ymean) ** 2).sum())
     if tss <= 0.0:
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set")
-    coef = np.linalg.solve(np.triu(rx), r[:p, p]) if p else np.zeros(0)
-    rinv = np.linalg.solve(np.triu(rx), np.eye(p))
+    coef = solve_triangular(rx, r[:p, p])
+    rinv = solve_triangular(rx, np.eye(p))
     rss = float(y_piv ** 2)
     sigma2 = rss / (n_obs - p)
     se = np.sqrt(sigma2 * (rinv * rinv).sum(axis=1))
@@ -336,6 +331,20 @@ def observed_fit(prep: Prepared) -> ObservedFit:
         t = coef / se
     cond = _standardised_condition(rx, k, prep.names)
     return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
+
+
+def _check_collinear(rx: np.ndarray, names: Sequence[str]) -> None:
+    """InputError naming a constant or perfectly collinear predictor (QR pivots of the
+    centred predictors, each relative to its own centred norm)."""
+    rc = rx[1:, 1:]
+    norms = np.sqrt((rc * rc).sum(axis=0))
+    for j, name in enumerate(names):
+        if not norms[j] > 0:
+            raise InputError(f"predictor {name!r} is constant over the dyad set")
+        if abs(rc[j, j]) / norms[j] < COLLINEAR_PIVOT:
+            others = ", ".join(repr(nm) for nm in names[:j])
+            raise InputError(f"predictor {name!r} is perfectly collinear with {others} "
+                             "over the dyad set")
 
 
 def _standardised_condition(rx: np.ndarray, k: int, names: Sequence[str]) -> float:

@@ -135,34 +135,128 @@ def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "f
         raise InputError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
     if storage not in STORAGE:
         raise InputError(f"storage must be one of {', '.join(STORAGE)}; got {storage!r}")
+    mean, sd = standardise(prep)
+    if prep.complete:
+        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd)]
+    else:
+        passes = _masked_passes(prep, scheme, statistic, storage, mean, sd)
+    return Plan(tuple(passes), prep.k, False, statistic == "t", prep.col_start, prep.col_stop,
+                prep.n_dyads)
+
+
+def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
+    """(d, len(cols)) matrix whose column c holds the v-coefficients ``cols[c]``."""
+    t = np.zeros((d, len(cols)))
+    for c, entries in enumerate(cols):
+        for row, val in entries.items():
+            t[row, c] += val
+    return t
+
+
+def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
+                   mean: np.ndarray, sd: np.ndarray) -> Pass:
+    """Complete data: orthonormal layers, so every permutation's Gram is well conditioned.
+
+    The standardised predictors (and, for dsp and Freedman–Lane, the response) are replaced
+    by an orthonormal basis q of their span over the dyad set (two passes of a streaming
+    QR), L = q S. For term j a small QR of S with column j last rotates the x-part of the
+    basis into P, whose first k-1 columns span the other predictors and whose last column
+    is the direction of x_j's residual on them (x_j = ... + Rs[k-1, k-1] P[k-1]). Every
+    design then has orthonormal fixed columns, so even nearly collinear predictors keep
+    their digits; the ill-conditioning stays in the scalar Rs[k-1, k-1].
+    """
+    k = prep.k
+    xs = list(range(k))
+    if scheme == "y":
+        rel = _stack(prep, [k], mean, sd, storage)  # the standardised response
+        fix = _stack(prep, xs, mean, sd, storage)
+        S = _orthonormalise(fix, prep)
+        rel_idx, fix_idx = [0], xs
+    else:
+        rel = fix = _stack(prep, xs + [k], mean, sd, storage)
+        S = _orthonormalise(fix, prep)
+        rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
+    R, Q = len(rel_idx), len(fix_idx)
+    d = 1 + R + Q
+    rpos = {layer: 1 + a for a, layer in enumerate(rel_idx)}
+    fpos = {layer: 1 + R + c for c, layer in enumerate(fix_idx)}
+    transforms = np.zeros((k, d, k + 2))
+    scale = np.empty(k)
+    for j in xs:
+        order = [c for c in xs if c != j] + [j]
+        qs, rs = np.linalg.qr(S[:k, :k][:, order])
+
+        def basis(a: int, pos: dict) -> dict:
+            return {pos[e]: qs[e, a] for e in xs}
+
+        cols = [{0: 1.0}] + [basis(a, fpos) for a in range(k - 1)]
+        if scheme == "y":
+            cols += [basis(k - 1, fpos), {rpos[0]: 1.0}]
+        elif scheme == "dsp":
+            y_fixed = {fpos[e]: S[e, k] for e in range(k + 1)}
+            cols += [basis(k - 1, rpos), y_fixed]
+        else:
+            c = qs.T @ S[:k, k]  # the response in the rotated basis
+            ystar: dict[int, float] = {rpos[k]: S[k, k]}
+            for a in range(k - 1):
+                for pos, val in basis(a, fpos).items():
+                    ystar[pos] = ystar.get(pos, 0.0) + c[a] * val
+            for pos, val in basis(k - 1, rpos).items():
+                ystar[pos] = ystar.get(pos, 0.0) + c[k - 1] * val
+            cols += [basis(k - 1, fpos), ystar]
+        transforms[j] = _transform(cols, d)
+        rkk = rs[k - 1, k - 1]
+        scale[j] = np.sign(rkk) if statistic == "t" else sd[k] / (sd[j] * rkk)
+    gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx)
+    return Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64), gram0,
+                transforms, np.arange(k, dtype=np.int64), scale)
+
+
+def _orthonormalise(stack: np.ndarray, prep: Prepared) -> np.ndarray:
+    """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
+    with (old layers) = (new layers) @ S. Two passes of a streaming QR (the second
+    restores the orthogonality the first loses to rounding on ill-conditioned layers)."""
+    n_layers = stack.shape[2]
+    S = np.eye(n_layers)
+    step = max(1, (1 << 20) // max(stack.shape[1], 1))
+    for _ in range(2):
+        r = np.zeros((0, n_layers))
+        for i0 in range(0, stack.shape[0], step):
+            block = np.asarray(stack[i0:i0 + step][prep.mask[i0:i0 + step]], dtype=np.float64)
+            r = np.linalg.qr(np.concatenate([r, block]), mode="r")
+        if r.shape[0] < n_layers or not np.all(np.abs(np.diag(r)) > 0):
+            raise InputError("the predictors are perfectly collinear over the dyad set")
+        rinv = np.linalg.solve(np.triu(r), np.eye(n_layers))
+        for i0 in range(0, stack.shape[0], step):
+            stack[i0:i0 + step] = np.asarray(stack[i0:i0 + step], dtype=np.float64) @ rinv
+        S = r @ S
+    return S
+
+
+def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
+                   mean: np.ndarray, sd: np.ndarray) -> list[Pass]:
+    """Data with missing values: standardised layers, one pass per tested term (y: one).
+
+    Each permutation's fit then uses exactly the dyads complete in its own matrices.
+    """
     k = prep.k
     ylayer = k
     xs = list(range(k))
-    mean, sd = standardise(prep)
     gobs = _gram_observed(prep, mean, sd)
-    scale_all = sd[ylayer] / sd[:k]
-
-    passes = []
     if scheme == "y":
         rel = _stack(prep, [ylayer], mean, sd, storage)
         fix = _stack(prep, xs, mean, sd, storage)
-        specs = [(rel, [0], [ylayer], fix, list(range(k)), xs, list(range(k)))]
+        specs = [(rel, [0], [ylayer], fix, xs, xs, xs)]
     else:
         W = _stack(prep, xs + [ylayer], mean, sd, storage)
-        if prep.complete:
+        specs = []
+        for j in xs:
+            others = [c for c in xs if c != j]
             if scheme == "dsp":
-                specs = [(W, xs, xs, W, xs + [ylayer], xs + [ylayer], list(range(k)))]
+                specs.append((W, xs, xs, W, others + [ylayer], others + [ylayer], [j]))
             else:
-                specs = [(W, xs + [ylayer], xs + [ylayer], W, xs, xs, list(range(k)))]
-        else:  # one pass per term, so each fit uses exactly its own complete dyads
-            specs = []
-            for j in range(k):
-                others = [c for c in xs if c != j]
-                if scheme == "dsp":
-                    specs.append((W, xs, xs, W, others + [ylayer], others + [ylayer], [j]))
-                else:
-                    specs.append((W, others + [ylayer], others + [ylayer], W, xs, xs, [j]))
-
+                specs.append((W, others + [ylayer], others + [ylayer], W, xs, xs, [j]))
+    passes = []
     for rel, rel_idx, rel_layers, fix, fix_idx, fix_layers, terms in specs:
         R, Q = len(rel_layers), len(fix_layers)
         d = 1 + R + Q
@@ -187,17 +281,12 @@ def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "f
                     ystar[fpos[c]] = ystar.get(fpos[c], 0.0) + gc
                     ystar[rpos[c]] = ystar.get(rpos[c], 0.0) - gc
                 cols += [{fpos[j]: 1.0}, ystar]
-            for col, entries in enumerate(cols):
-                for row, val in entries.items():
-                    transforms[t_i, row, col] += val
-        gram0 = None
-        if prep.complete:
-            gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx)
+            transforms[t_i] = _transform(cols, d)
+        scale = np.ones(len(terms)) if statistic == "t" else sd[ylayer] / sd[terms]
         passes.append(Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
-                           gram0, transforms, np.asarray(terms, np.int64),
-                           np.ascontiguousarray(scale_all[terms])))
-    return Plan(tuple(passes), k, False, statistic == "t", prep.col_start, prep.col_stop,
-                prep.n_dyads)
+                           None, transforms, np.asarray(terms, np.int64),
+                           np.ascontiguousarray(scale)))
+    return passes
 
 
 def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
