@@ -201,6 +201,10 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
     """A network on the response's node order (by label when both carry labels)."""
     if isinstance(obj, Dyadic) and obj is resp:
         return resp
+    shape = getattr(obj, "shape", None)
+    if not isinstance(obj, Dyadic) and shape is not None and tuple(shape) != resp.shape:
+        raise InputError(f"predictor {name!r} has shape {shape[0]} x {shape[1]}; the response "
+                         f"has {resp.shape[0]} x {resp.shape[1]}")
     dy = as_dyadic(obj, name=name, labels=None if isinstance(obj, Dyadic) else resp.labels,
                    col_labels=None if isinstance(obj, Dyadic) else resp.col_labels)
     if dy.two_mode != resp.two_mode:
@@ -338,8 +342,9 @@ def _check_collinear(rx: np.ndarray, names: Sequence[str]) -> None:
     centred predictors, each relative to its own centred norm)."""
     rc = rx[1:, 1:]
     norms = np.sqrt((rc * rc).sum(axis=0))
+    raw = np.sqrt((rx[:, 1:] * rx[:, 1:]).sum(axis=0))  # norms before centring
     for j, name in enumerate(names):
-        if not norms[j] > 0:
+        if not norms[j] > COLLINEAR_PIVOT * raw[j]:
             raise InputError(f"predictor {name!r} is constant over the dyad set")
         if abs(rc[j, j]) / norms[j] < COLLINEAR_PIVOT:
             others = ", ".join(repr(nm) for nm in names[:j])

@@ -1,0 +1,213 @@
+"""A battery of bad inputs through the command line and the Python API.
+
+Every case must end with exit code 2, a single line on stderr naming what is wrong (the
+file, row/column or setting), and no traceback; through the API the same input raises a
+typed dyadperm error. Each case changes one thing in a small valid study.
+"""
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import dyadperm as dp
+from dyadperm import cli
+
+NODES = ["A", "B", "C", "D", "E", "F", "G"]
+
+
+def _matrix_csv(path: Path, labels, values) -> None:
+    rows = ["id," + ",".join(labels)]
+    for lab, row in zip(labels, values):
+        rows.append(lab + "," + ",".join(f"{v:g}" for v in row))
+    path.write_text("\n".join(rows) + "\n")
+
+
+@pytest.fixture
+def study(tmp_path):
+    """A valid study; returns a function writing it with edits applied."""
+    rng = np.random.default_rng(1)
+    n = len(NODES)
+    (tmp_path / "nodes.csv").write_text(
+        "id,team,age,city\n" + "".join(f"{lab},{i % 2},{30 + 3 * i},c{i % 3}\n"
+                                       for i, lab in enumerate(NODES)))
+    _matrix_csv(tmp_path / "x.csv", NODES, rng.integers(0, 5, size=(n, n)))
+    edges = [(a, b, int(rng.integers(1, 9))) for i, a in enumerate(NODES)
+             for j, b in enumerate(NODES) if i != j and rng.random() < 0.5]
+    (tmp_path / "y.csv").write_text("source,target,weight\n" +
+                                    "".join(f"{a},{b},{w}\n" for a, b, w in edges))
+    base = {
+        "study": 'title = "bad input battery"\nnodes = "nodes.csv"\nid_column = "id"',
+        "response": 'file = "y.csv"',
+        "predictor": 'name = "x"\nfile = "x.csv"',
+        "predictor2": 'name = "age_gap"\ngap = "age"',
+        "test": 'scheme = "dsp"\npermutations = 20\nseed = 1',
+    }
+
+    def write(**edits):
+        parts = {**base, **edits}
+        text = ""
+        for key, body in parts.items():
+            if body is None:
+                continue
+            head = "[[predictor]]" if key.startswith("predictor") else f"[{key}]"
+            text += f"{head}\n{body}\n\n"
+        path = tmp_path / "study.toml"
+        path.write_text(text)
+        return path
+
+    write.dir = tmp_path
+    return write
+
+
+def _run_cli(args, capsys):
+    with pytest.raises(SystemExit) as info:
+        import sys
+        old = sys.argv
+        sys.argv = ["dyadperm", *map(str, args)]
+        try:
+            cli.main()
+        finally:
+            sys.argv = old
+    err = capsys.readouterr().err
+    return info.value.code, err
+
+
+def _check_bad(args, capsys, match):
+    code, err = _run_cli(args, capsys)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2, err
+    assert "Traceback" not in err
+    assert len(lines) == 1, err
+    assert lines[0].startswith("dyadperm: error: ")
+    import re
+    assert re.search(match, lines[0]), lines[0]
+
+
+def test_valid_study_runs(study, capsys):
+    path = study()
+    with pytest.raises(SystemExit) as info:
+        import sys
+        sys.argv = ["dyadperm", "run", str(path), "--quiet"]
+        cli.main()
+    assert info.value.code in (0, None)
+    assert "age_gap" in capsys.readouterr().out
+
+
+def _file_case(name, content):
+    def make(study):
+        (study.dir / name).write_text(content)
+        return study()
+    return make
+
+
+CASES = {
+    # reader errors, each naming file and line/column
+    "non-square matrix": (lambda s: _npy_case(s, np.ones((7, 6))), r"x\.npy.*7 x 6"),
+    "unknown node label": (_file_case("y.csv", "source,target,weight\nA,B,1\nA,ZZ,2\n"),
+                           r"y\.csv line 3: unknown node label 'ZZ'"),
+    "text in a number cell": (_file_case("y.csv", "source,target,weight\nA,B,lots\n"),
+                              r"y\.csv.*line 2.*'lots'"),
+    "ragged rows": (_file_case("x.csv", "id,A,B,C\nA,1,2,3\nB,1,2\nC,1,2,3\n"), r"x\.csv.*line 3"),
+    "empty file": (_file_case("y.csv", ""), r"y\.csv.*empty"),
+    "infinite value": (_file_case("y.csv", "source,target,weight\nA,B,inf\n"), r"y\.csv.*line 2"),
+    "duplicate edge": (_file_case("y.csv", "source,target,weight\nA,B,1\nC,D,1\nA,B,2\n"),
+                       r"y\.csv.*duplicate.*line"),
+    "duplicate node id": (_file_case("nodes.csv", "id,team,age,city\nA,0,1,x\nA,1,2,y\n"),
+                          r"nodes\.csv.*duplicate"),
+    "node table without id column": (_file_case("nodes.csv", "name,team\nA,0\n"),
+                                     r"nodes\.csv.*id"),
+    # study-file errors, each naming section and key
+    "unknown study key": (lambda s: s(test='scheme = "dsp"\npermutations = 20\ncolour = 1'),
+                          r"\[test\].*colour"),
+    "unknown section": (lambda s: s(extra="a = 1"), r"extra"),
+    "invalid TOML": (lambda s: s(test='scheme = "dsp'), r"study\.toml"),
+    "missing title": (lambda s: s(study='nodes = "nodes.csv"\nid_column = "id"'), r"title"),
+    "missing network file": (lambda s: s(response='file = "nothere.csv"'), r"nothere\.csv"),
+    "unknown scheme": (lambda s: s(test='scheme = "dps"\npermutations = 20'), r"scheme.*'dps'"),
+    "negative permutation count": (lambda s: s(test='permutations = -5'), r"permutations.*-5"),
+    "alpha out of range": (lambda s: s(test='alpha = 1.5'), r"alpha"),
+    "exact not a choice": (lambda s: s(test='exact = "sometimes"'), r"exact"),
+    "jobs zero": (lambda s: s(test='jobs = 0'), r"jobs"),
+    "attribute column missing": (lambda s: s(predictor2='name = "g"\ngap = "height"'),
+                                 r"height"),
+    "gap of a text column": (lambda s: s(predictor2='name = "g"\ngap = "city"'), r"city"),
+    "reverse of an unknown network": (lambda s: s(predictor2='name = "back"\nreverse = "nope"'),
+                                      r"nope"),
+    "duplicate predictor names": (lambda s: s(predictor2='name = "x"\ngap = "age"'), r"'x'"),
+    "groups column missing": (lambda s: s(test='groups = "club"'), r"club"),
+    "dyads without groups": (lambda s: s(test='dyads = "within"'), r"dyads"),
+    "two sources for a predictor": (lambda s: s(predictor2='name = "g"\ngap = "age"\nsame = "team"'),
+                                    r"predictor"),
+    # data that cannot be modelled
+    "constant predictor": (lambda s: _const_case(s), r"'flat' is constant"),
+    "perfectly collinear predictors": (lambda s: _collinear_case(s),
+                                       r"'twice' is perfectly collinear with 'x'"),
+    "response with no variation": (_file_case("y.csv", "source,target,weight\n" + "".join(
+        f"{a},{b},1\n" for a in NODES for b in NODES if a != b)), r"no variation"),
+}
+
+
+def _npy_case(s, arr):
+    np.save(s.dir / "x.npy", arr)
+    return s(predictor='name = "x"\nfile = "x.npy"')
+
+
+def _const_case(s):
+    _matrix_csv(s.dir / "flat.csv", NODES, np.full((7, 7), 3.0))
+    return s(predictor2='name = "flat"\nfile = "flat.csv"')
+
+
+def _collinear_case(s):
+    text = (s.dir / "x.csv").read_text().splitlines()
+    rows = [text[0]]
+    for line in text[1:]:
+        lab, *vals = line.split(",")
+        rows.append(lab + "," + ",".join(str(2 * float(v)) for v in vals))
+    (s.dir / "twice.csv").write_text("\n".join(rows) + "\n")
+    return s(predictor2='name = "twice"\nfile = "twice.csv"')
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_bad_study_through_cli_and_api(case, study, capsys):
+    make, match = CASES[case]
+    path = make(study)
+    _check_bad(["run", path, "--quiet"], capsys, match)
+    with pytest.raises(dp.DyadpermError, match=match):
+        dp.load_study(path).run()
+
+
+def test_bad_command_lines(study, capsys, tmp_path):
+    path = study()
+    _check_bad(["run", tmp_path / "nothere.toml"], capsys, r"nothere\.toml")
+    _check_bad(["run", path, "--permutations", "0"], capsys, r"permutations")
+    _check_bad(["run", path, "--shard", "3/2", "--out", tmp_path / "s.h5"], capsys, r"shard")
+    _check_bad(["run", path, "--backend", "cloud"], capsys, r"backend")
+    _check_bad(["report", tmp_path / "nothere.h5"], capsys, r"no such run file")
+    (tmp_path / "fake.h5").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 50)
+    _check_bad(["report", tmp_path / "fake.h5"], capsys, r"fake\.h5.*not a readable run file")
+    _check_bad(["extend", tmp_path / "nothere.h5"], capsys, r"no such run file")
+    _check_bad(["nosuchcommand"], capsys, r"nosuchcommand")
+    _check_bad(["run", path, "--no-such-option"], capsys, r"no-such-option")
+    out = tmp_path / "r.h5"
+    code, _ = _run_cli(["run", path, "--out", out, "--quiet"], capsys)
+    assert code in (0, None) and out.exists()
+    _check_bad(["run", path, "--out", out, "--quiet"], capsys, r"run file exists")
+
+
+def test_api_arguments_raise_input_error():
+    y = np.random.default_rng(0).normal(size=(6, 6))
+    x = np.random.default_rng(1).normal(size=(6, 6))
+    for kwargs, match in [({"scheme": "q"}, "scheme"), ({"permutations": 0}, "permutations"),
+                          ({"statistic": "z2"}, "statistic"), ({"model": "probit"}, "model"),
+                          ({"exact": "yes"}, "exact"), ({"jobs": 0}, "jobs"),
+                          ({"seed": -1}, "seed"), ({"chunk_size": 0}, "chunk_size"),
+                          ({"storage": "float16"}, "storage"), ({"dyads": "within"}, "dyads")]:
+        with pytest.raises(dp.InputError, match=match):
+            dp.regress(y, [x], **kwargs)
+    with pytest.raises(dp.InputError, match="'x1' has shape 4 x 4; the response has 4 x 5"):
+        dp.regress(np.ones((4, 5)), [np.ones((4, 4))])
+    with pytest.raises(dp.InputError, match="infinite"):
+        dp.regress(np.where(np.eye(6) > 0, 0, np.inf) + y * 0 + 1, [x])
+    with pytest.raises(dp.InputError, match="too few nodes"):
+        dp.regress(np.ones((2, 2)), [np.ones((2, 2))])
