@@ -16,6 +16,8 @@ from numba import njit
 from .options import KERNEL_OPTIONS
 
 SAME, GAP, SENDER, RECEIVER, PAIR_SUM, NETWORK = 0, 1, 2, 3, 4, 5
+# Edges handled together by each edge term in turn (their arrays stay in cache).
+EDGE_BLOCK = 2048
 EMPTY = -1
 # Fibonacci hashing multiplier (2^64 / golden ratio), common practice.
 HASH_MULT = np.uint64(11400714819323198485)
@@ -63,16 +65,18 @@ def hash_lookup(hkeys, hvals, start, size, key):
 
 
 @njit(**KERNEL_OPTIONS)
-def sparse_cross(src, dst, w, perms, kinds, cols, center, slots, attr, hkeys, hvals, hoff,
-                 out, invert, undirected):
+def sparse_cross(src, dst, w, strength, perms, kinds, cols, center, slots, attr, hkeys,
+                 hvals, hoff, out, invert, undirected, n_edge_cols):
     """Centred cross products of a relabelled sparse network with each predictor.
 
     Parameters
     ----------
     src, dst : int64 (E,)
-        Edge endpoints of the sparse network (src < dst when ``undirected``).
+        Edge endpoints of the sparse network (src < dst when ``undirected``), sorted by src.
     w : float64 (E,)
         Edge values (zero elsewhere).
+    strength : float64 (n, 2)
+        Sum of w over each node's edges as src (column 0) and as dst (column 1).
     perms : int64 (B, n)
         Relabellings pi; the dyad (i, j) of the relabelled network holds the value at
         (pi(i), pi(j)).
@@ -81,7 +85,8 @@ def sparse_cross(src, dst, w, perms, kinds, cols, center, slots, attr, hkeys, hv
     center : float64 (k,)
         Mean of each predictor over the dyad set.
     attr : float64 (n, A)
-        Node attributes of the derived predictors.
+        Node attributes of the derived predictors; the columns of ``same`` and ``gap``
+        come first (0 .. n_edge_cols - 1).
     hkeys, hvals, hoff : the hash tables of the network predictors (module docstring).
     out : float64 (B, k)
         Written: out[b, c] = sum_e w_e (x_c(m(src_e), m(dst_e)) - center_c), where
@@ -90,46 +95,90 @@ def sparse_cross(src, dst, w, perms, kinds, cols, center, slots, attr, hkeys, hv
     invert : bool
     undirected : bool
         Network keys are stored as (min, max).
+    n_edge_cols : int
+        Number of attribute columns read at both endpoints of each edge.
+
+    Notes
+    -----
+    sender, receiver and pair_sum depend on one endpoint at a time, so their sums collapse
+    to sums over nodes of the strengths: sum_e w_e a_m(src_e) = sum_v s_out(v) a_m(v),
+    O(n) per relabelling, done in the same pass over the nodes that stores m and a
+    relabelled copy of the ``same``/``gap`` columns (rel[v] = attr[m(v)]). The edge loop
+    then reads rel at both endpoints, and networks look up (m(src), m(dst)).
     """
     n_perm, n = perms.shape
     n_edges = src.shape[0]
     k = kinds.shape[0]
     node = np.empty(n, dtype=np.int64)
+    rel = np.empty((n, max(n_edge_cols, 1)))
     acc = np.empty(k)
-    for b in range(n_perm):
-        if invert:
-            for i in range(n):
-                node[perms[b, i]] = i  # node = pi^-1
+    node_terms = np.empty(k, dtype=np.int64)
+    edge_terms = np.empty(k, dtype=np.int64)
+    n_node = 0
+    n_edge = 0
+    for c in range(k):
+        if kinds[c] == SENDER or kinds[c] == RECEIVER or kinds[c] == PAIR_SUM:
+            node_terms[n_node] = c
+            n_node += 1
         else:
-            for i in range(n):
-                node[i] = perms[b, i]
-        acc[:] = 0.0
-        for e in range(n_edges):
-            i = node[src[e]]
-            j = node[dst[e]]
-            we = w[e]
-            for c in range(k):
+            edge_terms[n_edge] = c
+            n_edge += 1
+    for b in range(n_perm):
+        for c in range(k):
+            acc[c] = 0.0
+        for t in range(n):
+            # invert: v = pi(t), so m(v) = pi^-1(v) = t; else v = t and m(v) = pi(t)
+            if invert:
+                v = perms[b, t]
+                u = t
+            else:
+                v = t
+                u = perms[b, t]
+            node[v] = u
+            for q in range(n_edge_cols):
+                rel[v, q] = attr[u, q]
+            for r in range(n_node):
+                c = node_terms[r]
+                kind = kinds[c]
+                a = attr[u, cols[c]]
+                # sum_e w_e (a_m(src_e) - center) = sum_v s_out(v) (a_m(v) - center)
+                if kind == SENDER:
+                    acc[c] += strength[v, 0] * (a - center[c])
+                elif kind == RECEIVER:
+                    acc[c] += strength[v, 1] * (a - center[c])
+                else:
+                    acc[c] += (strength[v, 0] + strength[v, 1]) * (a - 0.5 * center[c])
+        # edges in blocks that stay in cache while each edge term runs a tight loop over
+        # them; each term still sums its edges in order, so the block size does not
+        # change any result
+        for e0 in range(0, n_edges, EDGE_BLOCK):
+            e1 = min(e0 + EDGE_BLOCK, n_edges)
+            for r in range(n_edge):
+                c = edge_terms[r]
                 kind = kinds[c]
                 col = cols[c]
+                mc = center[c]
+                s = acc[c]
                 if kind == SAME:
-                    x = 1.0 if attr[i, col] == attr[j, col] else 0.0
+                    for e in range(e0, e1):
+                        x = 1.0 if rel[src[e], col] == rel[dst[e], col] else 0.0
+                        # acc[c] += w_e * (x_c at the relabelled endpoints - mean of x_c)
+                        s += w[e] * (x - mc)
                 elif kind == GAP:
-                    x = abs(attr[i, col] - attr[j, col])
-                elif kind == SENDER:
-                    x = attr[i, col]
-                elif kind == RECEIVER:
-                    x = attr[j, col]
-                elif kind == PAIR_SUM:
-                    x = attr[i, col] + attr[j, col]
+                    for e in range(e0, e1):
+                        s += w[e] * (abs(rel[src[e], col] - rel[dst[e], col]) - mc)
                 else:
-                    if undirected and i > j:
-                        key = j * n + i
-                    else:
-                        key = i * n + j
-                    s = slots[c]
-                    x = hash_lookup(hkeys, hvals, hoff[s], hoff[s + 1] - hoff[s], key)
-                # out[b, c] += w_e * (x_c at the relabelled endpoints - mean of x_c)
-                acc[c] += we * (x - center[c])
+                    start = hoff[slots[c]]
+                    size = hoff[slots[c] + 1] - start
+                    for e in range(e0, e1):
+                        mi = node[src[e]]
+                        mj = node[dst[e]]
+                        if undirected and mi > mj:
+                            key = mj * n + mi
+                        else:
+                            key = mi * n + mj
+                        s += w[e] * (hash_lookup(hkeys, hvals, start, size, key) - mc)
+                acc[c] = s
         for c in range(k):
             out[b, c] = acc[c]
 

@@ -608,6 +608,8 @@ class SparsePlan:
     """Duck-typed like ``schemes.Plan`` for the engine: ``statistics`` and ``k``."""
 
     edges: Edges
+    strength: np.ndarray  # (n, 2) sums of edge values by source node and by target node
+    n_edge_cols: int  # attribute columns of same/gap (first in ``attr``)
     kinds: np.ndarray
     cols: np.ndarray
     center: np.ndarray
@@ -621,7 +623,7 @@ class SparsePlan:
     inv_scale: np.ndarray  # (k,) 1 / (sd_y sd_x_c): raw centred cross -> standardised
     gram0: np.ndarray  # (d, d) standardised Gram without the relabelled-by-fixed block
     transforms: np.ndarray
-    scale: np.ndarray
+    scale: np.ndarray  # (k,) 1 for t; sd_y / sd_x_c takes a coefficient to user units
     use_t: bool
     correlation: bool
     k: int
@@ -630,9 +632,10 @@ class SparsePlan:
     def cross(self, perms: np.ndarray) -> np.ndarray:
         """Centred cross products (B, k) of the relabelled network with each predictor."""
         out = np.empty((perms.shape[0], self.kinds.shape[0]))
-        sparse_cross(self.edges.src, self.edges.dst, self.edges.w, perms, self.kinds,
-                     self.cols, self.center, self.slots, self.attr, self.hkeys, self.hvals,
-                     self.hoff, out, self.invert, self.undirected)
+        sparse_cross(self.edges.src, self.edges.dst, self.edges.w, self.strength, perms,
+                     self.kinds, self.cols, self.center, self.slots, self.attr, self.hkeys,
+                     self.hvals, self.hoff, out, self.invert, self.undirected,
+                     self.n_edge_cols)
         return out
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
@@ -707,28 +710,33 @@ def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statis
     kinds = np.empty(k, dtype=np.int64)
     cols = np.zeros(k, dtype=np.int64)
     slots = np.zeros(k, dtype=np.int64)
-    col = slot = 0
+    slot = 0
+    # same/gap columns first: the kernel copies them relabelled for its edge loop
+    on_edges = [c for c, t in enumerate(prep.terms) if t.kind in (SAME, GAP)]
+    on_nodes = [c for c, t in enumerate(prep.terms) if t.kind in (SENDER, RECEIVER, PAIR_SUM)]
+    for col, c in enumerate(on_edges + on_nodes):
+        attr[:, col] = prep.terms[c].attr
+        cols[c] = col
     for c, t in enumerate(prep.terms):
         kinds[c] = t.kind
         if t.kind == NETWORK:
             slots[c] = slot
             slot += 1
-        else:
-            attr[:, col] = t.attr
-            cols[c] = col
-            col += 1
     hkeys, hvals, hoff = _hash_tables(prep.terms, prep.n)
     d = k + 2
     gram0 = np.zeros((d, d))
     gram0[0, 0] = N
     gram0[1, 1] = N  # sum of the standardised response's squares
     gram0[2:, 2:] = mom.cross / np.outer(sx, sx)
+    edges = prep.y if edges is None else edges
+    strength = np.stack([np.bincount(edges.src, edges.w, prep.n),
+                         np.bincount(edges.dst, edges.w, prep.n)], axis=1)
     return SparsePlan(
-        edges=prep.y if edges is None else edges, kinds=kinds, cols=cols,
+        edges=edges, strength=strength, n_edge_cols=len(on_edges), kinds=kinds, cols=cols,
         center=np.ascontiguousarray(mom.mean), slots=slots, attr=attr, hkeys=hkeys,
         hvals=hvals, hoff=hoff, invert=not correlation, undirected=not prep.directed,
         inv_scale=1.0 / (y_sd * sx), gram0=gram0, transforms=y_transforms(k),
-        scale=y_sd / sx, use_t=statistic == "t", correlation=correlation, k=k,
+        scale=np.ones(k) if statistic == "t" else y_sd / sx, use_t=statistic == "t", correlation=correlation, k=k,
         n_dyads=prep.n_dyads)
 
 
