@@ -6,4 +6,5 @@ from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, 
 __version__ = "0.1.0"
 from .api import correlate, open_result, regress
 from .result import CorrelationResult, RegressionResult
+from .sparse import SparseNetwork
 from .study import Study, load_study

@@ -10,6 +10,7 @@ from typing import Any, Callable
 import numpy as np
 
 from . import design as _design
+from . import sparse as _sparse
 from . import store as _store
 from .engine import Draws, default_chunk_size, iter_chunks, run_all
 from .errors import DyadpermWarning, InputError
@@ -223,6 +224,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     Freedman & Lane (1983, J. Bus. Econ. Stat. 1:292–298). p-values follow Phipson &
     Smyth (2010): (b + 1) / (m + 1) for random relabellings.
     """
+    if _sparse.takes(y, predictors, scheme=scheme):  # sparse response, sparse/derived predictors
+        return _sparse.regress(y, predictors, **_sparse_args(locals()))
     _check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
                   chunk_size=chunk_size)
     if model not in MODELS:
@@ -328,6 +331,8 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     Other parameters as in :func:`regress`. Caution: partial Mantel tests are not offered;
     see the README on when they fail.
     """
+    if _sparse.takes(a, b):  # sparse first network, sparse or derived second
+        return _sparse.correlate(a, b, **_sparse_args(locals()))
     _check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
                   chunk_size=chunk_size)
     bname = getattr(b, "name", None) or "b"
@@ -356,6 +361,11 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
                         seed=None if draws.exact else draws.entropy)
+
+
+def _sparse_args(args: dict) -> dict:
+    """The keyword arguments of regress/correlate, for the sparse path."""
+    return {k: v for k, v in args.items() if k not in ("y", "predictors", "a", "b")}
 
 
 def _count_complete(prep) -> int:
