@@ -60,6 +60,67 @@ def gather_cross_ref(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start
     return res
 
 
+def gather_gram_ref(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop):
+    """Twin of ``kernels.gather.gather_gram``: sum of v v' over dyads where every entry of
+    v = [1, relabelled layers, fixed layers] is finite."""
+    n, m = fix.shape[0], fix.shape[1]
+    jj = np.arange(m)[None, :]
+    mask = (jj >= np.asarray(col_start)[:, None]) & (jj < np.asarray(col_stop)[:, None])
+    B = row_perms.shape[0]
+    d = 1 + len(rel_idx) + len(fix_idx)
+    res = np.empty((B, d, d))
+    for b in range(B):
+        moved = rel[np.ix_(row_perms[b], col_perms[b])]
+        cols = [np.ones((n, m))] + [moved[:, :, a] for a in rel_idx] + [fix[:, :, c] for c in fix_idx]
+        V = np.stack([c[mask] for c in cols], axis=1)
+        V = V[np.isfinite(V).all(axis=1)]
+        res[b] = V.T @ V
+    return res
+
+
+def fill_gram_ref(cross, gram0):
+    """Twin of ``kernels.stats.fill_gram``."""
+    B, R, Q = cross.shape
+    out = np.repeat(gram0[None], B, axis=0)
+    out[:, 1:1 + R, 1 + R:] = cross
+    out[:, 1 + R:, 1:1 + R] = np.transpose(cross, (0, 2, 1))
+    return out
+
+
+def regression_stats_ref(gram, transforms, scale, use_t):
+    """Twin of ``kernels.stats.regression_stats``: OLS of the last column of T'GT on the
+    others (the tested one last) by explicit inverses of the normal equations."""
+    B = gram.shape[0]
+    K, _, p1 = transforms.shape
+    p = p1 - 1
+    out = np.empty((B, K))
+    for b in range(B):
+        for k in range(K):
+            g = transforms[k].T @ gram[b] @ transforms[k]
+            xtx, xty, yty = g[:p, :p], g[:p, p], g[p, p]
+            if np.linalg.matrix_rank(xtx) < p or gram[b, 0, 0] - p <= 0:
+                out[b, k] = np.nan
+                continue
+            inv = np.linalg.inv(xtx)
+            beta = inv @ xty
+            rss = yty - xty @ beta
+            df = gram[b, 0, 0] - p
+            if use_t:
+                out[b, k] = beta[-1] / np.sqrt(rss / df * inv[-1, -1]) * scale[k]
+            else:
+                out[b, k] = beta[-1] * scale[k]
+    return out
+
+
+def correlation_stats_ref(gram):
+    """Twin of ``kernels.stats.correlation_stats``: Pearson r from sums."""
+    n = gram[:, 0, 0]
+    cov = gram[:, 1, 2] - gram[:, 0, 1] * gram[:, 0, 2] / n
+    va = gram[:, 1, 1] - gram[:, 0, 1] ** 2 / n
+    vb = gram[:, 2, 2] - gram[:, 0, 2] ** 2 / n
+    return cov / np.sqrt(va * vb)
+
+
 # --- dyad sets, vectors, relabelling ------------------------------------------------------
 def dyads(n: int, m: int | None = None, directed: bool = True, two_mode: bool = False):
     """Index arrays (rows, cols) of the dyad set (methods.md, "Dyads and relabelling").

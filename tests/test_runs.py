@@ -140,7 +140,17 @@ PERMS = 12_000
 
 
 def test_kill_nine_then_extend_is_bit_identical(tmp_path):
-    """kill -9 a running `dyadperm run` at random moments, then `extend` (several trials)."""
+    """kill -9 a running `dyadperm run` at random moments, then `extend` (3 trials)."""
+    _kill_and_resume(tmp_path, trials=3)
+
+
+@pytest.mark.slow
+def test_kill_nine_at_twenty_instants(tmp_path):
+    """The same at 20 random instants (run on request: about 4 minutes)."""
+    _kill_and_resume(tmp_path, trials=20)
+
+
+def _kill_and_resume(tmp_path, trials):
     study = tmp_path / "demo.toml"
     shutil.copytree(DEMO.parent / "demo", tmp_path / "demo")
     shutil.copy(DEMO, study)
@@ -151,7 +161,7 @@ def test_kill_nine_then_extend_is_bit_identical(tmp_path):
     ref_null = np.asarray(dp.open_result(ref).null)
     rng = np.random.default_rng(20261202)
     resumed = interrupted = 0
-    for trial in range(3):
+    for trial in range(trials):
         out = tmp_path / f"killed{trial}.h5"
         proc = subprocess.Popen([sys.executable, "-m", "dyadperm.cli", "run", str(study),
                                  "--permutations", str(PERMS), "--chunk-size", "40", "--out",
