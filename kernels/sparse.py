@@ -19,14 +19,19 @@ SAME, GAP, SENDER, RECEIVER, PAIR_SUM, NETWORK = 0, 1, 2, 3, 4, 5
 # Edges handled together by each edge term in turn (their arrays stay in cache).
 EDGE_BLOCK = 2048
 EMPTY = -1
-# Fibonacci hashing multiplier (2^64 / golden ratio), common practice.
-HASH_MULT = np.uint64(11400714819323198485)
+# Multiplicative hashing constants (Knuth's 2654435761 and a second odd 32-bit prime),
+# common practice. Each multiplies a 32-bit half of the key, so no product overflows
+# 64 bits (the same result with and without the JIT).
+HASH_LO = np.uint64(2654435761)
+HASH_HI = np.uint64(2246822519)
+LOW32 = np.uint64(0xFFFFFFFF)
 
 
 @njit(**KERNEL_OPTIONS)
 def hash_slot(key, mask):
-    """First slot of ``key`` in a table of ``mask + 1`` slots (multiplicative hashing)."""
-    x = np.uint64(key) * HASH_MULT
+    """First slot of ``key`` (int64 >= 0) in a table of ``mask + 1`` slots."""
+    k = np.uint64(key)
+    x = ((k & LOW32) * HASH_LO) ^ ((k >> np.uint64(32)) * HASH_HI)
     x = x ^ (x >> np.uint64(29))
     return np.int64(x & np.uint64(mask))
 

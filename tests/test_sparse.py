@@ -198,6 +198,7 @@ CASES = {
     "directed": dict(directed=True, groups=None, dyads=None),
     "undirected": dict(directed=False, groups=None, dyads=None),
     "groups-within": dict(directed=True, groups=True, dyads="within"),
+    "groups-all": dict(directed=False, groups=True, dyads="all"),
 }
 
 
@@ -227,7 +228,7 @@ def test_sparse_path_matches_dense_path_n300(rng, case):
     assert res.n_dyads == ref.n_dyads
     # source: statsmodels OLS on the vectorised dyads (observed fit)
     mask = ~np.eye(n, dtype=bool) if directed else np.triu(np.ones((n, n), dtype=bool), 1)
-    if groups is not None:
+    if opts["dyads"] == "within":
         mask &= groups[:, None] == groups[None, :]
     A = sm.add_constant(np.column_stack([m[mask] for m in dense_preds.values()]))
     ols = sm.OLS(Y[mask], A).fit()
@@ -318,6 +319,24 @@ def test_correlation_matches_scipy_and_dense_path(rng, method, other):
     null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
     assert np.all(np.abs(null_s - null_d) <= NULL_TOL * np.maximum(1.0, np.abs(null_d)))
     np.testing.assert_array_equal(res.exceed, ref.exceed)
+    np.testing.assert_array_equal(res.p, ref.p)
+
+
+@pytest.mark.parametrize("method", ["pearson", "spearman"])
+def test_undirected_correlation_of_two_sparse_networks(rng, method):
+    n = 70
+    A = sparse_response(rng, n, 0.1, directed=False)
+    B = sparse_predictor(rng, n, 0.15, directed=False)
+    res = dp.correlate(SparseNet(A, False), sp.csr_array(B), method=method, permutations=150,
+                       seed=9)
+    assert res.directed is False and res.n_dyads == n * (n - 1) // 2
+    rows, cols = dyad_index(n, False)
+    # source: scipy.stats pearsonr / spearmanr on one triangle of the dyads
+    fn = st.pearsonr if method == "pearson" else st.spearmanr
+    assert res.r[0] == pytest.approx(fn(A[rows, cols], B[rows, cols])[0], rel=FIT_RTOL)
+    ref = dp.correlate(A, B, method=method, permutations=150, seed=9)
+    null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
+    assert np.all(np.abs(null_s - null_d) <= NULL_TOL * np.maximum(1.0, np.abs(null_d)))
     np.testing.assert_array_equal(res.p, ref.p)
 
 
