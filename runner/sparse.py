@@ -109,6 +109,8 @@ class SparseNetwork:
         The n node labels (isolated nodes included), or n for labels "0" .. "n-1".
     directed : bool or None
         None: undirected when the edges are symmetric (and every other input too).
+        False: each pair may be listed once, in either orientation (or in both with
+        the same value).
     name : str or None
         Name used in messages and result tables.
 
@@ -174,6 +176,8 @@ class SparseNetwork:
             e = int(first[np.argmax(counts > 1)])
             raise InputError(f"{what}: the dyad ({labels[rows[e]]!r}, {labels[cols[e]]!r}) is "
                              "given more than once")
+        if self.directed is False:
+            rows, cols, w = _undirected_edges(rows, cols, w, labels, what)
         object.__setattr__(self, "rows", rows)
         object.__setattr__(self, "cols", cols)
         object.__setattr__(self, "weights", w)
@@ -205,6 +209,30 @@ class SparseNetwork:
                              ".toarray() for two-mode data)")
         return cls(coo.row, coo.col, coo.data, coo.shape[0] if labels is None else labels,
                    directed, name)
+
+
+def _undirected_edges(rows, cols, w, labels, what):
+    """Edges of an undirected network in both orientations.
+
+    Each pair may be given once (either orientation) or in both with the same value.
+    """
+    n = max(len(labels), 1)
+    lo, hi = np.minimum(rows, cols), np.maximum(rows, cols)
+    keys = lo * n + hi
+    order = np.argsort(keys, kind="stable")
+    k_s, w_s = keys[order], w[order]
+    same_key = k_s[1:] == k_s[:-1]
+    clash = same_key & (w_s[1:] != w_s[:-1])
+    if clash.any():
+        e = int(order[1:][clash][0])
+        raise InputError(f"{what}: directed=False but the dyad ({labels[rows[e]]!r}, "
+                         f"{labels[cols[e]]!r}) is given in both orientations with different "
+                         "values")
+    first = np.concatenate([[True], ~same_key]) if k_s.size else np.zeros(0, dtype=bool)
+    lo, hi, w1 = lo[order][first], hi[order][first], w_s[first]
+    loop = lo == hi
+    return (np.concatenate([lo, hi[~loop]]), np.concatenate([hi, lo[~loop]]),
+            np.concatenate([w1, w1[~loop]]))
 
 
 def is_sparse(obj: Any) -> bool:
@@ -736,8 +764,8 @@ def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statis
         center=np.ascontiguousarray(mom.mean), slots=slots, attr=attr, hkeys=hkeys,
         hvals=hvals, hoff=hoff, invert=not correlation, undirected=not prep.directed,
         inv_scale=1.0 / (y_sd * sx), gram0=gram0, transforms=y_transforms(k),
-        scale=np.ones(k) if statistic == "t" else y_sd / sx, use_t=statistic == "t", correlation=correlation, k=k,
-        n_dyads=prep.n_dyads)
+        scale=np.ones(k) if statistic == "t" else y_sd / sx, use_t=statistic == "t",
+        correlation=correlation, k=k, n_dyads=prep.n_dyads)
 
 
 def observed_fit_sparse(prep: SparsePrepared, mom: Moments, plan: SparsePlan, y_mean: float,

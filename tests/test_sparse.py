@@ -35,7 +35,7 @@ import statsmodels.api as sm
 import dyadperm as dp
 from dyadperm import sparse as dsp_
 from dyadperm.dyadic import NodeDerived
-from dyadperm.kernels.sparse import build_hash, gap_gap_sum, hash_lookup, sparse_cross
+from dyadperm.kernels.sparse import build_hash, gap_gap_sum, hash_lookup
 
 # Tolerances (named in one place)
 NULL_TOL = 1e-10  # |sparse - dense| <= NULL_TOL * max(1, |dense|), see the module docstring
@@ -338,6 +338,24 @@ def test_undirected_correlation_of_two_sparse_networks(rng, method):
     null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
     assert np.all(np.abs(null_s - null_d) <= NULL_TOL * np.maximum(1.0, np.abs(null_d)))
     np.testing.assert_array_equal(res.p, ref.p)
+
+
+def test_undirected_edge_list_may_list_each_pair_once(rng):
+    n = 25
+    A = sparse_response(rng, n, 0.2, directed=False)
+    r, c = np.nonzero(np.triu(A, 1))
+    flip = rng.random(r.size) < 0.5  # either orientation
+    once = dp.SparseNetwork(np.where(flip, c, r), np.where(flip, r, c), A[r, c], n,
+                            directed=False)
+    np.testing.assert_array_equal(once.toarray(), A)
+    x = dp.gap(rng.normal(size=n))
+    a = dp.regress(once, {"x": x}, scheme="y", permutations=30, seed=4)
+    b = dp.regress(SparseNet(A, False), {"x": x}, scheme="y", permutations=30, seed=4)
+    assert a.directed is False
+    np.testing.assert_array_equal(np.asarray(a.null), np.asarray(b.null))
+    with pytest.raises(dp.InputError, match=r"the dyad \('1', '0'\) is given in both "
+                                            "orientations with different values"):
+        dp.SparseNetwork([0, 1], [1, 0], [1.0, 2.0], 3, directed=False)
 
 
 # --- invariance, dispatch and errors -----------------------------------------------------------
