@@ -8,3 +8,4 @@ from .api import correlate, open_result, regress
 from .result import CorrelationResult, RegressionResult
 from .sparse import SparseNetwork
 from .study import Study, load_study
+from .calibrate import CalibrationResult, calibrate

@@ -202,6 +202,37 @@ def demo(
                f"at the top of {path})")
 
 
+@app.command()
+def calibrate(
+    study: Path = typer.Argument(..., help="Study file (TOML)."),
+    replicates: int = typer.Option(200, help="Simulated responses per tested term."),
+    permutations: int = typer.Option(199, help="Random relabellings per test."),
+    alpha: Optional[float] = typer.Option(None, help="Level (default: the study's alpha)."),
+    effect: Optional[float] = typer.Option(None, help="Standardised coefficient for a power "
+                                           "study (sd of the response per sd of the term)."),
+    seed: Optional[int] = typer.Option(None, help="Seed entropy (default: the study's seed)."),
+    jobs: Optional[int] = typer.Option(None, help="Workers; -1 uses every core (default: the "
+                                       "study file's jobs if it sets one, else every core)."),
+    plot: Optional[Path] = typer.Option(None, help="Write the figure to this file (.png, .pdf, .svg)."),
+    progress: Optional[bool] = typer.Option(None, "--progress/--quiet"),
+    as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+) -> None:
+    """Size (and power) of each scheme on simulated responses that keep the study's design."""
+    from .calibrate import calibrate_study, check_plot_path
+    from .study import load_study
+
+    if plot is not None:
+        check_plot_path(plot)
+    bar = _progress(progress)
+    if bar:
+        bar.label = "replicates"
+    res = calibrate_study(load_study(study), replicates=replicates, permutations=permutations,
+                          alpha=alpha, effect=effect, seed=seed, jobs=jobs, progress=bar)
+    _print_result(res, as_json)
+    if plot is not None:
+        typer.echo(f"figure written to {res.plot(plot)}")
+
+
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
     _say(f"dyadperm: warning: {message}")
 

@@ -1,0 +1,808 @@
+"""Can I trust this p-value here? Size and power of each scheme on the user's own design.
+
+Simulation studies show that relabelling schemes can lose their nominal error rate under
+collinear predictors, skewed values and dyadic dependence (Anderson & Legendre 1999,
+J. Stat. Comput. Simul. 62:271–303; Dekker, Krackhardt & Snijders 2007, Psychometrika
+72:563–581). :func:`calibrate` answers the question for one data set: it keeps the user's
+predictors exactly as they are, simulates many responses for which a tested term truly has
+no effect, runs every scheme on each, and counts how often each rejects at ``alpha``.
+
+What the simulation assumes, in plain words
+-------------------------------------------
+For each tested term x_j separately, with Z = [1, the other predictors]:
+
+1. Fit the reduced model y = Z gamma + r on the observed dyads (least squares). Keep the
+   fitted values Z gamma_hat and the residual matrix R = y - Z gamma_hat.
+2. A simulated response is y* = Z gamma_hat + R relabelled: the nodes of R are given a
+   random relabelling (rows and columns together, within groups; rows and columns apart
+   for two-mode data). A relabelled matrix keeps everything about R that does not depend
+   on which node is which: its values, the dependence between dyads that share a node
+   (sender and receiver effects, reciprocity), its skew and its ties. What it breaks is
+   any tie between R and the predictors, so x_j has no effect in y*: the null hypothesis
+   for that term holds, while the other terms keep the effects the data show.
+3. With ``effect`` = e, a second response y* + e * sd(y) / sd(x_j) * x_j is tested too: e
+   is a **standardised coefficient** (the change in y, in standard deviations of the
+   observed response, per standard deviation of x_j; sds over the observed dyads). Its
+   rejection rate is the power to detect an effect of that size.
+
+Each scheme tests x_j on every simulated response with the same relabellings (a paired
+comparison of schemes); classical OLS p-values (t distribution with N - p degrees of
+freedom, which treats the dyads as independent) are given for contrast.
+
+This is a check of *this* design, not a proof: it tells whether the tests hold their size
+when the null model above is true. Its null is the Freedman & Lane (1983) resampling model
+(fitted reduced model plus relabelled residuals), so it is a fair test of ``y`` and
+``dsp`` and a consistency check of ``freedman-lane``; residual structure that relabelling
+cannot produce (for example dependence that follows a predictor's own layout) is outside
+what it checks. Missing values travel with the residual matrix under relabelling.
+
+Reading the output
+------------------
+Under a valid test the count of rejections over R replicates is Binomial(R, a), where a
+is the rejection probability a valid test has here: with m random relabellings and the
+p-value (b + 1) / (m + 1) (Phipson & Smyth 2010), a = floor(alpha (m + 1)) / (m + 1),
+which is exactly alpha when alpha (m + 1) is a whole number (m = 199 or 999 at 0.05).
+The band is the central ``band_level`` binomial interval (``scipy.stats.binom.interval``)
+around a; a rate inside it is what a valid test gives, above it the test rejects too
+often (too liberal), below it too rarely. Each rate also carries its Clopper–Pearson
+interval (Clopper & Pearson 1934, Biometrika 26:404–413).
+
+Cost
+----
+terms x replicates x schemes x (permutations + 1) kernel passes (doubled with ``effect``):
+each replicate runs the engine's own plan (``schemes.build_plan`` on the simulated
+response) and relabelling kernels, so the cost per pass is that of a normal run. The
+defaults (200 replicates, 199 relabellings, three schemes) on the demo study (90 farms,
+8,010 dyads, four terms) make 4 x 200 x 3 x 200 = 480,000 passes; see
+``CalibrationResult.passes`` and ``seconds``. Replicates run in parallel threads
+(``jobs``); results do not depend on ``jobs``: replicate r of term j draws everything
+from ``SeedSequence(seed, spawn_key=(j, r))``.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+from scipy.stats import binom
+from scipy.stats import t as t_dist
+
+from . import design as _design
+from .errors import InputError, NumericalError
+from .kernels.gather import gather_cross
+from .kernels.stats import fill_gram, regression_stats
+from .permutations import EXACT_LIMIT, Blocks, draw, enumerate_exact
+from .pvalues import clopper_pearson, pvalues
+from .schemes import SCHEMES, STATISTICS, build_plan
+
+__all__ = ["CalibrationResult", "calibrate", "calibrate_study", "simulated_response",
+           "plot_calibration", "check_plot_path"]
+
+DEFAULT_SCHEMES = ("y", "dsp", "freedman-lane")
+OLS = "ols"
+"""Method id of the classical OLS t test in :attr:`CalibrationResult.methods`."""
+METHOD_LABELS = {"y": "y", "dsp": "dsp", "freedman-lane": "freedman-lane",
+                 OLS: "classical OLS"}
+BAND_LEVEL = 0.95
+INTERVAL_LEVEL = 0.95
+# alpha (m + 1) within this of a whole number counts as whole (floating point of 0.05 * 200).
+WHOLE_TOL = 1e-9
+# The shared relabelling pass and the engine's plan add the same products in the same
+# order; they must agree on the identity statistic to this relative tolerance.
+SHARED_RTOL = 1e-9
+
+
+@dataclass(frozen=True, eq=False)
+class CalibrationResult:
+    """Size (and power) of each test of each term on simulated responses.
+
+    Arrays are indexed [term, method] (and [term, method, replicate] for p-values).
+
+    Attributes
+    ----------
+    terms : tuple of str
+        The tested terms (predictors, in model order).
+    methods : tuple of str
+        The schemes asked for, then ``"ols"`` (classical OLS t test) when included.
+    response : str
+    alpha : float
+    replicates : int
+        Simulated responses per term.
+    permutations : int
+        Relabellings per test (all of them when ``exact``).
+    exact : bool
+        True when every test enumerated all relabellings.
+    statistic : str
+        ``"t"`` or ``"coef"``.
+    valid_rate : float
+        Rejection probability of a valid test here (see the module notes).
+    band_level : float
+    band : ndarray (2,)
+        Rates between which a valid test's rate falls with probability ``band_level``.
+    null_p : ndarray (k, methods, replicates)
+        Two-sided p-values under the null of each term.
+    rejections : ndarray of int (k, methods)
+        p <= alpha counts under the null.
+    rate, interval : ndarray (k, methods), (k, methods, 2)
+        Rejection rate and its Clopper–Pearson interval (``interval_level``).
+    effect : float or None
+        Standardised coefficient added for the power study.
+    power_p, power_rejections, power_rate, power_interval : ndarray or None
+        As above, for the responses with the effect added (None without ``effect``).
+    seed : int
+        Entropy actually used.
+    n_nodes, n_dyads : int
+    directed, two_mode : bool
+    passes : int
+        Statistics computed by the relabelling kernels (the cost).
+    seconds : float
+        Wall time of the simulation.
+    notes : tuple of str
+    """
+
+    terms: tuple[str, ...]
+    methods: tuple[str, ...]
+    response: str
+    alpha: float
+    replicates: int
+    permutations: int
+    exact: bool
+    statistic: str
+    valid_rate: float
+    band_level: float
+    band: np.ndarray
+    interval_level: float
+    null_p: np.ndarray
+    rejections: np.ndarray
+    rate: np.ndarray
+    interval: np.ndarray
+    effect: float | None
+    power_p: np.ndarray | None
+    power_rejections: np.ndarray | None
+    power_rate: np.ndarray | None
+    power_interval: np.ndarray | None
+    seed: int
+    n_nodes: int
+    n_dyads: int
+    directed: bool
+    two_mode: bool
+    passes: int
+    seconds: float
+    notes: tuple[str, ...] = ()
+
+    def verdicts(self) -> tuple[tuple[str, ...], ...]:
+        """Per term and method: ``"inside band"``, ``"too liberal"`` or ``"too conservative"``."""
+        lo, hi = self.band
+        out = []
+        for row in self.rate:
+            out.append(tuple("too liberal" if r > hi + WHOLE_TOL else
+                             "too conservative" if r < lo - WHOLE_TOL else "inside band"
+                             for r in row))
+        return tuple(out)
+
+    def table(self) -> str:
+        """Formatted text: the settings, the band, then size (and power) per term and method."""
+        return format_calibration(self)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready dict (lists; p-values per replicate left out)."""
+        from .result import _plain
+
+        out: dict[str, Any] = {}
+        for name in self.__dataclass_fields__:
+            if name in ("null_p", "power_p"):
+                continue
+            out[name] = _plain(getattr(self, name))
+        out["verdicts"] = [list(v) for v in self.verdicts()]
+        return out
+
+    def plot(self, path: str | Path) -> Path:
+        """Write the figure (see :func:`plot_calibration`) to ``path``; returns the path."""
+        return plot_calibration(self, path)
+
+
+# --------------------------------------------------------------------------- validation
+
+def _whole(value: Any, name: str, minimum: int, also: int | None = None) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or (
+            value < minimum and value != also):
+        rule = f"a whole number >= {minimum}" + ("" if also is None else f", or {also}")
+        raise InputError(f"`{name}` must be {rule}; got {value!r}")
+    return int(value)
+
+
+def _fraction(value: Any, name: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) \
+            or not 0.0 < float(value) < 1.0:
+        raise InputError(f"`{name}` must be a number between 0 and 1 (exclusive); got {value!r}")
+    return float(value)
+
+
+def _check(*, schemes, replicates, permutations, alpha, effect, seed, jobs, include_ols,
+           statistic, band_level) -> dict:
+    """One validator for :func:`calibrate`: every rule, with the setting and value named."""
+    if isinstance(schemes, str):
+        schemes = (schemes,)
+    try:
+        schemes = tuple(schemes)
+    except TypeError:
+        raise InputError(f"`schemes` must be a list of scheme names; got {schemes!r}") from None
+    if not schemes:
+        raise InputError("`schemes` must name at least one of " + ", ".join(SCHEMES) + "; got ()")
+    for s in schemes:
+        if s not in SCHEMES:
+            raise InputError(f"`schemes` must be among {', '.join(SCHEMES)}; got {s!r}")
+    if len(set(schemes)) != len(schemes):
+        raise InputError(f"`schemes` lists a scheme twice; got {schemes!r}")
+    if statistic not in STATISTICS:
+        raise InputError(f"`statistic` must be one of {', '.join(STATISTICS)}; got {statistic!r}")
+    replicates = _whole(replicates, "replicates", 1)
+    permutations = _whole(permutations, "permutations", 1)
+    alpha = _fraction(alpha, "alpha")
+    band_level = _fraction(band_level, "band_level")
+    if effect is not None:
+        if isinstance(effect, bool) or not isinstance(effect, (int, float, np.integer,
+                                                               np.floating)) \
+                or not math.isfinite(float(effect)):
+            raise InputError(f"`effect` must be a finite number (a standardised coefficient) "
+                             f"or None; got {effect!r}")
+        effect = float(effect)
+    if seed is not None and not isinstance(seed, np.random.SeedSequence) and (
+            isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
+        raise InputError(f"`seed` must be a whole number >= 0, a numpy SeedSequence or None; "
+                         f"got {seed!r}")
+    jobs = _whole(jobs, "jobs", 1, also=-1)
+    if not isinstance(include_ols, bool):
+        raise InputError(f"`include_ols` must be True or False; got {include_ols!r}")
+    return dict(schemes=schemes, replicates=replicates, permutations=permutations,
+                alpha=alpha, effect=effect, seed=seed, jobs=jobs, band_level=band_level)
+
+
+def _entropy(seed: Any) -> int:
+    if isinstance(seed, np.random.SeedSequence):
+        if seed.spawn_key or not isinstance(seed.entropy, int):
+            raise InputError("`seed`: give a root SeedSequence with a single integer entropy")
+        return seed.entropy
+    if seed is None:
+        return int(np.random.SeedSequence().entropy)
+    return int(seed)
+
+
+# --------------------------------------------------------------------------- simulation
+
+@dataclass(frozen=True, eq=False)
+class _Reduced:
+    """Reduced-model pieces of one tested term, on the engine's internal node order."""
+
+    fitted: np.ndarray  # Z gamma_hat, (n, m)
+    resid: np.ndarray  # y - Z gamma_hat, NaN off the analysed dyads
+    shift: np.ndarray  # effect of one standardised unit: sd(y) / sd(x_j) * x_j
+
+
+def _analysed(prep: _design.Prepared) -> np.ndarray:
+    """Dyads that enter the observed fit: structural dyad set, every matrix finite."""
+    ok = prep.mask.copy()
+    for a in prep.matrices:
+        ok &= np.isfinite(a)
+    return ok
+
+
+def _reduced(prep: _design.Prepared, j: int, ok: np.ndarray) -> _Reduced:
+    k = prep.k
+    y = prep.matrices[k]
+    others = [c for c in range(k) if c != j]
+    Z = np.column_stack([np.ones(int(ok.sum()))] + [prep.matrices[c][ok] for c in others])
+    gamma = np.linalg.lstsq(Z, y[ok], rcond=None)[0]
+    fitted = np.full(y.shape, gamma[0])
+    for c, g in zip(others, gamma[1:]):
+        fitted = fitted + g * prep.matrices[c]
+    resid = np.where(ok, y - fitted, np.nan)
+    if not prep.directed and not prep.two_mode:
+        lower = np.tril_indices(y.shape[0], -1)
+        resid[lower] = resid.T[lower]
+    x = prep.matrices[j]
+    shift = (np.std(y[ok]) / np.std(x[ok])) * x
+    return _Reduced(fitted, resid, shift)
+
+
+def _relabelling(blocks: Blocks, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    rows = np.empty(blocks.n_rows, dtype=np.int64)
+    for s, e in blocks.row_blocks:
+        rows[s:e] = s + rng.permutation(e - s)
+    if blocks.col_blocks is None:
+        return rows, rows
+    cols = np.empty(blocks.n_cols, dtype=np.int64)
+    for s, e in blocks.col_blocks:
+        cols[s:e] = s + rng.permutation(e - s)
+    return rows, cols
+
+
+def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks):
+    """(row relabelling, column relabelling, permutation entropy) of one replicate."""
+    rng = np.random.Generator(np.random.PCG64(
+        np.random.SeedSequence(entropy, spawn_key=(term, replicate))))
+    rows, cols = _relabelling(blocks, rng)
+    perm_entropy = int.from_bytes(rng.bytes(16), "little")
+    return rows, cols, perm_entropy
+
+
+def _as_response(prep: _design.Prepared, values: np.ndarray) -> np.ndarray:
+    """A response matrix in the form ``design.prepare`` gives: NaN off the dyad set, mirrored."""
+    out = np.array(values, dtype=np.float64, copy=True)
+    out[~prep.mask] = np.nan
+    if not prep.directed and not prep.two_mode:
+        lower = np.tril_indices(out.shape[0], -1)
+        out[lower] = out.T[lower]
+    return out
+
+
+def _simulate(prep, red: _Reduced, rows, cols) -> np.ndarray:
+    # y* = Z gamma_hat + R relabelled: y*[i, j] = fitted[i, j] + R[rows[i], cols[j]]
+    return _as_response(prep, red.fitted + red.resid[np.ix_(rows, cols)])
+
+
+def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x):
+    """p-values of term ``j`` on response ``ystar``: each scheme, then classical OLS.
+
+    ``batch`` holds the relabellings, the identity first (random draws) or among them
+    (exact enumeration, where it is index 0).
+    """
+    complete = prep.complete and not np.isnan(ystar[prep.mask]).any()
+    sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete)
+    plans = []
+    for s in schemes:  # only the passes that fill term j's statistic
+        plan = build_plan(sim, scheme=s, statistic=statistic)
+        plans.append(replace(plan, passes=tuple(ps for ps in plan.passes if j in ps.terms)))
+    if all(ps.gram0 is not None for plan in plans for ps in plan.passes):
+        stats = _shared_statistics(plans, j, batch)
+    else:  # missing values: the engine's own passes (one full Gram per permutation and term)
+        stats = [plan.statistics(*batch)[:, j] for plan in plans]
+    out = np.empty(len(schemes) + int(include_ols))
+    for s, st in enumerate(stats):
+        observed, null = st[:1], (st if exact else st[1:])[:, None]
+        out[s] = pvalues(null, observed, exact=exact).p[0]
+    if include_ols:
+        if statistic == "t":
+            t_obs = stats[0][0]  # the identity relabelling: the full-model t (engine check)
+        else:
+            t_obs = build_plan(sim, scheme=schemes[0], statistic="t").statistics(*ident)[0][j]
+        df = int(np.isfinite(ystar[ok_x]).sum()) - (prep.k + 1)
+        out[-1] = 2.0 * t_dist.sf(abs(t_obs), df) if df > 0 else np.nan
+    return out
+
+
+def _shared_statistics(plans, j: int, batch) -> list[np.ndarray]:
+    """Statistic of term ``j`` under each plan, sharing relabelling passes between plans.
+
+    Each plan's pass needs, per relabelling, the cross products of its relabelled layers
+    with its fixed layers (``Plan.statistics`` reads them with ``gather_cross``). Passes
+    of different plans that hold equal layer arrays (``dsp`` and ``freedman-lane`` both
+    use the layers of [x_1 .. x_k, y]) share one ``gather_cross`` over the union of the
+    layers they use; each Gram is then filled and read by the engine's own kernels
+    (``fill_gram``, ``regression_stats``) with that pass's invariant Gram and transforms,
+    exactly as ``Plan.statistics`` does. The first relabelling's statistic is checked
+    against ``Plan.statistics``.
+    """
+    rows, cols = batch
+    n_perm = rows.shape[0]
+    groups: list[list] = []  # [rel, fix, [(plan index, pass), ...]]
+    for i, plan in enumerate(plans):
+        for ps in plan.passes:
+            for g in groups:
+                if g[0].dtype == ps.rel.dtype and g[1].dtype == ps.fix.dtype \
+                        and np.array_equal(g[0], ps.rel) and np.array_equal(g[1], ps.fix):
+                    g[2].append((i, ps))
+                    break
+            else:
+                groups.append([ps.rel, ps.fix, [(i, ps)]])
+    out = [np.full(n_perm, np.nan) for _ in plans]
+    for rel, fix, members in groups:
+        rel_all = np.unique(np.concatenate([ps.rel_idx for _, ps in members]))
+        fix_all = np.unique(np.concatenate([ps.fix_idx for _, ps in members]))
+        full = np.empty((n_perm, rel_all.size, fix_all.size))
+        gather_cross(rel, rel_all, fix, fix_all, rows, cols, plans[0].col_start,
+                     plans[0].col_stop, full)
+        for i, ps in members:
+            a = np.searchsorted(rel_all, ps.rel_idx)
+            c = np.searchsorted(fix_all, ps.fix_idx)
+            cross = np.ascontiguousarray(full[:, a][:, :, c])
+            d = ps.gram0.shape[0]
+            gram = np.empty((n_perm, d, d))
+            fill_gram(cross, ps.gram0, gram)
+            t = int(np.flatnonzero(ps.terms == j)[0])
+            stats = np.empty((n_perm, 1))
+            regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
+                             np.ascontiguousarray(ps.scale[t:t + 1]), plans[i].use_t, stats)
+            out[i] = stats[:, 0]
+    for plan, st in zip(plans, out):
+        ref = plan.statistics(rows[:1], cols[:1])[0, j]
+        if not abs(st[0] - ref) <= SHARED_RTOL * max(1.0, abs(ref)):
+            raise NumericalError(f"calibrate: the shared relabelling pass gives {float(st[0])!r} "
+                                 f"for the first relabelling but the engine's plan gives "
+                                 f"{float(ref)!r}")
+    return out
+
+
+def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, seed: int,
+                       effect: float | None = None, directed: bool | None = None,
+                       groups: Any = None, dyads: str | None = None) -> tuple[np.ndarray, int]:
+    """The response :func:`calibrate` simulates for ``term``, replicate ``replicate``.
+
+    Returns the matrix on the caller's node order (NaN off the dyad set; undirected data
+    symmetric) and the seed entropy of that replicate's relabellings: without groups,
+    ``dyadperm.regress(response, predictors, seed=that, permutations=m, exact=False)``
+    draws the very relabellings the calibration used. For checking and teaching.
+    """
+    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    if term not in prep.names:
+        raise InputError(f"`term` must be one of the predictors ({', '.join(prep.names)}); "
+                         f"got {term!r}")
+    replicate = _whole(replicate, "replicate", 0)
+    seed = _whole(seed, "seed", 0)
+    j = prep.names.index(term)
+    red = _reduced(prep, j, _analysed(prep))
+    rows, cols, perm_entropy = _replicate_stream(seed, j, replicate, prep.blocks)
+    ystar = _simulate(prep, red, rows, cols)
+    if effect is not None:
+        ystar = ystar + float(effect) * red.shift
+    out = np.empty_like(ystar)
+    out[np.ix_(prep.row_order, prep.col_order)] = ystar
+    return out, perm_entropy
+
+
+def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replicates: int = 200,
+              permutations: int = 199, alpha: float = 0.05, effect: float | None = None,
+              seed: Any = None, jobs: int = 1, directed: bool | None = None, groups: Any = None,
+              dyads: str | None = None, include_ols: bool = True, statistic: str = "t",
+              band_level: float = BAND_LEVEL,
+              progress: bool | Callable[[int, int], None] = False) -> CalibrationResult:
+    """Size (and power) of each scheme on simulated responses that keep the user's design.
+
+    Parameters
+    ----------
+    y, predictors, directed, groups, dyads
+        As in :func:`dyadperm.regress`.
+    schemes : sequence of {"y", "dsp", "freedman-lane"}
+        Schemes to check (default all three).
+    replicates : int
+        Simulated responses per tested term (R).
+    permutations : int
+        Random relabellings per test (m); every relabelling is enumerated instead when
+        there are at most this many.
+    alpha : float
+        Level at which a test rejects (p <= alpha).
+    effect : float, optional
+        Standardised coefficient of the tested term for a power study (change in y, in
+        standard deviations of the observed response, per standard deviation of x_j).
+    seed : int, SeedSequence or None
+        Entropy; the one used is ``result.seed``.
+    jobs : int
+        Worker threads (-1: all cores). Results do not depend on it.
+    include_ols : bool
+        Also report classical OLS t-test p-values (dyads treated as independent).
+    statistic : {"t", "coef"}
+        Statistic of the relabelling tests.
+    band_level : float
+        Probability of the binomial band around the valid rejection rate.
+    progress : bool or callable(done, total)
+        Called with replicates done and their total.
+
+    Returns
+    -------
+    CalibrationResult
+
+    Notes
+    -----
+    The null responses are the reduced-model fit plus relabelled reduced-model residuals
+    (the Freedman & Lane 1983 null model); see the module notes for what that assumes and
+    what it costs. Schemes: Krackhardt (1988), Dekker, Krackhardt & Snijders (2007),
+    Freedman & Lane (1983, J. Bus. Econ. Stat. 1:292–298).
+    """
+    t0 = time.perf_counter()
+    opts = _check(schemes=schemes, replicates=replicates, permutations=permutations,
+                  alpha=alpha, effect=effect, seed=seed, jobs=jobs, include_ols=include_ols,
+                  statistic=statistic, band_level=band_level)
+    schemes, R, M = opts["schemes"], opts["replicates"], opts["permutations"]
+    alpha, effect = opts["alpha"], opts["effect"]
+    entropy = _entropy(opts["seed"])
+    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    _design.observed_fit(prep)  # the same input checks as a run (collinearity, no variation)
+
+    count = prep.blocks.count()
+    exact = count <= M
+    if exact:
+        m_total = count
+        valid = math.floor(alpha * count + WHOLE_TOL) / count
+        if valid <= 0.0:
+            raise InputError(f"`alpha` {alpha:g}: this network has only {count} relabellings, "
+                             f"so no p-value can be at most alpha (smallest {1 / count:.4g})")
+    else:
+        m_total = M
+        valid = math.floor(alpha * (M + 1) + WHOLE_TOL) / (M + 1)
+        if valid <= 0.0:
+            need = math.ceil(1.0 / alpha - 1.0 - WHOLE_TOL)
+            raise InputError(f"`permutations` {M}: the smallest p-value is 1/{M + 1} = "
+                             f"{1 / (M + 1):.4g}, above alpha {alpha:g}; use at least {need}")
+    if exact and count > EXACT_LIMIT:  # pragma: no cover - count <= M keeps this unreachable
+        raise InputError(f"too many relabellings to enumerate: {count:,}")
+
+    k = prep.k
+    n, m = prep.mask.shape
+    ok = _analysed(prep)
+    ok_x = prep.mask.copy()
+    for a in prep.matrices[:k]:
+        ok_x &= np.isfinite(a)
+    ident = (np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :])
+    exact_perms = enumerate_exact(prep.blocks, 0, count) if exact else None
+    reduced = [_reduced(prep, j, ok) for j in range(k)]
+    n_methods = len(schemes) + int(include_ols)
+
+    def one(j: int, r: int):
+        rows, cols, perm_entropy = _replicate_stream(entropy, j, r, prep.blocks)
+        if exact:
+            batch = exact_perms  # index 0 is the identity
+        else:
+            rows_p, cols_p = draw(prep.blocks, perm_entropy, 0, M)
+            batch = (np.concatenate([ident[0], rows_p]), np.concatenate([ident[1], cols_p]))
+        ystar = _simulate(prep, reduced[j], rows, cols)
+        p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x)
+        p1 = None
+        if effect is not None:
+            p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
+                       include_ols, batch, exact, ident, ok_x)
+        return j, r, p0, p1
+
+    null_p = np.empty((k, n_methods, R))
+    power_p = np.empty((k, n_methods, R)) if effect is not None else None
+    tasks = [(j, r) for j in range(k) for r in range(R)]
+    tick = progress if callable(progress) else None
+    for done, (j, r, p0, p1) in enumerate(_run(one, tasks, opts["jobs"]), start=1):
+        null_p[j, :, r] = p0
+        if p1 is not None:
+            power_p[j, :, r] = p1
+        if tick is not None:
+            tick(done, len(tasks))
+
+    lo, hi = binom.interval(opts["band_level"], R, valid)  # source: scipy.stats.binom
+    rej, rate, interval = _rates(null_p, alpha, R)
+    prej = prate = pint = None
+    if power_p is not None:
+        prej, prate, pint = _rates(power_p, alpha, R)
+    methods = tuple(schemes) + ((OLS,) if include_ols else ())
+    passes = k * R * len(schemes) * (m_total + 1) * (2 if effect is not None else 1)
+    notes = []
+    if not math.isclose(valid, alpha, rel_tol=1e-9):
+        notes.append(f"with {m_total} relabellings a valid test rejects {valid:.4f} of the "
+                     f"time, not {alpha:g}: p-values come in steps of 1/{m_total + (0 if exact else 1)}")
+    return CalibrationResult(
+        terms=prep.names, methods=methods, response=prep.response_name, alpha=alpha,
+        replicates=R, permutations=m_total, exact=exact, statistic=statistic,
+        valid_rate=valid, band_level=opts["band_level"], band=np.array([lo / R, hi / R]),
+        interval_level=INTERVAL_LEVEL, null_p=null_p, rejections=rej, rate=rate,
+        interval=interval, effect=effect, power_p=power_p, power_rejections=prej,
+        power_rate=prate, power_interval=pint, seed=entropy,
+        n_nodes=n + m if prep.two_mode else n, n_dyads=int(ok.sum()),
+        directed=prep.directed, two_mode=prep.two_mode, passes=int(passes),
+        seconds=time.perf_counter() - t0, notes=tuple(notes))
+
+
+def _rates(p: np.ndarray, alpha: float, R: int):
+    # a failed classical fit (NaN) is not a rejection
+    with np.errstate(invalid="ignore"):
+        rej = (p <= alpha).sum(axis=2)
+    return rej, rej / R, clopper_pearson(rej, R, INTERVAL_LEVEL)
+
+
+def _run(fn, tasks, jobs: int):
+    """Yield fn(*task) for every task, in any order; threads when ``jobs`` is not 1."""
+    if jobs == 1 or len(tasks) <= 1:
+        for task in tasks:
+            yield fn(*task)
+        return
+    from joblib import Parallel, delayed
+
+    parallel = Parallel(n_jobs=jobs, backend="threading", return_as="generator_unordered")
+    yield from parallel(delayed(fn)(*task) for task in tasks)
+
+
+def calibrate_study(study: Any, *, replicates: int = 200, permutations: int = 199,
+                    alpha: float | None = None, effect: float | None = None,
+                    seed: int | None = None, jobs: int | None = None, schemes: Any = None,
+                    include_ols: bool = True,
+                    progress: bool | Callable[[int, int], None] = False) -> CalibrationResult:
+    """:func:`calibrate` on a loaded study (``dyadperm.load_study``).
+
+    Settings left as None come from the study file: ``alpha``, ``seed``, groups, dyads,
+    directedness and the statistic; ``jobs`` is the file's ``jobs`` when it sets one, else
+    every core (-1): a calibration is many runs. ``schemes`` defaults to all three (the
+    study's own scheme among them). A correlation study (Pearson) is checked as the
+    one-predictor regression, whose relabelling p-values are the same (methods.md).
+    """
+    t = study.spec["test"]
+    if jobs is None:
+        jobs = t["jobs"] if _sets_jobs(study.text) else -1
+    notes = []
+    if t["kind"] == "correlation":
+        if t["method"] != "pearson":
+            raise InputError(f"{study.path.name} [test] method: calibrate checks Pearson "
+                             f"correlation studies only; got {t['method']!r}")
+        notes.append("correlation study: checked as the regression on its one predictor "
+                     "(the same relabelling p-values)")
+        statistic = "t"
+    else:
+        if t["model"] != "linear":
+            raise InputError(f"{study.path.name} [test] model: calibrate supports the linear "
+                             f"model only; got {t['model']!r}")
+        statistic = t["statistic"]
+    res = calibrate(study.response, dict(study.predictors),
+                    schemes=DEFAULT_SCHEMES if schemes is None else schemes,
+                    replicates=replicates, permutations=permutations,
+                    alpha=t["alpha"] if alpha is None else alpha, effect=effect,
+                    seed=t["seed"] if seed is None else seed,
+                    jobs=jobs,
+                    directed=study.spec["study"]["directed"], groups=study.groups,
+                    dyads=t["dyads"], include_ols=include_ols, statistic=statistic,
+                    progress=progress)
+    if notes:
+        res = replace(res, notes=res.notes + tuple(notes))
+    return res
+
+
+def _sets_jobs(text: str) -> bool:
+    """Whether the study file itself sets ``[test] jobs`` (the loaded spec fills a default)."""
+    import tomllib
+
+    return "jobs" in tomllib.loads(text).get("test", {})
+
+
+# --------------------------------------------------------------------------- output
+
+def _pct(x: float) -> str:
+    return f"{100.0 * x:.1f}%"
+
+
+def format_calibration(res: CalibrationResult) -> str:
+    """The text table of a :class:`CalibrationResult`."""
+    mode = "two-mode" if res.two_mode else ("directed" if res.directed else "undirected")
+    lo, hi = res.band
+    draws = (f"all {res.permutations:,} relabellings (exact)" if res.exact
+             else f"{res.permutations:,} random relabellings")
+    lines = [
+        f"calibration of the tests of response {res.response!r} on its own design",
+        f"nodes: {res.n_nodes}   dyads: {res.n_dyads:,} ({mode})   statistic: {res.statistic}"
+        f"   seed: {res.seed}",
+        f"null of each term: fitted other terms + relabelled reduced-model residuals; "
+        f"{res.replicates} simulated responses per term, each test with {draws}",
+        f"alpha {res.alpha:g}: a valid test rejects {_pct(res.valid_rate)} of the time; "
+        f"{res.band_level:.0%} binomial band for {res.replicates} replicates: "
+        f"[{_pct(lo)}, {_pct(hi)}]",
+        f"cost: {len(res.terms)} terms x {res.replicates} replicates x "
+        f"{len(res.methods) - int(OLS in res.methods)} schemes x ({res.permutations:,} + 1) "
+        + ("x 2 (null and effect) " if res.effect is not None else "")
+        + f"= {res.passes:,} relabelled statistics, {res.seconds:.1f} s",
+    ]
+    w = max(8, max(len(t) for t in res.terms) + 2)
+    mw = max(len(METHOD_LABELS[m]) for m in res.methods) + 2
+
+    def block(title: str, rej, rate, interval, verdicts) -> None:
+        head = (f"{'term':<{w}}{'method':<{mw}}{'rejected':>12}{'rate':>8}"
+                f"{'interval (' + format(res.interval_level, '.0%') + ')':>22}"
+                + ("   verdict" if verdicts is not None else ""))
+        lines.extend(["", title, head, "-" * len(head)])
+        for a, term in enumerate(res.terms):
+            for b, method in enumerate(res.methods):
+                iv = f"[{_pct(interval[a, b, 0])}, {_pct(interval[a, b, 1])}]"
+                row = (f"{term if b == 0 else '':<{w}}{METHOD_LABELS[method]:<{mw}}"
+                       f"{f'{int(rej[a, b])}/{res.replicates}':>12}{_pct(rate[a, b]):>8}{iv:>22}")
+                if verdicts is not None:
+                    row += f"   {verdicts[a][b]}"
+                lines.append(row)
+
+    block("size: rejection rate when the term has no effect", res.rejections, res.rate,
+          res.interval, res.verdicts())
+    if res.effect is not None:
+        block(f"power: rejection rate at an effect of {res.effect:g} (standardised coefficient: "
+              "sd of the response per sd of the term)", res.power_rejections, res.power_rate,
+              res.power_interval, None)
+    lines.append("")
+    lines.append("inside band: as often as a valid test; too liberal: rejects too often (p-values "
+                 "too small); too conservative: too rarely.")
+    if OLS in res.methods:
+        lines.append("classical OLS: t distribution with dyads taken as independent, for contrast.")
+    for note in res.notes:
+        lines.append(f"note: {note}")
+    return "\n".join(lines)
+
+
+def check_plot_path(path: str | Path) -> Path:
+    """The figure path, checked before any work: a known image suffix, an existing folder."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    kinds = FigureCanvasAgg(Figure()).get_supported_filetypes()
+    suffix = path.suffix.lower().lstrip(".")
+    if suffix not in kinds:
+        raise InputError(f"plot file {path}: the suffix must be one of "
+                         f"{', '.join('.' + s for s in sorted(kinds))}; got {path.suffix or 'none'!r}")
+    if not path.parent.is_dir():
+        raise InputError(f"plot file {path}: no such folder {path.parent}")
+    return path
+
+
+# The look of the figure, matching the result plots (runner/plots.py): print-friendly
+# greys with one accent colour, the nominal line in dark red, the band in light blue.
+WIDTH, HEIGHT, DPI = 6.4, 4.6, 150
+FONT = 9.5
+ACCENT = "#1f4e9a"
+ALPHA_LINE = "#b2182b"
+BAND = "#9ecae1"
+TERM_COLOURS = ("black", ACCENT, "#6b6b6b", "#4a7c59", "#8c5a2b", "#7a3b69")
+TERM_MARKERS = "osD^v<>ph*"
+
+
+def plot_calibration(res: CalibrationResult, path: str | Path) -> Path:
+    """Rejection rate by method with interval bars, the nominal alpha and its band shaded.
+
+    One panel for size; a second for power when the result has an effect. Each term is
+    one marker per method, its bar the Clopper–Pearson interval. Drawn on matplotlib's
+    Agg canvas (no pyplot, no global backend or style changed); the format follows the
+    file suffix.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    path = check_plot_path(path)
+    panels = 2 if res.effect is not None else 1
+    width = max(WIDTH, 1.3 + 1.25 * len(res.methods)) * (0.85 if panels == 2 else 1.0)
+    fig = Figure(figsize=(width * panels, HEIGHT), dpi=DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(1, panels, squeeze=False)[0]
+    x = np.arange(len(res.methods))
+    k = len(res.terms)
+    offsets = (np.arange(k) - (k - 1) / 2) * min(0.18, 0.7 / max(k, 1))
+    labels = [METHOD_LABELS[m] for m in res.methods]
+
+    def draw_panel(ax, rate, interval, title, ylabel, band: bool) -> None:
+        ax.tick_params(labelsize=FONT)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        if band:
+            lo, hi = res.band
+            ax.axhspan(lo, hi, color=BAND, alpha=0.55, lw=0, zorder=0,
+                       label=f"{res.band_level:.0%} band of a valid test")
+            ax.axhline(res.valid_rate, color=ALPHA_LINE, lw=1.4, ls=(0, (5, 3)),
+                       label=f"nominal alpha {res.alpha:g}")
+        else:
+            ax.axhline(res.alpha, color=ALPHA_LINE, lw=1.0, ls=(0, (1, 2)),
+                       label=f"alpha {res.alpha:g}")
+        for a, term in enumerate(res.terms):
+            err = np.abs(interval[a].T - rate[a])
+            ax.errorbar(x + offsets[a], rate[a], yerr=err, fmt=TERM_MARKERS[a % len(TERM_MARKERS)],
+                        color=TERM_COLOURS[a % len(TERM_COLOURS)], capsize=3, ms=5, lw=1.2,
+                        label=term)
+        ax.set_xticks(x, labels)
+        ax.set_xlim(-0.6, len(res.methods) - 0.4)
+        ax.set_title(title, fontsize=FONT + 1)
+        ax.set_ylabel(ylabel, fontsize=FONT)
+        ax.set_xlabel("test", fontsize=FONT)
+        ax.set_ylim(bottom=0.0)
+
+    draw_panel(axes[0], res.rate, res.interval,
+               f"size at alpha {res.alpha:g}\n({res.replicates} null responses per term)",
+               "rejection rate under the null (share)", True)
+    if res.effect is not None:
+        draw_panel(axes[1], res.power_rate, res.power_interval,
+                   f"power at effect {res.effect:g}\n(standardised coefficient)",
+                   "rejection rate with the effect (share)", False)
+        axes[1].set_ylim(0.0, 1.02)
+    handles, names = axes[0].get_legend_handles_labels()
+    fig.legend(handles, names, loc="outside lower center", ncols=min(4, len(names)),
+               fontsize=FONT - 1, frameon=False)
+    extra = {"metadata": {"Software": None}} if path.suffix.lower() == ".png" else {}
+    fig.savefig(path, **extra)
+    return path
