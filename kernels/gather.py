@@ -16,17 +16,21 @@ permutation):
 - Blocks of permutations. ``block`` permutations go through row i one after the other,
   so the fixed row i (all its fixed layers) is loaded from memory once per block, not
   once per permutation.
-- Register accumulators. Products are summed in local scalars (up to 4 fixed layers at
-  a time, two interleaved partial sums each), never by ``out[b, a, c] +=`` per dyad.
+- Register accumulators. Products are summed in local scalars, never by
+  ``out[b, a, c] +=`` per dyad: with one relabelled layer (scheme y, correlation) up to
+  4 fixed layers per pass with two interleaved partial sums each; with several
+  (dsp, freedman-lane) fused tiles of 3 relabelled x 4 fixed (or 4 x 3) layers, twelve
+  sums per pass over the row, the three or four gathered values sharing one index load.
 
 Summation order (what makes results bit-identical for any chunk size, number of jobs or
 block size): for each permutation b and pair (a, c), the products of row i are summed in
-two partial sums, one over the columns at even and one at odd offsets from
-``col_start[i]``, each in increasing column order; the row's sum is (even + odd), and
-the row sums are added in increasing row order. Nothing in this order depends on which
-other permutations share a block, so a permutation gives the same bits alone or in any
-batch. ``fastmath`` leaves out ``reassoc`` (kernels/options.py), so the compiler keeps
-this order.
+increasing column order, either in one sum (tiles) or in two partial sums over the
+columns at even and at odd offsets from ``col_start[i]`` (one relabelled layer), the
+row's sum being (even + odd); the row sums are added in increasing row order. Which of
+the two depends on (R, Q) alone (``choose_tile``). Nothing in this order depends on
+which other permutations share a block, so a permutation gives the same bits alone or
+in any batch. ``fastmath`` leaves out ``reassoc`` (kernels/options.py), so the compiler
+keeps this order.
 """
 
 import numpy as np
@@ -34,6 +38,7 @@ from numba import config, njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
+from ..errors import InputError
 from .options import KERNEL_OPTIONS
 
 # Permutations processed together per pass over the fixed rows: their gathers share each
@@ -219,6 +224,168 @@ def _dot4(relf, rb, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end, pf_n, 
     return a0 + b0, a1 + b1, a2 + b2, a3 + b3, pf
 
 
+# --- fused gather + dot of several relabelled layers against several fixed layers --------
+# For R > 1 (dsp, freedman-lane) one pass over the row reads 3 (or 4) relabelled layers at
+# each gathered dyad and multiplies them by 4 (or 3) fixed layers: 12 running sums, one
+# per (relabelled, fixed) pair, each in increasing column order (twelve independent sums
+# keep the multiply-add units busy without splitting a sum in two).
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _tile34(relf, rb, r0, r1, r2, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end,
+            pf_n, line):
+    s00 = 0.0
+    s01 = 0.0
+    s02 = 0.0
+    s03 = 0.0
+    s10 = 0.0
+    s11 = 0.0
+    s12 = 0.0
+    s13 = 0.0
+    s20 = 0.0
+    s21 = 0.0
+    s22 = 0.0
+    s23 = 0.0
+    o = fb
+    for j in range(js, je):
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        g = rb + co[np.uint64(j)]
+        u0 = np.float64(relf[np.uint64(g + r0)])
+        u1 = np.float64(relf[np.uint64(g + r1)])
+        u2 = np.float64(relf[np.uint64(g + r2)])
+        # s_ac += rel_pi[i, j, a] * fix[i, j, c]; one fixed value live at a time, so the
+        # 12 sums, 3 gathered values and 1 fixed value fit the 16 vector registers
+        v = np.float64(fixf[np.uint64(o + f0)])
+        s00 += u0 * v
+        s10 += u1 * v
+        s20 += u2 * v
+        v = np.float64(fixf[np.uint64(o + f1)])
+        s01 += u0 * v
+        s11 += u1 * v
+        s21 += u2 * v
+        v = np.float64(fixf[np.uint64(o + f2)])
+        s02 += u0 * v
+        s12 += u1 * v
+        s22 += u2 * v
+        v = np.float64(fixf[np.uint64(o + f3)])
+        s03 += u0 * v
+        s13 += u1 * v
+        s23 += u2 * v
+        o += lf
+    return s00, s01, s02, s03, s10, s11, s12, s13, s20, s21, s22, s23, pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, je, pf, pf_end,
+            pf_n, line):
+    s00 = 0.0
+    s01 = 0.0
+    s02 = 0.0
+    s10 = 0.0
+    s11 = 0.0
+    s12 = 0.0
+    s20 = 0.0
+    s21 = 0.0
+    s22 = 0.0
+    s30 = 0.0
+    s31 = 0.0
+    s32 = 0.0
+    o = fb
+    for j in range(js, je):
+        if (j - js) & 7 == 0:
+            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
+        g = rb + co[np.uint64(j)]
+        v0 = np.float64(fixf[np.uint64(o + f0)])
+        v1 = np.float64(fixf[np.uint64(o + f1)])
+        v2 = np.float64(fixf[np.uint64(o + f2)])
+        # s_ac += rel_pi[i, j, a] * fix[i, j, c]; one gathered value live at a time
+        u = np.float64(relf[np.uint64(g + r0)])
+        s00 += u * v0
+        s01 += u * v1
+        s02 += u * v2
+        u = np.float64(relf[np.uint64(g + r1)])
+        s10 += u * v0
+        s11 += u * v1
+        s12 += u * v2
+        u = np.float64(relf[np.uint64(g + r2)])
+        s20 += u * v0
+        s21 += u * v1
+        s22 += u * v2
+        u = np.float64(relf[np.uint64(g + r3)])
+        s30 += u * v0
+        s31 += u * v1
+        s32 += u * v2
+        o += lf
+    return s00, s01, s02, s10, s11, s12, s20, s21, s22, s30, s31, s32, pf
+
+
+@njit(**KERNEL_OPTIONS)
+def choose_tile(n_rel, n_fix):
+    """Which pass structure ``cross_rows`` uses for R relabelled and Q fixed layers.
+
+    0: one relabelled layer per pass (``_dot1`` .. ``_dot4``); 34 or 43: fused tiles of
+    3 x 4 or 4 x 3 layers (``_tile34``, ``_tile43``), chosen when R >= 2 and the padded
+    tile work is at most 1.5 R Q. Depends on (R, Q) only, never on the permutations.
+    """
+    if n_rel < 2:
+        return 0
+    w34 = ((n_rel + 2) // 3) * 3 * ((n_fix + 3) // 4) * 4
+    w43 = ((n_rel + 3) // 4) * 4 * ((n_fix + 2) // 3) * 3
+    best = min(w34, w43)
+    if 2 * best > 3 * n_rel * n_fix:
+        return 0
+    return 34 if w34 <= w43 else 43
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end, pf_n,
+               line, tile, acc):
+    """One row of one permutation through 3 x 4 (or 4 x 3) tiles; adds into acc (R, Q).
+
+    A tile past the last layer repeats the last index; those sums are dropped.
+    """
+    n_rel = rel_idx.shape[0]
+    n_fix = fix_idx.shape[0]
+    ta = 3 if tile == 34 else 4
+    tc = 4 if tile == 34 else 3
+    last_a = n_rel - 1
+    last_c = n_fix - 1
+    for a in range(0, n_rel, ta):
+        for c in range(0, n_fix, tc):
+            pfn = pf_n if (a == 0 and c == 0) else 0
+            r0 = rel_idx[a]
+            r1 = rel_idx[min(a + 1, last_a)]
+            r2 = rel_idx[min(a + 2, last_a)]
+            c0 = fix_idx[c]
+            c1 = fix_idx[min(c + 1, last_c)]
+            c2 = fix_idx[min(c + 2, last_c)]
+            if tile == 34:
+                c3 = fix_idx[min(c + 3, last_c)]
+                (s00, s01, s02, s03, s10, s11, s12, s13, s20, s21, s22, s23,
+                 pf) = _tile34(relf, rb0, r0, r1, r2, co, fixf, fb, lf, c0, c1, c2, c3, js,
+                               je, pf, pf_end, pfn, line)
+                sums = ((s00, s01, s02, s03), (s10, s11, s12, s13), (s20, s21, s22, s23))
+                for x in range(3):
+                    if a + x <= last_a:
+                        row = sums[x]
+                        for y in range(4):
+                            if c + y <= last_c:
+                                acc[a + x, c + y] += row[y]
+            else:
+                r3 = rel_idx[min(a + 3, last_a)]
+                (s00, s01, s02, s10, s11, s12, s20, s21, s22, s30, s31, s32,
+                 pf) = _tile43(relf, rb0, r0, r1, r2, r3, co, fixf, fb, lf, c0, c1, c2, js,
+                               je, pf, pf_end, pfn, line)
+                sums = ((s00, s01, s02), (s10, s11, s12), (s20, s21, s22), (s30, s31, s32))
+                for x in range(4):
+                    if a + x <= last_a:
+                        row = sums[x]
+                        for y in range(3):
+                            if c + y <= last_c:
+                                acc[a + x, c + y] += row[y]
+    return pf
+
+
 @njit(**KERNEL_OPTIONS)
 def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, col_perms,
                col_start, col_stop, block, coloff, tot, out):
@@ -245,7 +412,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     block : int
         Permutations that share one pass over the fixed rows (>= 1). Results do not
         depend on it.
-    coloff : int64 workspace (block, m)
+    coloff : int32 workspace (block, m)
+        Column offsets of each permutation of the block (m * Lr < 2**31).
     tot : float64 workspace (block, R, Q)
     out : float64 (B, R, Q)
         Written: out[b, a, c] = sum_ij rel[row_perms[b, i], col_perms[b, j], rel_idx[a]]
@@ -261,12 +429,13 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     rowlen = m * lr
     line = max(1, CACHE_LINE // relf.itemsize)  # elements per cache line
     row_lines = (rowlen + line - 1) // line
+    tile = choose_tile(n_rel, n_fix)
     for b0 in range(0, n_perm, block):
         nb = min(block, n_perm - b0)
         for q in range(nb):
             for j in range(m):
                 # offset of column col_perms[b, j] inside a stored row
-                coloff[q, j] = col_perms[b0 + q, j] * lr
+                coloff[q, j] = np.int32(col_perms[b0 + q, j] * lr)
             pf = row_perms[b0 + q, 0] * rowlen
             for _ in range(row_lines):
                 prefetch(relf, np.uint64(pf))
@@ -286,37 +455,41 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                 nxt = row_perms[b, i + 1] * rowlen if i + 1 < n_rows else rb0
                 pf = nxt
                 pf_end = nxt + row_lines * line
-                for a in range(n_rel):
-                    rb = rb0 + rel_idx[a]
-                    c = 0
-                    while c < n_fix:
-                        width = min(FIX_GROUP, n_fix - c)
-                        pfn = pf_n if (a == 0 and c == 0) else 0
-                        if width == 4:
-                            s0, s1, s2, s3, pf = _dot4(
-                                relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
-                                fix_idx[c + 2], fix_idx[c + 3], js, je, pf, pf_end, pfn, line)
-                            tot[q, a, c] += s0
-                            tot[q, a, c + 1] += s1
-                            tot[q, a, c + 2] += s2
-                            tot[q, a, c + 3] += s3
-                        elif width == 3:
-                            s0, s1, s2, pf = _dot3(
-                                relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
-                                fix_idx[c + 2], js, je, pf, pf_end, pfn, line)
-                            tot[q, a, c] += s0
-                            tot[q, a, c + 1] += s1
-                            tot[q, a, c + 2] += s2
-                        elif width == 2:
-                            s0, s1, pf = _dot2(relf, rb, co, fixf, fb, lf, fix_idx[c],
-                                               fix_idx[c + 1], js, je, pf, pf_end, pfn, line)
-                            tot[q, a, c] += s0
-                            tot[q, a, c + 1] += s1
-                        else:
-                            s0, pf = _dot1(relf, rb, co, fixf, fb, lf, fix_idx[c], js, je,
-                                           pf, pf_end, pfn, line)
-                            tot[q, a, c] += s0
-                        c += width
+                if tile == 34 or tile == 43:
+                    pf = _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf,
+                                    pf_end, pf_n, line, tile, tot[q])
+                else:
+                    for a in range(n_rel):
+                        rb = rb0 + rel_idx[a]
+                        c = 0
+                        while c < n_fix:
+                            width = min(FIX_GROUP, n_fix - c)
+                            pfn = pf_n if (a == 0 and c == 0) else 0
+                            if width == 4:
+                                s0, s1, s2, s3, pf = _dot4(
+                                    relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
+                                    fix_idx[c + 2], fix_idx[c + 3], js, je, pf, pf_end, pfn, line)
+                                tot[q, a, c] += s0
+                                tot[q, a, c + 1] += s1
+                                tot[q, a, c + 2] += s2
+                                tot[q, a, c + 3] += s3
+                            elif width == 3:
+                                s0, s1, s2, pf = _dot3(
+                                    relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
+                                    fix_idx[c + 2], js, je, pf, pf_end, pfn, line)
+                                tot[q, a, c] += s0
+                                tot[q, a, c + 1] += s1
+                                tot[q, a, c + 2] += s2
+                            elif width == 2:
+                                s0, s1, pf = _dot2(relf, rb, co, fixf, fb, lf, fix_idx[c],
+                                                   fix_idx[c + 1], js, je, pf, pf_end, pfn, line)
+                                tot[q, a, c] += s0
+                                tot[q, a, c + 1] += s1
+                            else:
+                                s0, pf = _dot1(relf, rb, co, fixf, fb, lf, fix_idx[c], js, je,
+                                               pf, pf_end, pfn, line)
+                                tot[q, a, c] += s0
+                            c += width
                 while pf < pf_end:  # rows shorter than the next stored row
                     prefetch(relf, np.uint64(pf))
                     pf += line
@@ -363,8 +536,11 @@ def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, co
     fix = np.ascontiguousarray(fix)
     n_perm = row_perms.shape[0]
     m = fix.shape[1]
+    if m * rel.shape[2] >= 2**31:
+        raise InputError(f"gather_cross: a stored row must hold fewer than 2**31 values for "
+                         f"int32 column offsets; got {m} columns x {rel.shape[2]} layers")
     block = int(max(1, min(block, max(n_perm, 1))))
-    coloff = np.empty((block, m), dtype=np.int64)
+    coloff = np.empty((block, m), dtype=np.int32)
     tot = np.empty((block, len(rel_idx), len(fix_idx)))
     cross_rows(rel.reshape(-1), rel.shape[2], np.asarray(rel_idx, np.int64), fix.reshape(-1),
                fix.shape[2], np.asarray(fix_idx, np.int64), np.asarray(row_perms, np.int64),
