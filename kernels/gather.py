@@ -532,13 +532,13 @@ def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, co
     not C-contiguous) and hands them to ``cross_rows`` with its workspaces. Releases the
     GIL inside the kernel, so threads run side by side.
     """
-    rel = np.ascontiguousarray(rel)
-    fix = np.ascontiguousarray(fix)
-    n_perm = row_perms.shape[0]
     m = fix.shape[1]
     if m * rel.shape[2] >= 2**31:
         raise InputError(f"gather_cross: a stored row must hold fewer than 2**31 values for "
                          f"int32 column offsets; got {m} columns x {rel.shape[2]} layers")
+    rel = np.ascontiguousarray(rel)
+    fix = np.ascontiguousarray(fix)
+    n_perm = row_perms.shape[0]
     block = int(max(1, min(block, max(n_perm, 1))))
     coloff = np.empty((block, m), dtype=np.int32)
     tot = np.empty((block, len(rel_idx), len(fix_idx)))
