@@ -30,18 +30,26 @@ comparison of schemes); classical OLS p-values (t distribution with N - p degree
 freedom, which treats the dyads as independent) are given for contrast.
 
 This is a check of *this* design, not a proof: it tells whether the tests hold their size
-when the null model above is true. Its null is the Freedman & Lane (1983) resampling model
-(fitted reduced model plus relabelled residuals), so it is a fair test of ``y`` and
-``dsp`` and a consistency check of ``freedman-lane``; residual structure that relabelling
-cannot produce (for example dependence that follows a predictor's own layout) is outside
-what it checks. Missing values travel with the residual matrix under relabelling.
+when the null model above is true, and nothing about data that break it.
+
+- The null is the Freedman & Lane (1983) resampling model (fitted reduced model plus
+  relabelled residuals). ``freedman-lane`` relabels in the same way, so its rate inside
+  the band is a consistency check more than independent evidence; ``y``, ``dsp`` and
+  classical OLS are put to a real test.
+- The other terms' effects and the residuals are those of the observed fit, estimates
+  with their own noise; in small data sets they are rough.
+- Residual structure that a relabelling cannot carry (dependence that follows a
+  predictor's own layout, such as distance-decay along a canal) is not reproduced.
+- Missing values travel with the residual matrix under relabelling; a simulated dyad is
+  also missing where a predictor is.
 
 Reading the output
 ------------------
 Under a valid test the count of rejections over R replicates is Binomial(R, a), where a
 is the rejection probability a valid test has here: with m random relabellings and the
 p-value (b + 1) / (m + 1) (Phipson & Smyth 2010), a = floor(alpha (m + 1)) / (m + 1),
-which is exactly alpha when alpha (m + 1) is a whole number (m = 199 or 999 at 0.05).
+which is exactly alpha when alpha (m + 1) is a whole number (m = 199 or 999 at 0.05);
+when every one of the m relabellings is enumerated, a = floor(alpha m) / m.
 The band is the central ``band_level`` binomial interval (``scipy.stats.binom.interval``)
 around a; a rate inside it is what a valid test gives, above it the test rejects too
 often (too liberal), below it too rarely. Each rate also carries its Clopper–Pearson
@@ -49,14 +57,17 @@ interval (Clopper & Pearson 1934, Biometrika 26:404–413).
 
 Cost
 ----
-terms x replicates x schemes x (permutations + 1) kernel passes (doubled with ``effect``):
-each replicate runs the engine's own plan (``schemes.build_plan`` on the simulated
-response) and relabelling kernels, so the cost per pass is that of a normal run. The
-defaults (200 replicates, 199 relabellings, three schemes) on the demo study (90 farms,
-8,010 dyads, four terms) make 4 x 200 x 3 x 200 = 480,000 passes; see
-``CalibrationResult.passes`` and ``seconds``. Replicates run in parallel threads
-(``jobs``); results do not depend on ``jobs``: replicate r of term j draws everything
-from ``SeedSequence(seed, spawn_key=(j, r))``.
+terms x replicates x schemes x (permutations + 1) relabelled statistics, twice with
+``effect`` (``CalibrationResult.passes``; the wall time is ``seconds``). Each replicate
+builds the engine's own plan for every scheme (``schemes.build_plan`` on the simulated
+response) and runs the engine's relabelling kernels, so a statistic costs what it costs
+in a normal run; with complete data ``dsp`` and ``freedman-lane`` read the same layers
+and share one relabelling pass per replicate. The defaults (200 replicates, 199
+relabellings, three schemes) on the demo study (90 farms, 8,010 dyads, four terms) make
+4 x 200 x 3 x 200 = 480,000 statistics. Replicates run in parallel threads (``jobs``);
+results do not depend on ``jobs``: replicate r of term j draws everything from
+``SeedSequence(seed, spawn_key=(j, r))``, and its relabellings are those
+``dyadperm.regress`` draws with the seed that :func:`simulated_response` returns.
 """
 
 from __future__ import annotations
@@ -379,44 +390,53 @@ def _shared_statistics(plans, j: int, batch) -> list[np.ndarray]:
     """Statistic of term ``j`` under each plan, sharing relabelling passes between plans.
 
     Each plan's pass needs, per relabelling, the cross products of its relabelled layers
-    with its fixed layers (``Plan.statistics`` reads them with ``gather_cross``). Passes
-    of different plans that hold equal layer arrays (``dsp`` and ``freedman-lane`` both
-    use the layers of [x_1 .. x_k, y]) share one ``gather_cross`` over the union of the
-    layers they use; each Gram is then filled and read by the engine's own kernels
-    (``fill_gram``, ``regression_stats``) with that pass's invariant Gram and transforms,
-    exactly as ``Plan.statistics`` does. The first relabelling's statistic is checked
-    against ``Plan.statistics``.
+    with its fixed layers (``Plan.statistics`` reads them with ``gather_cross``). Passes of
+    different plans that hold equal layer arrays share their products: each pass gathers
+    only the (relabelled, fixed) pairs that no earlier pass over the same layers gathered
+    (``dsp`` needs X_pi'[X, y]; ``freedman-lane`` then only y_pi'X). Each Gram is then
+    filled and read by the engine's own kernels (``fill_gram``, ``regression_stats``) with
+    that pass's invariant Gram and transforms, exactly as ``Plan.statistics`` does. The
+    first relabelling's statistic is checked against ``Plan.statistics``.
     """
     rows, cols = batch
     n_perm = rows.shape[0]
-    groups: list[list] = []  # [rel, fix, [(plan index, pass), ...]]
+    col_start, col_stop = plans[0].col_start, plans[0].col_stop
+    groups: list[tuple[np.ndarray, np.ndarray, dict]] = []  # rel, fix, {(a, c): products}
+    out = [np.full(n_perm, np.nan) for _ in plans]
     for i, plan in enumerate(plans):
         for ps in plan.passes:
-            for g in groups:
-                if g[0].dtype == ps.rel.dtype and g[1].dtype == ps.fix.dtype \
-                        and np.array_equal(g[0], ps.rel) and np.array_equal(g[1], ps.fix):
-                    g[2].append((i, ps))
+            for rel, fix, have in groups:
+                if rel.dtype == ps.rel.dtype and fix.dtype == ps.fix.dtype \
+                        and np.array_equal(rel, ps.rel) and np.array_equal(fix, ps.fix):
                     break
             else:
-                groups.append([ps.rel, ps.fix, [(i, ps)]])
-    out = [np.full(n_perm, np.nan) for _ in plans]
-    for rel, fix, members in groups:
-        rel_all = np.unique(np.concatenate([ps.rel_idx for _, ps in members]))
-        fix_all = np.unique(np.concatenate([ps.fix_idx for _, ps in members]))
-        full = np.empty((n_perm, rel_all.size, fix_all.size))
-        gather_cross(rel, rel_all, fix, fix_all, rows, cols, plans[0].col_start,
-                     plans[0].col_stop, full)
-        for i, ps in members:
-            a = np.searchsorted(rel_all, ps.rel_idx)
-            c = np.searchsorted(fix_all, ps.fix_idx)
-            cross = np.ascontiguousarray(full[:, a][:, :, c])
+                rel, fix, have = ps.rel, ps.fix, {}
+                groups.append((rel, fix, have))
+            # gather the missing pairs, one call per set of relabelled layers that lack the
+            # same fixed layers
+            lacking: dict[tuple[int, ...], list[int]] = {}
+            for a in ps.rel_idx.tolist():
+                need = tuple(c for c in ps.fix_idx.tolist() if (a, c) not in have)
+                if need:
+                    lacking.setdefault(need, []).append(a)
+            for need, rel_idx in lacking.items():
+                part = np.empty((n_perm, len(rel_idx), len(need)))
+                gather_cross(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(need, np.int64),
+                             rows, cols, col_start, col_stop, part)
+                for x, a in enumerate(rel_idx):
+                    for y, c in enumerate(need):
+                        have[(a, c)] = part[:, x, y]
+            cross = np.empty((n_perm, ps.rel_idx.size, ps.fix_idx.size))
+            for x, a in enumerate(ps.rel_idx.tolist()):
+                for y, c in enumerate(ps.fix_idx.tolist()):
+                    cross[:, x, y] = have[(a, c)]
             d = ps.gram0.shape[0]
             gram = np.empty((n_perm, d, d))
             fill_gram(cross, ps.gram0, gram)
             t = int(np.flatnonzero(ps.terms == j)[0])
             stats = np.empty((n_perm, 1))
             regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
-                             np.ascontiguousarray(ps.scale[t:t + 1]), plans[i].use_t, stats)
+                             np.ascontiguousarray(ps.scale[t:t + 1]), plan.use_t, stats)
             out[i] = stats[:, 0]
     for plan, st in zip(plans, out):
         ref = plan.statistics(rows[:1], cols[:1])[0, j]
