@@ -1,13 +1,14 @@
 """Kernels of the sparse path: sums over a sparse response's edges, never over all dyads.
 
 Predictor codes (``kinds``): 0 same (1[a_i == a_j]), 1 gap (|a_i - a_j|), 2 sender (a_i),
-3 receiver (a_j), 4 pair_sum (a_i + a_j), 5 a sparse network read from a hash table.
+3 receiver (a_j), 4 pair_sum (a_i + a_j), 5 a sparse network read by row lookup.
 Derived predictors read column ``cols[c]`` of the node attribute table ``attr`` (n, A),
 row-major, so one node's attributes share a cache line.
 
-Sparse networks are stored in open-addressing hash tables (linear probing), one per
-network, concatenated: table s occupies ``hkeys[hoff[s]:hoff[s + 1]]`` (a power of two
-long), key = i * n + j (i < j for undirected data), empty slots hold -1.
+Sparse network predictors are stored by rows (compressed sparse rows): network s holds
+row i's column indices, sorted, in ``nidx[nptr[s, i]:nptr[s, i + 1]]`` and its values at
+the same positions of ``nval``; undirected networks hold both orientations. The response's
+edges are sorted by source, so one source's row is fetched once and searched in cache.
 """
 
 import numpy as np
@@ -18,66 +19,34 @@ from .options import KERNEL_OPTIONS
 SAME, GAP, SENDER, RECEIVER, PAIR_SUM, NETWORK = 0, 1, 2, 3, 4, 5
 # Edges handled together by each edge term in turn (their arrays stay in cache).
 EDGE_BLOCK = 2048
-EMPTY = -1
-# Multiplicative hashing constants (Knuth's 2654435761 and a second odd 32-bit prime),
-# common practice. Each multiplies a 32-bit half of the key, so no product overflows
-# 64 bits (the same result with and without the JIT).
-HASH_LO = np.uint64(2654435761)
-HASH_HI = np.uint64(2246822519)
-LOW32 = np.uint64(0xFFFFFFFF)
 
 
 @njit(**KERNEL_OPTIONS)
-def hash_slot(key, mask):
-    """First slot of ``key`` (int64 >= 0) in a table of ``mask + 1`` slots."""
-    k = np.uint64(key)
-    x = ((k & LOW32) * HASH_LO) ^ ((k >> np.uint64(32)) * HASH_HI)
-    x = x ^ (x >> np.uint64(29))
-    return np.int64(x & np.uint64(mask))
+def row_lookup(nptr, nidx, nval, s, i, j):
+    """Value of network ``s`` at (i, j): binary search of j in row i; 0.0 if absent."""
+    lo = nptr[s, i]
+    hi = nptr[s, i + 1]
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        v = nidx[mid]
+        if v < j:
+            lo = mid + 1
+        elif v > j:
+            hi = mid
+        else:
+            return nval[mid]
+    return 0.0
 
 
 @njit(**KERNEL_OPTIONS)
-def build_hash(keys, vals, hkeys, hvals):
-    """Insert distinct ``keys`` (int64, >= 0) with ``vals`` into one table.
-
-    hkeys : int64 (size,), size a power of two > len(keys), written (EMPTY where unused);
-    hvals : float64 (size,), written.
-    """
-    size = hkeys.shape[0]
-    mask = size - 1
-    hkeys[:] = EMPTY
-    hvals[:] = 0.0
-    for e in range(keys.shape[0]):
-        s = hash_slot(keys[e], mask)
-        while hkeys[s] != EMPTY:
-            s = (s + 1) & mask
-        hkeys[s] = keys[e]
-        hvals[s] = vals[e]
-
-
-@njit(**KERNEL_OPTIONS)
-def hash_lookup(hkeys, hvals, start, size, key):
-    """Value stored for ``key`` in the table at ``start`` (``size`` slots), 0.0 if absent."""
-    mask = size - 1
-    s = hash_slot(key, mask)
-    while True:
-        k = hkeys[start + s]
-        if k == key:
-            return hvals[start + s]
-        if k == EMPTY:
-            return 0.0
-        s = (s + 1) & mask
-
-
-@njit(**KERNEL_OPTIONS)
-def sparse_cross(src, dst, w, strength, perms, kinds, cols, center, slots, attr, hkeys,
-                 hvals, hoff, out, invert, undirected, n_edge_cols):
+def sparse_cross(src, dst, w, strength, perms, kinds, cols, center, slots, attr, nptr,
+                 nidx, nval, out, invert, n_edge_cols):
     """Centred cross products of a relabelled sparse network with each predictor.
 
     Parameters
     ----------
     src, dst : int64 (E,)
-        Edge endpoints of the sparse network (src < dst when ``undirected``), sorted by src.
+        Edge endpoints of the sparse network (src < dst for undirected data), sorted by src.
     w : float64 (E,)
         Edge values (zero elsewhere).
     strength : float64 (n, 2)
@@ -86,20 +55,19 @@ def sparse_cross(src, dst, w, strength, perms, kinds, cols, center, slots, attr,
         Relabellings pi; the dyad (i, j) of the relabelled network holds the value at
         (pi(i), pi(j)).
     kinds, cols, slots : int64 (k,)
-        Predictor code, attribute column (derived) and hash table index (networks).
+        Predictor code, attribute column (derived) and row table index (networks).
     center : float64 (k,)
         Mean of each predictor over the dyad set.
     attr : float64 (n, A)
         Node attributes of the derived predictors; the columns of ``same`` and ``gap``
         come first (0 .. n_edge_cols - 1).
-    hkeys, hvals, hoff : the hash tables of the network predictors (module docstring).
+    nptr : int64 (S, n + 1); nidx : int64 (nnz,); nval : float64 (nnz,)
+        The network predictors by rows (module docstring).
     out : float64 (B, k)
         Written: out[b, c] = sum_e w_e (x_c(m(src_e), m(dst_e)) - center_c), where
         m = pi^-1 when ``invert`` (relabelling the sparse network itself) and m = pi
         otherwise (relabelling the predictors instead).
     invert : bool
-    undirected : bool
-        Network keys are stored as (min, max).
     n_edge_cols : int
         Number of attribute columns read at both endpoints of each edge.
 
@@ -173,16 +141,10 @@ def sparse_cross(src, dst, w, strength, perms, kinds, cols, center, slots, attr,
                     for e in range(e0, e1):
                         s += w[e] * (abs(rel[src[e], col] - rel[dst[e], col]) - mc)
                 else:
-                    start = hoff[slots[c]]
-                    size = hoff[slots[c] + 1] - start
+                    net = slots[c]
                     for e in range(e0, e1):
-                        mi = node[src[e]]
-                        mj = node[dst[e]]
-                        if undirected and mi > mj:
-                            key = mj * n + mi
-                        else:
-                            key = mi * n + mj
-                        s += w[e] * (hash_lookup(hkeys, hvals, start, size, key) - mc)
+                        x = row_lookup(nptr, nidx, nval, net, node[src[e]], node[dst[e]])
+                        s += w[e] * (x - mc)
                 acc[c] = s
         for c in range(k):
             out[b, c] = acc[c]

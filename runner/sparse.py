@@ -22,12 +22,15 @@ quantity that changes per relabelling is
 
 a sum over the response's E edges (substitute a = pi(i), b = pi(j); relabelling maps D
 onto itself). Derived predictors are evaluated from the attribute vectors at the two
-endpoints, sparse predictors by a hash-table lookup built once. Everything else in the
-Gram matrix of v = [1, y, x_1..x_k] is fixed: N, sum y and y'y are sums over the edges;
-the predictors' means and centred cross products X~'X~ come from closed forms over the
-attribute vectors (sums over groups of equal values for ``same``; sorted prefix sums for
+endpoints, sparse predictors by a binary search in their rows (sorted column indices;
+the response's edges are sorted by source, so a row is fetched once per source). Everything
+else in the Gram matrix of v = [1, y, x_1..x_k] is fixed: N, sum y and y'y are sums over
+the edges; the predictors' means and centred cross products X~'X~ come from closed forms
+over the attribute vectors (sums over groups of equal values for ``same``; sorted prefix sums for
 ``gap``; a Fenwick tree for ``gap`` x ``gap``; separable sums for ``sender``, ``receiver``
-and ``pair_sum``), or from sums over a sparse predictor's edges. The per-permutation Gram
+and ``pair_sum``), or from sums over a sparse predictor's edges. ``sender``,
+``receiver`` and ``pair_sum`` read one endpoint at a time, so their g_c are sums over
+nodes of the response's out- and in-strengths: O(n) per relabelling. The per-permutation Gram
 (standardised like the dense path's) goes through the same finishing kernels as the
 dense engine (``kernels.stats.regression_stats`` with the y-scheme map, and
 ``correlation_stats``). QAP correlation (Mantel 1967; Hubert & Schultz 1976) relabels
@@ -72,8 +75,8 @@ from .design import ObservedFit, _group_order, _standardised_condition
 from .dyadic import NodeDerived, Reverse, _node_vector
 from .engine import MAX_CHUNK, run_all
 from .errors import InputError
-from .kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, build_hash,
-                             gap_gap_sum, sparse_cross)
+from .kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
+                             sparse_cross)
 from .kernels.stats import correlation_stats, fill_gram, regression_stats
 from .permutations import Blocks
 from .result import CorrelationResult, RegressionResult
@@ -617,18 +620,25 @@ def fixed_products(prep: SparsePrepared, y: Edges | None = None) -> Moments:
 
 
 # --- the plan the engine runs ---------------------------------------------------------------
-def _hash_tables(terms: Sequence[Term], n: int):
+def _row_tables(terms: Sequence[Term], n: int, undirected: bool):
+    """The network predictors by rows: (nptr (S, n + 1), nidx, nval), see kernels.sparse."""
     nets = [t for t in terms if t.kind == NETWORK]
-    sizes = [1 << max(1, int(2 * t.edges.size).bit_length()) for t in nets]
-    hoff = np.zeros(len(nets) + 1, dtype=np.int64)
-    hoff[1:] = np.cumsum(sizes)
-    hkeys = np.empty(max(int(hoff[-1]), 1), dtype=np.int64)
-    hvals = np.empty(hkeys.shape[0])
-    hkeys[:] = -1
+    nptr = np.zeros((max(len(nets), 1), n + 1), dtype=np.int64)
+    idx, val = [], []
+    offset = 0
     for s, t in enumerate(nets):
-        build_hash(_edge_keys(t.edges, n), t.edges.w, hkeys[hoff[s]:hoff[s + 1]],
-                   hvals[hoff[s]:hoff[s + 1]])
-    return hkeys, hvals, hoff
+        i, j, w = t.edges.src, t.edges.dst, t.edges.w
+        if undirected:  # both orientations, so a row holds every neighbour
+            i, j, w = np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([w, w])
+        o = np.lexsort((j, i))
+        nptr[s, 1:] = offset + np.cumsum(np.bincount(i, minlength=n))
+        nptr[s, 0] = offset
+        idx.append(j[o])
+        val.append(w[o])
+        offset += i.shape[0]
+    nidx = np.concatenate(idx) if idx else np.zeros(1, dtype=np.int64)
+    nval = np.concatenate(val) if val else np.zeros(1)
+    return nptr, np.ascontiguousarray(nidx, dtype=np.int64), np.ascontiguousarray(nval)
 
 
 @dataclass(frozen=True, eq=False)
@@ -643,11 +653,10 @@ class SparsePlan:
     center: np.ndarray
     slots: np.ndarray
     attr: np.ndarray
-    hkeys: np.ndarray
-    hvals: np.ndarray
-    hoff: np.ndarray
+    nptr: np.ndarray
+    nidx: np.ndarray
+    nval: np.ndarray
     invert: bool
-    undirected: bool
     inv_scale: np.ndarray  # (k,) 1 / (sd_y sd_x_c): raw centred cross -> standardised
     gram0: np.ndarray  # (d, d) standardised Gram without the relabelled-by-fixed block
     transforms: np.ndarray
@@ -661,9 +670,8 @@ class SparsePlan:
         """Centred cross products (B, k) of the relabelled network with each predictor."""
         out = np.empty((perms.shape[0], self.kinds.shape[0]))
         sparse_cross(self.edges.src, self.edges.dst, self.edges.w, self.strength, perms,
-                     self.kinds, self.cols, self.center, self.slots, self.attr, self.hkeys,
-                     self.hvals, self.hoff, out, self.invert, self.undirected,
-                     self.n_edge_cols)
+                     self.kinds, self.cols, self.center, self.slots, self.attr, self.nptr,
+                     self.nidx, self.nval, out, self.invert, self.n_edge_cols)
         return out
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
@@ -750,7 +758,7 @@ def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statis
         if t.kind == NETWORK:
             slots[c] = slot
             slot += 1
-    hkeys, hvals, hoff = _hash_tables(prep.terms, prep.n)
+    nptr, nidx, nval = _row_tables(prep.terms, prep.n, not prep.directed)
     d = k + 2
     gram0 = np.zeros((d, d))
     gram0[0, 0] = N
@@ -761,8 +769,8 @@ def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statis
                          np.bincount(edges.dst, edges.w, prep.n)], axis=1)
     return SparsePlan(
         edges=edges, strength=strength, n_edge_cols=len(on_edges), kinds=kinds, cols=cols,
-        center=np.ascontiguousarray(mom.mean), slots=slots, attr=attr, hkeys=hkeys,
-        hvals=hvals, hoff=hoff, invert=not correlation, undirected=not prep.directed,
+        center=np.ascontiguousarray(mom.mean), slots=slots, attr=attr, nptr=nptr, nidx=nidx,
+        nval=nval, invert=not correlation,
         inv_scale=1.0 / (y_sd * sx), gram0=gram0, transforms=y_transforms(k),
         scale=np.ones(k) if statistic == "t" else y_sd / sx, use_t=statistic == "t",
         correlation=correlation, k=k, n_dyads=prep.n_dyads)

@@ -35,7 +35,7 @@ import statsmodels.api as sm
 import dyadperm as dp
 from dyadperm import sparse as dsp_
 from dyadperm.dyadic import NodeDerived
-from dyadperm.kernels.sparse import build_hash, gap_gap_sum, hash_lookup
+from dyadperm.kernels.sparse import gap_gap_sum, row_lookup
 
 # Tolerances (named in one place)
 NULL_TOL = 1e-10  # |sparse - dense| <= NULL_TOL * max(1, |dense|), see the module docstring
@@ -111,16 +111,21 @@ def test_gap_gap_sum_matches_pairwise_sum(rng, n):
                                               abs=1e-12)
 
 
-def test_hash_table_matches_dict(rng):
-    keys = np.unique(rng.integers(0, 10_000, 300)).astype(np.int64)
-    vals = rng.normal(size=keys.size)
-    size = 1 << int(2 * keys.size).bit_length()
-    hkeys = np.empty(size, np.int64)
-    hvals = np.empty(size)
-    build_hash(keys, vals, hkeys, hvals)
-    ref = dict(zip(keys.tolist(), vals.tolist()))  # source: a Python dict
-    for q in np.concatenate([keys, rng.integers(0, 10_000, 200)]):
-        assert hash_lookup(hkeys, hvals, 0, size, int(q)) == ref.get(int(q), 0.0)
+@pytest.mark.parametrize("directed", [True, False])
+def test_row_lookup_matches_dense_array(rng, directed):
+    n = 17
+    X = sparse_predictor(rng, n, 0.3, directed=directed)
+    Y = sparse_response(rng, n, 0.3, directed=directed)
+    preds = {"x": sp.csr_array(X), "x2": sp.csr_array(sparse_predictor(rng, n, 0.2,
+                                                                       directed=directed))}
+    prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed)
+    nptr, nidx, nval = dsp_._row_tables(prep.terms, n, not directed)
+    # source: the dense arrays themselves, at every off-diagonal dyad
+    for s, M in enumerate([X, preds["x2"].toarray()]):
+        for i in range(n):
+            for j in range(n):
+                if i != j:
+                    assert row_lookup(nptr, nidx, nval, s, i, j) == M[i, j]
 
 
 @pytest.mark.parametrize("directed", [True, False])
