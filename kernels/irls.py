@@ -23,6 +23,7 @@ only on its relabelling, never on the chunk it was computed in.
 import numpy as np
 from numba import njit
 
+from .gather import prefetch
 from .options import KERNEL_OPTIONS
 
 # Return codes of ``irls_logistic`` (a converged fit returns its iteration count >= 1).
@@ -30,6 +31,11 @@ FAIL_ITERATIONS = -1  # no convergence in max_iter steps (divergence: separation
 FAIL_SINGULAR = -2  # the weighted information X'WX is singular
 FAIL_STEP = -3  # no step length lowers the deviance
 FAIL_DYADS = -4  # no more valid dyads than coefficients
+
+# Permutations that share one pass over the fixed rows in ``score_rows``.
+SCORE_BLOCK = 8
+# Bytes of one cache line, the unit of prefetching.
+CACHE_LINE = 64
 
 # A Cholesky pivot this small relative to its diagonal entry marks a singular information.
 SINGULAR_PIVOT = 1e-12
@@ -41,12 +47,18 @@ DEVIANCE_SLACK = 1e-12
 
 @njit(**KERNEL_OPTIONS)
 def _logit_parts(eta):
-    """(mu, w, log(1 + e^eta)) of a linear predictor, without overflow."""
+    """(mu, w, log(1 + e^eta)) of a linear predictor, without overflow.
+
+    With t = exp(-|eta|) in (0, 1]: log(1 + e^eta) = max(eta, 0) + log(1 + t). ``log(1 + t)``
+    rather than ``log1p(t)`` (a third of the cost): its absolute error, about 1e-16 per
+    dyad, is far below what the deviance is used for (the step-halving test).
+    """
     t = np.exp(-abs(eta))
-    inv = 1.0 / (1.0 + t)
+    one_t = 1.0 + t
+    inv = 1.0 / one_t
     mu = inv if eta >= 0.0 else t * inv
     # w = mu (1 - mu) = t / (1 + t)^2
-    return mu, t * inv * inv, max(eta, 0.0) + np.log1p(t)
+    return mu, t * inv * inv, max(eta, 0.0) + np.log(one_t)
 
 
 @njit(**KERNEL_OPTIONS)
@@ -70,10 +82,10 @@ def _newton_pass(X, cols, y, valid, beta, xrow, H, g):
         dev += 2.0 * (log1pe - y[d] * eta)
         res = y[d] - mu
         for r in range(q):
-            g[r] += xrow[r] * res
+            g[r] += xrow[r] * res  # g = X'(y - mu)
             wx = w * xrow[r]
             for c in range(r + 1):
-                H[r, c] += wx * xrow[c]
+                H[r, c] += wx * xrow[c]  # H = X'WX
     for r in range(q):
         for c in range(r + 1, q):
             H[r, c] = H[c, r]
@@ -374,54 +386,6 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, b
 
 
 @njit(**KERNEL_OPTIONS)
-def score_dsp_fixed(resid, rows, cols, row_perms, col_perms, X, zcols, fit_resid, fit_weight,
-                    cinv, out):
-    """DSP score statistics on complete data: dot products only.
-
-    The reduced model of term a (y on its other terms Z_a) does not involve the relabelled
-    residual e_pi, so its fit is fixed: r = y - mu, w = mu (1 - mu), C^-1 = (Z'WZ)^-1.
-    Per relabelling: U = e_pi'r, Q = sum w e_pi^2, s = Z'W e_pi, statistic
-    U / sqrt(Q - s'C^-1 s) (Rao 1948).
-
-    Parameters
-    ----------
-    resid : float64 (n, m, K)
-        Residual matrices (no NaN on the dyad set).
-    rows, cols, row_perms, col_perms : as in ``refit_y``.
-    X : float64 (N, p)
-        Fixed design [1, x_1 .. x_k].
-    zcols : int64 (K, p - 1)
-        Columns of ``X`` in term a's reduced model.
-    fit_resid, fit_weight : float64 (N, K)
-        y - mu and mu (1 - mu) of each reduced fit.
-    cinv : float64 (K, p - 1, p - 1)
-        (Z_a'W_a Z_a)^-1 of each reduced fit.
-    out : float64 (B, K)
-        Written: the signed score statistics.
-    """
-    n_dyads, p = X.shape
-    n_terms = resid.shape[2]
-    q = p - 1
-    acc = np.empty((n_terms, q + 2))
-    for b in range(row_perms.shape[0]):
-        rp = row_perms[b]
-        cp = col_perms[b]
-        acc[:, :] = 0.0
-        for d in range(n_dyads):
-            pi = rp[rows[d]]
-            pj = cp[cols[d]]
-            for a in range(n_terms):
-                e = resid[pi, pj, a]
-                acc[a, 0] += e * fit_resid[d, a]  # U += e_pi r
-                we = fit_weight[d, a] * e
-                acc[a, 1] += we * e  # Q += w e_pi^2
-                for c in range(q):
-                    acc[a, 2 + c] += we * X[d, zcols[a, c]]  # s += Z'W e_pi
-        for a in range(n_terms):
-            out[b, a] = _signed_score(acc[a, 0], acc[a, 1], acc[a, 2:], cinv[a])
-
-
-@njit(**KERNEL_OPTIONS)
 def score_dsp_refit(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, zcols, gamma0,
                     out, max_iter, tol):
     """DSP score statistics with missing dyads: the reduced model is refitted on each
@@ -458,15 +422,10 @@ def score_dsp_refit(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, zco
 
 
 @njit(**KERNEL_OPTIONS)
-def score_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, zcols, gamma0, suff0,
-            fixed_score, complete, out, max_iter, tol):
-    """Y-permutation score statistics.
-
-    The reduced model of term a (y_pi on Z_a) is refitted per relabelling, except when its
-    sufficient statistic Z_a'y_pi equals the observed Z_a'y: the canonical link makes the
-    fit a function of Z_a'y_pi alone, so the observed reduced fit is reused and the
-    statistic is (x_a'y_pi - x_a'mu) / sqrt(I) with x_a'mu and I fixed. This always holds
-    for an intercept-only reduced model on complete data (sum y_pi = sum y).
+def score_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, zcols, gamma0, out,
+            max_iter, tol):
+    """Y-permutation score statistics: the reduced model of term a (y_pi on Z_a) is
+    refitted on each relabelling (warm-started at ``gamma0[a]``), then scored.
 
     Parameters
     ----------
@@ -474,49 +433,215 @@ def score_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, zcols, gamma0,
     zcols : int64 (K, p - 1)
         Columns of term a's reduced model; term a's own column is a + 1.
     gamma0 : float64 (K, p - 1)
-        Observed reduced fits (warm starts).
-    suff0 : float64 (K, p - 1)
-        Observed Z_a'y.
-    fixed_score : float64 (K, 2)
-        Observed x_a'mu and efficient information I of each reduced fit.
-    complete : bool
-        No dyad is missing (the reuse above is valid only then).
+        Warm starts (the observed reduced fits).
     out : float64 (B, K)
         Written: the signed score statistics (NaN: failed reduced fit).
+    max_iter, tol : see ``irls_logistic``.
     """
     n_dyads, p = X.shape
     n_terms = zcols.shape[0]
     q = p - 1
     ybuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
-    suff = np.empty(p)
     work = np.empty((2 * q + 5, q))
     gamma = np.empty(q)
     cinv = np.empty((q, q))
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
-        suff[:] = 0.0
         for d in range(n_dyads):
-            v = layer[rp[rows[d]], cp[cols[d]]]
+            v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
             ybuf[d] = v
-            ok = fixed_ok[d] and not np.isnan(v)
-            valid[d] = ok
-            if ok:
-                for c in range(p):
-                    suff[c] += X[d, c] * v  # X'y_pi
+            valid[d] = fixed_ok[d] and not np.isnan(v)
         for a in range(n_terms):
-            reuse = complete
-            for c in range(q):
-                if suff[zcols[a, c]] != suff0[a, c]:
-                    reuse = False
-            if reuse:
-                # U = x_a'(y_pi - mu) with the observed reduced fit
-                out[b, a] = (suff[a + 1] - fixed_score[a, 0]) / np.sqrt(fixed_score[a, 1])
-                continue
             status = irls_logistic(X, zcols[a], ybuf, valid, gamma0[a], work, gamma, cinv,
                                    max_iter, tol)
             if status < 0:
                 out[b, a] = np.nan
             else:
                 out[b, a] = score_logistic(X, zcols[a], a + 1, ybuf, valid, gamma, cinv, work)
+
+
+@njit(**KERNEL_OPTIONS)
+def score_from_sums(sums, cinv, out):
+    """Signed score statistics from the sums of ``score_rows``.
+
+    Parameters
+    ----------
+    sums : float64 (B, K, q + 2)
+        [U, Q, S_0 .. S_(q-1)] of each relabelling and term.
+    cinv : float64 (K, q, q)
+        (Z'WZ)^-1 of each term's reduced fit (columns: intercept, then the others).
+    out : float64 (B, K)
+        Written: U / sqrt(Q - S'(Z'WZ)^-1 S) (Rao 1948), NaN when not positive.
+    """
+    for b in range(sums.shape[0]):
+        for a in range(sums.shape[1]):
+            out[b, a] = _signed_score(sums[b, a, 0], sums[b, a, 1], sums[b, a, 2:], cinv[a])
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _row_main(relf, rb, co, fixf, rf, wf, xf0, xf1, n_x, js, je):
+    """Over one row: U = sum e r, Q = sum w e^2, S0 = sum w e and, for the first
+    ``n_x`` (0, 1 or 2) fixed columns at xf0, xf1, S_c = sum w e x_c.
+
+    Each sum runs in two partial sums, over the columns at even and at odd offsets from
+    ``js`` (in increasing order), added at the end: two chains of additions in flight.
+    """
+    u = 0.0
+    q = 0.0
+    s = 0.0
+    s0 = 0.0
+    s1 = 0.0
+    u2 = 0.0
+    q2 = 0.0
+    t2 = 0.0
+    s02 = 0.0
+    s12 = 0.0
+    j = js
+    while j + 1 < je:
+        e = relf[np.uint64(rb + co[j])]
+        f = relf[np.uint64(rb + co[j + 1])]
+        u += e * fixf[np.uint64(rf + j)]  # U += e_pi r
+        u2 += f * fixf[np.uint64(rf + j + 1)]
+        we = fixf[np.uint64(wf + j)] * e
+        wf_ = fixf[np.uint64(wf + j + 1)] * f
+        s += we  # S0 += w e_pi
+        t2 += wf_
+        q += we * e  # Q += w e_pi^2
+        q2 += wf_ * f
+        if n_x > 0:
+            s0 += we * fixf[np.uint64(xf0 + j)]  # S_c += w e_pi x_c
+            s02 += wf_ * fixf[np.uint64(xf0 + j + 1)]
+        if n_x > 1:
+            s1 += we * fixf[np.uint64(xf1 + j)]
+            s12 += wf_ * fixf[np.uint64(xf1 + j + 1)]
+        j += 2
+    if j < je:
+        e = relf[np.uint64(rb + co[j])]
+        u += e * fixf[np.uint64(rf + j)]
+        we = fixf[np.uint64(wf + j)] * e
+        s += we
+        q += we * e
+        if n_x > 0:
+            s0 += we * fixf[np.uint64(xf0 + j)]
+        if n_x > 1:
+            s1 += we * fixf[np.uint64(xf1 + j)]
+    return u + u2, q + q2, s + t2, s0 + s02, s1 + s12
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _row_pair(relf, rb, co, fixf, wf, xf0, xf1, js, je):
+    """Over one row: S_c = sum w e x_c for the two fixed columns at xf0, xf1 (even and
+    odd partial sums as in ``_row_main``)."""
+    s0 = 0.0
+    s1 = 0.0
+    s02 = 0.0
+    s12 = 0.0
+    j = js
+    while j + 1 < je:
+        we = fixf[np.uint64(wf + j)] * relf[np.uint64(rb + co[j])]
+        wf_ = fixf[np.uint64(wf + j + 1)] * relf[np.uint64(rb + co[j + 1])]
+        s0 += we * fixf[np.uint64(xf0 + j)]  # S_c += w e_pi x_c
+        s02 += wf_ * fixf[np.uint64(xf0 + j + 1)]
+        s1 += we * fixf[np.uint64(xf1 + j)]
+        s12 += wf_ * fixf[np.uint64(xf1 + j + 1)]
+        j += 2
+    if j < je:
+        we = fixf[np.uint64(wf + j)] * relf[np.uint64(rb + co[j])]
+        s0 += we * fixf[np.uint64(xf0 + j)]
+        s1 += we * fixf[np.uint64(xf1 + j)]
+    return s0 + s02, s1 + s12
+
+
+@njit(**KERNEL_OPTIONS)
+def score_rows(relf, n_terms, fixf, n_fix, resid_at, weight_at, x_at, row_perms, col_perms,
+               col_start, col_stop, coloff, tot, out):
+    """Dot products of each term's relabelled residual with its reduced fit, row-wise.
+
+    For term a with relabelled residual e and, fixed, the reduced fit's residual
+    r = y - mu, weight w = mu (1 - mu) and the non-constant columns x_c of its reduced
+    model:  U = e'r, Q = sum w e^2, S_0 = sum w e, S_c = sum w e x_c.
+    Layers are stored row-planar, (n, L, m): one layer's row is contiguous, so a pass
+    over a row streams only the layers it uses. Permutations go through the rows in
+    blocks of ``coloff.shape[0]`` that share each load of a fixed row; while a row is
+    gathered, the stored rows the next one reads are prefetched (the approach of
+    ``kernels.gather.cross_rows``).
+
+    Parameters
+    ----------
+    relf : float64 (n * K * m,)
+        The residual layers, an (n, K, m) C-ordered array flattened; 0 off the dyad set.
+    n_terms : int
+        K.
+    fixf : float64 (n * Lf * m,)
+        The fixed layers, an (n, Lf, m) C-ordered array flattened; 0 off the dyad set.
+    n_fix : int
+        Lf.
+    resid_at, weight_at : int64 (K,)
+        Layer of r and of w for each term.
+    x_at : int64 (K, c)
+        Layers of the non-constant reduced-model columns of each term (c may be 0).
+    row_perms : int64 (B, n); col_perms : int64 (B, m)
+    col_start, col_stop : int64 (n,)
+        Row i uses the columns [col_start[i], col_stop[i]).
+    coloff : int64 workspace (block, m)
+    tot : float64 workspace (block, K, c + 3)
+    out : float64 (B, K, c + 3)
+        Written: [U, Q, S_0, S_1 .. S_c] of each relabelling and term. Per row the sums
+        run in increasing column order, rows in increasing order, whatever the block.
+    """
+    n_perm = row_perms.shape[0]
+    n_rows = row_perms.shape[1]
+    m = col_perms.shape[1]
+    block = coloff.shape[0]
+    n_x = x_at.shape[1]
+    rowlen = m * n_terms
+    line = max(1, CACHE_LINE // relf.itemsize)
+    row_lines = (rowlen + line - 1) // line
+    for b0 in range(0, n_perm, block):
+        nb = min(block, n_perm - b0)
+        for q in range(nb):
+            for j in range(m):
+                coloff[q, j] = col_perms[b0 + q, j]
+        tot[:] = 0.0
+        for i in range(n_rows):
+            js = col_start[i]
+            je = col_stop[i]
+            fb = i * n_fix * m
+            for q in range(nb):
+                b = b0 + q
+                rb0 = row_perms[b, i] * rowlen
+                if i + 1 < n_rows:
+                    nxt = row_perms[b, i + 1] * rowlen
+                    for t in range(row_lines):
+                        prefetch(relf, np.uint64(nxt + t * line))
+                co = coloff[q]
+                for a in range(n_terms):
+                    rb = rb0 + a * m
+                    wf = fb + weight_at[a] * m
+                    first = min(n_x, 2)
+                    xf0 = fb + x_at[a, 0] * m if first > 0 else fb
+                    xf1 = fb + x_at[a, 1] * m if first > 1 else fb
+                    u, qq, s, s0, s1 = _row_main(relf, rb, co, fixf, fb + resid_at[a] * m, wf,
+                                                 xf0, xf1, first, js, je)
+                    tot[q, a, 0] += u
+                    tot[q, a, 1] += qq
+                    tot[q, a, 2] += s
+                    if first > 0:
+                        tot[q, a, 3] += s0
+                    if first > 1:
+                        tot[q, a, 4] += s1
+                    c = first
+                    while c < n_x:
+                        x1 = x_at[a, c + 1] if c + 1 < n_x else x_at[a, c]
+                        s0, s1 = _row_pair(relf, rb, co, fixf, wf, fb + x_at[a, c] * m,
+                                           fb + x1 * m, js, je)
+                        tot[q, a, 3 + c] += s0
+                        if c + 1 < n_x:
+                            tot[q, a, 4 + c] += s1
+                        c += 2
+        for q in range(nb):
+            for a in range(n_terms):
+                for c in range(n_x + 3):
+                    out[b0 + q, a, c] = tot[q, a, c]

@@ -63,23 +63,27 @@ Rao's score test (Rao 1948, Proc. Camb. Philos. Soc. 44:50-57) of H0: b_j = 0 ne
 the reduced fit: U = x'(y - mu), I = x'Wx - (Z'Wx)'(Z'WZ)^-1(Z'Wx) (the information of b_j
 adjusted for the other terms), statistic U / sqrt(I), asymptotically N(0, 1) under H0 and
 equivalent to the Wald z (Cox & Hinkley 1974, Theoretical Statistics, ch. 9 [memory]).
+It needs no fit of the full model, so it exists where the full model is separated.
 Which quantities stay fixed under relabelling:
 
 - ``dsp``: the reduced model y ~ Z does not involve the relabelled column at all, so with
-  complete data r = y - mu, W and (Z'WZ)^-1 are fixed; per relabelling only dot products
-  of e_pi with fixed vectors change: U = e_pi'r, Q = sum w e_pi^2, s = Z'W e_pi (p - 1
-  products), statistic U / sqrt(Q - s'(Z'WZ)^-1 s) — p + 1 dot products, no refit. With
-  missing dyads the dyad set of the fit changes with the relabelling, and the reduced
-  model is refitted on each relabelling's dyads (warm-started from the observed one).
-- ``y``: the reduced model is fitted to the relabelled response and must in general be
-  refitted per relabelling and per tested term. One invariance: for the canonical link the
-  reduced fit depends on y_pi only through Z'y_pi (the sufficient statistic), so when
-  Z'y_pi = Z'y the observed reduced fit is reused and the statistic is
-  (x'y_pi - x'mu) / sqrt(I) with x'mu and I fixed — one dot product, the cost of the linear
-  y scheme. That holds for every relabelling when Z is the intercept alone (one predictor)
-  and no dyad is missing, since sum y_pi = sum y. With two or more predictors the y scheme's
-  score statistic costs k reduced refits per relabelling, more than one full refit: use
-  ``dsp`` for the fast path.
+  complete data r = y - mu, w = mu (1 - mu) and (Z'WZ)^-1 are fixed, and per relabelling
+  only sums of the relabelled residual e_pi against fixed layers change:
+  U = sum e_pi r, Q = sum w e_pi^2, S_0 = sum w e_pi, S_c = sum w e_pi z_c (each
+  non-constant column c of Z), statistic U / sqrt(Q - S'(Z'WZ)^-1 S) with S = (S_0, S_c..):
+  p + 1 sums, no refit (``kernels.irls.score_rows``, row-wise like the linear engine's
+  gathers). With missing dyads the dyad set of the fit changes with the relabelling, and
+  the reduced model is refitted on each relabelling's dyads (warm-started from the
+  observed one).
+- ``y``: the reduced model is fitted to the relabelled response. For the canonical link
+  its fit depends on y_pi only through Z'y_pi (the sufficient statistic). When Z is the
+  intercept alone (one predictor) and no dyad is missing, Z'y_pi = sum y_pi = sum y for
+  every relabelling: the reduced fit is the observed one, I is fixed, and the statistic is
+  (x'y_pi - x'mu) / sqrt(I) — one product per relabelling, taken by the linear engine's
+  ``gather_cross``, the cost of the linear y scheme. Otherwise Z'y_pi changes and the
+  reduced model is refitted for each relabelling and each tested term (warm-started from
+  the observed reduced fit) — k reduced refits, dearer than one full refit: with two or
+  more predictors use ``dsp`` for the fast path.
 
 Its observed value equals the full model's score test of b_j (for ``dsp`` because
 Z'(y - mu) = 0 at the reduced fit, so e and x_j have the same U and I).
@@ -99,8 +103,9 @@ from . import design as _design
 from . import store as _store
 from .engine import CHUNK_WORK, MAX_CHUNK
 from .errors import DyadpermWarning, InputError, NumericalError
-from .kernels.irls import (irls_logistic, refit_dsp, refit_y, score_dsp_fixed, score_dsp_refit,
-                           score_logistic, score_y)
+from .kernels.gather import gather_cross
+from .kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
+                           score_from_sums, score_logistic, score_rows, score_y)
 
 SCHEMES = ("y", "dsp")
 STATISTICS = ("t", "coef", "score")
@@ -297,9 +302,12 @@ def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str]) ->
 class LogisticPlan:
     """Everything the engine needs to turn relabellings into logistic statistics.
 
-    ``kind`` is one of "refit-y", "refit-dsp", "score-y", "score-dsp-fixed",
-    "score-dsp-refit"; ``arrays`` holds that driver's inputs (see ``kernels.irls``);
-    ``scale`` (k,) multiplies coefficients back into the user's units.
+    ``kind`` names the route (module docstring): "refit-y", "refit-dsp", "score-y",
+    "score-dsp-refit" run the Newton drivers of ``kernels.irls`` on dyad vectors;
+    "score-y-products" and "score-dsp-products" need only dot products of relabelled
+    layers with fixed layers, taken by ``kernels.gather.gather_cross`` (the linear
+    engine's kernel). ``arrays`` holds the route's inputs; ``scale`` (k,) multiplies
+    coefficients back into the user's units.
     """
 
     kind: str
@@ -309,6 +317,8 @@ class LogisticPlan:
     use_z: bool
     scale: np.ndarray
     work_per_permutation: float
+    col_start: np.ndarray
+    col_stop: np.ndarray
     passes: tuple = ()
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
@@ -317,6 +327,9 @@ class LogisticPlan:
         out = np.empty((row_perms.shape[0], self.k))
         rp = np.ascontiguousarray(row_perms, dtype=np.int64)
         cp = rp if col_perms is row_perms else np.ascontiguousarray(col_perms, dtype=np.int64)
+        if self.kind in ("score-y-products", "score-dsp-products"):
+            self._products(rp, cp, out)
+            return out
         common = (a["rows"], a["cols"], rp, cp, a["X"])
         if self.kind == "refit-y":
             refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], out, MAX_ITER, TOL,
@@ -324,18 +337,34 @@ class LogisticPlan:
         elif self.kind == "refit-dsp":
             refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"], out,
                       MAX_ITER, TOL, self.use_z)
-        elif self.kind == "score-dsp-fixed":
-            score_dsp_fixed(a["layer"], *common, a["zcols"], a["fit_resid"], a["fit_weight"],
-                            a["cinv"], out)
         elif self.kind == "score-dsp-refit":
             score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["gamma0"],
                             out, MAX_ITER, TOL)
         else:
-            score_y(a["layer"], *common, a["fixed_ok"], a["zcols"], a["gamma0"], a["suff0"],
-                    a["fixed_score"], a["complete"], out, MAX_ITER, TOL)
+            score_y(a["layer"], *common, a["fixed_ok"], a["zcols"], a["gamma0"], out, MAX_ITER,
+                    TOL)
         if not self.use_z:
             out *= self.scale
         return out
+
+    def _products(self, rp: np.ndarray, cp: np.ndarray, out: np.ndarray) -> None:
+        a = self.arrays
+        n_perm = rp.shape[0]
+        if self.kind == "score-y-products":
+            # U = x'y_pi - x'mu with the fixed intercept-only fit; I fixed
+            prod = np.empty((n_perm, 1, 1))
+            gather_cross(a["rel"], a["rel_idx"], a["fix"], a["fix_idx"], rp, cp,
+                         self.col_start, self.col_stop, prod)
+            out[:, 0] = (prod[:, 0, 0] - a["offset"]) / np.sqrt(a["info"])
+            return
+        m = cp.shape[1]
+        block = max(1, min(SCORE_BLOCK, n_perm))
+        sums = np.empty((n_perm, self.k, a["x_at"].shape[1] + 3))
+        score_rows(a["rel"], self.k, a["fix"], a["n_fix"], a["resid_at"], a["weight_at"],
+                   a["x_at"], rp, cp, self.col_start, self.col_stop,
+                   np.empty((block, m), dtype=np.int64), np.empty((block,) + sums.shape[1:]),
+                   sums)
+        score_from_sums(sums, a["cinv"], out)
 
     def chunk_size(self) -> int:
         """Permutations per chunk, aiming at the engine's work per chunk."""
@@ -388,9 +417,16 @@ def _residual_layers(prep, dd: DyadData) -> np.ndarray:
     return out
 
 
+def _layer(prep: _design.Prepared, dd: DyadData, values: np.ndarray) -> np.ndarray:
+    """A dyad vector as an (n, m) matrix, 0 off the dyad set (for ``gather_cross``)."""
+    M = np.zeros(prep.mask.shape)
+    M[dd.rows, dd.cols] = values
+    return M
+
+
 def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme: str,
                statistic: str) -> LogisticPlan:
-    """Driver and fixed inputs of a logistic scheme (see the module docstring)."""
+    """Route and fixed inputs of a logistic scheme (see the module docstring)."""
     k = prep.k
     p = k + 1
     N = dd.rows.shape[0]
@@ -401,56 +437,64 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     use_z = statistic != "coef"
     scale = 1.0 / dd.sd
     refit_work = STEPS_GUESS * N * p * p
+    ranges = dict(col_start=prep.col_start, col_stop=prep.col_stop)
+
+    def plan(kind, arrays, work, z=use_z):
+        return LogisticPlan(kind, arrays, k, prep.n_dyads, z, scale, float(work), **ranges)
+
     if scheme == "y":
         layer = np.ascontiguousarray(prep.matrices[k])
         if statistic != "score":
             arrays = dict(common, layer=layer, fixed_ok=fixed_x,
                           beta0=_null_start(dd.y, dd.complete, p))
-            return LogisticPlan("refit-y", arrays, k, prep.n_dyads, use_z, scale, refit_work)
+            return plan("refit-y", arrays, refit_work)
         gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
-        valid = dd.complete
-        suff0 = np.empty((k, k))
-        fixed_score = np.empty((k, 2))
-        for j in range(k):
-            Z = X[valid][:, zcols[j]]
-            suff0[j] = Z.T @ dd.y[valid]
-            mu = 1.0 / (1.0 + np.exp(-(Z @ gam[j])))
-            x = X[valid, j + 1]
-            w = mu * (1.0 - mu)
-            s = Z.T @ (w * x)
-            fixed_score[j] = (x @ mu, (w * x) @ x - s @ cinv[j] @ s)
-        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gam,
-                      suff0=suff0, fixed_score=fixed_score, complete=bool(prep.complete))
-        reuse = prep.complete and k == 1
-        work = N * p + (0 if reuse else k * refit_work)
-        return LogisticPlan("score-y", arrays, k, prep.n_dyads, True, scale, work)
+        if prep.complete and k == 1:
+            # the intercept-only fit is invariant (sum y_pi = sum y): one product per
+            # relabelling, x'y_pi
+            mu = 1.0 / (1.0 + np.exp(-gam[0, 0]))
+            x = X[:, 1]
+            info = mu * (1.0 - mu) * (x @ x - x.sum() ** 2 / N)
+            arrays = dict(rel=np.nan_to_num(layer)[:, :, None], rel_idx=np.zeros(1, np.int64),
+                          fix=_layer(prep, dd, x)[:, :, None], fix_idx=np.zeros(1, np.int64),
+                          offset=mu * x.sum(), info=info)
+            return plan("score-y-products", arrays, N, True)
+        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gam)
+        return plan("score-y", arrays, k * refit_work, True)
 
-    layer = _residual_layers(prep, dd)
-    fixed_ok = np.empty((k, N), dtype=bool)
-    yok = ~np.isnan(dd.y)
-    for j in range(k):
-        fixed_ok[j] = yok & ~np.isnan(X[:, zcols[j]]).any(axis=1)
+    E = _residual_layers(prep, dd)
     gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
     if statistic != "score":
+        fixed_ok = _fixed_ok(dd, X, zcols)
         design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
         beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
-        arrays = dict(common, layer=layer, y=dd.y, fixed_ok=fixed_ok, design=design,
-                      beta0=beta0)
-        return LogisticPlan("refit-dsp", arrays, k, prep.n_dyads, use_z, scale, k * refit_work)
-    if prep.complete:
-        fit_resid = np.empty((N, k))
-        fit_weight = np.empty((N, k))
-        for j in range(k):
-            mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
-            fit_resid[:, j] = dd.y - mu
-            fit_weight[:, j] = mu * (1.0 - mu)
-        arrays = dict(common, layer=layer, zcols=zcols, fit_resid=fit_resid,
-                      fit_weight=fit_weight, cinv=cinv)
-        return LogisticPlan("score-dsp-fixed", arrays, k, prep.n_dyads, True, scale,
-                            N * k * (p + 2))
-    arrays = dict(common, layer=layer, y=dd.y, fixed_ok=fixed_ok, zcols=zcols, gamma0=gam)
-    return LogisticPlan("score-dsp-refit", arrays, k, prep.n_dyads, True, scale,
-                        k * refit_work)
+        arrays = dict(common, layer=E, y=dd.y, fixed_ok=fixed_ok, design=design, beta0=beta0)
+        return plan("refit-dsp", arrays, k * refit_work)
+    if not prep.complete:
+        arrays = dict(common, layer=E, y=dd.y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,
+                      gamma0=gam)
+        return plan("score-dsp-refit", arrays, k * refit_work, True)
+    # complete data: the reduced fit of each term is fixed; per relabelling only the sums
+    # U, Q, S of the module docstring (kernels.irls.score_rows)
+    layers = []
+    for j in range(k):
+        mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
+        layers.append((dd.y - mu, mu * (1.0 - mu)))
+    fixed = [r for r, _ in layers] + [w for _, w in layers] + [X[:, c] for c in range(1, p)]
+    # row-planar (n, L, m) layers: each layer's row contiguous (kernels.irls.score_rows)
+    fix = np.ascontiguousarray(np.stack([_layer(prep, dd, v) for v in fixed], axis=1))
+    rel = np.ascontiguousarray(np.nan_to_num(E).transpose(0, 2, 1))
+    arrays = dict(rel=rel.reshape(-1), fix=fix.reshape(-1), n_fix=fix.shape[1],
+                  resid_at=np.arange(k, dtype=np.int64),
+                  weight_at=np.arange(k, 2 * k, dtype=np.int64),
+                  x_at=np.ascontiguousarray(zcols[:, 1:] - 1 + 2 * k), cinv=cinv)
+    return plan("score-dsp-products", arrays, N * k * (p + 2), True)
+
+
+def _fixed_ok(dd: DyadData, X: np.ndarray, zcols: np.ndarray) -> np.ndarray:
+    """(k, N): dyads where y and the other terms of each tested term are finite."""
+    yok = ~np.isnan(dd.y)
+    return np.array([yok & ~np.isnan(X[:, z]).any(axis=1) for z in zcols], dtype=bool)
 
 
 def observed_score(dd: DyadData, prep: _design.Prepared) -> np.ndarray:

@@ -1,0 +1,742 @@
+"""The logistic model (``model="logistic"``) against references outside the engine.
+
+Sources named beside each check:
+- statsmodels ``Logit`` and ``GLM(Binomial)`` on the vectorised dyads (estimates, std.
+  errors, z, deviance) and ``GLMResults.score_test`` (Rao's score statistic);
+- an exact brute-force oracle written here from the formulas in runner/logistic.py's
+  docstring (Krackhardt 1988 for the Y-permutation; Potter 2005 for the DSP scheme):
+  every relabelling is applied with ``M[np.ix_(p, q)]`` and the model refitted by a plain
+  numpy Newton fit, separation being decided by the linear programme of Albert &
+  Anderson (1984) through ``scipy.optimize.linprog``;
+- plain-numpy twins of every kernel in kernels/irls.py (the same algorithm written with
+  vector operations).
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from scipy.optimize import linprog
+from scipy.special import expit
+
+import dyadperm as dp
+from dyadperm import logistic as lg
+from dyadperm.kernels import irls as kn
+from reference import P_ATOL, TIE_RTOL, relabel
+
+# --- tolerances -------------------------------------------------------------------------
+#: kernel vs its numpy twin: the same Newton steps, sums in another order.
+TWIN_RTOL = 1e-9
+TWIN_ATOL = 1e-11
+#: engine vs statsmodels / the brute-force oracle: both fits converged (Newton's last step
+#: below 1e-8, so the estimates agree to far better than this).
+FIT_RTOL = 1e-7
+FIT_ATOL = 1e-9
+
+
+# --- data -------------------------------------------------------------------------------
+def binary_response(rng, eta):
+    """0/1 draws with P(1) = expit(eta), both values present."""
+    for _ in range(100):
+        Y = (rng.random(eta.shape) < expit(eta)).astype(float)
+        if 0 < Y.sum() < Y.size:
+            return Y
+    raise AssertionError("could not draw a response with both values")
+
+
+def sym(M):
+    U = np.triu(M, 1)
+    return U + U.T
+
+
+def dyad_index(n, m, *, directed=True, two_mode=False, groups=None, within=True):
+    """(rows, cols) of the dyad set in row-major order (methods.md, "Dyads and relabelling")."""
+    rows, cols = [], []
+    for i in range(n):
+        for j in range(m):
+            if not two_mode:
+                if i == j or (not directed and i > j):
+                    continue
+                if groups is not None and within and groups[i] != groups[j]:
+                    continue
+            rows.append(i)
+            cols.append(j)
+    return np.array(rows), np.array(cols)
+
+
+def all_relabellings(n, m, *, two_mode=False, groups=None):
+    """Every relabelling (identity included): n!, n! m!, or within groups."""
+    if two_mode:
+        for a in itertools.permutations(range(n)):
+            for b in itertools.permutations(range(m)):
+                yield np.array(a), np.array(b)
+        return
+    if groups is None:
+        for a in itertools.permutations(range(n)):
+            yield np.array(a), np.array(a)
+        return
+    members = [np.flatnonzero(groups == g) for g in np.unique(groups)]
+    for combo in itertools.product(*[itertools.permutations(ix) for ix in members]):
+        p = np.arange(n)
+        for ix, moved in zip(members, combo):
+            p[ix] = moved
+        yield p, p
+
+
+# --- the oracle: plain Newton fit, LP separation test, score statistic -------------------
+def separated(X, y):
+    """Albert & Anderson (1984): the MLE is infinite iff some b has s_d x_d'b >= 0 for every
+    dyad with at least one strict (s_d = 2 y_d - 1); found by scipy's linprog (HiGHS)."""
+    A = np.where(y == 1, 1.0, -1.0)[:, None] * X
+    res = linprog(-A.sum(axis=0), A_ub=-A, b_ub=np.zeros(len(y)),
+                  bounds=[(-1, 1)] * X.shape[1], method="highs")
+    margins = A @ res.x
+    return margins.max() > 1e-7 and margins.min() > -1e-9 * max(1.0, margins.max())
+
+
+def newton_fit(X, y):
+    """Logistic MLE by plain Newton steps from zero, iterated to machine precision; None
+    when the data are separated.
+
+    The log likelihood is strictly concave, so a Newton run that settles proves a finite
+    maximum; a run that does not settle is referred to the LP test, and must be confirmed
+    there (else the oracle itself is in doubt and the test fails).
+    """
+    b = np.zeros(X.shape[1])
+    for _ in range(100):
+        mu = expit(X @ b)
+        H = X.T @ ((mu * (1 - mu))[:, None] * X)
+        try:
+            step = np.linalg.solve(H, X.T @ (y - mu))
+        except np.linalg.LinAlgError:
+            break
+        b = b + step
+        if np.max(np.abs(step)) < 1e-13 * (1 + np.max(np.abs(b))):
+            mu = expit(X @ b)
+            return b, np.linalg.inv(X.T @ ((mu * (1 - mu))[:, None] * X))
+    assert separated(X, y), "oracle Newton fit did not settle on non-separated data"
+    return None
+
+
+def wald(X, y, col, statistic):
+    fit = newton_fit(X, y)
+    if fit is None:
+        return np.nan
+    b, cov = fit
+    return b[col] / math.sqrt(cov[col, col]) if statistic == "t" else b[col]
+
+
+def score_stat(Z, x, y):
+    """Rao (1948) score statistic of x added to the reduced model y ~ Z:
+    U / sqrt(x'Wx - x'WZ (Z'WZ)^-1 Z'Wx), W from the reduced fit."""
+    fit = newton_fit(Z, y)
+    if fit is None:
+        return np.nan
+    mu = expit(Z @ fit[0])
+    w = mu * (1 - mu)
+    zwx = Z.T @ (w * x)
+    info = x @ (w * x) - zwx @ np.linalg.solve(Z.T @ (w[:, None] * Z), zwx)
+    return x @ (y - mu) / math.sqrt(info)
+
+
+def oracle_stats(Y, Xs, scheme, statistic, prow, pcol, rows, cols):
+    """The k statistics of one relabelling, by full refits (runner/logistic.py docstring).
+
+    y: relabel Y, fit y_pi on [1, X] (Wald) or score each x_j under y_pi ~ Z_j.
+    dsp: e_j = x_j - Z_j c (least squares over the observed complete dyads) as a matrix,
+    relabel it, fit y on [Z_j, e_pi] (Wald) or score e_pi under y ~ Z_j.
+    Each fit uses the dyads where every vector of that fit is finite (methods.md).
+    """
+    k = len(Xs)
+    X = np.column_stack([np.ones(len(rows))] + [M[rows, cols] for M in Xs])
+    y = Y[rows, cols]
+    out = np.empty(k)
+    if scheme == "y":
+        y_pi = relabel(Y, prow, pcol)[rows, cols]
+        ok = np.isfinite(y_pi) & np.isfinite(X).all(axis=1)
+        for j in range(k):
+            if statistic == "score":
+                Z = np.delete(X, j + 1, axis=1)
+                out[j] = score_stat(Z[ok], X[ok, j + 1], y_pi[ok])
+            else:
+                out[j] = wald(X[ok], y_pi[ok], j + 1, statistic)
+        return out
+    ok0 = np.isfinite(y) & np.isfinite(X).all(axis=1)
+    for j in range(k):
+        others = [c for c in range(k) if c != j]
+        Z = np.delete(X, j + 1, axis=1)
+        c, *_ = np.linalg.lstsq(Z[ok0], X[ok0, j + 1], rcond=None)
+        E = Xs[j] - c[0] - sum(cc * Xs[o] for cc, o in zip(c[1:], others))
+        e_pi = relabel(E, prow, pcol)[rows, cols]
+        D = np.column_stack([Z, e_pi])
+        ok = np.isfinite(y) & np.isfinite(D).all(axis=1)
+        if statistic == "score":
+            out[j] = score_stat(Z[ok], e_pi[ok], y[ok])
+        else:
+            out[j] = wald(D[ok], y[ok], k, statistic)
+    return out
+
+
+def oracle(Y, Xs, scheme, statistic, *, directed=True, two_mode=False, groups=None,
+           within=True):
+    n, m = Y.shape
+    rows, cols = dyad_index(n, m, directed=directed, two_mode=two_mode, groups=groups,
+                            within=within)
+    ident = np.arange(n), np.arange(m)
+    obs = oracle_stats(Y, Xs, scheme, statistic, *ident, rows, cols)
+    null = np.array([oracle_stats(Y, Xs, scheme, statistic, a, b, rows, cols)
+                     for a, b in all_relabellings(n, m, two_mode=two_mode, groups=groups)])
+    return obs, null
+
+
+def exact_counts(obs, null):
+    """b (two-sided, greater, less) with the tie rule of methods.md (relative 1e-9) and a
+    failed fit (NaN) counted as at least as extreme."""
+    tol = TIE_RTOL * np.abs(obs)
+    bad = np.isnan(null)
+    with np.errstate(invalid="ignore"):
+        two = ((np.abs(null) >= np.abs(obs) - tol) | bad).sum(axis=0)
+        greater = ((null >= obs - tol) | bad).sum(axis=0)
+        less = ((null <= obs + tol) | bad).sum(axis=0)
+    return two, greater, less
+
+
+def check_exact(res, obs, null):
+    total = null.shape[0]
+    assert res.exact is True and res.permutations == total
+    # source: exact brute-force enumeration — the observed statistics
+    np.testing.assert_allclose(res.stat[1:], obs, rtol=FIT_RTOL, atol=FIT_ATOL)
+    # source: exact brute-force enumeration — the whole null, order-free, failures included
+    np.testing.assert_allclose(np.sort(np.asarray(res.null), axis=0), np.sort(null, axis=0),
+                               rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_array_equal(res.failed, np.isnan(null).sum(axis=0))
+    # source: exact enumeration — p = b / total, the identity counted (methods.md)
+    two, greater, less = exact_counts(obs, null)
+    np.testing.assert_allclose(res.p[1:], two / total, rtol=0, atol=P_ATOL)
+    np.testing.assert_allclose(res.p_greater[1:], greater / total, rtol=0, atol=P_ATOL)
+    np.testing.assert_allclose(res.p_less[1:], less / total, rtol=0, atol=P_ATOL)
+
+
+# --- observed fit vs statsmodels -------------------------------------------------------------
+@pytest.mark.parametrize("shape", ["directed", "undirected", "two-mode", "missing"])
+@pytest.mark.parametrize("scheme", ["y", "dsp"])
+def test_observed_fit_matches_statsmodels(rng, shape, scheme):
+    n, m = (20, 20) if shape != "two-mode" else (15, 22)
+    X1 = rng.normal(size=(n, m))
+    X2 = 0.5 * X1 + rng.gamma(2.0, size=(n, m))
+    if shape == "undirected":
+        X1, X2 = sym(X1), sym(X2)
+    eta = -1.0 + 0.8 * X1 - 0.4 * X2
+    Y = binary_response(rng, sym(eta) if shape == "undirected" else eta)
+    if shape == "undirected":
+        Y = sym(Y)
+    if shape == "missing":
+        Y[rng.random((n, m)) < 0.05] = np.nan
+        X2[rng.random((n, m)) < 0.05] = np.nan
+    res = dp.regress(Y, {"kin": X1, "canal": X2}, model="logistic", scheme=scheme,
+                     permutations=9, seed=1)
+    rows, cols = dyad_index(n, m, directed=shape != "undirected", two_mode=shape == "two-mode")
+    X = sm.add_constant(np.column_stack([X1[rows, cols], X2[rows, cols]]))
+    y = Y[rows, cols]
+    ok = np.isfinite(y) & np.isfinite(X).all(axis=1)
+    logit = sm.Logit(y[ok], X[ok]).fit(disp=0, tol=1e-12)
+    glm = sm.GLM(y[ok], X[ok], family=sm.families.Binomial()).fit(tol=1e-12)
+    assert res.terms == ("intercept", "kin", "canal")
+    assert res.model == "logistic" and res.n_dyads == int(ok.sum())
+    # source: statsmodels Logit on the vectorised dyads (complete ones)
+    np.testing.assert_allclose(res.coef, logit.params, rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_allclose(res.se, logit.bse, rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_allclose(res.stat, logit.tvalues, rtol=FIT_RTOL, atol=FIT_ATOL)
+    # source: statsmodels GLM(Binomial): same estimates, and its deviance
+    np.testing.assert_allclose(res.coef, glm.params, rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_allclose(res.stat, glm.tvalues, rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_allclose(res.deviance, glm.deviance, rtol=FIT_RTOL)
+    assert np.isnan(res.r2)
+    assert "Wald z" in res.table()
+
+
+@pytest.mark.parametrize("scheme", ["y", "dsp"])
+def test_observed_score_matches_statsmodels_score_test(rng, scheme):
+    n = 18
+    X1, X2 = rng.normal(size=(n, n)), rng.normal(size=(n, n))
+    Y = binary_response(rng, -0.5 + 0.6 * X1 + 0.2 * X2)
+    res = dp.regress(Y, {"a": X1, "b": X2}, model="logistic", scheme=scheme,
+                     statistic="score", permutations=9, seed=1)
+    rows, cols = dyad_index(n, n)
+    X = sm.add_constant(np.column_stack([X1[rows, cols], X2[rows, cols]]))
+    y = Y[rows, cols]
+    assert np.isnan(res.stat[0])
+    for j in (1, 2):
+        reduced = sm.GLM(y, np.delete(X, j, axis=1), family=sm.families.Binomial()).fit(tol=1e-12)
+        # source: statsmodels GLMResults.score_test (Rao 1948): chi2 = U^2 / I
+        chi2 = reduced.score_test(exog_extra=X[:, j:j + 1])[0]
+        np.testing.assert_allclose(res.stat[j] ** 2, float(np.squeeze(chi2)), rtol=1e-7)
+        # the sign is that of U = x'(y - mu) (the definition of the signed statistic)
+        assert np.sign(res.stat[j]) == np.sign(X[:, j] @ (y - reduced.fittedvalues))
+    # score and Wald statistics are asymptotically equivalent (Rao 1948) [memory]: close here
+    wald_res = dp.regress(Y, {"a": X1, "b": X2}, model="logistic", scheme=scheme,
+                          permutations=9, seed=1)
+    np.testing.assert_allclose(res.stat[1:], wald_res.stat[1:], rtol=0.15)
+
+
+# --- exact p-values vs brute-force enumeration -------------------------------------------
+@pytest.mark.parametrize("statistic", ["t", "coef", "score"])
+@pytest.mark.parametrize("scheme", ["y", "dsp"])
+def test_exact_n6_matches_bruteforce(rng, scheme, statistic):
+    n = 6
+    X1 = rng.normal(size=(n, n))
+    X2 = 0.5 * X1 + rng.normal(size=(n, n))
+    Y = binary_response(rng, 0.9 * X1 - 0.3)
+    res = dp.regress(Y, {"a": X1, "b": X2}, model="logistic", scheme=scheme,
+                     statistic=statistic, exact=True, seed=0)
+    # source: exact enumeration over all 6! = 720 relabellings, refitted by the oracle
+    obs, null = oracle(Y, [X1, X2], scheme, statistic)
+    assert null.shape == (720, 2)
+    check_exact(res, obs, null)
+
+
+@pytest.mark.parametrize("case", ["two-mode", "groups-within", "groups-all", "missing",
+                                  "undirected"])
+@pytest.mark.parametrize("scheme,statistic", [("y", "t"), ("dsp", "t"), ("dsp", "score"),
+                                              ("y", "score")])
+def test_exact_data_shapes_match_bruteforce(rng, case, scheme, statistic):
+    kw = {}
+    groups = None
+    two_mode = case == "two-mode"
+    n, m = (3, 4) if two_mode else (6, 6)
+    if case.startswith("groups"):
+        n = m = 8
+        groups = np.array([0, 1, 1, 0, 0, 1, 0, 1])
+        kw = dict(groups=groups, dyads=case.split("-")[1])
+    X1 = rng.normal(size=(n, m))
+    X2 = rng.normal(size=(n, m)) + 0.4 * X1
+    if case == "undirected":
+        X1, X2 = sym(X1), sym(X2)
+    Y = binary_response(rng, 0.8 * X1)
+    if case == "undirected":
+        Y = sym(Y)
+    if case == "missing":
+        Y[0, 3] = Y[4, 1] = np.nan
+        X1[2, 5] = np.nan
+        X2[3, 0] = np.nan
+    res = dp.regress(Y, {"a": X1, "b": X2}, model="logistic", scheme=scheme,
+                     statistic=statistic, exact=True, seed=0, **kw)
+    # source: exact enumeration (n! m!, or the product over groups of n_g!)
+    obs, null = oracle(Y, [X1, X2], scheme, statistic, directed=case != "undirected",
+                       two_mode=two_mode, groups=groups, within=case != "groups-all")
+    expected = {"two-mode": 144, "groups-within": 576, "groups-all": 576}.get(case, 720)
+    assert null.shape[0] == expected
+    check_exact(res, obs, null)
+
+
+def test_permuted_separation_counts_as_extreme(rng):
+    # a sparse response and a binary predictor: many relabellings put no 1 of the
+    # response where the predictor is 1 — quasi-complete separation, no finite MLE
+    n = 6
+    X1 = np.zeros((n, n))
+    X1[[0, 0, 1, 2, 3, 4, 5], [1, 2, 0, 3, 5, 1, 4]] = 1.0
+    X2 = rng.normal(size=(n, n))
+    Y = np.zeros((n, n))
+    Y[[0, 1, 2, 4, 5, 3], [1, 3, 3, 0, 2, 4]] = 1.0
+    res = dp.regress(Y, {"tie": X1, "x": X2}, model="logistic", scheme="y", exact=True, seed=0)
+    # source: exact enumeration, separation decided by the LP of Albert & Anderson (1984)
+    obs, null = oracle(Y, [X1, X2], "y", "t")
+    assert np.isfinite(obs).all()
+    n_sep = int(np.isnan(null[:, 0]).sum())
+    assert 50 < n_sep < 700  # the case exercises failed fits
+    check_exact(res, obs, null)
+    assert res.failed[0] == n_sep
+    assert f"tie: {n_sep}" in res.table()
+    # the score statistic needs only the reduced fit: the test of 'tie' (reduced model
+    # [1, x]) never fails, the test of 'x' fails where [1, tie] separates y_pi
+    score = dp.regress(Y, {"tie": X1, "x": X2}, model="logistic", scheme="y",
+                       statistic="score", exact=True, seed=0)
+    check_exact(score, *oracle(Y, [X1, X2], "y", "score"))
+    assert score.failed[0] == 0 and score.failed[1] == n_sep
+
+
+# --- separation in the observed fit, and other errors ---------------------------------------
+def test_observed_separation_names_the_predictor(rng):
+    n = 12
+    crop = (rng.random((n, n)) < 0.4).astype(float)
+    Y = binary_response(rng, np.full((n, n), -0.5))
+    Y[crop == 1] = 1.0  # every dyad with crop = 1 has a tie: quasi-complete separation
+    dist = rng.normal(size=(n, n))
+    with pytest.raises(dp.NumericalError,
+                       match=r"logistic fit of 'response': the 0s and 1s are separated by "
+                             r"predictor 'crop', so .*Albert & Anderson 1984.*Firth's "
+                             r"penalised likelihood .*drop or merge categories of 'crop'"):
+        dp.regress(Y, {"dist": dist, "crop": crop}, model="logistic", permutations=9, seed=1)
+
+
+def test_observed_joint_separation_names_the_predictors(rng):
+    n = 14
+    a, b = rng.normal(size=(n, n)), rng.normal(size=(n, n))
+    Y = (a + b > 0).astype(float)  # neither alone separates, together they do
+    rows, cols = dyad_index(n, n)
+    for x in (a, b):
+        y0, y1 = x[rows, cols][Y[rows, cols] == 0], x[rows, cols][Y[rows, cols] == 1]
+        assert y0.max() > y1.min() and y1.max() > y0.min()
+    with pytest.raises(dp.NumericalError,
+                       match=r"separated by predictor '(a|b)' together with '(a|b)'"):
+        dp.regress(Y, {"a": a, "b": b}, model="logistic", permutations=9, seed=1)
+
+
+def test_non_binary_response_is_named(rng):
+    n = 5
+    Y = (rng.random((n, n)) < 0.5).astype(float)
+    Y[3, 1] = 2.0
+    Y[1, 4] = 0.5  # first in row-major order of the user's nodes
+    labels = ("ash", "birch", "cedar", "elm", "fir")
+    net = dp.Dyadic(Y, labels, directed=True, name="water")
+    with pytest.raises(dp.InputError, match=r"model='logistic' needs a 0/1 response; 'water' "
+                                            r"has 0\.5 at row 'birch', column 'fir'"):
+        dp.regress(net, [rng.normal(size=(n, n))], model="logistic", permutations=9)
+
+
+@pytest.mark.parametrize("kw,message", [
+    (dict(scheme="freedman-lane"), r"scheme 'freedman-lane' is not offered for "
+                                   r"model='logistic': .*not 0/1"),
+    (dict(scheme="x"), r"scheme must be one of y, dsp for model='logistic'; got 'x'"),
+    (dict(statistic="r"), r"statistic must be one of t, coef, score for model='logistic'; "
+                          r"got 'r'"),
+    (dict(storage="float32"), r"storage must be 'float64' for model='logistic'; got 'float32'"),
+])
+def test_setting_errors(rng, kw, message):
+    Y = (rng.random((5, 5)) < 0.5).astype(float)
+    with pytest.raises(dp.InputError, match=message):
+        dp.regress(Y, [rng.normal(size=(5, 5))], model="logistic", permutations=9, **kw)
+
+
+def test_response_without_variation(rng):
+    with pytest.raises(dp.InputError, match=r"no variation over the dyad set"):
+        dp.regress(np.zeros((5, 5)), [rng.normal(size=(5, 5))], model="logistic",
+                   permutations=9)
+
+
+# --- score vs refit decisions, invariances, run files --------------------------------------
+def test_score_and_refit_agree_on_a_clear_case(rng):
+    n = 25
+    kin = rng.normal(size=(n, n))
+    canal = 0.4 * kin + rng.normal(size=(n, n))
+    Y = binary_response(rng, -1.0 + 1.2 * kin)  # kin: strong effect; canal: true null
+    kw = dict(model="logistic", permutations=199, seed=7)
+    for scheme in ("y", "dsp"):
+        refit = dp.regress(Y, {"kin": kin, "canal": canal}, scheme=scheme, **kw)
+        score = dp.regress(Y, {"kin": kin, "canal": canal}, scheme=scheme,
+                           statistic="score", **kw)
+        # common practice: decisions at alpha = 0.05 agree on a clear case
+        assert refit.p[1] == score.p[1] == 1 / 200  # nothing as extreme as kin
+        assert refit.p[2] > 0.2 and score.p[2] > 0.2
+        # the relabelled statistics of the two agree closely (asymptotic equivalence)
+        assert np.corrcoef(refit.null[:, 1], score.null[:, 1])[0, 1] > 0.99
+
+
+@pytest.mark.parametrize("scheme,statistic", [("y", "t"), ("dsp", "t"), ("dsp", "score"),
+                                              ("y", "score")])
+def test_null_independent_of_chunks_and_jobs(rng, scheme, statistic):
+    n = 15
+    X1, X2 = rng.normal(size=(n, n)), rng.normal(size=(n, n))
+    Y = binary_response(rng, 0.5 * X1)
+    Y[2, 7] = np.nan  # the masked paths too
+    kw = dict(model="logistic", scheme=scheme, statistic=statistic, permutations=60, seed=3)
+    base = dp.regress(Y, [X1, X2], chunk_size=60, **kw)
+    for other in (dict(chunk_size=7), dict(chunk_size=13, jobs=2)):
+        res = dp.regress(Y, [X1, X2], **other, **kw)
+        # engine contract (design.md): bit-identical for any chunking and jobs
+        np.testing.assert_array_equal(np.asarray(res.null), np.asarray(base.null))
+
+
+def test_run_file_round_trip(rng, tmp_path):
+    n = 10
+    X1 = rng.normal(size=(n, n))
+    Y = binary_response(rng, X1)
+    path = tmp_path / "run.h5"
+    res = dp.regress(Y, {"a": X1}, model="logistic", permutations=50, seed=2, out=path)
+    back = dp.open_result(path)
+    assert back.model == "logistic" and np.isnan(back.r2)
+    np.testing.assert_array_equal(np.asarray(back.null), np.asarray(res.null))
+    np.testing.assert_array_equal(back.p, res.p)
+    assert back.deviance == res.deviance
+
+
+# --- kernels vs plain-numpy twins ---------------------------------------------------------
+def irls_twin(X, cols, y, valid, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL):
+    """Twin of kernels.irls.irls_logistic: Newton steps with halving while the deviance
+    rises, converged when every |step| <= tol (1 + |b|); (status, beta, cov)."""
+    Xv = X[valid][:, cols]
+    yv = y[valid]
+    q = len(cols)
+    if Xv.shape[0] <= q:
+        return kn.FAIL_DYADS, None, None
+
+    def parts(b):
+        eta = Xv @ b
+        mu = expit(eta)
+        dev = 2 * np.sum(np.logaddexp(0, eta) - yv * eta)
+        return dev, Xv.T @ ((mu * (1 - mu))[:, None] * Xv), Xv.T @ (yv - mu)
+
+    beta = np.array(beta0, dtype=float)
+    dev, H, g = parts(beta)
+    for it in range(1, max_iter + 1):
+        try:
+            np.linalg.cholesky(H)
+        except np.linalg.LinAlgError:
+            return kn.FAIL_SINGULAR, None, None
+        step = np.linalg.solve(H, g)
+        for h in range(kn.MAX_HALVINGS + 1):
+            trial = beta + 0.5 ** h * step
+            dev_new, H_new, g_new = parts(trial)
+            if dev_new <= dev + kn.DEVIANCE_SLACK * (abs(dev) + 1):
+                break
+        else:
+            return kn.FAIL_STEP, None, None
+        done = np.all(np.abs(0.5 ** h * step) <= tol * (1 + np.abs(trial)))
+        beta, dev, H, g = trial, dev_new, H_new, g_new
+        if done:
+            return it, beta, np.linalg.inv(H)
+    return kn.FAIL_ITERATIONS, None, None
+
+
+def score_twin(X, zcols, xcol, y, valid, gamma, cinv):
+    """Twin of kernels.irls.score_logistic (Rao 1948), with numpy vector operations."""
+    Z = X[valid][:, zcols]
+    x = X[valid, xcol]
+    mu = expit(Z @ gamma)
+    w = mu * (1 - mu)
+    a = Z.T @ (w * x)
+    info = x @ (w * x) - a @ cinv @ a
+    return x @ (y[valid] - mu) / np.sqrt(info) if info > 0 else np.nan
+
+
+def run_irls(X, cols, y, valid, beta0):
+    q = len(cols)
+    beta, cov = np.full(q, np.nan), np.full((q, q), np.nan)
+    status = kn.irls_logistic(X, np.asarray(cols, np.int64), y, valid, np.asarray(beta0, float),
+                              np.empty((2 * q + 5, q)), beta, cov, lg.MAX_ITER, lg.TOL)
+    return status, beta, cov
+
+
+@pytest.mark.parametrize("N,q", [(3, 1), (7, 2), (40, 3), (301, 4), (1000, 5)])
+def test_irls_kernel_matches_twin(rng, N, q):
+    P = q + 2
+    X = rng.normal(size=(N, P))
+    X[:, 0] = 1.0
+    X[rng.integers(N), P - 1] = np.nan  # a column outside the fit may hold NaN
+    cols = np.array([0] + list(rng.choice(np.arange(1, P - 1), size=q - 1, replace=False)),
+                    dtype=np.int64) if q > 1 else np.array([0], np.int64)
+    y = (rng.random(N) < expit(X[:, cols] @ rng.normal(scale=0.7, size=q))).astype(float)
+    valid = rng.random(N) < 0.9
+    beta0 = rng.normal(scale=0.3, size=q)
+    status, beta, cov = run_irls(X, cols, y, valid, beta0)
+    t_status, t_beta, t_cov = irls_twin(X, cols, y, valid, beta0)
+    assert status == t_status
+    if status > 0:
+        np.testing.assert_allclose(beta, t_beta, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+        np.testing.assert_allclose(cov, t_cov, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+        # source: statsmodels Logit on the same rows
+        sm_fit = sm.Logit(y[valid], X[valid][:, cols]).fit(disp=0, tol=1e-12)
+        np.testing.assert_allclose(beta, sm_fit.params, rtol=FIT_RTOL, atol=FIT_ATOL)
+        np.testing.assert_allclose(np.sqrt(np.diag(cov)), sm_fit.bse, rtol=FIT_RTOL)
+        # the score of a column at the fit of the others: kernel vs twin
+        zc = cols[:-1] if q > 1 else cols
+        xc = int(cols[-1]) if q > 1 else 1
+        if q > 1:
+            st2, g2, c2 = run_irls(X, zc, y, valid, np.zeros(len(zc)))
+            if st2 > 0:
+                s = kn.score_logistic(X, zc, xc, y, valid, g2, c2, np.empty((2, len(zc))))
+                np.testing.assert_allclose(s, score_twin(X, zc, xc, y, valid, g2, c2),
+                                           rtol=TWIN_RTOL, atol=TWIN_ATOL)
+
+
+def test_irls_kernel_failure_codes(rng):
+    X = np.column_stack([np.ones(8), np.arange(8.0)])
+    y = (np.arange(8) >= 4).astype(float)  # x separates y completely
+    valid = np.ones(8, dtype=bool)
+    # diverging coefficients: no convergence, or an information that underflows to singular
+    assert run_irls(X, np.arange(2), y, valid, np.zeros(2))[0] in (kn.FAIL_ITERATIONS,
+                                                                    kn.FAIL_SINGULAR)
+    assert irls_twin(X, np.arange(2), y, valid, np.zeros(2))[0] < 0
+    assert separated(X, y)  # source: the LP of Albert & Anderson (1984)
+    few = np.zeros(8, dtype=bool)
+    few[:2] = True
+    assert run_irls(X, np.arange(2), y, few, np.zeros(2))[0] == kn.FAIL_DYADS
+    dup = np.column_stack([np.ones(8), np.ones(8)])  # singular information
+    y2 = np.array([0, 1, 0, 1, 1, 0, 0, 1], float)
+    assert run_irls(dup, np.arange(2), y2, valid, np.zeros(2))[0] == kn.FAIL_SINGULAR
+
+
+def _driver_inputs(rng, n, m, k, two_mode, nan):
+    p = k + 1
+    rows, cols = dyad_index(n, m, two_mode=two_mode)
+    N = len(rows)
+    X = np.column_stack([np.ones(N), rng.normal(size=(N, k))])
+    layer_y = (rng.random((n, m)) < 0.4).astype(float)
+    layer_e = rng.normal(size=(n, m, k))
+    y = (rng.random(N) < 0.4).astype(float)
+    if nan:
+        layer_y[rng.integers(n), rng.integers(m)] = np.nan
+        layer_e[rng.integers(n), rng.integers(m), 0] = np.nan
+        X[rng.integers(N), 1] = np.nan
+    B = 5
+    rp = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
+    cp = np.array([rng.permutation(m) for _ in range(B)], dtype=np.int64) if two_mode else rp
+    return dict(rows=rows.astype(np.int64), cols=cols.astype(np.int64), X=X, y=y,
+                layer_y=layer_y, layer_e=layer_e, rp=rp, cp=cp, p=p, k=k, N=N)
+
+
+SIZES = [(3, 3, 1, False), (2, 3, 1, True), (7, 7, 2, False), (5, 6, 3, True)]
+
+
+@pytest.mark.parametrize("n,m,k,two_mode", SIZES)
+@pytest.mark.parametrize("nan", [False, True])
+def test_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
+    d = _driver_inputs(rng, n, m, k, two_mode, nan)
+    X, p, B = d["X"], d["p"], d["rp"].shape[0]
+    fixed_ok = np.isfinite(X).all(axis=1)
+    beta0 = rng.normal(scale=0.1, size=p)
+    for use_z in (True, False):
+        out = np.empty((B, k))
+        kn.refit_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, beta0,
+                   out, lg.MAX_ITER, lg.TOL, use_z)
+        for b in range(B):
+            yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+            st, beta, cov = irls_twin(X, np.arange(p), yb, fixed_ok & np.isfinite(yb), beta0)
+            want = (np.full(k, np.nan) if st < 0 else
+                    beta[1:] / np.sqrt(np.diag(cov)[1:]) if use_z else beta[1:])
+            np.testing.assert_allclose(out[b], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    zcols = lg._reduced_columns(k)
+    design = np.concatenate([zcols, np.full((k, 1), p, np.int64)], axis=1)
+    ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
+    b0 = rng.normal(scale=0.1, size=(k, p))
+    out = np.empty((B, k))
+    kn.refit_dsp(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok, design,
+                 b0, out, lg.MAX_ITER, lg.TOL, True)
+    for b in range(B):
+        for a in range(k):
+            e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+            Xb = np.column_stack([X, e])
+            st, beta, cov = irls_twin(Xb, design[a], d["y"], ok[a] & np.isfinite(e), b0[a])
+            want = np.nan if st < 0 else beta[-1] / np.sqrt(cov[-1, -1])
+            np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+
+
+def score_rows_twin(E, F, resid_at, weight_at, x_at, rp, cp, col_start, col_stop):
+    """Twin of kernels.irls.score_rows with relabelled matrices built by M[np.ix_(p, q)]:
+    for term a, over the cells j in [col_start[i], col_stop[i]) of each row i,
+    U = sum e r, Q = sum w e^2, S_0 = sum w e, S_c = sum w e x_c (e relabelled)."""
+    n, K, m = E.shape
+    jj = np.arange(m)[None, :]
+    cells = (jj >= col_start[:, None]) & (jj < col_stop[:, None])
+    out = np.empty((rp.shape[0], K, x_at.shape[1] + 3))
+    for b in range(rp.shape[0]):
+        for a in range(K):
+            e = relabel(E[:, a, :], rp[b], cp[b])[cells]
+            r, w = F[:, resid_at[a], :][cells], F[:, weight_at[a], :][cells]
+            sums = [e @ r, w @ (e * e), w @ e] + [(w * e) @ F[:, c, :][cells] for c in x_at[a]]
+            out[b, a] = sums
+    return out
+
+
+ROW_CASES = [(*size, ranges) for size in SIZES + [(4, 4, 5, False)]
+             for ranges in ("full", "upper", "ragged")
+             if not (ranges == "upper" and size[3])]  # a triangle is a one-mode dyad set
+
+
+@pytest.mark.parametrize("n,m,k,two_mode,ranges", ROW_CASES)
+def test_score_rows_matches_twin(rng, n, m, k, two_mode, ranges):
+    B = 11  # more than one block of permutations, and a partial block
+    E = rng.normal(size=(n, k, m))
+    F = rng.normal(size=(n, 2 * k + k, m))
+    F[:, k:2 * k, :] = rng.random(size=(n, k, m))  # weights
+    resid_at = np.arange(k, dtype=np.int64)
+    weight_at = np.arange(k, 2 * k, dtype=np.int64)
+    x_at = np.array([[2 * k + c for c in range(k) if c != a] for a in range(k)],
+                    dtype=np.int64).reshape(k, k - 1)
+    rp = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
+    cp = np.array([rng.permutation(m) for _ in range(B)], dtype=np.int64) if two_mode else rp
+    if ranges == "full":
+        cs, ce = np.zeros(n, np.int64), np.full(n, m, np.int64)
+    elif ranges == "upper":
+        cs, ce = np.arange(1, n + 1, dtype=np.int64), np.full(n, m, np.int64)
+    else:
+        cs = rng.integers(0, m + 1, size=n).astype(np.int64)
+        ce = np.array([rng.integers(s, m + 1) for s in cs], dtype=np.int64)
+    for block in (1, 4, 8):
+        out = np.empty((B, k, k + 2))
+        kn.score_rows(E.reshape(-1), k, F.reshape(-1), F.shape[1], resid_at, weight_at, x_at,
+                      rp, cp, cs, ce, np.empty((block, m), np.int64),
+                      np.empty((block, k, k + 2)), out)
+        want = score_rows_twin(E, F, resid_at, weight_at, x_at, rp, cp, cs, ce)
+        np.testing.assert_allclose(out, want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+        if block == 1:
+            first = out.copy()
+        else:  # the same bits whatever the block (kernels.irls.score_rows notes)
+            np.testing.assert_array_equal(out, first)
+    # the statistic from the sums: U / sqrt(Q - S'(Z'WZ)^-1 S) (Rao 1948)
+    A = rng.normal(size=(k, k, k))
+    cinv = np.array([a @ a.T + k * np.eye(k) for a in A]) * 1e-3
+    stat = np.empty((B, k))
+    kn.score_from_sums(out, cinv, stat)
+    for b in range(B):
+        for a in range(k):
+            S = out[b, a, 2:]
+            info = out[b, a, 1] - S @ cinv[a] @ S
+            want = out[b, a, 0] / np.sqrt(info) if info > 0 else np.nan
+            np.testing.assert_allclose(stat[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+
+
+@pytest.mark.parametrize("n,m,k,two_mode", SIZES)
+@pytest.mark.parametrize("nan", [False, True])
+def test_score_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
+    d = _driver_inputs(rng, n, m, k, two_mode, nan)
+    X, p, B = d["X"], d["p"], d["rp"].shape[0]
+    zcols = lg._reduced_columns(k)
+    gamma = rng.normal(scale=0.3, size=(k, k))
+    out = np.empty((B, k))
+    # dsp with a reduced refit per relabelling
+    ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
+    kn.score_dsp_refit(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok,
+                       zcols, gamma, out, lg.MAX_ITER, lg.TOL)
+    for b in range(B):
+        for a in range(k):
+            e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+            Xb = np.column_stack([X, e])
+            valid = ok[a] & np.isfinite(e)
+            st, g, c = irls_twin(Xb, zcols[a], d["y"], valid, gamma[a])
+            want = np.nan if st < 0 else score_twin(Xb, zcols[a], p, d["y"], valid, g, c)
+            np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    # y: reduced refit per relabelling
+    fixed_ok = np.isfinite(X).all(axis=1)
+    kn.score_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, zcols, gamma,
+               out, lg.MAX_ITER, lg.TOL)
+    for b in range(B):
+        yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+        valid = fixed_ok & np.isfinite(yb)
+        for a in range(k):
+            st, g, c = irls_twin(X, zcols[a], yb, valid, gamma[a])
+            want = np.nan if st < 0 else score_twin(X, zcols[a], a + 1, yb, valid, g, c)
+            np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+
+
+def test_score_y_with_one_predictor_keeps_the_observed_reduced_fit(rng):
+    # one predictor, complete data: Z = intercept, sum y_pi = sum y for every relabelling,
+    # so the products-only route must equal a reduced refit (canonical-link sufficiency)
+    n = 9
+    x = rng.normal(size=(n, n))
+    Y = binary_response(rng, 0.7 * x)
+    res = dp.regress(Y, {"x": x}, model="logistic", scheme="y", statistic="score",
+                     permutations=40, seed=4)
+    rows, cols = dyad_index(n, n)
+    X = np.column_stack([np.ones(len(rows)), x[rows, cols]])
+    draws = dp.engine.Draws(dp.design.prepare(Y, {"x": x}).blocks, 40, 40, False, 4)
+    rp, _ = draws.permutations(0)
+    for b in range(40):
+        yb = relabel(Y, rp[b], rp[b])[rows, cols]
+        # source: Rao (1948) score statistic after a full reduced refit (the oracle)
+        np.testing.assert_allclose(res.null[b, 0], score_stat(X[:, :1], X[:, 1], yb),
+                                   rtol=1e-9, atol=1e-12)
