@@ -380,7 +380,11 @@ def test_sparse_network_and_scipy_input_agree(rng):
     Y = sparse_response(rng, n, 0.1, directed=True)
     preds = [dp.same(rng.integers(0, 2, n), name="club")]
     a = dp.regress(sp.coo_array(Y), preds, scheme="y", permutations=50, seed=1)
-    b = dp.regress(SparseNet(Y, True), preds, scheme="y", permutations=50, seed=1)
+    seen = []
+    b = dp.regress(SparseNet(Y, True), preds, scheme="y", permutations=50, seed=1,
+                   chunk_size=20, progress=lambda done, total: seen.append((done, total)))
+    assert seen[-1] == (50, 50) and len(seen) == 3  # one call per chunk of 20, 20, 10
+    # invariance (common practice): the same network as scipy.sparse or SparseNetwork
     assert a.terms == b.terms == ("intercept", "club")
     np.testing.assert_array_equal(np.asarray(a.null), np.asarray(b.null))
     np.testing.assert_array_equal(a.coef, b.coef)
