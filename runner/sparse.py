@@ -22,25 +22,28 @@ quantity that changes per relabelling is
 
 a sum over the response's E edges (substitute a = pi(i), b = pi(j); relabelling maps D
 onto itself). Derived predictors are evaluated from the attribute vectors at the two
-endpoints, sparse predictors by a binary search in their rows (sorted column indices;
-the response's edges are sorted by source, so a row is fetched once per source). Everything
-else in the Gram matrix of v = [1, y, x_1..x_k] is fixed: N, sum y and y'y are sums over
-the edges; the predictors' means and centred cross products X~'X~ come from closed forms
-over the attribute vectors (sums over groups of equal values for ``same``; sorted prefix sums for
-``gap``; a Fenwick tree for ``gap`` x ``gap``; separable sums for ``sender``, ``receiver``
-and ``pair_sum``), or from sums over a sparse predictor's edges. ``sender``,
+endpoints; sparse predictors by a binary search in their rows (sorted column indices; the
+response's edges are sorted by source, so a row is fetched once per source). ``sender``,
 ``receiver`` and ``pair_sum`` read one endpoint at a time, so their g_c are sums over
-nodes of the response's out- and in-strengths: O(n) per relabelling. The per-permutation Gram
-(standardised like the dense path's) goes through the same finishing kernels as the
-dense engine (``kernels.stats.regression_stats`` with the y-scheme map, and
-``correlation_stats``). QAP correlation (Mantel 1967; Hubert & Schultz 1976) relabels
-the second network as the dense path does: the sum runs over the first network's edges
-with the second read at (pi(a), pi(b)).
+nodes of the response's out- and in-strengths: O(n) per relabelling.
+
+Everything else in the Gram matrix of v = [1, y, x_1..x_k] is fixed: N, sum y and y'y are
+sums over the edges; the predictors' means and centred cross products X~'X~ come from
+closed forms over the attribute vectors (sums over groups of equal values for ``same``;
+sorted prefix sums for ``gap``; a Fenwick tree for ``gap`` x ``gap``; separable sums for
+``sender``, ``receiver`` and ``pair_sum``), or from sums over a sparse predictor's edges.
+The per-permutation Gram (standardised like the dense path's) goes through the same
+finishing kernels as the dense engine (``kernels.stats.regression_stats`` with the
+y-scheme map, and ``correlation_stats``). QAP correlation (Mantel 1967; Hubert & Schultz
+1976) relabels the second network as the dense path does: the sum runs over the first
+network's edges with the second read at (pi(a), pi(b)).
 
 The observed fit (coefficients, standard errors, t, R squared) is solved from the same
 closed-form Gram by the normal equations (a Cholesky factor of the standardised
-predictors' cross products), not by the QR of the dense path; a large condition number
-of the standardised predictors gives a warning, as on the dense path.
+predictors' cross products), not by the QR of the dense path. The normal equations lose
+digits as the square of the condition number: a condition number of the standardised
+predictors above 1e6 gives a warning, as on the dense path, and a predictor whose relative
+pivot is below ``NORMAL_PIVOT`` (1e-7) counts as collinear (an error).
 
 Spearman correlation: the ranks of a mostly-zero network have a closed form (all zero
 dyads share one average rank), so the response and sparse predictors keep their sparsity;
