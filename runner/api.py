@@ -10,16 +10,16 @@ from typing import Any, Callable
 import numpy as np
 
 from . import design as _design
+from . import precision as _precision
 from . import sparse as _sparse
 from . import store as _store
 from .engine import Draws, default_chunk_size, iter_chunks, run_all
 from .errors import DyadpermWarning, InputError
 from .permutations import EXACT_LIMIT, Blocks
-from .pvalues import pvalues
-from .result import CorrelationResult, RegressionResult
+from .result import CorrelationResult, LayerCorrelationResult, RegressionResult
 from .schemes import SCHEMES, STATISTICS, Plan, build_correlation_plan, build_plan
 
-MODELS = ("linear",)
+MODELS = ("linear", "logistic")
 BACKENDS = ("threads", "processes", "dask")
 # The permutation statistic of the identity relabelling must agree with the classical
 # t statistic of the QR fit to this relative tolerance, else the Gram route lost precision.
@@ -103,7 +103,10 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
         raise InputError(f"backend must be one of {', '.join(BACKENDS)}; got {backend!r}")
     if (backend == "dask") != (scheduler is not None):
         raise InputError("backend 'dask' and a scheduler address go together")
-    n, m = prep.mask.shape
+    if shard and _precision.StopRule.from_dict(summary.get("stop")).active:
+        raise InputError("stop: a stop rule reads the chunks in order; it cannot be combined "
+                         f"with shard (got shard {shard!r})")
+    n, m = prep.blocks.n_rows, prep.blocks.n_cols
     # the observed statistic goes through the same kernels as the permuted ones
     ident_perm = np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :]
     observed = plan.statistics(*ident_perm)[0]
@@ -117,6 +120,10 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
         draws = _draws(prep.blocks, permutations=permutations, exact=exact, entropy=entropy,
                        chunk_size=cs)
         _store.check_same_run(out, hdr, _identity(prep, draws, settings))
+        if _precision.StopRule.from_dict(hdr.summary.get("stop")) \
+                != _precision.StopRule.from_dict(summary.get("stop")):
+            # the stop rule says how the stored statistics are read: keep the file's in step
+            _store.replace_summary(out, {**hdr.summary, "stop": summary.get("stop")})
         if draws.total > hdr.permutations:
             _store.grow(out, draws.total)
         elif draws.total < hdr.permutations:
@@ -133,24 +140,46 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
                 study_text=prov.get("study_text", ""), study_path=prov.get("study_path", ""),
                 summary=summary, observed={**observed_fit, "kernel_stat": observed}))
     tick = _ticker(progress, draws.total)
+    # a stop rule (dyadperm.precision) reads the finished prefix at chunk boundaries
+    seq = _precision.sequential_for(summary.get("stop"), observed, exact=draws.exact,
+                                    chunk_size=draws.chunk_size, total=draws.total)
     if out is None:
+        if seq is not None:
+            return draws, observed, _precision.run_until(
+                seq, plan, draws, jobs=jobs, backend=backend, scheduler=scheduler, tick=tick,
+                progress=progress)
         null = run_all(plan, draws, jobs=jobs, backend=backend, scheduler=scheduler,
                        on_chunk=None if tick is None else (lambda c, st: tick(st.shape[0])))
         return draws, observed, null
+    if seq is not None:
+        _, prior, prior_done = _store.load(out, require_complete=False)
+        seq.start_from(prior, prior_done)
+        del prior
     with _store.Writer(out) as w:
         done = w.done_chunks()
         todo = _store.missing_chunks(done, shard)
+        if seq is not None and seq.stop_rows is not None:
+            todo = []
         if tick is not None:
             tick(sum(draws.chunk_rows(c)[1] for c in np.flatnonzero(done)))
-        for c, stats in iter_chunks(plan, draws, todo, jobs=jobs, backend=backend,
-                                    scheduler=scheduler):
-            w.write_chunk(c, draws.chunk_rows(c)[0], stats)
-            if tick is not None:
-                tick(stats.shape[0])
+        with _precision.closing(iter_chunks(plan, draws, todo, jobs=jobs, backend=backend,
+                                            scheduler=scheduler)) as chunks:
+            for c, stats in chunks:
+                w.write_chunk(c, draws.chunk_rows(c)[0], stats)
+                if tick is not None:
+                    tick(stats.shape[0])
+                if seq is not None and seq.feed(c, stats):
+                    _precision.finish_progress(progress, seq)
+                    break
     if shard:
         return draws, observed, None
-    _, null, _ = _store.load(out)
-    return draws, observed, null
+    if seq is None:
+        _, null, _ = _store.load(out)
+        return draws, observed, null
+    _, null, done = _store.load(out, require_complete=False)
+    rows = _precision.usable_rows(summary.get("stop"), null, done, observed, exact=draws.exact,
+                                  chunk_size=draws.chunk_size, total=draws.total, where=out)
+    return draws, observed, null[:rows]
 
 
 def _ticker(progress, total: int):
@@ -170,7 +199,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             dyads: str | None = None, exact: Any = "auto", chunk_size: int | None = None,
             out: Any = None, progress: bool | Callable[[int, int], None] = False,
             storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
-            shard: str | None = None, provenance: dict | None = None) -> RegressionResult:
+            shard: str | None = None, provenance: dict | None = None,
+            stop: Any = None) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
@@ -179,12 +209,13 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         The response network. NaN marks a missing dyad value.
     predictors : dict name -> network, or list
         Networks or derived predictors (``dyadperm.same`` ...), in model order.
-    model : {"linear"}
-        Least squares.
+    model : {"linear", "logistic"}
+        Least squares, or logistic regression of a 0/1 response (see dyadperm.logistic).
     scheme : {"y", "dsp", "freedman-lane"}
         How the null is built (see Notes).
-    statistic : {"t", "coef"}
-        Pivotal t (default) or the raw coefficient.
+    statistic : {"t", "coef", "score"}
+        Pivotal t (default; the Wald z for logistic) or the raw coefficient; "score"
+        (logistic only): the signed score statistic under each term's reduced model.
     permutations : int
         Random relabellings (or the cap for exact enumeration under ``exact="auto"``).
     seed : int, SeedSequence or None
@@ -212,6 +243,10 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Where chunks run; "dask" sends them to the Dask cluster at ``scheduler``.
     shard : str "i/N", optional
         Compute only shard i of N of the chunks into ``out`` (join with merge); returns None.
+    stop : {"none", "besag-clifford", "gandy"} or dyadperm.precision.StopRule, optional
+        Sequential stopping rule, applied at chunk boundaries to the finished prefix in
+        permutation order (same seed and chunk size, same stopping point, whatever
+        ``jobs``); a name takes the rule's defaults (see dyadperm.precision).
 
     Returns
     -------
@@ -224,7 +259,17 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     Freedman & Lane (1983, J. Bus. Econ. Stat. 1:292–298). p-values follow Phipson &
     Smyth (2010): (b + 1) / (m + 1) for random relabellings.
     """
+    rule = _precision.stop_rule(stop)
+    if model == "logistic":  # binary response: Newton refits or score statistics
+        from . import logistic as _logistic
+        _no_stop_rule(rule, "model 'logistic'")
+        return _logistic.regress(
+            y, predictors, scheme=scheme, statistic=statistic, permutations=permutations,
+            seed=seed, jobs=jobs, directed=directed, groups=groups, dyads=dyads, exact=exact,
+            chunk_size=chunk_size, out=out, progress=progress, storage=storage,
+            backend=backend, scheduler=scheduler, shard=shard, provenance=provenance)
     if _sparse.takes(y, predictors, scheme=scheme):  # sparse response, sparse/derived predictors
+        _no_stop_rule(rule, "the sparse path")
         return _sparse.regress(y, predictors, **_sparse_args(locals()))
     _check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
                   chunk_size=chunk_size)
@@ -243,6 +288,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     summary = _summary(prep, kind="regression", model=model, scheme=scheme,
                        statistic=statistic, method=None, n_dyads=fit.n_dyads,
                        terms=("intercept",) + prep.names)
+    summary["stop"] = rule.to_dict()
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
     draws, observed, null = _execute(
@@ -256,7 +302,13 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         _check_agreement(observed, fit.t[1:], prep.names)
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
-                        seed=None if draws.exact else draws.entropy)
+                        seed=None if draws.exact else draws.entropy, planned=draws.total)
+
+
+def _no_stop_rule(rule, where: str) -> None:
+    if rule.active:
+        raise InputError(f"stop: stop rules are not available on {where} yet; use "
+                         f"stop='none' (got {rule.rule!r})")
 
 
 def _summary(prep, *, kind, model, scheme, statistic, method, n_dyads, terms) -> dict:
@@ -268,10 +320,17 @@ def _summary(prep, *, kind, model, scheme, statistic, method, n_dyads, terms) ->
 
 
 def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk_size: int,
-                 seed: int | None):
-    """The result object from what a run stores: used by live runs and by open_result."""
-    pv = pvalues(np.asarray(null), np.asarray(observed["kernel_stat"], dtype=np.float64),
-                 exact=exact)
+                 seed: int | None, planned: int | None = None):
+    """The result object from what a run stores: used by live runs and by open_result.
+
+    ``null`` holds the rows the run uses (a stopped run: up to its stopping point);
+    ``planned`` is the total the run was planned with (default: those rows).
+    """
+    st = _precision.assess(np.asarray(null),
+                           np.asarray(observed["kernel_stat"], dtype=np.float64),
+                           exact=exact, stop=summary.get("stop"), planned=planned)
+    pv = st.pv
+    tested = dict(p_adjusted=st.p_adjusted, stop_at=st.stop_at, stop_verdict=st.verdict)
     common = dict(
         terms=tuple(summary["terms"]), se=np.asarray(observed["se"], dtype=np.float64),
         stat=np.asarray(observed["stat"], dtype=np.float64),
@@ -280,15 +339,25 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
         scheme=summary["scheme"], model=summary["model"], statistic=summary["statistic"],
         seed=seed, directed=bool(summary["directed"]), two_mode=bool(summary["two_mode"]),
         response=summary["response"], exceed=pv.exceed, failed=pv.failed,
-        chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())))
+        chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())) + st.notes,
+        alpha=st.rule.alpha, stop=st.rule.to_dict(), stopped_by=st.stopped_by,
+        planned=st.planned)
     if summary["kind"] == "correlation":
         return CorrelationResult(p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less,
                                  p_se=pv.p_se, p_interval=pv.p_interval,
                                  r=np.asarray(observed["coef"], dtype=np.float64),
-                                 method=summary["method"], **common)
+                                 method=summary["method"], **tested, **common)
+    if summary["kind"] == "layer correlations":
+        return LayerCorrelationResult(
+            p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less, p_se=pv.p_se,
+            p_interval=pv.p_interval, r=np.asarray(observed["coef"], dtype=np.float64),
+            method=summary["method"], layers=tuple(summary["layers"]),
+            pairs=tuple((int(i), int(j)) for i, j in summary["pairs"]), **tested, **common)
     nan1 = np.full(1, np.nan)
     fitv = np.asarray(observed["fit"], dtype=np.float64)
     return RegressionResult(
+        p_adjusted=np.concatenate([nan1, st.p_adjusted]),
+        stop_at=np.concatenate([nan1, st.stop_at]), stop_verdict=("",) + st.verdict,
         p=np.concatenate([nan1, pv.p]), p_greater=np.concatenate([nan1, pv.p_greater]),
         p_less=np.concatenate([nan1, pv.p_less]), p_se=np.concatenate([nan1, pv.p_se]),
         p_interval=np.concatenate([np.full((1, 2), np.nan), pv.p_interval]),
@@ -297,12 +366,16 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
 
 
 def open_result(path: Any):
-    """Read a finished run file back into its result object (null memory-mapped)."""
-    hdr, null, _ = _store.load(path)
+    """Read a finished (or stopped) run file back into its result object (null
+    memory-mapped)."""
+    hdr, null, done = _store.load(path, require_complete=False)
+    rows = _precision.usable_rows(hdr.summary.get("stop"), null, done,
+                                  hdr.observed["kernel_stat"], exact=hdr.exact,
+                                  chunk_size=hdr.chunk_size, total=hdr.permutations, where=path)
     ident = hdr.identity
     seed = None if hdr.exact or ident.get("seed") is None else int(ident["seed"])
-    return build_result(hdr.summary, hdr.observed, null, exact=hdr.exact,
-                        chunk_size=hdr.chunk_size, seed=seed)
+    return build_result(hdr.summary, hdr.observed, null[:rows], exact=hdr.exact,
+                        chunk_size=hdr.chunk_size, seed=seed, planned=hdr.permutations)
 
 
 def _check_agreement(kernel_t: np.ndarray, qr_t: np.ndarray, names) -> None:
@@ -316,13 +389,14 @@ def _check_agreement(kernel_t: np.ndarray, qr_t: np.ndarray, names) -> None:
                       DyadpermWarning, stacklevel=3)
 
 
-def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10_000,
+def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: int = 10_000,
               seed: Any = None, jobs: int = 1, directed: bool | None = None,
               groups: Any = None, dyads: str | None = None, exact: Any = "auto",
               chunk_size: int | None = None, out: Any = None,
               progress: bool | Callable[[int, int], None] = False,
               storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
-            shard: str | None = None, provenance: dict | None = None) -> CorrelationResult:
+            shard: str | None = None, provenance: dict | None = None,
+            stop: Any = None) -> CorrelationResult:
     """QAP correlation of two networks (the Mantel test for matrices).
 
     Pearson r (or Spearman's, on average ranks of the dyad values) over the dyad set, with
@@ -330,8 +404,18 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     Schultz 1976; Krackhardt 1987). Only the cross product changes per relabelling.
     Other parameters as in :func:`regress`. Caution: partial Mantel tests are not offered;
     see the README on when they fail.
+
+    Given several networks instead (``correlate([a, b, c])`` or a dict name -> network),
+    returns a LayerCorrelationResult: every pairwise correlation from shared
+    relabellings, one relabelling per network but the first, with familywise adjusted
+    p-values (``p_adjusted``; see dyadperm.precision.correlate_layers).
     """
+    if b is None:  # several networks: the matrix of pairwise correlations
+        return _precision.correlate_layers(
+            a, **{k: v for k, v in locals().items() if k not in ("a", "b")})
+    rule = _precision.stop_rule(stop)
     if _sparse.takes(a, b):  # sparse first network, sparse or derived second
+        _no_stop_rule(rule, "the sparse path")
         return _sparse.correlate(a, b, **_sparse_args(locals()))
     _check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
                   chunk_size=chunk_size)
@@ -345,6 +429,7 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
                     groups=None if groups is None else _store.fingerprint(np.asarray(groups).astype(str)))
     summary = _summary(prep, kind="correlation", model="correlation", scheme="y",
                        statistic="r", method=method, n_dyads=n_dy, terms=prep.names)
+    summary["stop"] = rule.to_dict()
     ident_perm = (np.arange(prep.mask.shape[0], dtype=np.int64)[None, :],
                   np.arange(prep.mask.shape[1], dtype=np.int64)[None, :])
     r = plan.statistics(*ident_perm)[0]
@@ -360,12 +445,13 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
         return None
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
-                        seed=None if draws.exact else draws.entropy)
+                        seed=None if draws.exact else draws.entropy, planned=draws.total)
 
 
 def _sparse_args(args: dict) -> dict:
     """The keyword arguments of regress/correlate, for the sparse path."""
-    return {k: v for k, v in args.items() if k not in ("y", "predictors", "a", "b")}
+    return {k: v for k, v in args.items()
+            if k not in ("y", "predictors", "a", "b", "stop", "rule")}
 
 
 def _count_complete(prep) -> int:

@@ -66,6 +66,13 @@ def _progress(progress: Optional[bool]):
     return Progress() if show else False
 
 
+_STOP_HELP = ("Sequential stopping: none, besag-clifford or gandy (overrides the study "
+              "file).")
+_STOP_H_HELP = "besag-clifford: exceedances h that end a term (default 10)."
+_STOP_RISK_HELP = ("gandy: bound on the chance of a decision at alpha other than an "
+                   "infinite run's (default 0.001).")
+
+
 def _print_result(res, as_json: bool) -> None:
     if as_json:
         typer.echo(json.dumps(res.to_dict(), indent=2))
@@ -87,6 +94,9 @@ def run(
     progress: Optional[bool] = typer.Option(None, "--progress/--quiet",
                                             help="Progress bar (default: on a terminal)."),
     as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+    stop: Optional[str] = typer.Option(None, help=_STOP_HELP),
+    stop_exceedances: Optional[int] = typer.Option(None, help=_STOP_H_HELP),
+    stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
 ) -> None:
     """Run a study and print its table (and keep a run file with --out)."""
     from .study import load_study
@@ -100,7 +110,8 @@ def run(
         raise InputError("--shard needs --out (or [output] file): each shard writes its own run file")
     res = st.run(permutations=permutations, seed=seed, jobs=jobs, out=target,
                  progress=_progress(progress), chunk_size=chunk_size,
-                 backend=backend, scheduler=scheduler, shard=shard)
+                 backend=backend, scheduler=scheduler, shard=shard, stop=stop,
+                 stop_exceedances=stop_exceedances, stop_risk=stop_risk)
     for note in st.notes:
         _say(f"note: {note}")
     if shard is not None:
@@ -119,6 +130,10 @@ def extend(
     scheduler: Optional[str] = typer.Option(None, help="Dask scheduler address."),
     progress: Optional[bool] = typer.Option(None, "--progress/--quiet"),
     as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+    stop: Optional[str] = typer.Option(None, help=_STOP_HELP + " 'none' computes every "
+                                       "planned permutation of a stopped run."),
+    stop_exceedances: Optional[int] = typer.Option(None, help=_STOP_H_HELP),
+    stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
 ) -> None:
     """Finish the missing chunks of a run, then add permutations up to --permutations."""
     from . import store
@@ -144,7 +159,8 @@ def extend(
     st = load_study(study_path)
     res = st.run(permutations=total, seed=None if seed is None else int(seed), jobs=jobs,
                  out=run_file, progress=_progress(progress), chunk_size=hdr.chunk_size,
-                 backend=backend, scheduler=scheduler)
+                 backend=backend, scheduler=scheduler, stop=stop,
+                 stop_exceedances=stop_exceedances, stop_risk=stop_risk)
     _print_result(res, as_json)
 
 
@@ -165,12 +181,40 @@ def merge(
 @app.command()
 def report(
     run_file: Path = typer.Argument(..., help="Run file."),
-    as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+    as_json: bool = typer.Option(False, "--json", help="Print the result (and provenance) "
+                                 "as JSON."),
+    csv_file: Optional[Path] = typer.Option(None, "--csv", help="Write one row per term to "
+                                            "this CSV file."),
+    plots: Optional[Path] = typer.Option(None, "--plots", help="Write PNG plots into this "
+                                         "folder."),
+    html_file: Optional[Path] = typer.Option(None, "--html", help="Write a self-contained "
+                                             "HTML report to this file."),
+    alpha: Optional[float] = typer.Option(None, help="Level the report marks results at "
+                                          "(default: the run's)."),
 ) -> None:
-    """Print the result table of a run file."""
-    from .api import open_result
+    """Print the result table of a run file; write CSV, plots and HTML on request."""
+    from .report import make_report
 
-    _print_result(open_result(run_file), as_json)
+    rep = make_report(run_file, as_json=as_json, csv_file=csv_file, plots=plots,
+                      html_file=html_file, alpha=alpha)
+    typer.echo(rep.text)
+    for path in rep.written:
+        _say(f"wrote {path}")
+
+
+@app.command()
+def plan(
+    study: Path = typer.Argument(..., help="Study file (TOML)."),
+    precision: float = typer.Option(..., help="Monte Carlo standard error wanted for a "
+                                    "p-value at alpha (e.g. 0.002)."),
+    alpha: Optional[float] = typer.Option(None, help="Level (default: the study's alpha)."),
+    jobs: int = typer.Option(-1, help="Workers of the timing run and of the planned run; "
+                             "-1 uses every core."),
+) -> None:
+    """Permutations needed for a Monte Carlo precision, and the time they take here."""
+    from .precision import plan_study
+
+    typer.echo(plan_study(study, precision=precision, alpha=alpha, jobs=jobs).text())
 
 
 @app.command()

@@ -43,6 +43,21 @@ class _Common:
     failed: np.ndarray
     chunk_size: int
     notes: tuple[str, ...]
+    # -- precision and many tests (dyadperm.precision) -------------------------------
+    #: familywise adjusted p-values, single-step max statistic (Westfall & Young 1993)
+    p_adjusted: np.ndarray = field(default=None)
+    #: level the stop rule decides at and the report marks results at
+    alpha: float = 0.05
+    #: the stop rule in force: {"rule", "exceedances", "risk", "alpha"}
+    stop: dict = field(default_factory=dict)
+    #: the rule that ended the run before its planned total, or None
+    stopped_by: str | None = None
+    #: relabellings after which each term's stop rule was met (NaN: not met, or no rule)
+    stop_at: np.ndarray = field(default=None)
+    #: gandy: each term's decision, "p <= alpha", "p > alpha" or "" (undecided)
+    stop_verdict: tuple[str, ...] = ()
+    #: permutations the run was planned with (``permutations`` is how many it used)
+    planned: int = 0
 
     # -- shared helpers -----------------------------------------------------------------
     def _estimates(self) -> np.ndarray:
@@ -59,7 +74,9 @@ class _Common:
 
     def table(self) -> str:
         """Formatted text table (see the README for how to read it)."""
-        return format_table(self)
+        from .report import format_table as _format
+
+        return _format(self)
 
 
 @dataclass(frozen=True, eq=False)
@@ -86,6 +103,35 @@ class CorrelationResult(_Common):
 
     def _estimates(self) -> np.ndarray:
         return self.r
+
+
+@dataclass(frozen=True, eq=False)
+class LayerCorrelationResult(_Common):
+    """Result of :func:`dyadperm.correlate` given several networks: one term per pair.
+
+    ``layers`` names the networks; ``pairs`` holds the (i, j) network indices of each
+    term (i < j, row by row of the upper triangle); ``r`` the pair's correlation over
+    the dyad set. ``matrix("r")`` (or "p", "p_adjusted", "stat") gives the K x K matrix.
+    """
+
+    r: np.ndarray = field(default=None)
+    method: str = "pearson"
+    layers: tuple[str, ...] = ()
+    pairs: tuple[tuple[int, int], ...] = ()
+
+    def _estimates(self) -> np.ndarray:
+        return self.r
+
+    def matrix(self, what: str = "r") -> np.ndarray:
+        """K x K symmetric matrix of a per-pair field; the diagonal is 1 for r, else NaN."""
+        values = np.asarray(getattr(self, what), dtype=np.float64)
+        k = len(self.layers)
+        out = np.full((k, k), np.nan)
+        for (i, j), v in zip(self.pairs, values):
+            out[i, j] = out[j, i] = v
+        if what == "r":
+            np.fill_diagonal(out, 1.0)
+        return out
 
 
 def _plain(v: Any) -> Any:
@@ -118,47 +164,7 @@ def _pval(x: float, width: int) -> str:
 
 
 def format_table(res: _Common) -> str:
-    """The terminal table: header lines on the run, then one row per term."""
-    kind = "correlation" if isinstance(res, CorrelationResult) else "regression"
-    mode = "two-mode" if res.two_mode else ("directed" if res.directed else "undirected")
-    if res.exact:
-        draws = f"all {res.permutations:,} relabellings (exact)"
-    else:
-        draws = f"{res.permutations:,} random relabellings, seed {res.seed}"
-    lines = []
-    if kind == "regression":
-        fit = (f"R squared {res.r2:.4f}" if np.isfinite(res.r2) else f"deviance {res.deviance:.4f}")
-        lines.append(f"response: {res.response}   model: {res.model}   scheme: {res.scheme}   "
-                     f"statistic: {res.statistic}")
-    else:
-        fit = f"{res.method} correlation"
-        lines.append(f"correlation of {res.response} with {res.terms[0]} ({res.method}), QAP")
-    lines.append(f"nodes: {res.n_nodes}   dyads: {res.n_dyads:,} ({mode})   {fit}")
-    lines.append(f"null: {draws}")
-    est_name = "estimate" if kind == "regression" else "r"
-    stat_name = res.statistic if kind == "regression" else "r"
-    w = max(12, max(len(t) for t in res.terms) + 2)
-    head = (f"{'term':<{w}}{est_name:>12}{'std.error':>12}{stat_name:>10}"
-            f"{'p':>10}{'p interval (95%)':>22}{'p upper':>10}{'p lower':>10}")
-    lines += ["", head, "-" * len(head)]
-    est = res._estimates()
-    for i, term in enumerate(res.terms):
-        if np.isfinite(res.p[i]):
-            lo, hi = res.p_interval[i]
-            interval = f"[{_pval(lo, 0).strip()}, {_pval(hi, 0).strip()}]"
-        else:
-            interval = "-"
-        lines.append(f"{term:<{w}}{_num(est[i], 12)}{_num(res.se[i], 12)}{_num(res.stat[i], 10, 3)}"
-                     f"{_pval(res.p[i], 10)}{interval:>22}{_pval(res.p_greater[i], 10)}"
-                     f"{_pval(res.p_less[i], 10)}")
-    lines.append("")
-    lines.append("p: two-sided, from relabellings; p upper / p lower: one-sided "
-                 "(statistic at least / at most the observed).")
-    if not res.exact:
-        lines.append("p interval: Clopper-Pearson 95% interval of the Monte Carlo p-value.")
-    if np.any(res.failed > 0):
-        bad = ", ".join(f"{t}: {int(f)}" for t, f in zip(res.terms[-len(res.failed):], res.failed) if f)
-        lines.append(f"failed permuted fits, counted as extreme: {bad}")
-    for note in res.notes:
-        lines.append(f"note: {note}")
-    return "\n".join(lines)
+    """The terminal table (kept here for old imports; see dyadperm.report.format_table)."""
+    from .report import format_table as _format
+
+    return _format(res)

@@ -248,6 +248,35 @@ def grow(path: str | Path, permutations: int) -> None:
         lock.close()
 
 
+def replace_summary(path: str | Path, summary: dict) -> None:
+    """Rewrite a run file with a new ``summary`` (how its statistics are read, e.g. the
+    stop rule of dyadperm.precision), keeping every chunk; atomic, like ``grow``."""
+    path = Path(path)
+    lock = _lock(path)
+    try:
+        with _open_h5(path, "r") as f:
+            hdr = _header(f, path)
+            null_old = np.asarray(f["null"][()])
+            done_old = np.asarray(f["done"][()])
+            crc_old = np.asarray(f["crc"][()])
+        new = path.with_name(path.name + ".summary")
+        create(new, RunHeader(**{**hdr.__dict__, "summary": summary}))
+        with h5py.File(new, "r+") as f:
+            f["null"][...] = null_old
+            f["done"][...] = done_old
+            f["crc"][...] = crc_old
+        _fsync(new)
+        os.replace(new, path)
+    finally:
+        lock.close()
+
+
+def package_version(path: str | Path) -> str:
+    """The dyadperm version that wrote a run file ("" when it does not say)."""
+    with _open_h5(Path(path), "r") as f:
+        return str(f.attrs.get("package_version", ""))
+
+
 class NullView:
     """Read-only view of a run file's permuted statistics, memory-mapped from the file."""
 

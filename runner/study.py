@@ -37,6 +37,9 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     dyads = "within"          # within | all (only with groups; default within)
     jobs = 1                  # integer >= 1, or -1 for all cores
     chunk_size = 256          # integer >= 1; omitted = the engine's choice
+    stop = "none"             # none | besag-clifford | gandy (sequential stopping)
+    stop_exceedances = 10     # besag-clifford only: h, exceedances that end a term
+    stop_risk = 0.001         # gandy only: bound on the chance of a different decision
 
     [output]
     file = "water_run.h5"     # optional run file, relative to the study file
@@ -73,7 +76,8 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
     "predictor": ("name", "file", "format", "missing", "same", "gap", "sender", "receiver",
                   "pair_sum", "reverse"),
     "test": ("kind", "model", "scheme", "statistic", "method", "permutations", "seed", "alpha",
-             "exact", "groups", "dyads", "jobs", "chunk_size"),
+             "exact", "groups", "dyads", "jobs", "chunk_size", "stop", "stop_exceedances",
+             "stop_risk"),
     "output": ("file",),
 }
 _DERIVED = {"same": same, "gap": gap, "sender": sender, "receiver": receiver,
@@ -315,7 +319,29 @@ def _test_entry(te: dict, check: _Checker, n_predictors: int) -> dict:
     test["jobs"] = check.integer(sec, te, "jobs", _DEFAULTS["jobs"], minimum=1, also=-1)
     test["chunk_size"] = check.integer(sec, te, "chunk_size", _DEFAULTS["chunk_size"],
                                        minimum=1)
+    _stop_entry(te, test, check)
     return test
+
+
+def _stop_entry(te: dict, test: dict, check: _Checker) -> None:
+    """stop, stop_exceedances, stop_risk (dyadperm.precision); keys of another rule are errors."""
+    from .precision import DEFAULT_EXCEEDANCES, DEFAULT_RISK, STOP_RULES
+
+    sec = "[test]"
+    rule = check.text(sec, te, "stop", choices=STOP_RULES, default="none")
+    test["stop"] = rule
+    for key, owner in (("stop_exceedances", "besag-clifford"), ("stop_risk", "gandy")):
+        if key in te and rule != owner:
+            raise check.error(sec, key, f"applies to stop = {owner} only (stop is {rule})",
+                              te[key])
+    test["stop_exceedances"] = (check.integer(sec, te, "stop_exceedances", DEFAULT_EXCEEDANCES,
+                                              minimum=1)
+                                if rule == "besag-clifford" else None)
+    risk = te.get("stop_risk", DEFAULT_RISK)
+    if rule == "gandy" and (isinstance(risk, bool) or not isinstance(risk, (int, float))
+                            or not 0 < risk < 0.5):
+        raise check.error(sec, "stop_risk", "must be a number with 0 < stop_risk < 0.5", risk)
+    test["stop_risk"] = float(risk) if rule == "gandy" else None
 
 
 def _file_stem(file: str) -> str:
@@ -382,7 +408,8 @@ class Study:
     def run(self, *, permutations: int | None = None, seed: int | None = None,
             jobs: int | None = None, out: str | Path | None = None, progress: Any = False,
             chunk_size: int | None = None, backend: str = "threads",
-            scheduler: str | None = None, shard: str | None = None) -> Any:
+            scheduler: str | None = None, shard: str | None = None, stop: str | None = None,
+            stop_exceedances: int | None = None, stop_risk: float | None = None) -> Any:
         """Run the study with the engine; arguments left as None use the file's settings.
 
         Parameters
@@ -402,6 +429,9 @@ class Study:
         backend, scheduler, shard : str, optional
             Where chunks run ("threads", "processes", "dask" with a scheduler address) and
             which shard "i/N" of the chunks to compute (see ``dyadperm.regress``).
+        stop, stop_exceedances, stop_risk : optional
+            Sequential stopping rule and its settings (see ``dyadperm.precision``); a
+            setting given without ``stop`` applies to the file's rule.
 
         Returns
         -------
@@ -419,6 +449,15 @@ class Study:
             jobs = _integer(jobs, 1, -1, _arg_error("jobs"))
         if chunk_size is not None:
             chunk_size = _integer(chunk_size, 1, None, _arg_error("chunk_size"))
+        from .precision import stop_rule
+
+        rule = t["stop"] if stop is None else stop
+        same_rule = rule == t["stop"]
+        rule = stop_rule(
+            rule, alpha=t["alpha"],
+            exceedances=stop_exceedances if stop_exceedances is not None or not same_rule
+            else t["stop_exceedances"],
+            risk=stop_risk if stop_risk is not None or not same_rule else t["stop_risk"])
         common = dict(
             permutations=t["permutations"] if permutations is None else permutations,
             seed=t["seed"] if seed is None else seed,
@@ -434,6 +473,7 @@ class Study:
             scheduler=scheduler,
             shard=shard,
             provenance={"study_text": self.text, "study_path": str(self.path)},
+            stop=rule,
         )
         if t["kind"] == "correlation":
             (predictor,) = self.predictors.values()
