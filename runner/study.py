@@ -10,6 +10,7 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     col_id_column = "event"   # required when col_nodes is given
     two_mode = true           # optional; implied by col_nodes; default false
     directed = true           # optional override; omitted = inferred by the engine
+    inside_folder = true      # optional: refuse any path outside the study file's folder
 
     [response]
     name = "water"            # optional; default: the file's stem
@@ -71,7 +72,7 @@ __all__ = ["Study", "load_study"]
 
 _SECTIONS: dict[str, tuple[str, ...]] = {
     "study": ("title", "nodes", "id_column", "col_nodes", "col_id_column", "two_mode",
-              "directed"),
+              "directed", "inside_folder"),
     "response": ("name", "file", "format", "missing"),
     "predictor": ("name", "file", "format", "missing", "same", "gap", "sender", "receiver",
                   "pair_sum", "reverse"),
@@ -191,6 +192,7 @@ def _validate(doc: dict, check: _Checker) -> dict:
         raise check.error("[study]", "two_mode", "must be true when col_nodes is given", False)
     study["two_mode"] = bool(two_mode or study["col_nodes"] is not None)
     study["directed"] = check.flag("[study]", st, "directed", None)
+    study["inside_folder"] = bool(check.flag("[study]", st, "inside_folder", False))
     if study["two_mode"] and study["directed"] is not None:
         raise check.error("[study]", "directed", "applies to one-mode data only (this study "
                           "is two-mode)", study["directed"])
@@ -538,6 +540,10 @@ class _Loader:
         h5 = split_h5_path(file)
         on_disk = Path(h5[0] if h5 is not None else file)
         full = on_disk if on_disk.is_absolute() else (self.base / on_disk)
+        if self.spec["study"]["inside_folder"] and \
+                not full.resolve().is_relative_to(self.base.resolve()):
+            raise self.check.error(section, key, "is outside the study file's folder "
+                                   "([study] inside_folder = true)", file)
         if not full.is_file():
             raise self.check.error(section, key, f"no such file {full}", file)
         return f"{full}:{h5[1]}" if h5 is not None else full

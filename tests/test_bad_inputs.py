@@ -216,3 +216,18 @@ def test_api_arguments_raise_input_error():
         dp.regress(np.where(np.eye(6) > 0, 0, np.inf) + y * 0 + 1, [x])
     with pytest.raises(dp.InputError, match="too few nodes"):
         dp.regress(np.ones((2, 2)), [np.ones((2, 2))])
+
+
+def test_paths_outside_the_study_folder_refused_when_asked(study, capsys, tmp_path):
+    """`[study] inside_folder = true` confines every path to the study file's folder."""
+    outside = tmp_path.parent / f"{tmp_path.name}-outside.csv"
+    outside.write_text((study.dir / "x.csv").read_text())
+    path = study(predictor=f'name = "x"\nfile = "../{outside.name}"')
+    assert dp.load_study(path).predictors["x"].values.shape == (7, 7)  # allowed by default
+    path = study(study='title = "t"\nnodes = "nodes.csv"\nid_column = "id"\ninside_folder = true',
+                 predictor=f'name = "x"\nfile = "../{outside.name}"')
+    _check_bad(["check", path], capsys, r"\[\[predictor\]\].*outside the study file's folder")
+    for link in ("../nodes.csv", "sub/../../nodes.csv"):
+        bad = study(study=f'title = "t"\nnodes = "{link}"\nid_column = "id"\ninside_folder = true')
+        with pytest.raises(dp.InputError, match="outside the study file's folder"):
+            dp.load_study(bad)

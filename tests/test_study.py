@@ -123,7 +123,7 @@ def test_load_full_study(folder):
                               "stop": "none", "stop_exceedances": None, "stop_risk": None}
     assert s.spec["study"] == {"title": "Water between farms", "nodes": "farms.csv",
                                "id_column": "farm", "col_nodes": None, "col_id_column": None,
-                               "two_mode": False, "directed": None}
+                               "two_mode": False, "directed": None, "inside_folder": False}
     assert s.spec["response"] == {"file": "water.csv", "format": "auto", "missing": None,
                                   "name": "water"}
     assert s.spec["predictor"][0] == {"name": "kinship", "file": "kin.csv", "format": "auto",
