@@ -487,6 +487,7 @@ def _row_main(relf, rb, co, fixf, rf, wf, xf0, xf1, n_x, js, je):
 
     Each sum runs in two partial sums, over the columns at even and at odd offsets from
     ``js`` (in increasing order), added at the end: two chains of additions in flight.
+    One loop per ``n_x`` keeps branches out of the loop body.
     """
     u = 0.0
     q = 0.0
@@ -499,24 +500,51 @@ def _row_main(relf, rb, co, fixf, rf, wf, xf0, xf1, n_x, js, je):
     s02 = 0.0
     s12 = 0.0
     j = js
-    while j + 1 < je:
-        e = relf[np.uint64(rb + co[j])]
-        f = relf[np.uint64(rb + co[j + 1])]
-        u += e * fixf[np.uint64(rf + j)]  # U += e_pi r
-        u2 += f * fixf[np.uint64(rf + j + 1)]
-        we = fixf[np.uint64(wf + j)] * e
-        wf_ = fixf[np.uint64(wf + j + 1)] * f
-        s += we  # S0 += w e_pi
-        t2 += wf_
-        q += we * e  # Q += w e_pi^2
-        q2 += wf_ * f
-        if n_x > 0:
+    if n_x == 0:
+        while j + 1 < je:
+            e = relf[np.uint64(rb + co[j])]
+            f = relf[np.uint64(rb + co[j + 1])]
+            u += e * fixf[np.uint64(rf + j)]  # U += e_pi r
+            u2 += f * fixf[np.uint64(rf + j + 1)]
+            we = fixf[np.uint64(wf + j)] * e
+            wf_ = fixf[np.uint64(wf + j + 1)] * f
+            s += we  # S0 += w e_pi
+            t2 += wf_
+            q += we * e  # Q += w e_pi^2
+            q2 += wf_ * f
+            j += 2
+    elif n_x == 1:
+        while j + 1 < je:
+            e = relf[np.uint64(rb + co[j])]
+            f = relf[np.uint64(rb + co[j + 1])]
+            u += e * fixf[np.uint64(rf + j)]
+            u2 += f * fixf[np.uint64(rf + j + 1)]
+            we = fixf[np.uint64(wf + j)] * e
+            wf_ = fixf[np.uint64(wf + j + 1)] * f
+            s += we
+            t2 += wf_
+            q += we * e
+            q2 += wf_ * f
             s0 += we * fixf[np.uint64(xf0 + j)]  # S_c += w e_pi x_c
             s02 += wf_ * fixf[np.uint64(xf0 + j + 1)]
-        if n_x > 1:
+            j += 2
+    else:
+        while j + 1 < je:
+            e = relf[np.uint64(rb + co[j])]
+            f = relf[np.uint64(rb + co[j + 1])]
+            u += e * fixf[np.uint64(rf + j)]
+            u2 += f * fixf[np.uint64(rf + j + 1)]
+            we = fixf[np.uint64(wf + j)] * e
+            wf_ = fixf[np.uint64(wf + j + 1)] * f
+            s += we
+            t2 += wf_
+            q += we * e
+            q2 += wf_ * f
+            s0 += we * fixf[np.uint64(xf0 + j)]
+            s02 += wf_ * fixf[np.uint64(xf0 + j + 1)]
             s1 += we * fixf[np.uint64(xf1 + j)]
             s12 += wf_ * fixf[np.uint64(xf1 + j + 1)]
-        j += 2
+            j += 2
     if j < je:
         e = relf[np.uint64(rb + co[j])]
         u += e * fixf[np.uint64(rf + j)]
@@ -563,10 +591,11 @@ def score_rows(relf, n_terms, fixf, n_fix, resid_at, weight_at, x_at, row_perms,
     r = y - mu, weight w = mu (1 - mu) and the non-constant columns x_c of its reduced
     model:  U = e'r, Q = sum w e^2, S_0 = sum w e, S_c = sum w e x_c.
     Layers are stored row-planar, (n, L, m): one layer's row is contiguous, so a pass
-    over a row streams only the layers it uses. Permutations go through the rows in
-    blocks of ``coloff.shape[0]`` that share each load of a fixed row; while a row is
-    gathered, the stored rows the next one reads are prefetched (the approach of
-    ``kernels.gather.cross_rows``).
+    over a row streams only the layers it uses. For each row, term by term, the
+    permutations of a block of ``coloff.shape[0]`` go through the term's fixed rows while
+    they are in cache; while a permutation gathers a row segment, the segment its next row
+    reads is prefetched (the approach of ``kernels.gather.cross_rows``). Sums of a row are
+    kept in registers, in two partial sums (even and odd column offsets).
 
     Parameters
     ----------
@@ -585,7 +614,8 @@ def score_rows(relf, n_terms, fixf, n_fix, resid_at, weight_at, x_at, row_perms,
     row_perms : int64 (B, n); col_perms : int64 (B, m)
     col_start, col_stop : int64 (n,)
         Row i uses the columns [col_start[i], col_stop[i]).
-    coloff : int64 workspace (block, m)
+    coloff : int32 workspace (block, m)
+        Column permutations of the block.
     tot : float64 workspace (block, K, c + 3)
     out : float64 (B, K, c + 3)
         Written: [U, Q, S_0, S_1 .. S_c] of each relabelling and term. Per row the sums
@@ -598,7 +628,7 @@ def score_rows(relf, n_terms, fixf, n_fix, resid_at, weight_at, x_at, row_perms,
     n_x = x_at.shape[1]
     rowlen = m * n_terms
     line = max(1, CACHE_LINE // relf.itemsize)
-    row_lines = (rowlen + line - 1) // line
+    seg_lines = (m + line - 1) // line
     for b0 in range(0, n_perm, block):
         nb = min(block, n_perm - b0)
         for q in range(nb):
@@ -609,22 +639,25 @@ def score_rows(relf, n_terms, fixf, n_fix, resid_at, weight_at, x_at, row_perms,
             js = col_start[i]
             je = col_stop[i]
             fb = i * n_fix * m
-            for q in range(nb):
-                b = b0 + q
-                rb0 = row_perms[b, i] * rowlen
-                if i + 1 < n_rows:
-                    nxt = row_perms[b, i + 1] * rowlen
-                    for t in range(row_lines):
-                        prefetch(relf, np.uint64(nxt + t * line))
-                co = coloff[q]
-                for a in range(n_terms):
-                    rb = rb0 + a * m
-                    wf = fb + weight_at[a] * m
-                    first = min(n_x, 2)
-                    xf0 = fb + x_at[a, 0] * m if first > 0 else fb
-                    xf1 = fb + x_at[a, 1] * m if first > 1 else fb
-                    u, qq, s, s0, s1 = _row_main(relf, rb, co, fixf, fb + resid_at[a] * m, wf,
-                                                 xf0, xf1, first, js, je)
+            # terms outside, permutations inside: a term's fixed rows stay in cache while
+            # the block's permutations go through them
+            for a in range(n_terms):
+                wf = fb + weight_at[a] * m
+                rf = fb + resid_at[a] * m
+                first = min(n_x, 2)
+                xf0 = fb + x_at[a, 0] * m if first > 0 else fb
+                xf1 = fb + x_at[a, 1] * m if first > 1 else fb
+                for q in range(nb):
+                    b = b0 + q
+                    rb = row_perms[b, i] * rowlen + a * m
+                    if i + 1 < n_rows:
+                        # the stored row segment the next row of this permutation reads
+                        nxt = row_perms[b, i + 1] * rowlen + a * m
+                        for t in range(seg_lines):
+                            prefetch(relf, np.uint64(nxt + t * line))
+                    co = coloff[q]
+                    u, qq, s, s0, s1 = _row_main(relf, rb, co, fixf, rf, wf, xf0, xf1, first,
+                                                 js, je)
                     tot[q, a, 0] += u
                     tot[q, a, 1] += qq
                     tot[q, a, 2] += s

@@ -362,7 +362,7 @@ class LogisticPlan:
         sums = np.empty((n_perm, self.k, a["x_at"].shape[1] + 3))
         score_rows(a["rel"], self.k, a["fix"], a["n_fix"], a["resid_at"], a["weight_at"],
                    a["x_at"], rp, cp, self.col_start, self.col_stop,
-                   np.empty((block, m), dtype=np.int64), np.empty((block,) + sums.shape[1:]),
+                   np.empty((block, m), dtype=np.int32), np.empty((block,) + sums.shape[1:]),
                    sums)
         score_from_sums(sums, a["cinv"], out)
 

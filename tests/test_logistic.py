@@ -669,7 +669,7 @@ def test_score_rows_matches_twin(rng, n, m, k, two_mode, ranges):
     for block in (1, 4, 8):
         out = np.empty((B, k, k + 2))
         kn.score_rows(E.reshape(-1), k, F.reshape(-1), F.shape[1], resid_at, weight_at, x_at,
-                      rp, cp, cs, ce, np.empty((block, m), np.int64),
+                      rp, cp, cs, ce, np.empty((block, m), np.int32),
                       np.empty((block, k, k + 2)), out)
         want = score_rows_twin(E, F, resid_at, weight_at, x_at, rp, cp, cs, ce)
         np.testing.assert_allclose(out, want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
