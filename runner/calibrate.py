@@ -66,8 +66,8 @@ and share one relabelling pass per replicate. The defaults (200 replicates, 199
 relabellings, three schemes) on the demo study (90 farms, 8,010 dyads, four terms) make
 4 x 200 x 3 x 200 = 480,000 statistics. Replicates run in parallel threads (``jobs``);
 results do not depend on ``jobs``: replicate r of term j draws everything from
-``SeedSequence(seed, spawn_key=(j, r))``, and its relabellings are those
-``dyadperm.regress`` draws with the seed that :func:`simulated_response` returns.
+``SeedSequence(seed, spawn_key=(j, r))`` (its residual relabelling, then its tests'
+relabellings, drawn at once); :func:`simulated_response` gives any replicate back.
 """
 
 from __future__ import annotations
@@ -76,7 +76,7 @@ import math
 import time
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, NamedTuple
 
 import numpy as np
 from scipy.stats import binom
@@ -86,12 +86,12 @@ from . import design as _design
 from .errors import InputError, NumericalError
 from .kernels.gather import gather_cross
 from .kernels.stats import fill_gram, regression_stats
-from .permutations import EXACT_LIMIT, Blocks, draw, enumerate_exact
+from .permutations import EXACT_LIMIT, Blocks, enumerate_exact
 from .pvalues import clopper_pearson, pvalues
 from .schemes import SCHEMES, STATISTICS, build_plan
 
-__all__ = ["CalibrationResult", "calibrate", "calibrate_study", "simulated_response",
-           "plot_calibration", "check_plot_path"]
+__all__ = ["CalibrationResult", "Replicate", "calibrate", "calibrate_study",
+           "simulated_response", "plot_calibration", "check_plot_path"]
 
 DEFAULT_SCHEMES = ("y", "dsp", "freedman-lane")
 OLS = "ols"
@@ -332,13 +332,30 @@ def _relabelling(blocks: Blocks, rng: np.random.Generator) -> tuple[np.ndarray, 
     return rows, cols
 
 
-def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks):
-    """(row relabelling, column relabelling, permutation entropy) of one replicate."""
+def _relabellings(blocks: Blocks, rng: np.random.Generator, count: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """``count`` random relabellings within blocks, drawn at once: (count, n), (count, m)."""
+    def within(ranges, size):
+        out = np.empty((count, size), dtype=np.int64)
+        for s, e in ranges:
+            out[:, s:e] = s + rng.permuted(np.tile(np.arange(e - s, dtype=np.int64),
+                                                    (count, 1)), axis=1)
+        return out
+
+    rows = within(blocks.row_blocks, blocks.n_rows)
+    cols = rows if blocks.col_blocks is None else within(blocks.col_blocks, blocks.n_cols)
+    return rows, cols
+
+
+def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks, count: int):
+    """Replicate r of term j: the relabelling of its residuals, then ``count`` relabellings
+    for its tests (none when ``count`` is 0), all from SeedSequence(entropy, (j, r))."""
     rng = np.random.Generator(np.random.PCG64(
         np.random.SeedSequence(entropy, spawn_key=(term, replicate))))
     rows, cols = _relabelling(blocks, rng)
-    perm_entropy = int.from_bytes(rng.bytes(16), "little")
-    return rows, cols, perm_entropy
+    if count == 0:
+        return rows, cols, None
+    return rows, cols, _relabellings(blocks, rng, count)
 
 
 def _as_response(prep: _design.Prepared, values: np.ndarray) -> np.ndarray:
@@ -447,15 +464,29 @@ def _shared_statistics(plans, j: int, batch) -> list[np.ndarray]:
     return out
 
 
-def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, seed: int,
-                       effect: float | None = None, directed: bool | None = None,
-                       groups: Any = None, dyads: str | None = None) -> tuple[np.ndarray, int]:
-    """The response :func:`calibrate` simulates for ``term``, replicate ``replicate``.
+class Replicate(NamedTuple):
+    """One simulated data set of :func:`calibrate`, on the caller's node order.
 
-    Returns the matrix on the caller's node order (NaN off the dyad set; undirected data
-    symmetric) and the seed entropy of that replicate's relabellings: without groups,
-    ``dyadperm.regress(response, predictors, seed=that, permutations=m, exact=False)``
-    draws the very relabellings the calibration used. For checking and teaching.
+    ``response`` (NaN off the dyad set; undirected data symmetric); ``rows`` and ``cols``
+    (m, n) and (m, m_cols): the random relabellings its tests used, as M'[a, b] =
+    M[rows[t, a], cols[t, b]] (one-mode: ``cols`` is ``rows``); None when the calibration
+    enumerated every relabelling instead.
+    """
+
+    response: np.ndarray
+    rows: np.ndarray | None
+    cols: np.ndarray | None
+
+
+def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, seed: int,
+                       permutations: int = 199, effect: float | None = None,
+                       directed: bool | None = None, groups: Any = None,
+                       dyads: str | None = None) -> Replicate:
+    """The data set :func:`calibrate` simulates for ``term``, replicate ``replicate``.
+
+    With the same inputs, ``seed`` and ``permutations`` as the calibration, the response
+    and relabellings are exactly those it used, so any replicate can be rerun and checked
+    on its own. For checking and teaching.
     """
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     if term not in prep.names:
@@ -463,15 +494,32 @@ def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, se
                          f"got {term!r}")
     replicate = _whole(replicate, "replicate", 0)
     seed = _whole(seed, "seed", 0)
+    permutations = _whole(permutations, "permutations", 1)
     j = prep.names.index(term)
     red = _reduced(prep, j, _analysed(prep))
-    rows, cols, perm_entropy = _replicate_stream(seed, j, replicate, prep.blocks)
+    exact = prep.blocks.count() <= permutations
+    rows, cols, perms = _replicate_stream(seed, j, replicate, prep.blocks,
+                                          0 if exact else permutations)
     ystar = _simulate(prep, red, rows, cols)
     if effect is not None:
         ystar = ystar + float(effect) * red.shift
     out = np.empty_like(ystar)
     out[np.ix_(prep.row_order, prep.col_order)] = ystar
-    return out, perm_entropy
+    if perms is None:
+        return Replicate(out, None, None)
+    return Replicate(out, _to_user(perms[0], prep.row_order),
+                     _to_user(perms[1], prep.col_order))
+
+
+def _to_user(perms: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """Relabellings of internal positions as relabellings of the caller's positions.
+
+    Internal position i holds the caller's node order[i]; a relabelling pi of internal
+    positions moves node order[i] to order[pi(i)], i.e. sigma[order] = order[pi].
+    """
+    out = np.empty_like(perms)
+    out[:, order] = order[perms]
+    return out
 
 
 def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replicates: int = 200,
@@ -562,12 +610,11 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     n_methods = len(schemes) + int(include_ols)
 
     def one(j: int, r: int):
-        rows, cols, perm_entropy = _replicate_stream(entropy, j, r, prep.blocks)
+        rows, cols, perms = _replicate_stream(entropy, j, r, prep.blocks, 0 if exact else M)
         if exact:
             batch = exact_perms  # index 0 is the identity
         else:
-            rows_p, cols_p = draw(prep.blocks, perm_entropy, 0, M)
-            batch = (np.concatenate([ident[0], rows_p]), np.concatenate([ident[1], cols_p]))
+            batch = (np.concatenate([ident[0], perms[0]]), np.concatenate([ident[1], perms[1]]))
         ystar = _simulate(prep, reduced[j], rows, cols)
         p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x)
         p1 = None
@@ -596,8 +643,9 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     passes = k * R * len(schemes) * (m_total + 1) * (2 if effect is not None else 1)
     notes = []
     if not math.isclose(valid, alpha, rel_tol=1e-9):
+        step = m_total if exact else m_total + 1
         notes.append(f"with {m_total} relabellings a valid test rejects {valid:.4f} of the "
-                     f"time, not {alpha:g}: p-values come in steps of 1/{m_total + (0 if exact else 1)}")
+                     f"time, not {alpha:g}: p-values come in steps of 1/{step}")
     return CalibrationResult(
         terms=prep.names, methods=methods, response=prep.response_name, alpha=alpha,
         replicates=R, permutations=m_total, exact=exact, statistic=statistic,
@@ -747,8 +795,9 @@ def check_plot_path(path: str | Path) -> Path:
     kinds = FigureCanvasAgg(Figure()).get_supported_filetypes()
     suffix = path.suffix.lower().lstrip(".")
     if suffix not in kinds:
-        raise InputError(f"plot file {path}: the suffix must be one of "
-                         f"{', '.join('.' + s for s in sorted(kinds))}; got {path.suffix or 'none'!r}")
+        known = ", ".join("." + s for s in sorted(kinds))
+        raise InputError(f"plot file {path}: the suffix must be one of {known}; "
+                         f"got {path.suffix or 'none'!r}")
     if not path.parent.is_dir():
         raise InputError(f"plot file {path}: no such folder {path.parent}")
     return path

@@ -21,7 +21,7 @@ import sys
 import numpy as np
 import pytest
 import statsmodels.api as sm
-from scipy.stats import binom, binomtest, nct
+from scipy.stats import binom, binomtest, nct, pearsonr
 from scipy.stats import t as t_dist
 
 from pathlib import Path
@@ -29,7 +29,7 @@ from pathlib import Path
 import dyadperm as dp
 from dyadperm import InputError
 from dyadperm.calibrate import OLS, plot_calibration, simulated_response
-from dyadperm.permutations import draw
+from dyadperm.schemes import build_plan
 from reference import (INTERVAL_RTOL, P_ATOL, SCHEMES, design, dyads, exact_pvalues,
                        random_pvalues, scheme_stat, vec)
 
@@ -137,11 +137,11 @@ def test_replicate_pvalues_match_the_oracle_on_the_same_relabellings():
     res = dp.calibrate(Y, preds, replicates=3, permutations=M, seed=seed)
     assert not res.exact and res.permutations == M
     rows, cols = dyads(n)
-    blocks = dp.design.prepare(Y, preds).blocks
     for j, term in enumerate(("x1", "x2")):
         for r in range(3):
-            ystar, perm_seed = simulated_response(Y, preds, term=term, replicate=r, seed=seed)
-            prow, pcol = draw(blocks, perm_seed, 0, M)
+            ystar, prow, pcol = simulated_response(Y, preds, term=term, replicate=r, seed=seed,
+                                                   permutations=M)
+            assert prow.shape == (M, n) and np.array_equal(pcol, prow)
             for s, scheme in enumerate(SCHEMES):
                 obs = scheme_stat(ystar, [X1, X2], scheme, "t", np.arange(n), np.arange(n))
                 null = np.array([scheme_stat(ystar, [X1, X2], scheme, "t", a, b)
@@ -150,6 +150,30 @@ def test_replicate_pvalues_match_the_oracle_on_the_same_relabellings():
                 assert res.null_p[j, s, r] == pytest.approx(p_ref, abs=P_ATOL)
             fit = sm.OLS(vec(ystar, rows, cols), design([X1, X2], rows, cols)).fit()
             assert res.null_p[j, 3, r] == pytest.approx(fit.pvalues[j + 1], rel=1e-8)  # statsmodels
+
+
+def test_two_mode_replicates_match_the_oracle():
+    # Two-mode data: rows and columns are relabelled apart (methods.md), for the residuals
+    # and for the tests; each replicate's p-values from the brute-force oracle.
+    rng = np.random.default_rng(8454)
+    n, m, M, seed = 5, 6, 29, 845
+    X1, X2 = rng.normal(size=(n, m)), rng.normal(size=(n, m))
+    Y = X1 + rng.normal(size=n)[:, None] + rng.normal(size=(n, m))
+    preds = {"x1": X1, "x2": X2}
+    res = dp.calibrate(Y, preds, replicates=2, permutations=M, seed=seed, include_ols=False)
+    assert res.two_mode and res.n_nodes == n + m and res.n_dyads == n * m
+    for j, term in enumerate(("x1", "x2")):
+        for r in range(2):
+            ystar, prow, pcol = simulated_response(Y, preds, term=term, replicate=r, seed=seed,
+                                                   permutations=M)
+            assert prow.shape == (M, n) and pcol.shape == (M, m)
+            for s, scheme in enumerate(SCHEMES):
+                stat = lambda a, b: scheme_stat(ystar, [X1, X2], scheme, "t", a, b,  # noqa: E731
+                                                two_mode=True)
+                obs = stat(np.arange(n), np.arange(m))
+                null = np.array([stat(a, b) for a, b in zip(prow, pcol)])
+                p_ref = random_pvalues(obs, null)[0][j]  # source: brute-force oracle
+                assert res.null_p[j, s, r] == pytest.approx(p_ref, abs=P_ATOL)
 
 
 def test_exact_enumeration_matches_the_oracle():
@@ -164,17 +188,19 @@ def test_exact_enumeration_matches_the_oracle():
     for j, term in enumerate(("x1", "x2")):
         for r in range(2):
             for effect, got in ((None, res.null_p), (0.5, res.power_p)):
-                ystar, _ = simulated_response(Y, preds, term=term, replicate=r, seed=seed,
-                                              effect=effect)
+                ystar, prow, _ = simulated_response(Y, preds, term=term, replicate=r,
+                                                    seed=seed, effect=effect)
+                assert prow is None  # every relabelling was enumerated
                 for s, scheme in enumerate(SCHEMES):
                     p_ref = exact_pvalues(ystar, [X1, X2], scheme, "t")[0][j]  # oracle
                     assert got[j, s, r] == pytest.approx(p_ref, abs=P_ATOL)
 
 
 def test_missing_values_and_groups_follow_the_engine():
-    # Missing dyads take the engine's masked passes, groups restrict the relabelling of
-    # the residuals: each replicate's p-values equal dyadperm.regress on the simulated
-    # response (same relabellings), whose masked path the oracle tests pin.
+    # Missing dyads take the engine's masked passes. The y scheme is checked against
+    # statsmodels OLS on the complete dyads of each relabelled response; dsp and
+    # Freedman-Lane against the engine's plan built afresh from the simulated response
+    # (the masked path that the scheme oracle tests pin), over the same relabellings.
     rng = np.random.default_rng(8606)
     n, M, seed = 12, 49, 86
     Y, X1, X2 = _confounded(rng, n)
@@ -182,20 +208,37 @@ def test_missing_values_and_groups_follow_the_engine():
     preds = {"x1": X1, "x2": X2}
     res = dp.calibrate(Y, preds, replicates=2, permutations=M, seed=seed, include_ols=False)
     assert res.methods == SCHEMES
+    rows, cols = dyads(n)
+    ident = np.arange(n)[None, :]
     for j, term in enumerate(("x1", "x2")):
         for r in range(2):
-            ystar, perm_seed = simulated_response(Y, preds, term=term, replicate=r, seed=seed)
+            ystar, prow, pcol = simulated_response(Y, preds, term=term, replicate=r,
+                                                   seed=seed, permutations=M)
             assert np.isnan(ystar[_off(n)]).sum() >= np.isnan(Y[_off(n)]).sum()
-            for s, scheme in enumerate(SCHEMES):
-                ref = dp.regress(ystar, preds, scheme=scheme, permutations=M, seed=perm_seed,
-                                 exact=False)
-                assert res.null_p[j, s, r] == pytest.approx(ref.p[j + 1], abs=P_ATOL)
+            t = []
+            for a, b in zip(np.concatenate([ident, prow]), np.concatenate([ident, pcol])):
+                y_pi = vec(ystar[np.ix_(a, b)], rows, cols)
+                fit = sm.OLS(y_pi, design([X1, X2], rows, cols), missing="drop").fit()
+                t.append(fit.tvalues[j + 1])  # source: statsmodels OLS on complete dyads
+            p_ref = random_pvalues(np.array(t[:1]), np.array(t[1:])[:, None])[0][0]
+            assert res.null_p[j, 0, r] == pytest.approx(p_ref, abs=P_ATOL)
+            prep = dp.design.prepare(ystar, preds)
+            assert not prep.complete
+            for s, scheme in enumerate(SCHEMES[1:], start=1):
+                plan = build_plan(prep, scheme=scheme, statistic="t")
+                obs = plan.statistics(ident, ident)[0, j:j + 1]
+                null = plan.statistics(prow, pcol)[:, j:j + 1]
+                p_ref = random_pvalues(obs, null)[0][0]
+                assert res.null_p[j, s, r] == pytest.approx(p_ref, abs=P_ATOL)
 
     groups = np.repeat(["a", "b", "c"], 4)
     Yc, _, _ = _confounded(rng, n)
-    ystar, _ = simulated_response(Yc, preds, term="x2", replicate=0, seed=seed, groups=groups)
+    ystar, prow, _ = simulated_response(Yc, preds, term="x2", replicate=0, seed=seed,
+                                        groups=groups)
     within = groups[:, None] == groups[None, :]
     assert np.isnan(ystar[~within]).all() and np.isfinite(ystar[within & _off(n)]).all()
+    # the tests' relabellings keep every node in its group
+    assert all(np.array_equal(groups[p], groups) for p in prow)
     # the residuals are relabelled within each group: per group, the multiset of reduced-
     # model residuals (statsmodels OLS of y on [1, x1] over the within-group dyads) is kept
     keep = within & _off(n)
@@ -222,7 +265,7 @@ def test_simulated_response_is_fit_plus_relabelled_residuals():
     fit = sm.OLS(vec(Y, rows, cols), sm.add_constant(vec(X1, rows, cols))).fit()
     R = np.full((n, n), np.nan)
     R[rows, cols] = fit.resid
-    ystar, _ = simulated_response(Y, {"x1": X1, "x2": X2}, term="x2", replicate=3, seed=87)
+    ystar = simulated_response(Y, {"x1": X1, "x2": X2}, term="x2", replicate=3, seed=87).response
     Rs = ystar - (fit.params[0] + fit.params[1] * X1)
     assert np.isnan(np.diag(ystar)).all()
     np.testing.assert_allclose(np.sort(Rs[rows, cols]), np.sort(fit.resid), atol=1e-9)
@@ -232,15 +275,15 @@ def test_simulated_response_is_fit_plus_relabelled_residuals():
 
     # the effect: e * sd(y) / sd(x2) * x2 on the dyads (standardised coefficient e;
     # common practice: beta_std = beta * sd(x) / sd(y))
-    yeff, _ = simulated_response(Y, {"x1": X1, "x2": X2}, term="x2", replicate=3, seed=87,
-                                 effect=0.3)
+    yeff = simulated_response(Y, {"x1": X1, "x2": X2}, term="x2", replicate=3, seed=87,
+                              effect=0.3).response
     b = 0.3 * np.std(vec(Y, rows, cols)) / np.std(vec(X2, rows, cols))
     np.testing.assert_allclose((yeff - ystar)[rows, cols], b * X2[rows, cols], rtol=1e-12)
 
     # undirected data stay symmetric
     S = Y + Y.T
-    ys, _ = simulated_response(S, {"x1": X1 + X1.T, "x2": X2 + X2.T}, term="x1", replicate=0,
-                               seed=1)
+    ys = simulated_response(S, {"x1": X1 + X1.T, "x2": X2 + X2.T}, term="x1", replicate=0,
+                            seed=1).response
     np.testing.assert_array_equal(ys, ys.T)
 
 
@@ -307,6 +350,20 @@ def test_rates_intervals_band_and_table():
     d = res.to_dict()
     json.dumps(d)
     assert d["verdicts"] == [list(v) for v in res.verdicts()] and "null_p" not in d
+
+
+def test_valid_rate_when_alpha_times_m_plus_one_is_not_whole():
+    # m = 30: p = (b + 1) / 31 <= 0.05 only for b = 0, so a valid test rejects 1/31 of the
+    # time (Phipson & Smyth 2010 p-values; floor(0.05 * 31) = 1); the band is centred there
+    rng = np.random.default_rng(9414)
+    Y, X1, X2 = _confounded(rng, 8)
+    res = dp.calibrate(Y, [X1, X2], replicates=20, permutations=30, seed=94)
+    assert res.valid_rate == pytest.approx(1 / 31)
+    lo, hi = binom.interval(0.95, 20, 1 / 31)  # source: scipy.stats.binom
+    np.testing.assert_allclose(res.band, [lo / 20, hi / 20])
+    assert res.notes == ("with 30 relabellings a valid test rejects 0.0323 of the time, not "
+                         "0.05: p-values come in steps of 1/31",)
+    assert "note: with 30 relabellings" in res.table()
 
 
 def test_same_seed_same_result_for_any_jobs_other_seed_differs():
@@ -408,13 +465,17 @@ def test_study_settings_carry_over(tmp_path):
     assert res.alpha == 0.1 and res.seed == 7 and res.terms == ("p0",)
     assert any("correlation study" in note for note in res.notes)
     # the one-predictor regression's y-scheme p-value is the QAP correlation p-value of the
-    # same relabellings of the response (t is monotone in |r|: methods.md)
+    # same relabellings of the response (t is monotone in |r|: methods.md); r by scipy
     st = dp.load_study(one)
-    ystar, perm_seed = simulated_response(st.response, dict(st.predictors), term="p0",
-                                          replicate=1, seed=7)
-    cor = dp.correlate(st.predictors["p0"].values, ystar, permutations=19, seed=perm_seed,
-                       exact=False)
-    assert res.null_p[0, 0, 1] == pytest.approx(cor.p[0], abs=P_ATOL)
+    ystar, prow, pcol = simulated_response(st.response, dict(st.predictors), term="p0",
+                                           replicate=1, seed=7, permutations=19)
+    x = st.predictors["p0"].values
+    rows, cols = dyads(7)
+    r_obs = pearsonr(vec(x, rows, cols), vec(ystar, rows, cols))[0]
+    r_null = [pearsonr(vec(x, rows, cols), vec(ystar[np.ix_(a, b)], rows, cols))[0]
+              for a, b in zip(prow, pcol)]
+    p_ref = random_pvalues(np.array([r_obs]), np.array(r_null)[:, None])[0][0]
+    assert res.null_p[0, 0, 1] == pytest.approx(p_ref, abs=P_ATOL)
 
     spear = _write_study(tmp_path, 'kind = "correlation"\nmethod = "spearman"')
     with pytest.raises(InputError, match=r"small.toml \[test\] method: calibrate checks "
