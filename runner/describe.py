@@ -57,7 +57,7 @@ class StudySummary:
                          f"{n.minimum:>11.4g}{n.maximum:>11.4g}{n.mean:>11.4g}  "
                          f"{'yes' if n.symmetric else 'no'}")
         preds = [n.name for n in self.networks if n.role == "predictor"]
-        if len(preds) > 1:
+        if len(preds) > 1 and self.correlations.size:
             lines += ["", "correlation of predictors over the complete dyads:"]
             lines.append(" " * w + "".join(f"{p[:9]:>10}" for p in preds))
             for i, p in enumerate(preds):
@@ -74,6 +74,10 @@ def describe_study(path: str | Path) -> StudySummary:
     from .study import load_study
 
     st = load_study(path)
+    from .sparse import SparseNetwork
+
+    if isinstance(st.response, SparseNetwork):
+        return _describe_sparse(st)
     prep = prepare(st.response, st.predictors, directed=st.spec["study"]["directed"],
                    groups=st.groups, dyads=st.spec["test"]["dyads"])
     names = prep.names + (prep.response_name,)
@@ -125,3 +129,29 @@ def _symmetric_input(mat: np.ndarray, prep) -> bool:
         return True
     a = np.where(np.isnan(mat), 0.0, mat)
     return bool(np.array_equal(a, a.T))
+
+
+def _describe_sparse(st) -> StudySummary:
+    """Summary of a study kept as edge lists (the sparse path): no n x n array is built."""
+    from .sparse import SparseNetwork
+
+    n = len(st.node_ids)
+    directed = st.spec["study"]["directed"]
+    nets = []
+    for role, name, net in [("response", st.response.name or "response", st.response)] + [
+            ("predictor", nm, p) for nm, p in st.predictors.items() if isinstance(p, SparseNetwork)]:
+        rows, cols = np.asarray(net.rows), np.asarray(net.cols)
+        w = np.ones(rows.size) if net.weights is None else np.asarray(net.weights, dtype=float)
+        w = w[rows != cols]
+        dyads = n * (n - 1) if directed is not False else n * (n - 1) // 2
+        nonzero = int(np.count_nonzero(w))
+        nets.append(NetworkSummary(name, role, dyads, 0, nonzero, float(min(w.min(initial=0), 0)),
+                                   float(max(w.max(initial=0), 0)), float(w.sum() / dyads),
+                                   directed is False))
+    derived = [nm for nm, p in st.predictors.items() if not isinstance(p, SparseNetwork)]
+    notes = list(st.notes) + [
+        "kept as edge lists: the engine's sparse path runs this study (scheme y or "
+        "correlation); predictors derived from node attributes: " + (", ".join(derived) or "none")]
+    return StudySummary(st.title, str(n), directed is not False, False, nets[0].observed,
+                        nets[0].observed, tuple(nets), np.zeros((0, 0)), float("nan"),
+                        tuple(notes))

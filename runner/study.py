@@ -68,6 +68,9 @@ from .errors import InputError
 from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
     read_node_table, split_h5_path
 
+# Dense layers larger than this (bytes) send an all-edge-list study to the sparse path.
+SPARSE_ABOVE = 1 << 30
+
 __all__ = ["Study", "load_study"]
 
 _SECTIONS: dict[str, tuple[str, ...]] = {
@@ -568,8 +571,12 @@ class _Loader:
                                                     missing=entry["missing"]), entry["file"])
         rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()])
 
-        networks: dict[str, Dyadic] = {}
+        networks: dict[str, Any] = {}
+        sparse = self.sparse_route(raws, rows, cols)
         for name, (raw, file) in raws.items():
+            if sparse:
+                networks[name] = self.sparse_network(name, raw, file, rows)
+                continue
             values, notes = align(raw, rows, cols, directed=sd["directed"], source=file,
                                   row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"])
             self.notes.extend(notes)
@@ -595,6 +602,43 @@ class _Loader:
                      col_node_ids=cols, node_table=nodes, col_node_table=col_nodes,
                      response=networks[self.spec["response"]["name"]], predictors=predictors,
                      groups=groups, notes=self.notes, output=output)
+
+    def sparse_route(self, raws: dict, rows: tuple[str, ...], cols) -> bool:
+        """Whether to keep edge lists as edges (the sparse engine path) instead of n x n.
+
+        Yes when the study is one-mode, every network file is a complete edge list (no
+        missing values), the test runs on the sparse path (a correlation, or a linear
+        regression under scheme y, without groups), and the dense layers would take more
+        than ``SPARSE_ABOVE`` bytes. Smaller studies stay dense: same numbers, and run
+        files, stopping rules and every scheme work there.
+        """
+        test = self.spec["test"]
+        if cols is not None or test["groups"] is not None or not raws:
+            return False
+        if test["kind"] == "regression" and (test["model"] != "linear" or test["scheme"] != "y"):
+            return False
+        if not all(raw.is_edges and not np.isnan(raw.weights).any() for raw, _ in raws.values()):
+            return False
+        layers = 1 + len(self.spec["predictor"])
+        return 8.0 * len(rows) ** 2 * layers > SPARSE_ABOVE
+
+    def sparse_network(self, name: str, raw: RawNetwork, file: str, rows: tuple[str, ...]):
+        """A SparseNetwork from an edge list, labels placed on the node order."""
+        from .sparse import SparseNetwork
+
+        pos = {lab: i for i, lab in enumerate(rows)}
+        idx = []
+        for labels in (raw.sources, raw.targets):
+            out = np.empty(len(labels), dtype=np.int64)
+            for e, lab in enumerate(labels):
+                if lab not in pos:
+                    raise InputError(f"{file} line {int(raw.lines[e])}: unknown node label "
+                                     f"{str(lab)!r}" + (f" (not in {self.spec['study']['nodes']})"
+                                                   if self.spec["study"]["nodes"] else ""))
+                out[e] = pos[lab]
+            idx.append(out)
+        return SparseNetwork(idx[0], idx[1], np.asarray(raw.weights, dtype=np.float64), rows,
+                             self.spec["study"]["directed"], name)
 
     def node_ids(self, nodes: NodeTable | None, col_nodes: NodeTable | None,
                  raws: list[RawNetwork]) -> tuple[tuple[str, ...], tuple[str, ...] | None]:
