@@ -14,9 +14,12 @@ y, dsp and freedman-lane, prints in one run:
   (shared/methods.md). Only a few permutations at large n: it is slow.
 - floor: the bytes of the relabelled float64 layers read once per permutation
   (n * n * 8 * R; R = 1 for y, 3 for dsp, 4 for freedman-lane) over this machine's
-  two-thread read bandwidth, measured in the same run by summing a large array in two
-  threads.
-- ratios: naive / engine (speed-up) and engine / floor; peak resident memory (ru_maxrss)
+  two-thread read bandwidth, measured in the same run (before each size) by summing a
+  large array in two threads.
+- engine CPU: the process CPU time per permutation of the same timed pass (both
+  threads together). On a machine shared with other work the wall time grows with the
+  load; the CPU time much less, so CPU / 2 shows what an idle machine would give.
+- ratios: naive / engine (speed-up) and engine / floor; peak resident memory (VmHWM)
   of the process that ran each method, beside the size of the four input matrices.
 
 The engine and the naive loop use the same relabellings, and their t statistics of the
@@ -162,15 +165,19 @@ def child_engine(n: int, perms: int, storage: str, chunk: int | None) -> dict:
         plan.statistics(ident, ident)  # compile (or load the cached kernels)
         warm = Draws(prep.blocks, min(total, 2 * cs), cs, False, SEED)
         list(iter_chunks(plan, warm, range(warm.n_chunks), jobs=2))
-        best = float("inf")
+        best = cpu = float("inf")
         for _ in range(2):
             t0 = time.perf_counter()
+            c0 = time.process_time()
             first = None
             for c, stats in iter_chunks(plan, draws, range(draws.n_chunks), jobs=2):
                 if c == 0:
                     first = stats
-            best = min(best, time.perf_counter() - t0)
-        out["schemes"][scheme] = {"sec_per_perm": best / total, "perms": total, "chunk": cs,
+            wall = time.perf_counter() - t0
+            if wall < best:
+                best, cpu = wall, time.process_time() - c0
+        out["schemes"][scheme] = {"sec_per_perm": best / total, "cpu_per_perm": cpu / total,
+                                  "perms": total, "chunk": cs,
                                   "first": first[:COMPARE].tolist()}
         del plan
     out["peak_mib"] = peak_mib()
@@ -292,13 +299,16 @@ def main(argv=None) -> int:
     naive_perms = QUICK_NAIVE_PERMS if args.quick else NAIVE_PERMS
     sizes = [int(s) for s in args.sizes.split(",")] if args.sizes else sorted(eng_perms)
     info = machine()
-    bw = read_bandwidth(0.25 if args.quick else 1.5)
+    gib = 0.25 if args.quick else 1.5
     print(f"machine: {info['cpu']}, {info['cores']} cores, {info['ram_gib']:.1f} GiB RAM; "
           f"python {info['python']}, numpy {info['numpy']}, numba {info['numba']}")
-    print(f"two-thread read bandwidth: {bw / 1e9:.2f} GB/s; "
-          f"1-min load average at start: {info['load_before']:.2f}")
+    print(f"1-min load average at start: {info['load_before']:.2f}; the read bandwidth is "
+          "measured again before each size (other processes share it)")
     rows = []
+    bws = []
     for n in sizes:
+        bw = read_bandwidth(gib)
+        bws.append(bw)
         ep = eng_perms.get(n, max(16, int(256 * (1000 / n) ** 2)))
         npn = naive_perms.get(n, 1)
         extra = [str(args.chunk)] if args.chunk else []
@@ -312,7 +322,9 @@ def main(argv=None) -> int:
             tn = nv["schemes"][scheme]["sec_per_perm"]
             floor = n * n * 8 * RELABELLED_LAYERS[scheme] / bw
             rows.append({
-                "n": n, "scheme": scheme, "engine_ms": te * 1e3, "engine32_ms": t32 * 1e3,
+                "n": n, "scheme": scheme, "bw_gbs": bw / 1e9, "engine_ms": te * 1e3,
+                "engine_cpu_ms": e64["schemes"][scheme]["cpu_per_perm"] * 1e3,
+                "engine32_ms": t32 * 1e3,
                 "naive_ms": tn * 1e3, "floor_ms": floor * 1e3, "speedup": tn / te,
                 "vs_floor": te / floor, "chunk": e64["schemes"][scheme]["chunk"],
                 "engine_peak_mib": e64["peak_mib"], "engine32_peak_mib": e32["peak_mib"],
@@ -326,16 +338,17 @@ def main(argv=None) -> int:
           "machine slow every column alike)")
     if args.markdown:
         with open(args.markdown, "w") as fh:
-            fh.write(markdown(rows, info, bw))
+            fh.write(markdown(rows, info))
     return 0
 
 
-COLUMNS = [("n", "{:>5}"), ("scheme", "{:>13}"), ("engine_ms", "{:>10.3f}"),
+COLUMNS = [("n", "{:>5}"), ("scheme", "{:>13}"), ("bw_gbs", "{:>5.1f}"), ("engine_ms", "{:>10.3f}"),
+           ("engine_cpu_ms", "{:>8.3f}"),
            ("engine32_ms", "{:>10.3f}"), ("naive_ms", "{:>10.1f}"), ("floor_ms", "{:>9.3f}"),
            ("speedup", "{:>8.0f}"), ("vs_floor", "{:>8.2f}"), ("chunk", "{:>5}"),
            ("engine_peak_mib", "{:>8.0f}"), ("naive_peak_mib", "{:>8.0f}"),
            ("inputs_mib", "{:>7.0f}"), ("agree", "{:>8.1e}")]
-HEADS = ["n", "scheme", "engine ms", "f32 ms", "naive ms", "floor ms", "naive/e",
+HEADS = ["n", "scheme", "GB/s", "engine ms", "cpu ms", "f32 ms", "naive ms", "floor ms", "naive/e",
          "e/floor", "chunk", "e MiB", "nv MiB", "in MiB", "agree"]
 
 
@@ -346,20 +359,21 @@ def print_row(row: dict, header: bool) -> None:
     print(" ".join(fmt.format(row[key]) for key, fmt in COLUMNS), flush=True)
 
 
-def markdown(rows, info, bw) -> str:
+def markdown(rows, info) -> str:
     lines = [f"Machine: {info['cpu']}, {info['cores']} cores, {info['ram_gib']:.1f} GiB RAM; "
-             f"numpy {info['numpy']}, numba {info['numba']}. Two-thread read bandwidth "
-             f"{bw / 1e9:.2f} GB/s. Load average {info['load_before']:.2f} at start, "
-             f"{info.get('load_after', float('nan')):.2f} at end.", "",
-             "| n | scheme | engine ms/perm (jobs=2) | float32 ms/perm | naive ms/perm | "
-             "floor ms/perm | naive / engine | engine / floor | chunk | engine peak MiB | "
-             "float32 peak MiB | naive peak MiB | inputs MiB |",
-             "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+             f"numpy {info['numpy']}, numba {info['numba']}. Load average "
+             f"{info['load_before']:.2f} at start, {info.get('load_after', float('nan')):.2f} "
+             "at end.", "",
+             "| n | scheme | read GB/s | engine ms/perm (jobs=2) | engine CPU ms/perm | "
+             "float32 ms/perm | naive ms/perm | floor ms/perm | naive / engine | "
+             "engine / floor | chunk | engine peak MiB | float32 peak MiB | naive peak MiB | "
+             "inputs MiB |",
+             "|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
     for r in rows:
-        lines.append(f"| {r['n']} | {r['scheme']} | {r['engine_ms']:.3f} | "
-                     f"{r['engine32_ms']:.3f} | {r['naive_ms']:.1f} | {r['floor_ms']:.3f} | "
-                     f"{r['speedup']:.0f} | {r['vs_floor']:.2f} | {r['chunk']} | "
-                     f"{r['engine_peak_mib']:.0f} | {r['engine32_peak_mib']:.0f} | "
+        lines.append(f"| {r['n']} | {r['scheme']} | {r['bw_gbs']:.1f} | {r['engine_ms']:.3f} | "
+                     f"{r['engine_cpu_ms']:.3f} | {r['engine32_ms']:.3f} | {r['naive_ms']:.1f} | "
+                     f"{r['floor_ms']:.3f} | {r['speedup']:.0f} | {r['vs_floor']:.2f} | "
+                     f"{r['chunk']} | {r['engine_peak_mib']:.0f} | {r['engine32_peak_mib']:.0f} | "
                      f"{r['naive_peak_mib']:.0f} | {r['inputs_mib']:.0f} |")
     return "\n".join(lines) + "\n"
 
