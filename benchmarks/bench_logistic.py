@@ -156,8 +156,11 @@ def child(n: int, k: int, rounds: int) -> dict:
             best[name] = min(best[name], (time.process_time() - t0) / B)
             stats[name] = st
     for name, (plan, B, layers) in routes.items():
-        mem = _nbytes(plan.arrays) if hasattr(plan, "arrays") else sum(
-            _nbytes([p.rel, p.fix, p.gram0]) for p in plan.passes)
+        if hasattr(plan, "arrays"):
+            mem = _nbytes(plan.arrays)
+        else:  # a linear plan: its layer stacks (dsp uses one stack as rel and fix)
+            stacks = {id(a): a for p in plan.passes for a in (p.rel, p.fix)}
+            mem = _nbytes(list(stacks.values()))
         out["routes"][name] = {"sec_per_perm": best[name], "perms": B,
                                "relabelled_layers": layers, "plan_mib": mem / 2**20}
     # naive loop: relabel with fancy indexing, Newton refit in numpy (scheme y, Wald z)

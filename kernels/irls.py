@@ -9,9 +9,11 @@ method for the canonical (logit) link is iteratively reweighted least squares
     g = X'(y - mu),  H = X'WX,  b <- b + H^-1 g.
 
 A step that raises the deviance 2 sum[log(1 + e^eta) - y eta] is halved (common practice).
-The fit has converged when no coefficient moves by more than ``tol`` * (1 + |b_c|); under
-separation (Albert & Anderson 1984, Biometrika 71:1-10) the coefficients diverge, the steps
-stay near a constant size and the fit is reported as failed, never as converged.
+The fit has converged when the next Newton step would move no coefficient by more than
+``tol`` * (1 + |b_c|); under separation (Albert & Anderson 1984, Biometrika 71:1-10) the
+coefficients diverge, the steps stay near a constant size and the fit is reported as
+failed, never as converged. Each Newton step costs one pass over the dyads (the
+deviance, gradient and information at the new coefficients), plus one per halving.
 
 The drivers loop over the relabellings of one chunk: they gather the relabelled layer into
 a preallocated dyad vector (``value = layer[row_perm[rows[d]], col_perm[cols[d]]]``; no
@@ -164,12 +166,14 @@ def irls_logistic(X, cols, y, valid, beta0, work, beta_out, cov_out, max_iter, t
     max_iter : int
         Newton steps allowed.
     tol : float
-        Converged when every |step_c| <= tol * (1 + |b_c|).
+        Converged when the next Newton step has every |step_c| <= tol * (1 + |b_c|); that
+        last step is taken without another pass over the dyads.
 
     Returns
     -------
     int
-        Newton steps taken (>= 1) when converged, else a negative FAIL_* code.
+        Newton steps taken (>= 1, the last tiny one included) when converged, else a
+        negative FAIL_* code.
     """
     q = cols.shape[0]
     H = work[0:q]
@@ -193,6 +197,18 @@ def irls_logistic(X, cols, y, valid, beta0, work, beta_out, cov_out, max_iter, t
             return FAIL_SINGULAR
         # Newton step: step = H^-1 g
         _cholesky_solve(L, g, step)
+        small = True
+        for c in range(q):
+            if abs(step[c]) > tol * (1.0 + abs(beta[c])):
+                small = False
+        if small:
+            # converged: take the last, tiny step without another pass over the dyads;
+            # the Wald covariance is H^-1 at the coefficients the step started from (it
+            # moves by a relative amount of the order of ``tol``)
+            _cholesky_inverse(L, xrow, cov_out)
+            for c in range(q):
+                beta_out[c] = beta[c] + step[c]
+            return it
         scale = 1.0
         accepted = False
         for _ in range(MAX_HALVINGS + 1):
@@ -205,20 +221,9 @@ def irls_logistic(X, cols, y, valid, beta0, work, beta_out, cov_out, max_iter, t
             scale *= 0.5
         if not accepted:
             return FAIL_STEP
-        done = True
         for c in range(q):
-            if abs(scale * step[c]) > tol * (1.0 + abs(trial[c])):
-                done = False
             beta[c] = trial[c]
         dev = dev_new
-        if done:
-            # H was accumulated at the accepted coefficients: the Wald covariance
-            if not _cholesky(H, L):
-                return FAIL_SINGULAR
-            _cholesky_inverse(L, xrow, cov_out)
-            for c in range(q):
-                beta_out[c] = beta[c]
-            return it
     return FAIL_ITERATIONS
 
 
