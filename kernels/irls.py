@@ -292,8 +292,8 @@ def _signed_score(u, qx, a, cinv):
 
 
 @njit(**KERNEL_OPTIONS)
-def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, out, max_iter, tol,
-            use_z):
+def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, onestep, out, max_iter,
+            tol, use_z):
     """Y-permutation refits: relabel the response, refit the full model.
 
     Parameters
@@ -309,26 +309,43 @@ def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, out, ma
     fixed_ok : bool (N,)
         Dyads where every column of ``X`` is finite.
     beta0 : float64 (p,)
-        Warm start.
+        Warm start: the fit of the intercept alone, (logit(mean y), 0, ..).
+    onestep : float64 (p, p + 1), or (0, p + 1) when some dyad is missing
+        [(w0 X'X)^-1 | mean(y) X'1] with w0 = mean(y)(1 - mean(y)). At ``beta0`` every
+        fitted probability is mean(y), so the first Newton step needs only X'y_pi, summed
+        while the relabelled response is gathered: beta0 + (w0 X'X)^-1 (X'y_pi - mean(y) X'1)
+        is where the refit starts.
     out : float64 (B, p - 1)
         Written: Wald z (``use_z``) or coefficient of each predictor; NaN for a failed fit.
     max_iter, tol : see ``irls_logistic``.
     """
     n_dyads, p = X.shape
+    first_step = onestep.shape[0] == p
     design = np.arange(p)
     ybuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
     work = np.empty((2 * p + 5, p))
     beta = np.empty(p)
     cov = np.empty((p, p))
+    suff = np.empty(p)
+    start = np.empty(p)
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
+        suff[:] = 0.0
         for d in range(n_dyads):
             v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
             ybuf[d] = v
             valid[d] = fixed_ok[d] and not np.isnan(v)
-        status = irls_logistic(X, design, ybuf, valid, beta0, work, beta, cov, max_iter, tol)
+            if first_step:
+                for c in range(p):
+                    suff[c] += X[d, c] * v  # X'y_pi
+        for c in range(p):
+            start[c] = beta0[c]
+            if first_step:
+                for e in range(p):
+                    start[c] += onestep[c, e] * (suff[e] - onestep[e, p])
+        status = irls_logistic(X, design, ybuf, valid, start, work, beta, cov, max_iter, tol)
         for j in range(1, p):
             if status < 0:
                 out[b, j - 1] = np.nan
@@ -339,8 +356,8 @@ def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, out, ma
 
 
 @njit(**KERNEL_OPTIONS)
-def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, beta0, out,
-              max_iter, tol, use_z):
+def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, beta0, reduced,
+              cinv, out, max_iter, tol, use_z):
     """DSP refits (Potter 2005): relabel the focal predictor's residual, refit.
 
     Parameters
@@ -355,15 +372,24 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, b
     fixed_ok : bool (K, N)
         Dyads where y and the other terms of tested term a are finite.
     design : int64 (K, p)
-        Columns of term a's fit: the other terms, then p (the relabelled residual).
+        Columns of term a's fit: the other terms Z_a, then p (the relabelled residual).
     beta0 : float64 (K, p)
-        Warm start of each term's fit.
+        Warm start of each term's fit: its observed reduced fit, and 0 for the residual.
+    reduced : float64 (N, 2K), or (0, 2K) when some dyad is missing
+        y - mu_a and w_a = mu_a (1 - mu_a) of each observed reduced fit. At ``beta0`` the
+        gradient is (0, U) and the information [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu),
+        S = Z'W e_pi, Q = sum w e_pi^2 (summed while e_pi is gathered), so the first Newton
+        step is free: d_e = U / (Q - S'(Z'WZ)^-1 S), d_z = -(Z'WZ)^-1 S d_e.
+    cinv : float64 (K, p - 1, p - 1)
+        (Z_a'W_a Z_a)^-1 of each observed reduced fit (used with ``reduced``).
     out : float64 (B, K)
         Written: Wald z (``use_z``) or coefficient of the relabelled residual; NaN for a
         failed fit.
     """
     n_dyads, p = X.shape
     n_terms = resid.shape[2]
+    q = p - 1
+    first_step = reduced.shape[0] == n_dyads
     xbuf = np.empty((n_dyads, p + 1))
     for d in range(n_dyads):
         for c in range(p):
@@ -372,15 +398,39 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, b
     work = np.empty((2 * p + 5, p))
     beta = np.empty(p)
     cov = np.empty((p, p))
+    sums = np.empty(q)
+    start = np.empty(p)
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
         for a in range(n_terms):
+            u = 0.0
+            qq = 0.0
+            sums[:] = 0.0
             for d in range(n_dyads):
                 v = resid[rp[rows[d]], cp[cols[d]], a]  # e_pi[d] = E[pi(i), pi(j)]
                 xbuf[d, p] = v
                 valid[d] = fixed_ok[a, d] and not np.isnan(v)
-            status = irls_logistic(xbuf, design[a], y, valid, beta0[a], work, beta, cov,
+                if first_step:
+                    u += v * reduced[d, a]  # U = e_pi'(y - mu)
+                    wv = reduced[d, n_terms + a] * v
+                    qq += wv * v  # Q = sum w e_pi^2
+                    for c in range(q):
+                        sums[c] += wv * X[d, design[a, c]]  # S = Z'W e_pi
+            for c in range(p):
+                start[c] = beta0[a, c]
+            if first_step:
+                info = qq
+                for r in range(q):
+                    for c in range(q):
+                        info -= sums[r] * cinv[a, r, c] * sums[c]
+                if info > 0.0:
+                    step_e = u / info
+                    start[q] += step_e
+                    for r in range(q):
+                        for c in range(q):
+                            start[r] -= cinv[a, r, c] * sums[c] * step_e
+            status = irls_logistic(xbuf, design[a], y, valid, start, work, beta, cov,
                                    max_iter, tol)
             if status < 0:
                 out[b, a] = np.nan

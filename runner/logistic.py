@@ -55,7 +55,11 @@ Per-relabelling refits start from the observed fits: for ``dsp`` from the observ
 fit of term j with 0 for e_pi (the expected value of its coefficient under relabelling);
 for ``y`` from the observed fit of the intercept alone, logit(mean y) and zero slopes (the
 expected fit of a relabelled response; starting from the observed slopes costs more Newton
-steps whenever the effects are large — see benchmarks/RESULTS.md).
+steps whenever the effects are large — see benchmarks/RESULTS.md). With complete data the
+first Newton step from there is free: at the start the fitted probabilities are the
+observed fit's, so the step needs only sums over the relabelled column gathered anyway
+(X'y_pi for ``y``; e_pi'(y - mu), Z'W e_pi and sum w e_pi^2 for ``dsp``, the pieces of the
+score statistic); the Newton iterations proper start from that one-step estimate.
 
 Score statistic (``statistic="score"``)
 ---------------------------------------
@@ -332,11 +336,11 @@ class LogisticPlan:
             return out
         common = (a["rows"], a["cols"], rp, cp, a["X"])
         if self.kind == "refit-y":
-            refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], out, MAX_ITER, TOL,
-                    self.use_z)
+            refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], a["onestep"], out,
+                    MAX_ITER, TOL, self.use_z)
         elif self.kind == "refit-dsp":
-            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"], out,
-                      MAX_ITER, TOL, self.use_z)
+            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"],
+                      a["reduced"], a["cinv"], out, MAX_ITER, TOL, self.use_z)
         elif self.kind == "score-dsp-refit":
             score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["gamma0"],
                             out, MAX_ITER, TOL)
@@ -445,8 +449,14 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     if scheme == "y":
         layer = np.ascontiguousarray(prep.matrices[k])
         if statistic != "score":
-            arrays = dict(common, layer=layer, fixed_ok=fixed_x,
-                          beta0=_null_start(dd.y, dd.complete, p))
+            beta0 = _null_start(dd.y, dd.complete, p)
+            onestep = np.zeros((0, p + 1))
+            if prep.complete:  # the first Newton step from beta0 needs only X'y_pi
+                ybar = float(dd.y.mean())
+                onestep = np.empty((p, p + 1))
+                onestep[:, :p] = np.linalg.inv(ybar * (1.0 - ybar) * (X.T @ X))
+                onestep[:, p] = ybar * X.sum(axis=0)
+            arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
             return plan("refit-y", arrays, refit_work)
         gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
         if prep.complete and k == 1:
@@ -468,7 +478,15 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
         fixed_ok = _fixed_ok(dd, X, zcols)
         design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
         beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
-        arrays = dict(common, layer=E, y=dd.y, fixed_ok=fixed_ok, design=design, beta0=beta0)
+        reduced = np.zeros((0, 2 * k))
+        if prep.complete:  # the first Newton step from beta0 needs only sums over e_pi
+            reduced = np.empty((N, 2 * k))
+            for j in range(k):
+                mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
+                reduced[:, j] = dd.y - mu
+                reduced[:, k + j] = mu * (1.0 - mu)
+        arrays = dict(common, layer=E, y=dd.y, fixed_ok=fixed_ok, design=design, beta0=beta0,
+                      reduced=reduced, cinv=cinv)
         return plan("refit-dsp", arrays, k * refit_work)
     if not prep.complete:
         arrays = dict(common, layer=E, y=dd.y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,

@@ -627,33 +627,55 @@ SIZES = [(3, 3, 1, False), (2, 3, 1, True), (7, 7, 2, False), (5, 6, 3, True)]
 @pytest.mark.parametrize("nan", [False, True])
 def test_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     d = _driver_inputs(rng, n, m, k, two_mode, nan)
-    X, p, B = d["X"], d["p"], d["rp"].shape[0]
+    X, p, B, N = d["X"], d["p"], d["rp"].shape[0], d["N"]
     fixed_ok = np.isfinite(X).all(axis=1)
     beta0 = rng.normal(scale=0.1, size=p)
-    for use_z in (True, False):
-        out = np.empty((B, k))
-        kn.refit_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, beta0,
-                   out, lg.MAX_ITER, lg.TOL, use_z)
-        for b in range(B):
-            yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
-            st, beta, cov = irls_twin(X, np.arange(p), yb, fixed_ok & np.isfinite(yb), beta0)
-            want = (np.full(k, np.nan) if st < 0 else
-                    beta[1:] / np.sqrt(np.diag(cov)[1:]) if use_z else beta[1:])
-            np.testing.assert_allclose(out[b], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    # the free first step of complete data: start + A (X'y_pi - m), A and m given
+    A = rng.normal(scale=0.01, size=(p, p))
+    onesteps = [np.zeros((0, p + 1))] + ([] if nan else [np.column_stack([A, rng.normal(size=p)])])
+    for onestep in onesteps:
+        for use_z in (True, False):
+            out = np.empty((B, k))
+            kn.refit_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, beta0,
+                       onestep, out, lg.MAX_ITER, lg.TOL, use_z)
+            for b in range(B):
+                yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+                start = beta0.copy()
+                if onestep.shape[0]:
+                    start += onestep[:, :p] @ (X.T @ yb - onestep[:, p])
+                st, beta, cov = irls_twin(X, np.arange(p), yb, fixed_ok & np.isfinite(yb), start)
+                want = (np.full(k, np.nan) if st < 0 else
+                        beta[1:] / np.sqrt(np.diag(cov)[1:]) if use_z else beta[1:])
+                np.testing.assert_allclose(out[b], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
     zcols = lg._reduced_columns(k)
     design = np.concatenate([zcols, np.full((k, 1), p, np.int64)], axis=1)
     ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
     b0 = rng.normal(scale=0.1, size=(k, p))
-    out = np.empty((B, k))
-    kn.refit_dsp(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok, design,
-                 b0, out, lg.MAX_ITER, lg.TOL, True)
-    for b in range(B):
-        for a in range(k):
-            e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
-            Xb = np.column_stack([X, e])
-            st, beta, cov = irls_twin(Xb, design[a], d["y"], ok[a] & np.isfinite(e), b0[a])
-            want = np.nan if st < 0 else beta[-1] / np.sqrt(cov[-1, -1])
-            np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    cinv = np.array([np.linalg.inv(M @ M.T + np.eye(k)) for M in rng.normal(size=(k, k, k))])
+    reduced_fits = [np.zeros((0, 2 * k))] + ([] if nan else [
+        np.column_stack([rng.normal(size=(N, k)), rng.random(size=(N, k))])])
+    for reduced in reduced_fits:
+        out = np.empty((B, k))
+        kn.refit_dsp(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok,
+                     design, b0, reduced, cinv, out, lg.MAX_ITER, lg.TOL, True)
+        for b in range(B):
+            for a in range(k):
+                e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+                Xb = np.column_stack([X, e])
+                start = b0[a].copy()
+                if reduced.shape[0]:
+                    # the first Newton step from the reduced fit: gradient (0, U),
+                    # information [[Z'WZ, S], [S', Q]] (kernels.irls.refit_dsp)
+                    r, w = reduced[:, a], reduced[:, k + a]
+                    S = X[:, zcols[a]].T @ (w * e)
+                    info = (w * e) @ e - S @ cinv[a] @ S
+                    if info > 0:
+                        step_e = (e @ r) / info
+                        start[-1] += step_e
+                        start[:-1] -= cinv[a] @ S * step_e
+                st, beta, cov = irls_twin(Xb, design[a], d["y"], ok[a] & np.isfinite(e), start)
+                want = np.nan if st < 0 else beta[-1] / np.sqrt(cov[-1, -1])
+                np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
 
 
 def score_rows_twin(E, F, resid_at, weight_at, x_at, rp, cp, col_start, col_stop):
