@@ -308,10 +308,10 @@ class LogisticPlan:
 
     ``kind`` names the route (module docstring): "refit-y", "refit-dsp", "score-y",
     "score-dsp-refit" run the Newton drivers of ``kernels.irls`` on dyad vectors;
-    "score-y-products" and "score-dsp-products" need only dot products of relabelled
-    layers with fixed layers, taken by ``kernels.gather.gather_cross`` (the linear
-    engine's kernel). ``arrays`` holds the route's inputs; ``scale`` (k,) multiplies
-    coefficients back into the user's units.
+    "score-y-products" needs one dot product of the relabelled response with a fixed
+    layer (``kernels.gather.gather_cross``, the linear engine's kernel) and
+    "score-dsp-products" the sums of ``kernels.irls.score_rows``. ``arrays`` holds the
+    route's inputs; ``scale`` (k,) multiplies coefficients back into the user's units.
     """
 
     kind: str
