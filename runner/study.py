@@ -28,7 +28,7 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     kind = "regression"       # regression | correlation (correlation: exactly one predictor)
     model = "linear"          # regression only: linear | logistic
     scheme = "dsp"            # regression only: y | dsp | freedman-lane
-    statistic = "t"           # regression only: t | coef
+    statistic = "t"           # regression only: t | coef | score (score: logistic only)
     method = "pearson"        # correlation only: pearson | spearman
     permutations = 10000      # integer >= 1
     seed = 20261202           # integer >= 0, optional
@@ -92,7 +92,7 @@ _CHOICES = {
     "kind": ("regression", "correlation"),
     "model": ("linear", "logistic"),
     "scheme": ("y", "dsp", "freedman-lane"),
-    "statistic": ("t", "coef"),
+    "statistic": ("t", "coef", "score"),
     "method": ("pearson", "spearman"),
     "dyads": ("within", "all"),
 }
@@ -302,6 +302,9 @@ def _test_entry(te: dict, check: _Checker, n_predictors: int) -> dict:
         wanted = regression_key == (kind == "regression")
         test[key] = (check.text(sec, te, key, choices=_CHOICES[key], default=_DEFAULTS[key])
                      if wanted else None)
+    if test["statistic"] == "score" and test["model"] != "logistic":
+        raise check.error(sec, "statistic", 'score applies to model = "logistic" only',
+                          "score")
     if kind == "correlation" and n_predictors != 1:
         raise check.error(sec, "kind", f"correlation needs exactly one [[predictor]] "
                           f"(found {n_predictors})", kind)

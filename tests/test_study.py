@@ -494,3 +494,17 @@ def test_run_end_to_end_matches_statsmodels(tmp_path, rng):
     np.testing.assert_allclose(res.coef, ols.params, rtol=1e-9)
     np.testing.assert_allclose(res.stat, ols.tvalues, rtol=1e-9)
     assert res.terms == ("intercept", "x", "age_gap") and res.permutations == 19
+
+
+def test_score_statistic_only_with_logistic(tmp_path):
+    """statistic = "score" is the logistic model's score test; linear studies refuse it."""
+    (tmp_path / "y.csv").write_text("source,target\nA,B\nB,C\nC,A\n")
+    (tmp_path / "x.csv").write_text("source,target\nA,B\nC,B\n")
+    body = ('[study]\ntitle = "t"\n[response]\nfile = "y.csv"\n[[predictor]]\nname = "x"\n'
+            'file = "x.csv"\n[test]\nstatistic = "score"\n')
+    (tmp_path / "s.toml").write_text(body)
+    with pytest.raises(dp.InputError,
+                       match=r'\[test\] statistic: score applies to model = "logistic"'):
+        load_study(tmp_path / "s.toml")
+    (tmp_path / "s.toml").write_text(body + 'model = "logistic"\n')
+    assert load_study(tmp_path / "s.toml").spec["test"]["statistic"] == "score"
