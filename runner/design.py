@@ -35,7 +35,9 @@ class Prepared:
     """Inputs on the engine's internal node order.
 
     ``matrices`` holds the predictors then the response, each (n, m) float64 in internal
-    order, NaN where missing or structurally excluded. ``mask`` marks the structural dyad
+    order, NaN where missing. Cells off the dyad set are unspecified (the user's own values
+    when the inputs are used as given, NaN in reordered copies): read dyad values through
+    ``mask``. ``mask`` marks the structural dyad
     set. ``row_order``/``col_order`` map internal positions to the user's node positions.
     """
 
@@ -167,14 +169,18 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
     internal = []
     identity = np.array_equal(row_order, np.arange(n)) and np.array_equal(col_order, np.arange(m))
     for mat in mats:
+        if identity and excluded is None:
+            # no copy: the inputs already stand in node order, and everything downstream
+            # reads dyad values through `mask` (layers blank the cells off it)
+            internal.append(mat)
+            continue
         a = np.array(mat, dtype=np.float64, copy=True) if identity else mat[np.ix_(row_order, col_order)]
         a[~mask] = np.nan
-        internal.append(a)
-    if not is_directed:
-        # dyad values live in the upper triangle; mirror so relabelled reads see them
-        for a in internal:
+        if not is_directed:
+            # dyad values live in the upper triangle; mirror so relabelled reads see them
             lower = np.tril_indices(n, -1)
             a[lower] = a.T[lower]
+        internal.append(a)
     complete = excluded is None and not any(np.isnan(a[mask]).any() for a in internal)
     n_dyads = int(mask.sum())
     labels_out = tuple(labels)
@@ -231,9 +237,18 @@ def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> 
 
 
 def _symmetric(mat: np.ndarray) -> bool:
-    a = mat.copy()
-    np.fill_diagonal(a, 0.0)
-    return bool(np.array_equal(a, a.T, equal_nan=True))
+    """Equal to its transpose off the diagonal (NaN equals NaN), in blocks of rows."""
+    n = mat.shape[0]
+    step = max(1, STREAM_DYADS // max(n, 1))
+    for i0 in range(0, n, step):
+        blk = mat[i0:i0 + step]
+        blk_t = mat[:, i0:i0 + step].T
+        same = (blk == blk_t) | (np.isnan(blk) & np.isnan(blk_t))
+        rows = np.arange(blk.shape[0])
+        same[rows, i0 + rows] = True
+        if not same.all():
+            return False
+    return True
 
 
 def _group_order(groups: Any, n: int, what: str):

@@ -21,6 +21,9 @@ from .schemes import Plan
 # tenth of a second to a second of kernel time, so progress, storage and resume stay fine.
 CHUNK_WORK = 2e8
 MAX_CHUNK = 1000
+# Kernels share each read of the fixed layers among the permutations of a chunk (up to a
+# block of 8), so a chunk is never smaller than this.
+MIN_CHUNK = 16
 
 
 @dataclass(frozen=True)
@@ -52,7 +55,7 @@ class Draws:
 def default_chunk_size(plan: Plan) -> int:
     """A chunk size that keeps one chunk's kernel work near ``CHUNK_WORK``."""
     per_perm = plan.n_dyads * sum((p.rel_idx.size + 1) * (p.fix_idx.size + 1) for p in plan.passes)
-    return int(np.clip(CHUNK_WORK // max(per_perm, 1), 1, MAX_CHUNK))
+    return int(np.clip(CHUNK_WORK // max(per_perm, 1), MIN_CHUNK, MAX_CHUNK))
 
 
 def compute_chunk(plan: Plan, draws: Draws, c: int) -> tuple[int, np.ndarray]:

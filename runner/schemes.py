@@ -100,13 +100,15 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     n, m = prep.mask.shape
     out = np.empty((n, m, len(layers)), dtype=STORAGE[storage])
     fill = 0.0 if prep.complete else np.nan
+    # cells that hold dyad values: the dyad set, and for undirected data its mirror image
+    # (relabelled reads land in either triangle)
+    holds = prep.mask if (prep.directed or prep.two_mode) else (prep.mask | prep.mask.T)
     for pos, layer in enumerate(layers):
         a = prep.matrices[layer]
         view = out[:, :, pos]
         np.subtract(a, mean[layer], out=view)
         view /= sd[layer]
-        if prep.complete:
-            np.nan_to_num(view, copy=False, nan=fill)
+        view[~holds] = fill
     return out
 
 
