@@ -15,7 +15,7 @@ from typing import Optional
 
 import typer
 
-from .errors import DyadpermError, DyadpermWarning, InputError, NumericalError, RunFileError
+from .errors import DyadpermError, InputError, NumericalError, RunFileError
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
                   help="Permutation tests (QAP, MRQAP) for network data.")

@@ -65,14 +65,18 @@ class Prepared:
         return len(self.names)
 
 
-def name_predictors(predictors: Any) -> list[tuple[str, Any]]:
-    """Predictors as (name, object) pairs: dict keys, or names/x1, x2, ... for a list."""
+def name_predictors(predictors: Any, named: tuple[type, ...] = (Dyadic, NodeDerived, Reverse)
+                    ) -> list[tuple[str, Any]]:
+    """Predictors as (name, object) pairs: dict keys, or names/x1, x2, ... for a list.
+
+    In a list, objects of the ``named`` types keep their own ``name`` when they have one.
+    """
     if isinstance(predictors, Mapping):
         items = [(str(k), v) for k, v in predictors.items()]
     elif isinstance(predictors, (list, tuple)):
         items = []
         for i, v in enumerate(predictors):
-            name = getattr(v, "name", None) if isinstance(v, (Dyadic, NodeDerived, Reverse)) else None
+            name = getattr(v, "name", None) if isinstance(v, named) else None
             items.append((name or f"x{i + 1}", v))
     else:
         items = [(getattr(predictors, "name", None) or "x1", predictors)]

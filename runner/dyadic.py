@@ -11,7 +11,7 @@ value per node and are turned into dyad values only when the engine needs them;
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np

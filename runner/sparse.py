@@ -68,13 +68,13 @@ with that advice.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 import scipy.sparse as sp
 from scipy.stats import rankdata
 
-from .design import ObservedFit, _group_order, _standardised_condition
+from .design import ObservedFit, _group_order, _standardised_condition, name_predictors
 from .dyadic import NodeDerived, Reverse, _node_vector
 from .engine import MAX_CHUNK, run_all
 from .errors import InputError
@@ -247,25 +247,7 @@ def is_sparse(obj: Any) -> bool:
 
 
 def _predictor_objects(predictors: Any) -> list[tuple[str, Any]]:
-    if isinstance(predictors, Mapping):
-        items = [(str(k), v) for k, v in predictors.items()]
-    elif isinstance(predictors, (list, tuple)):
-        items = []
-        for i, v in enumerate(predictors):
-            name = getattr(v, "name", None) if isinstance(
-                v, (SparseNetwork, NodeDerived, Reverse)) else None
-            items.append((name or f"x{i + 1}", v))
-    else:
-        items = [(getattr(predictors, "name", None) or "x1", predictors)]
-    if not items:
-        raise InputError("predictors: give at least one predictor")
-    names = [n for n, _ in items]
-    dup = {n for n in names if names.count(n) > 1}
-    if dup:
-        raise InputError(f"predictors: duplicate name {sorted(dup)[0]!r}")
-    if "intercept" in names:
-        raise InputError("predictors: the name 'intercept' is reserved for the constant term")
-    return items
+    return name_predictors(predictors, named=(SparseNetwork, NodeDerived, Reverse))
 
 
 def _fits_sparse(obj: Any) -> bool:

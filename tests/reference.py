@@ -42,7 +42,7 @@ def gather_cross_ref(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start
     out[b, a, c] = sum_i sum_{col_start[i] <= j < col_stop[i]}
                    rel[row_perms[b, i], col_perms[b, j], rel_idx[a]] * fix[i, j, fix_idx[c]]
     """
-    n, m = fix.shape[0], fix.shape[1]
+    m = fix.shape[1]
     B = row_perms.shape[0]
     R, Q = len(rel_idx), len(fix_idx)
     jj = np.arange(m)[None, :]

@@ -73,3 +73,23 @@ def test_sparse_cross_equals_edge_sum(n, invert):
         node_map = np.argsort(perms[b]) if invert else perms[b]
         ref = _edge_sum(src, dst, w, attr, kinds, cols, center, node_map)
         np.testing.assert_allclose(out[b], ref, rtol=1e-10, atol=1e-9)
+
+
+def test_auto_block_fits_rows_in_cache_and_changes_no_bit():
+    """The automatic block keeps about BLOCK_BYTES of relabelled rows in flight (1 for very
+    wide rows) and gives the same bits as any explicit block (common practice: blocking
+    must not change a sum's order)."""
+    from dyadperm.kernels.gather import BLOCK_BYTES, MAX_BLOCK, auto_block, gather_cross
+
+    assert auto_block(np.empty((4, 2000, 1))) == MAX_BLOCK  # 16 KB rows
+    assert auto_block(np.empty((4, 2000, 4))) == BLOCK_BYTES // (2000 * 4 * 8)
+    assert auto_block(np.empty((2, 10_000, 4), dtype=np.float32)) == 1
+    rng = np.random.default_rng(3)
+    n = 11
+    rel = rng.normal(size=(n, n, 2))
+    rows = np.array([rng.permutation(n) for _ in range(9)], dtype=np.int64)
+    args = (rel, np.array([0, 1]), rel, np.array([1, 0]), rows, rows,
+            np.zeros(n, np.int64), np.full(n, n, np.int64))
+    auto = gather_cross(*args, np.empty((9, 2, 2)))
+    for block in (1, 3, 16):
+        assert np.array_equal(gather_cross(*args, np.empty((9, 2, 2)), block=block), auto)

@@ -5,7 +5,6 @@ engine promises bit-identical null statistics whatever the chunking, workers, sh
 or resume point (design.md).
 """
 
-import os
 import shutil
 import signal
 import subprocess
