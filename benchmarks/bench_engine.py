@@ -44,7 +44,7 @@ RELABELLED_LAYERS = {"y": 1, "dsp": 3, "freedman-lane": 4}  # with 3 predictors
 K = 3
 SEED = 20240611
 # permutations timed per size (engine, scheme y; dsp and freedman-lane do a half)
-ENGINE_PERMS = {500: 1024, 1000: 256, 2000: 96, 5000: 32}
+ENGINE_PERMS = {500: 1024, 1000: 256, 2000: 128, 5000: 64}
 NAIVE_PERMS = {500: 8, 1000: 4, 2000: 2, 5000: 1}
 QUICK_ENGINE_PERMS = {500: 128, 1000: 48}
 QUICK_NAIVE_PERMS = {500: 2, 1000: 1}
@@ -159,7 +159,8 @@ def child_engine(n: int, perms: int, storage: str, chunk: int | None) -> dict:
     for scheme in SCHEMES:
         plan = build_plan(prep, scheme=scheme, statistic="t", storage=storage)
         total = perms if scheme == "y" else max(perms // 2, 4)
-        cs = chunk or default_chunk_size(plan)
+        # at least 4 chunks, so both workers stay busy on a short timed slice
+        cs = chunk or min(default_chunk_size(plan), max(1, total // 4))
         draws = Draws(prep.blocks, total, cs, False, SEED)
         ident = np.arange(n, dtype=np.int64)[None, :]
         plan.statistics(ident, ident)  # compile (or load the cached kernels)

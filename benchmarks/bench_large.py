@@ -3,7 +3,7 @@
 The study: a dense directed response and 3 dense predictors on n = 10,000 nodes (10^8
 cells each, 3.2 GB of float64 inputs), scheme dsp, 10,000 permutations, jobs=2. Running
 it whole takes long, so this times a slice: after the setup (prepare, observed fit,
-plan) and a warm-up permutation, ``--slice`` permutations (default 16) go through
+plan) and a warm-up permutation, ``--slice`` permutations (default 32: two chunks, one per worker) go through
 ``engine.iter_chunks`` with jobs=2; the time of 10,000 is projected from their rate plus
 the setup. Peak resident memory (VmHWM) is measured, and the resident memory after each
 stage shows where the copies are. float64 and float32 storage each run in a fresh
@@ -104,7 +104,7 @@ def bandwidth() -> float:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=10_000)
-    ap.add_argument("--slice", type=int, default=16)
+    ap.add_argument("--slice", type=int, default=32)
     ap.add_argument("--storage", default="float64,float32")
     ap.add_argument("--chunk", type=int, default=None,
                     help="chunk size (default: the engine's default_chunk_size)")

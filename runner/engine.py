@@ -17,9 +17,10 @@ import numpy as np
 from .permutations import Blocks, draw, enumerate_exact
 from .schemes import Plan
 
-# Work per chunk (dyads x cross products) the default chunk size aims at: about a
-# tenth of a second to a second of kernel time, so progress, storage and resume stay fine.
-CHUNK_WORK = 2e8
+# Work per chunk (dyads x cross products) the default chunk size aims at: a few tenths of a
+# second of kernel time, so progress, storage and resume stay fine-grained while the cost
+# of storing a chunk (one flush) stays a few percent.
+CHUNK_WORK = 1e9
 MAX_CHUNK = 1000
 # Kernels share each read of the fixed layers among the permutations of a chunk (up to a
 # block of 8), so a chunk is never smaller than this.

@@ -15,6 +15,8 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     [response]
     name = "water"            # optional; default: the file's stem
     file = "water.csv"        # required: .csv (edge list or matrix), .npy, or file.h5:/dataset
+                              # or one file per group: file = { a = "a.csv", b = "b.csv" }
+                              # (keys are the values of the [test] groups column)
     format = "auto"           # optional: auto | edges | matrix
     missing = "NA"            # optional extra missing-value marker
 
@@ -245,7 +247,17 @@ def _validate(doc: dict, check: _Checker) -> dict:
 
 
 def _network_entry(section: str, table: dict, check: _Checker) -> dict:
-    return {"file": check.text(section, table, "file", required=True),
+    files = table.get("file")
+    if isinstance(files, dict):  # one file per group: { group = "file.csv", ... }
+        if not files:
+            raise check.error(section, "file", "needs at least one group = file entry", files)
+        for group, name in files.items():
+            if not isinstance(name, str) or not name.strip():
+                raise check.error(section, f"file.{group}", "must be a file name", name)
+        file: Any = dict(files)
+    else:
+        file = check.text(section, table, "file", required=True)
+    return {"file": file,
             "format": check.text(section, table, "format", choices=FORMATS, default="auto"),
             "missing": check.text(section, table, "missing")}
 
@@ -567,12 +579,21 @@ class _Loader:
         entries = [("[response]", self.spec["response"])] + [
             (f"[[predictor]] #{k + 1}", p) for k, p in enumerate(self.spec["predictor"])]
         raws: dict[str, tuple[RawNetwork, str]] = {}
+        grouped: dict[str, dict[str, tuple[RawNetwork, str]]] = {}
         for section, entry in entries:
-            if "file" in entry:
-                where = self.resolve(section, "file", entry["file"])
-                raws[entry["name"]] = (read_network(where, fmt=entry["format"],
-                                                    missing=entry["missing"]), entry["file"])
-        rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()])
+            if "file" not in entry:
+                continue
+            if isinstance(entry["file"], dict):
+                grouped[entry["name"]] = {
+                    group: (read_network(self.resolve(section, f"file.{group}", file),
+                                         fmt=entry["format"], missing=entry["missing"]), file)
+                    for group, file in entry["file"].items()}
+                continue
+            where = self.resolve(section, "file", entry["file"])
+            raws[entry["name"]] = (read_network(where, fmt=entry["format"],
+                                                missing=entry["missing"]), entry["file"])
+        rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()] + [
+            r for parts in grouped.values() for r, _ in parts.values()])
 
         networks: dict[str, Any] = {}
         sparse = self.sparse_route(raws, rows, cols)
@@ -584,6 +605,9 @@ class _Loader:
                                   row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"])
             self.notes.extend(notes)
             networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name)
+
+        for name, parts in grouped.items():
+            networks[name] = self.assemble_groups(name, parts, nodes, rows)
 
         predictors: dict[str, Dyadic | NodeDerived | Reverse] = {}
         for section, p in entries[1:]:
@@ -605,6 +629,44 @@ class _Loader:
                      col_node_ids=cols, node_table=nodes, col_node_table=col_nodes,
                      response=networks[self.spec["response"]["name"]], predictors=predictors,
                      groups=groups, notes=self.notes, output=output)
+
+    def assemble_groups(self, name: str, parts: dict, nodes: NodeTable | None,
+                        rows: tuple[str, ...]) -> Dyadic:
+        """One network from one file per group (several separate networks, stacked).
+
+        Each file holds the ties among the nodes of its group (the ``[test] groups`` column);
+        dyads between groups do not exist and never enter (``dyads = "within"``).
+        """
+        test, sd = self.spec["test"], self.spec["study"]
+        section = "[response]" if name == self.spec["response"]["name"] else "[[predictor]]"
+        if nodes is None or test["groups"] is None:
+            raise self.check.error(section, "file", "one file per group needs [study] nodes "
+                                   "and [test] groups", sorted(parts))
+        if test["dyads"] == "all":
+            raise self.check.error("[test]", "dyads", "one file per group gives the dyads "
+                                   "within groups only; use dyads = \"within\"", "all")
+        if sd["two_mode"]:
+            raise self.check.error(section, "file", "one file per group is for one-mode "
+                                   "networks", sorted(parts))
+        labels = np.array([_group_key(v) for v in self.attribute(
+            "[test]", "groups", nodes, test["groups"], need_all=True)])
+        absent = sorted(set(labels) - set(parts))
+        if absent:
+            raise self.check.error(section, f"file.{absent[0]}", "no file for this group "
+                                   f"(groups found in {sd['nodes']}: "
+                                   f"{', '.join(sorted(set(labels)))})", None)
+        full = np.zeros((len(rows), len(rows)))
+        for group, (raw, file) in parts.items():
+            members = np.flatnonzero(labels == group)
+            if members.size == 0:
+                raise self.check.error(section, f"file.{group}", f"no node of group {group!r} "
+                                       f"in {sd['nodes']}", file)
+            values, notes = align(raw, tuple(rows[i] for i in members), None,
+                                  directed=sd["directed"], source=file,
+                                  row_ids_source=f"group {group} of {sd['nodes']}")
+            self.notes.extend(notes)
+            full[np.ix_(members, members)] = values
+        return Dyadic(full, rows, None, sd["directed"], None, name)
 
     def sparse_route(self, raws: dict, rows: tuple[str, ...], cols) -> bool:
         """Whether to keep edge lists as edges (the sparse engine path) instead of n x n.
@@ -708,6 +770,13 @@ class _Loader:
         if kind == "sender":
             return sender(values, name=name)
         return _DERIVED[kind](values, col_values, name=name)
+
+
+def _group_key(value: Any) -> str:
+    """A group label as the study file writes it: 3.0 -> "3", "north" -> "north"."""
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
 
 
 def _is_number(cell: str) -> bool:
