@@ -77,8 +77,9 @@ def machine() -> dict:
     return info
 
 
-def read_bandwidth(gib: float) -> float:
-    """Two-thread read bandwidth in bytes/s: best of 3 sums of a ``gib`` GiB array."""
+def read_bandwidth(gib: float, threads: int = 2, repeats: int = 3) -> float:
+    """Read bandwidth in bytes/s of ``threads`` threads: best of ``repeats`` sums of a
+    ``gib`` GiB array split among them."""
     import threading
 
     import numpy as np
@@ -101,14 +102,14 @@ def read_bandwidth(gib: float) -> float:
 
     a = np.ones(int(gib * 2**30) // 8)  # written once: every page is resident
     total(a[:64])
-    halves = (a[: a.size // 2], a[a.size // 2:])
+    parts = np.array_split(a, threads)
     best = float("inf")
-    for _ in range(3):
-        threads = [threading.Thread(target=total, args=(h,)) for h in halves]
+    for _ in range(repeats):
+        workers = [threading.Thread(target=total, args=(part,)) for part in parts]
         t0 = time.perf_counter()
-        for t in threads:
+        for t in workers:
             t.start()
-        for t in threads:
+        for t in workers:
             t.join()
         best = min(best, time.perf_counter() - t0)
     return a.nbytes / best

@@ -51,31 +51,10 @@ def _env_one_thread() -> dict:
 
 def read_bandwidth_one_thread(gib: float = 0.5) -> float:
     """One-thread read bandwidth in bytes/s: best of 5 sums of a ``gib`` GiB array."""
-    import numpy as np
-    from numba import njit
+    sys.path.insert(0, str(HERE))
+    from bench_engine import read_bandwidth
 
-    @njit(nogil=True, cache=False)
-    def total(a):
-        s0 = 0.0
-        s1 = 0.0
-        s2 = 0.0
-        s3 = 0.0
-        n = a.shape[0] - a.shape[0] % 4
-        for i in range(0, n, 4):
-            s0 += a[i]
-            s1 += a[i + 1]
-            s2 += a[i + 2]
-            s3 += a[i + 3]
-        return s0 + s1 + s2 + s3
-
-    a = np.ones(int(gib * 2**30) // 8)
-    total(a[:64])
-    best = float("inf")
-    for _ in range(5):
-        t0 = time.perf_counter()
-        total(a)
-        best = min(best, time.perf_counter() - t0)
-    return a.nbytes / best
+    return read_bandwidth(gib, threads=1, repeats=5)
 
 
 def make_inputs(n: int, k: int):

@@ -291,18 +291,40 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     summary["stop"] = rule.to_dict()
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
-    draws, observed, null = _execute(
-        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
-        chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
-        observed_fit=fit_arrays, provenance=provenance, shard=shard or "", backend=backend,
-        scheduler=scheduler)
+    return run_to_result(
+        prep, plan, settings=settings, summary=summary, fit_arrays=fit_arrays,
+        agree_with=fit.t[1:] if statistic == "t" else None, permutations=permutations,
+        seed=seed, jobs=jobs, exact=exact, chunk_size=chunk_size, progress=progress, out=out,
+        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler)
+
+
+def run_to_result(prep, plan: Plan, *, settings: dict, summary: dict, fit_arrays: dict,
+                  agree_with: np.ndarray | None = None, shard: str | None = None, **run):
+    """Run the relabellings of a prepared plan and build its result (None for a shard).
+
+    ``agree_with``: the classical t statistics the kernels' observed statistics must match
+    (a warning names the term where near-collinearity cost them precision).
+    """
+    draws, observed, null = _execute(prep, plan, settings=settings, summary=summary,
+                                     observed_fit=fit_arrays, shard=shard or "", **run)
     if null is None:
         return None
-    if statistic == "t":
-        _check_agreement(observed, fit.t[1:], prep.names)
+    if agree_with is not None:
+        _check_agreement(observed, agree_with, prep.names)
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
                         seed=None if draws.exact else draws.entropy, planned=draws.total)
+
+
+def correlation_fit(plan: Plan, prep, n_dyads: Any) -> dict:
+    """Observed correlations (through the kernels, as the identity relabelling) and their
+    classical standard errors sqrt((1 - r^2) / (N - 2))."""
+    ident = (np.arange(prep.blocks.n_rows, dtype=np.int64)[None, :],
+             np.arange(prep.blocks.n_cols, dtype=np.int64)[None, :])
+    r = plan.statistics(*ident)[0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        se = np.sqrt((1 - r ** 2) / (np.asarray(n_dyads, dtype=np.float64) - 2))
+    return dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan]))
 
 
 def _no_stop_rule(rule, where: str) -> None:
@@ -430,22 +452,11 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
     summary = _summary(prep, kind="correlation", model="correlation", scheme="y",
                        statistic="r", method=method, n_dyads=n_dy, terms=prep.names)
     summary["stop"] = rule.to_dict()
-    ident_perm = (np.arange(prep.mask.shape[0], dtype=np.int64)[None, :],
-                  np.arange(prep.mask.shape[1], dtype=np.int64)[None, :])
-    r = plan.statistics(*ident_perm)[0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        se = np.sqrt((1 - r ** 2) / (n_dy - 2))
-    fit_arrays = dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan]))
-    draws, observed, null = _execute(
-        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
-        chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
-        observed_fit=fit_arrays, provenance=provenance, shard=shard or "", backend=backend,
-        scheduler=scheduler)
-    if null is None:
-        return None
-    return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
-                        exact=draws.exact, chunk_size=draws.chunk_size,
-                        seed=None if draws.exact else draws.entropy, planned=draws.total)
+    return run_to_result(
+        prep, plan, settings=settings, summary=summary,
+        fit_arrays=correlation_fit(plan, prep, n_dy), permutations=permutations, seed=seed,
+        jobs=jobs, exact=exact, chunk_size=chunk_size, progress=progress, out=out,
+        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler)
 
 
 def _sparse_args(args: dict) -> dict:

@@ -833,22 +833,11 @@ def correlate_layers(networks: Any, *, method: str = "pearson", permutations: in
                             statistic="r", method=method, n_dyads=prep.n_dyads, terms=labels)
     summary.update(tested=labels, layers=names, pairs=[list(p) for p in pairs],
                    stop=rule.to_dict())
-    ident = (np.arange(run_prep.blocks.n_rows, dtype=np.int64)[None, :],
-             np.arange(run_prep.blocks.n_cols, dtype=np.int64)[None, :])
-    r = plan.statistics(*ident)[0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        se = np.sqrt((1 - r ** 2) / (np.asarray(n_pair, dtype=np.float64) - 2))
-    fit_arrays = dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan]))
-    draws, observed, null = _api._execute(
-        run_prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
-        chunk_size=chunk_size, progress=progress, out=out, settings=settings, summary=summary,
-        observed_fit=fit_arrays, provenance=provenance, shard=shard or "", backend=backend,
-        scheduler=scheduler)
-    if null is None:
-        return None
-    return _api.build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
-                             exact=draws.exact, chunk_size=draws.chunk_size,
-                             seed=None if draws.exact else draws.entropy, planned=draws.total)
+    return _api.run_to_result(
+        run_prep, plan, settings=settings, summary=summary,
+        fit_arrays=_api.correlation_fit(plan, run_prep, n_pair), permutations=permutations,
+        seed=seed, jobs=jobs, exact=exact, chunk_size=chunk_size, progress=progress, out=out,
+        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler)
 
 
 def json_names(names: Sequence[str]) -> str:
