@@ -17,7 +17,7 @@ from .engine import Draws, default_chunk_size, iter_chunks, run_all
 from .errors import DyadpermWarning, InputError
 from .permutations import EXACT_LIMIT, Blocks
 from .result import CorrelationResult, LayerCorrelationResult, RegressionResult
-from .schemes import SCHEMES, STATISTICS, Plan, build_correlation_plan, build_plan
+from .schemes import Plan, build_correlation_plan, build_plan, check_options
 
 MODELS = ("linear", "logistic")
 BACKENDS = ("threads", "processes", "dask")
@@ -275,10 +275,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
                   chunk_size=chunk_size)
     if model not in MODELS:
         raise InputError(f"model must be one of {', '.join(MODELS)}; got {model!r}")
-    if scheme not in SCHEMES:
-        raise InputError(f"scheme must be one of {', '.join(SCHEMES)}; got {scheme!r}")
-    if statistic not in STATISTICS:
-        raise InputError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
+    check_options(scheme=scheme, statistic=statistic, storage=storage)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep)
     plan = build_plan(prep, scheme=scheme, statistic=statistic, storage=storage)

@@ -129,14 +129,17 @@ def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
     return np.linalg.solve(gram[np.ix_(idx, idx)], gram[idx, 1 + target])
 
 
+def check_options(*, scheme: str, statistic: str, storage: str = "float64") -> None:
+    """InputError naming the first of scheme, statistic, storage that is not offered."""
+    for name, value, offered in (("scheme", scheme, SCHEMES), ("statistic", statistic, STATISTICS),
+                                 ("storage", storage, tuple(STORAGE))):
+        if value not in offered:
+            raise InputError(f"{name} must be one of {', '.join(offered)}; got {value!r}")
+
+
 def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64") -> Plan:
     """Layers, invariant Gram blocks and transforms of a regression scheme."""
-    if scheme not in SCHEMES:
-        raise InputError(f"scheme must be one of {', '.join(SCHEMES)}; got {scheme!r}")
-    if statistic not in STATISTICS:
-        raise InputError(f"statistic must be one of {', '.join(STATISTICS)}; got {statistic!r}")
-    if storage not in STORAGE:
-        raise InputError(f"storage must be one of {', '.join(STORAGE)}; got {storage!r}")
+    check_options(scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
     if prep.complete:
         passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd)]

@@ -83,6 +83,7 @@ from .kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap
 from .kernels.stats import correlation_stats, fill_gram, regression_stats
 from .permutations import Blocks
 from .result import CorrelationResult, RegressionResult
+from .schemes import check_options
 
 # Relative pivot below which a predictor counts as collinear on this path. The normal
 # equations square the condition number, so pivots far below sqrt(machine epsilon) cannot be
@@ -858,16 +859,12 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "y"
                        chunk_size=chunk_size)
     if model not in _api.MODELS:
         raise InputError(f"model must be one of {', '.join(_api.MODELS)}; got {model!r}")
-    if scheme not in _api.SCHEMES:
-        raise InputError(f"scheme must be one of {', '.join(_api.SCHEMES)}; got {scheme!r}")
+    check_options(scheme=scheme, statistic=statistic)
     if scheme != "y":
         raise InputError(f"scheme {scheme!r} relabels dense residual matrices (every dyad "
                          "holds a residual), which a sparse response cannot avoid: use "
                          "scheme='y' on sparse input, or pass dense arrays (.toarray()) for "
                          "a network that fits in memory")
-    if statistic not in _api.STATISTICS:
-        raise InputError(f"statistic must be one of {', '.join(_api.STATISTICS)}; "
-                         f"got {statistic!r}")
     _check_sparse_options(out=out, shard=shard, storage=storage)
     prep = prepare_sparse(y, predictors, directed=directed, groups=groups, dyads=dyads)
     mom = fixed_products(prep)
