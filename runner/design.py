@@ -128,21 +128,13 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
     else:
         asym = [nm for nm, mat in zip(names + (resp.name,), mats) if not _symmetric(mat)]
         explicit = [dy.directed for _, dy in dyadics if dy is not None and dy.directed is not None]
-        if directed is None and explicit:
-            directed = any(explicit)
-        if directed is False and asym:
-            raise InputError(f"directed=False but {asym[0]!r} is not symmetric")
-        is_directed = bool(asym) if directed is None else bool(directed)
+        is_directed = decide_directed(directed, asym, explicit)
 
     # groups and blocks
     row_order, row_blocks, codes = _group_order(groups, n, "groups")
-    if groups is None and dyads is not None:
-        raise InputError("dyads: 'within' and 'all' need groups")
     if groups is not None and two_mode:
         raise InputError("groups: supported for one-mode networks only")
-    dyads = dyads or ("within" if groups is not None else "all")
-    if dyads not in ("within", "all"):
-        raise InputError(f"dyads must be 'within' or 'all'; got {dyads!r}")
+    dyads = decide_dyads(dyads, groups)
     if two_mode:
         col_order = np.arange(m, dtype=np.int64)
         blocks = Blocks(n, m, ((0, n),), ((0, m),))
@@ -191,6 +183,28 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
     return Prepared(names, resp.name, tuple(internal), mask, blocks, col_start, col_stop,
                     row_order, col_order, labels_out, tuple(col_labels) if two_mode else None,
                     is_directed, complete, n_dyads)
+
+
+def decide_directed(directed: bool | None, asymmetric: Sequence[str],
+                    explicit: Sequence[bool]) -> bool:
+    """Directedness of one-mode data: the argument, else the inputs' own flags, else
+    directed exactly when some input is asymmetric; directed=False with an asymmetric
+    input is an error naming it."""
+    if directed is None and explicit:
+        directed = any(explicit)
+    if directed is False and asymmetric:
+        raise InputError(f"directed=False but {asymmetric[0]!r} is not symmetric")
+    return bool(asymmetric) if directed is None else bool(directed)
+
+
+def decide_dyads(dyads: str | None, groups: Any) -> str:
+    """'within' (default with groups) or 'all'; either needs groups."""
+    if groups is None and dyads is not None:
+        raise InputError("dyads: 'within' and 'all' need groups")
+    dyads = dyads or ("within" if groups is not None else "all")
+    if dyads not in ("within", "all"):
+        raise InputError(f"dyads must be 'within' or 'all'; got {dyads!r}")
+    return dyads
 
 
 def _predictor_matrix(name: str, obj: Any, resp: Dyadic) -> tuple[np.ndarray, Dyadic | None]:

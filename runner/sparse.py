@@ -74,7 +74,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.stats import rankdata
 
-from .design import ObservedFit, _group_order, _standardised_condition, name_predictors
+from .design import (ObservedFit, _group_order, _standardised_condition, decide_directed,
+                     decide_dyads, name_predictors)
 from .dyadic import NodeDerived, Reverse, _node_vector
 from .engine import MAX_CHUNK, run_all
 from .errors import InputError
@@ -414,19 +415,11 @@ def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, gro
             asym.append(name)
     explicit = [net.directed for net in [resp] + [v for _, k, v in raw if k == "network"]
                 if net.directed is not None]
-    if directed is None and explicit:
-        directed = any(explicit)
-    if directed is False and asym:
-        raise InputError(f"directed=False but {asym[0]!r} is not symmetric")
-    is_directed = bool(asym) if directed is None else bool(directed)
+    is_directed = decide_directed(directed, asym, explicit)
 
     # groups: blocks of the relabelling and, with dyads="within", the dyad set
     row_order, row_blocks, _ = _group_order(groups, n, "groups")
-    if groups is None and dyads is not None:
-        raise InputError("dyads: 'within' and 'all' need groups")
-    dyads = dyads or ("within" if groups is not None else "all")
-    if dyads not in ("within", "all"):
-        raise InputError(f"dyads must be 'within' or 'all'; got {dyads!r}")
+    dyads = decide_dyads(dyads, groups)
     blocks = Blocks(n, n, tuple(row_blocks), None)
     ranges = tuple(row_blocks) if dyads == "within" else ((0, n),)
     pos = np.empty(n, dtype=np.int64)
