@@ -496,6 +496,20 @@ def test_run_file_round_trip(rng, tmp_path):
 
 
 # --- kernels vs plain-numpy twins ---------------------------------------------------------
+def _pivots_ok(H):
+    """The kernel's test of the information matrix (kernels.irls._cholesky): finite, and
+    every Cholesky pivot L[c, c]**2 above SINGULAR_PIVOT * H[c, c]. numpy's cholesky alone
+    accepts a matrix holding NaN on some LAPACK builds, and tiny pivots."""
+    if not np.all(np.isfinite(H)):
+        return False
+    try:
+        L = np.linalg.cholesky(H)
+    except np.linalg.LinAlgError:
+        return False
+    piv = np.diag(L) ** 2
+    return bool(np.all(piv > kn.SINGULAR_PIVOT * np.diag(H)) and np.all(piv > 0))
+
+
 def irls_twin(X, cols, y, valid, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL):
     """Twin of kernels.irls.irls_logistic: Newton steps with halving while the deviance
     rises, converged when the next step has every |step| <= tol (1 + |b|) (taken without a
@@ -515,9 +529,7 @@ def irls_twin(X, cols, y, valid, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL):
     beta = np.array(beta0, dtype=float)
     dev, H, g = parts(beta)
     for it in range(1, max_iter + 1):
-        try:
-            np.linalg.cholesky(H)
-        except np.linalg.LinAlgError:
+        if not _pivots_ok(H):
             return kn.FAIL_SINGULAR, None, None
         step = np.linalg.solve(H, g)
         if np.all(np.abs(step) <= tol * (1 + np.abs(beta))):
