@@ -73,21 +73,31 @@ def _draws(blocks: Blocks, *, permutations: int, exact: Any, entropy: int,
     return Draws(blocks, total, chunk_size, use_exact, entropy)
 
 
-def _identity(prep, draws: Draws, settings: dict) -> dict:
-    """Everything that must agree for a run file to belong to this run."""
+def input_fingerprints(prep) -> dict:
+    """SHA-256 fingerprint of each input network (as prepared), keyed for the run file."""
+    return {f"fingerprint:{name}": _store.fingerprint(mat)
+            for name, mat in zip(prep.names + (prep.response_name,), prep.matrices)}
+
+
+def _identity(prep, draws: Draws, settings: dict, fingerprints: dict | None) -> dict:
+    """Everything that must agree for a run file to belong to this run.
+
+    ``fingerprints``: the inputs' fingerprints taken before a plan overwrote them in place
+    (``overwrite_inputs``); None: take them now.
+    """
     ident = dict(settings)
     ident.update(seed=None if draws.exact else str(draws.entropy), exact=draws.exact,
                  chunk_size=draws.chunk_size, directed=prep.directed)
     ident["mask"] = _store.fingerprint(prep.mask)
     ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
-    for name, mat in zip(prep.names + (prep.response_name,), prep.matrices):
-        ident[f"fingerprint:{name}"] = _store.fingerprint(mat)
+    ident.update(input_fingerprints(prep) if fingerprints is None else fingerprints)
     return ident
 
 
 def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, progress,
              out, settings: dict, summary: dict, observed_fit: dict, provenance: dict | None,
-             shard: str = "", backend: str = "threads", scheduler: str | None = None):
+             shard: str = "", backend: str = "threads", scheduler: str | None = None,
+             fingerprints: dict | None = None):
     """Run every missing chunk; return (draws, observed statistic, null or None for a shard).
 
     With ``out`` the chunks stream to a run file; an existing file of the same run is
@@ -119,7 +129,7 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
             cs = hdr.chunk_size
         draws = _draws(prep.blocks, permutations=permutations, exact=exact, entropy=entropy,
                        chunk_size=cs)
-        _store.check_same_run(out, hdr, _identity(prep, draws, settings))
+        _store.check_same_run(out, hdr, _identity(prep, draws, settings, fingerprints))
         if _precision.StopRule.from_dict(hdr.summary.get("stop")) \
                 != _precision.StopRule.from_dict(summary.get("stop")):
             # the stop rule says how the stored statistics are read: keep the file's in step
@@ -134,7 +144,7 @@ def _execute(prep, plan: Plan, *, permutations, seed, jobs, exact, chunk_size, p
         if out is not None:
             prov = provenance or {}
             _store.create(out, _store.RunHeader(
-                identity=_identity(prep, draws, settings), terms=tuple(summary["terms"]),
+                identity=_identity(prep, draws, settings, fingerprints), terms=tuple(summary["terms"]),
                 tested=tuple(summary["tested"]), permutations=draws.total,
                 chunk_size=draws.chunk_size, exact=draws.exact, shard=shard,
                 study_text=prov.get("study_text", ""), study_path=prov.get("study_path", ""),
@@ -200,7 +210,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             out: Any = None, progress: bool | Callable[[int, int], None] = False,
             storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
             shard: str | None = None, provenance: dict | None = None,
-            stop: Any = None) -> RegressionResult:
+            stop: Any = None, overwrite_inputs: bool = False) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
@@ -247,6 +257,16 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Sequential stopping rule, applied at chunk boundaries to the finished prefix in
         permutation order (same seed and chunk size, same stopping point, whatever
         ``jobs``); a name takes the rule's defaults (see dyadperm.precision).
+    overwrite_inputs : bool
+        Allow the engine to standardise the input arrays in place instead of copying them
+        into its layer stack, which halves the memory of a large dense study. Used only
+        when the networks are the layers of one C-ordered float64 array in the engine's
+        layout -- ``(n, m, k + 1)`` holding the predictors then the response for dsp and
+        freedman-lane, or ``(n, m, 1)`` for the response and ``(n, m, k)`` for the
+        predictors for y -- with complete or missing data, linear model, float64 storage
+        and no reordering for groups; otherwise the inputs are copied as usual. After the
+        run those arrays hold the engine's layers, not the data. Study files whose networks
+        are all dense files load into such an array (``dyadperm.study``).
 
     Returns
     -------
@@ -278,7 +298,10 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     check_options(scheme=scheme, statistic=statistic, storage=storage)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep)
-    plan = build_plan(prep, scheme=scheme, statistic=statistic, storage=storage)
+    # a plan that overwrites the inputs needs their fingerprints first
+    fingerprints = input_fingerprints(prep) if overwrite_inputs else None
+    plan = build_plan(prep, scheme=scheme, statistic=statistic, storage=storage,
+                      overwrite=bool(overwrite_inputs))
     settings = dict(kind="regression", model=model, scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads,
                     groups=None if groups is None else _store.fingerprint(np.asarray(groups).astype(str)))
@@ -292,7 +315,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         prep, plan, settings=settings, summary=summary, fit_arrays=fit_arrays,
         agree_with=fit.t[1:] if statistic == "t" else None, permutations=permutations,
         seed=seed, jobs=jobs, exact=exact, chunk_size=chunk_size, progress=progress, out=out,
-        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler)
+        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler,
+        fingerprints=fingerprints)
 
 
 def run_to_result(prep, plan: Plan, *, settings: dict, summary: dict, fit_arrays: dict,
@@ -459,7 +483,7 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
 def _sparse_args(args: dict) -> dict:
     """The keyword arguments of regress/correlate, for the sparse path."""
     return {k: v for k, v in args.items()
-            if k not in ("y", "predictors", "a", "b", "stop", "rule")}
+            if k not in ("y", "predictors", "a", "b", "stop", "rule", "overwrite_inputs")}
 
 
 def _count_complete(prep) -> int:

@@ -247,7 +247,8 @@ def as_dyadic(obj: Any, *, name: str, labels: Sequence[str] | None = None,
         raise InputError(f"{name} must be a 2-d array; got {obj.ndim} dimensions")
     if obj.dtype.kind not in "fiub":
         raise InputError(f"{name} must hold numbers; got dtype {obj.dtype}")
-    values = np.ascontiguousarray(obj, dtype=np.float64)
+    # a float64 array is used as given (a view stays a view: no copy of a large network)
+    values = np.asarray(obj, dtype=np.float64)
     n, m = values.shape
     if labels is None:
         labels = [str(i) for i in range(n)]

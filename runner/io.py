@@ -329,7 +329,8 @@ def split_h5_path(spec: str | Path) -> tuple[str, str] | None:
     return m.group("file"), m.group("dataset") or ""
 
 
-def read_network(path: str | Path, *, fmt: str = "auto", missing: str | None = None) -> RawNetwork:
+def read_network(path: str | Path, *, fmt: str = "auto", missing: str | None = None,
+                 lazy: bool = False) -> RawNetwork:
     """Read one network file.
 
     Parameters
@@ -356,6 +357,12 @@ def read_network(path: str | Path, *, fmt: str = "auto", missing: str | None = N
         Missing or empty file, no data rows, ragged rows, a non-numeric or infinite value
         (file, line, column and text named), an empty or duplicate label in a matrix, an
         unreadable ``.npy``/HDF5 file, or an HDF5 dataset that is absent or not 2-d numeric.
+
+    Notes
+    -----
+    ``lazy=True``: a ``.npy`` file (C order) or HDF5 dataset comes back with a
+    :class:`LazyBlock` as ``values``; its numbers are read, and checked for infinite
+    values, when :func:`align` places it.
     """
     if fmt not in FORMATS:
         raise InputError(f"format must be one of {', '.join(FORMATS)}; got {fmt!r}")
@@ -366,7 +373,7 @@ def read_network(path: str | Path, *, fmt: str = "auto", missing: str | None = N
         if fmt != "auto":
             raise InputError(f"{text}: format {fmt!r} applies to CSV files only; "
                              ".npy and HDF5 files hold an unlabelled block")
-        return _read_h5(text, *h5) if h5 is not None else _read_npy(text)
+        return _read_h5(text, *h5, lazy=lazy) if h5 is not None else _read_npy(text, lazy)
     return _read_csv_network(Path(path), text, fmt, missing)
 
 
@@ -450,10 +457,109 @@ def _dense_block(arr: np.ndarray, shown: str) -> RawNetwork:
     return RawNetwork(path=shown, kind="dense", values=values)
 
 
-def _read_npy(shown: str) -> RawNetwork:
+# Bytes read at once when a lazy block is copied into place (a few row blocks of temporary).
+READ_BYTES = 8 << 20
+
+
+class LazyBlock:
+    """A dense block on disk, read in row blocks when it is placed (``align(..., out=)``).
+
+    Holds only the file name, shape and dtype, so a study can read every network's shape
+    first and then copy each file straight into its layer of one array, never holding a
+    whole file beside it. ``.npy`` files (C order) are read with plain reads (no memory
+    map, whose pages would count as resident); HDF5 datasets by row slices.
+    """
+
+    def __init__(self, shown: str, shape: tuple[int, ...], dtype: np.dtype, *,
+                 npy_offset: int | None = None, h5: tuple[str, str] | None = None) -> None:
+        self.shown = shown
+        self.shape = tuple(int(x) for x in shape)
+        self.ndim = len(self.shape)
+        self.dtype = np.dtype(dtype)
+        self._npy_offset = npy_offset
+        self._h5 = h5
+
+    def row_blocks(self) -> Iterator[tuple[int, np.ndarray]]:
+        """(first row, float64 rows) blocks in order, each checked for infinite values."""
+        n, m = self.shape
+        step = max(1, READ_BYTES // max(1, m * self.dtype.itemsize))
+        if self._npy_offset is not None:
+            with open(self.shown, "rb") as fh:
+                fh.seek(self._npy_offset)
+                for r0 in range(0, n, step):
+                    rows = min(step, n - r0)
+                    buf = np.empty((rows, m), dtype=self.dtype)
+                    if fh.readinto(memoryview(buf).cast("B")) != buf.nbytes:
+                        raise InputError(f"{self.shown}: the file ends before its "
+                                         f"{n} x {m} block does")
+                    yield r0, self._checked(r0, buf)
+            return
+        import h5py
+
+        with h5py.File(self._h5[0], "r") as fh:
+            ds = fh[self._h5[1]]
+            for r0 in range(0, n, step):
+                yield r0, self._checked(r0, np.asarray(ds[r0:r0 + step]))
+
+    def _checked(self, r0: int, buf: np.ndarray) -> np.ndarray:
+        block = buf.astype(np.float64, copy=False)
+        bad = np.isinf(block)
+        if bad.any():
+            i, j = np.argwhere(bad)[0]
+            raise InputError(f"{self.shown}: infinite value at row {r0 + i}, column {j} "
+                             "(0-based) is not data (use NaN for a missing value)")
+        return block
+
+    def copy_to(self, out: np.ndarray) -> None:
+        """Fill ``out`` (n, m), any strides, with the block."""
+        for r0, block in self.row_blocks():
+            out[r0:r0 + block.shape[0]] = block
+
+    def copy(self) -> np.ndarray:
+        out = np.empty(self.shape)
+        self.copy_to(out)
+        return out
+
+
+def _check_block_header(shown: str, shape: tuple[int, ...], dtype: np.dtype) -> None:
+    if len(shape) != 2:
+        raise InputError(f"{shown}: a network must be a 2-d array; got {len(shape)} "
+                         f"dimension(s) with shape {tuple(shape)}")
+    if dtype.kind not in "fiub":
+        raise InputError(f"{shown}: a network must hold numbers; got dtype {dtype}")
+    if 0 in shape:
+        raise InputError(f"{shown}: empty array of shape {tuple(shape)}")
+
+
+def _lazy_npy(shown: str) -> RawNetwork | None:
+    """A LazyBlock raw for a C-ordered numeric .npy file, or None (read it whole)."""
+    try:
+        with open(shown, "rb") as fh:
+            version = np.lib.format.read_magic(fh)
+            if version == (1, 0):
+                shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+            elif version == (2, 0):
+                shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+            else:
+                return None
+            offset = fh.tell()
+    except (OSError, ValueError):
+        return None  # the eager reader names what is wrong
+    if fortran or dtype.hasobject or not dtype.isnative:
+        return None
+    _check_block_header(shown, shape, dtype)
+    return RawNetwork(path=shown, kind="dense",
+                      values=LazyBlock(shown, shape, dtype, npy_offset=offset))
+
+
+def _read_npy(shown: str, lazy: bool = False) -> RawNetwork:
     path = Path(shown)
     if not path.is_file():
         raise InputError(f"{shown}: no such file")
+    if lazy:
+        raw = _lazy_npy(shown)
+        if raw is not None:
+            return raw
     try:
         arr = np.load(path, allow_pickle=False)
     except ValueError as exc:
@@ -465,7 +571,7 @@ def _read_npy(shown: str) -> RawNetwork:
     return _dense_block(arr, shown)
 
 
-def _read_h5(shown: str, file: str, dataset: str) -> RawNetwork:
+def _read_h5(shown: str, file: str, dataset: str, lazy: bool = False) -> RawNetwork:
     import h5py  # h5py is a dependency; imported here so CSV-only use stays light
 
     path = Path(file)
@@ -488,6 +594,10 @@ def _read_h5(shown: str, file: str, dataset: str) -> RawNetwork:
                              f"{found or 'none'}")
         if obj.dtype.kind not in "fiub":
             raise InputError(f"{shown}: a network must hold numbers; got dtype {obj.dtype}")
+        if lazy:
+            _check_block_header(shown, obj.shape, obj.dtype)
+            return RawNetwork(path=shown, kind="dense",
+                              values=LazyBlock(shown, obj.shape, obj.dtype, h5=(file, dataset)))
         arr = obj[()]
     return _dense_block(np.asarray(arr), shown)
 
@@ -543,8 +653,8 @@ def _lines_text(lines: Sequence[int]) -> str:
 
 def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None = None, *,
           directed: bool | None = None, source: str | None = None,
-          row_ids_source: str | None = None,
-          col_ids_source: str | None = None) -> tuple[np.ndarray, list[str]]:
+          row_ids_source: str | None = None, col_ids_source: str | None = None,
+          out: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
     """Place a network on a node order.
 
     Parameters
@@ -563,6 +673,9 @@ def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None
         File name used in messages (default: the file's name).
     row_ids_source, col_ids_source : str, optional
         Where the node ids came from, for messages (e.g. ``"farms.csv"``).
+    out : ndarray of float64, shape (n, m), optional
+        Where to place the values (any strides, e.g. one layer of a 3-d array); returned
+        as ``values``. Default: a new array.
 
     Returns
     -------
@@ -595,8 +708,15 @@ def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None
     col_from = (f" (not in {col_ids_source})" if col_ids_source else
                 (" (not among the column node ids)" if two_mode else row_from))
     if raw.is_edges:
-        return _align_edges(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
-    return _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
+        values, notes = _align_edges(raw, rows, cols, two_mode, directed, shown, row_from,
+                                     col_from)
+    else:
+        values, notes = _align_dense(raw, rows, cols, two_mode, directed, shown, row_from,
+                                     col_from, out)
+    if out is not None and values is not out:
+        out[...] = values
+        values = out
+    return values, notes
 
 
 def _lookup(labels: Sequence[str], index: dict[str, int], place, shown: str,
@@ -656,7 +776,7 @@ def _align_edges(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
     return out, notes
 
 
-def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from):
+def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from, out=None):
     n, m = len(rows), len(cols)
     notes: list[str] = []
     values = raw.values
@@ -667,7 +787,12 @@ def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
                              f"expected {want} ({n}{' row' if two_mode else ''} nodes"
                              + (f", {m} column nodes" if two_mode else "")
                              + f"); got {values.shape[0]} x {values.shape[1]}")
-        out = values.copy()
+        if out is None:
+            out = values.copy()
+        elif isinstance(values, LazyBlock):
+            values.copy_to(out)
+        else:
+            out[...] = values
         row_names = [f"row {r}" for r in range(n)]
         col_names = [f"column {c}" for c in range(m)]
     else:

@@ -90,15 +90,38 @@ class Plan:
 STORAGE = {"float64": np.float64, "float32": np.float32}
 
 
+def owned_base(prep: Prepared, layers: list[int], dtype) -> np.ndarray | None:
+    """The (n, m, L) array whose layers p are exactly ``prep.matrices[layers[p]]``, or None.
+
+    Such an array (C-ordered, writable, of the storage dtype) can serve as the layer stack
+    itself when the caller allows its inputs to be overwritten.
+    """
+    mats = [prep.matrices[layer] for layer in layers]
+    base = mats[0].base
+    n, m = prep.mask.shape
+    if (not isinstance(base, np.ndarray) or base.shape != (n, m, len(layers))
+            or base.dtype != dtype or not base.flags.c_contiguous or not base.flags.writeable):
+        return None
+    start = base.__array_interface__["data"][0]
+    for pos, mat in enumerate(mats):
+        if (mat.base is not base or mat.shape != (n, m) or mat.strides != base.strides[:2]
+                or mat.__array_interface__["data"][0] != start + pos * base.itemsize):
+            return None
+    return base
+
+
 def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
-           storage: str = "float64") -> np.ndarray:
+           storage: str = "float64", overwrite: bool = False) -> np.ndarray:
     """(n, m, L) standardised layers; off the dyad set 0 (complete data) or NaN (masked).
 
     ``storage="float32"`` halves the memory and traffic of the layers; kernels still
-    accumulate in float64.
+    accumulate in float64. ``overwrite``: when the inputs are the layers of one array in
+    this layout (``owned_base``), standardise them in place and return that array.
     """
     n, m = prep.mask.shape
-    out = np.empty((n, m, len(layers)), dtype=STORAGE[storage])
+    out = owned_base(prep, layers, STORAGE[storage]) if overwrite else None
+    if out is None:
+        out = np.empty((n, m, len(layers)), dtype=STORAGE[storage])
     fill = 0.0 if prep.complete else np.nan
     # cells that hold dyad values: the dyad set, and for undirected data its mirror image
     # (relabelled reads land in either triangle)
@@ -137,14 +160,19 @@ def check_options(*, scheme: str, statistic: str, storage: str = "float64") -> N
             raise InputError(f"{name} must be one of {', '.join(offered)}; got {value!r}")
 
 
-def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64") -> Plan:
-    """Layers, invariant Gram blocks and transforms of a regression scheme."""
+def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
+               overwrite: bool = False) -> Plan:
+    """Layers, invariant Gram blocks and transforms of a regression scheme.
+
+    ``overwrite``: the layer stacks may be the inputs themselves, standardised in place
+    (see ``owned_base``); ``prep.matrices`` then no longer hold the data.
+    """
     check_options(scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
     if prep.complete:
-        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd)]
+        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite)]
     else:
-        passes = _masked_passes(prep, scheme, statistic, storage, mean, sd)
+        passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
     return Plan(tuple(passes), prep.k, False, statistic == "t", prep.col_start, prep.col_stop,
                 prep.n_dyads)
 
@@ -159,7 +187,7 @@ def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
 
 
 def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
-                   mean: np.ndarray, sd: np.ndarray) -> Pass:
+                   mean: np.ndarray, sd: np.ndarray, overwrite: bool = False) -> Pass:
     """Complete data: orthonormal layers, so every permutation's Gram is well conditioned.
 
     The standardised predictors (and, for dsp and Freedman–Lane, the response) are replaced
@@ -173,12 +201,12 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     k = prep.k
     xs = list(range(k))
     if scheme == "y":
-        rel = _stack(prep, [k], mean, sd, storage)  # the standardised response
-        fix = _stack(prep, xs, mean, sd, storage)
+        rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
+        fix = _stack(prep, xs, mean, sd, storage, overwrite)
         S = _orthonormalise(fix, prep)
         rel_idx, fix_idx = [0], xs
     else:
-        rel = fix = _stack(prep, xs + [k], mean, sd, storage)
+        rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
         S = _orthonormalise(fix, prep)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
@@ -239,7 +267,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared) -> np.ndarray:
 
 
 def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
-                   mean: np.ndarray, sd: np.ndarray) -> list[Pass]:
+                   mean: np.ndarray, sd: np.ndarray, overwrite: bool = False) -> list[Pass]:
     """Data with missing values: standardised layers, one pass per tested term (y: one).
 
     Each permutation's fit then uses exactly the dyads complete in its own matrices.
@@ -249,11 +277,11 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
     xs = list(range(k))
     gobs = _gram_observed(prep, mean, sd)
     if scheme == "y":
-        rel = _stack(prep, [ylayer], mean, sd, storage)
-        fix = _stack(prep, xs, mean, sd, storage)
+        rel = _stack(prep, [ylayer], mean, sd, storage, overwrite)
+        fix = _stack(prep, xs, mean, sd, storage, overwrite)
         specs = [(rel, [0], [ylayer], fix, xs, xs, xs)]
     else:
-        W = _stack(prep, xs + [ylayer], mean, sd, storage)
+        W = _stack(prep, xs + [ylayer], mean, sd, storage, overwrite)
         specs = []
         for j in xs:
             others = [c for c in xs if c != j]

@@ -398,13 +398,18 @@ class Study:
         Things the user should know that are not errors (self-loops ignored, ...).
     output : Path or None
         Run file from ``[output] file``.
+    layers_in_place : bool
+        The networks were loaded as the layers of the engine's stack (``.npy``/HDF5 files
+        of a linear regression): a run standardises them in place, so the data are held
+        once; a later run reads the network files again.
     """
 
     def __init__(self, *, path: Path, text: str, spec: dict, node_ids: tuple[str, ...],
                  col_node_ids: tuple[str, ...] | None, node_table: NodeTable | None,
                  col_node_table: NodeTable | None, response: Dyadic,
                  predictors: dict[str, Dyadic | NodeDerived | Reverse],
-                 groups: np.ndarray | None, notes: list[str], output: Path | None) -> None:
+                 groups: np.ndarray | None, notes: list[str], output: Path | None,
+                 layers_in_place: bool = False, reload: Any = None) -> None:
         self.path = path
         self.text = text
         self.spec = spec
@@ -418,6 +423,10 @@ class Study:
         self.groups = groups
         self.notes = notes
         self.output = output
+        # the networks are layers of the engine's stack: the first run may overwrite them
+        self.layers_in_place = layers_in_place
+        self._spent = False
+        self._reload = reload
 
     def __repr__(self) -> str:
         shape = f"{len(self.node_ids)}" + (f" x {len(self.col_node_ids)}"
@@ -460,6 +469,11 @@ class Study:
         """
         import dyadperm  # the engine imports this module's package; import it late
 
+        if self._spent:
+            # the last run standardised the layers in place: read the network files again
+            fresh = self._reload()
+            self.response, self.predictors = fresh.response, fresh.predictors
+            self._spent = False
         t = self.spec["test"]
         if permutations is not None:
             permutations = _integer(permutations, 1, None, _arg_error("permutations"))
@@ -498,8 +512,11 @@ class Study:
         if t["kind"] == "correlation":
             (predictor,) = self.predictors.values()
             return dyadperm.correlate(self.response, predictor, method=t["method"], **common)
+        if self.layers_in_place:
+            self._spent = True  # even a failed run may have overwritten some layers
         return dyadperm.regress(self.response, dict(self.predictors), model=t["model"],
-                                scheme=t["scheme"], statistic=t["statistic"], **common)
+                                scheme=t["scheme"], statistic=t["statistic"],
+                                overwrite_inputs=self.layers_in_place, **common)
 
 
 # --------------------------------------------------------------------------- loading
@@ -580,6 +597,7 @@ class _Loader:
             (f"[[predictor]] #{k + 1}", p) for k, p in enumerate(self.spec["predictor"])]
         raws: dict[str, tuple[RawNetwork, str]] = {}
         grouped: dict[str, dict[str, tuple[RawNetwork, str]]] = {}
+        layout = self.layer_layout(entries)
         for section, entry in entries:
             if "file" not in entry:
                 continue
@@ -591,18 +609,21 @@ class _Loader:
                 continue
             where = self.resolve(section, "file", entry["file"])
             raws[entry["name"]] = (read_network(where, fmt=entry["format"],
-                                                missing=entry["missing"]), entry["file"])
+                                                missing=entry["missing"],
+                                                lazy=layout is not None), entry["file"])
         rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()] + [
             r for parts in grouped.values() for r, _ in parts.values()])
 
         networks: dict[str, Any] = {}
         sparse = self.sparse_route(raws, rows, cols)
+        slots = {} if sparse or layout is None else self.layer_slots(layout, rows, cols)
         for name, (raw, file) in raws.items():
             if sparse:
                 networks[name] = self.sparse_network(name, raw, file, rows)
                 continue
             values, notes = align(raw, rows, cols, directed=sd["directed"], source=file,
-                                  row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"])
+                                  row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"],
+                                  out=slots.get(name))
             self.notes.extend(notes)
             networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name)
 
@@ -628,7 +649,43 @@ class _Loader:
         return Study(path=self.path, text=text, spec=self.spec, node_ids=rows,
                      col_node_ids=cols, node_table=nodes, col_node_table=col_nodes,
                      response=networks[self.spec["response"]["name"]], predictors=predictors,
-                     groups=groups, notes=self.notes, output=output)
+                     groups=groups, notes=self.notes, output=output,
+                     layers_in_place=bool(slots),
+                     reload=lambda: _Loader(self.path, self.check, self.spec).load(text))
+
+    def layer_layout(self, entries: list) -> list[list[str]] | None:
+        """Network names per layer array when the study can load into the engine's layers.
+
+        A linear regression whose response and predictors are each one .npy or HDF5 file
+        (no derived or reverse predictors, no file per group) loads every file straight
+        into one (n, m, L) array laid out as the engine's layer stack: [predictors...,
+        response] for dsp and freedman-lane, [response] and [predictors...] for y. The run
+        then standardises that array in place (``regress(overwrite_inputs=True)``), so
+        the data are held once, never twice. None: load as usual.
+        """
+        test = self.spec["test"]
+        if test["kind"] != "regression" or test["model"] != "linear":
+            return None
+        for _, entry in entries:
+            file = entry.get("file")
+            if not isinstance(file, str) or entry.get("format", "auto") != "auto":
+                return None
+            if split_h5_path(file) is None and not file.lower().endswith(".npy"):
+                return None
+        names = [e["name"] for _, e in entries]
+        response, xs = names[0], names[1:]
+        return [[response], xs] if test["scheme"] == "y" else [xs + [response]]
+
+    def layer_slots(self, layout: list[list[str]], rows: tuple[str, ...],
+                    cols: tuple[str, ...] | None) -> dict[str, np.ndarray]:
+        """One (n, m) view per network into the layer arrays of ``layout``."""
+        n, m = len(rows), len(cols) if cols is not None else len(rows)
+        slots = {}
+        for names in layout:
+            base = np.empty((n, m, len(names)))
+            for pos, name in enumerate(names):
+                slots[name] = base[:, :, pos]
+        return slots
 
     def assemble_groups(self, name: str, parts: dict, nodes: NodeTable | None,
                         rows: tuple[str, ...]) -> Dyadic:
