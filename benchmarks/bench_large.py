@@ -2,15 +2,23 @@
 
 The study: a dense directed response and 3 dense predictors on n = 10,000 nodes (10^8
 cells each, 3.2 GB of float64 inputs), scheme dsp, 10,000 permutations, jobs=2. Running
-it whole takes long, so this times a slice: after the setup (prepare, observed fit,
-plan) and a warm-up permutation, ``--slice`` permutations (default 32: two chunks, one per worker) go through
-``engine.iter_chunks`` with jobs=2; the time of 10,000 is projected from their rate plus
-the setup. Peak resident memory (VmHWM) is measured, and the resident memory after each
-stage shows where the copies are. float64 and float32 storage each run in a fresh
-subprocess. A floor line gives the time of reading the relabelled layers once per
-permutation at this machine's measured two-thread read bandwidth.
+it whole takes long, so this times a slice: after the setup (load, prepare, observed fit,
+plan) and a warm-up permutation, ``--slice`` permutations (default 32: two chunks, one per
+worker) go through ``engine.iter_chunks`` with jobs=2; the time of 10,000 is projected
+from their rate plus the setup. Peak resident memory (VmHWM) is measured, and the resident
+memory after each stage shows where the copies are. Each mode runs in a fresh subprocess:
 
-Usage: python benchmarks/bench_large.py [--n 10000] [--slice 16] [--storage float64,float32]
+- ``study``: the networks are .npy files named by a study file (written once to a
+  temporary folder); ``load_study`` reads them straight into the engine's layer array and
+  the plan standardises it in place (what ``dyadperm run`` does) -- float64 layers;
+- ``arrays-float64`` / ``arrays-float32``: the networks are arrays made in memory and
+  passed to the engine, which copies them into its layer stack (float32: half the bytes).
+
+A floor line gives the time of reading the relabelled layers once per permutation at this
+machine's measured two-thread read bandwidth.
+
+Usage: python benchmarks/bench_large.py [--n 10000] [--slice 32]
+       [--modes study,arrays-float64,arrays-float32]
 """
 
 from __future__ import annotations
@@ -38,12 +46,46 @@ def rss_mib() -> tuple[float, float]:
     return cur, peak
 
 
-def child(n: int, slice_: int, storage: str, chunk: int | None) -> dict:
+def make_networks(n: int):
+    """The study's networks, one at a time: (name, array). x2 and y depend on x1."""
+    import numpy as np
+
+    rng = np.random.default_rng(SEED)
+    x1 = rng.standard_normal((n, n))
+    yield "x1", x1
+    x2 = rng.standard_normal((n, n))
+    x2 += 0.5 * x1
+    yield "x2", x2
+    del x2
+    yield "x3", rng.standard_normal((n, n))
+    y = rng.standard_normal((n, n))
+    y += 0.05 * x1
+    yield "y", y
+
+
+def write_study(folder, n: int) -> str:
+    """Write the networks as .npy files and a study file naming them; return its path."""
+    import numpy as np
+    from pathlib import Path
+
+    folder = Path(folder)
+    for name, arr in make_networks(n):
+        np.save(folder / f"{name}.npy", arr)
+    preds = "".join(f'[[predictor]]\nname = "x{i}"\nfile = "x{i}.npy"\n' for i in (1, 2, 3))
+    (folder / "large.toml").write_text(
+        '[study]\ntitle = "large dense study"\ndirected = true\n'
+        f'[response]\nname = "y"\nfile = "y.npy"\n{preds}'
+        f'[test]\nscheme = "dsp"\npermutations = {PERMUTATIONS}\nseed = {SEED}\n')
+    return str(folder / "large.toml")
+
+
+def child(n: int, slice_: int, mode: str, chunk: int | None, study_path: str) -> dict:
     import numpy as np
 
     from dyadperm.design import observed_fit, prepare
     from dyadperm.engine import Draws, default_chunk_size, iter_chunks
     from dyadperm.schemes import build_plan
+    from dyadperm.study import load_study
 
     stages = []
 
@@ -54,22 +96,25 @@ def child(n: int, slice_: int, storage: str, chunk: int | None) -> dict:
 
     t0 = time.perf_counter()
     stage("start", t0)
-    rng = np.random.default_rng(SEED)
-    xs = []
-    for _ in range(K):
-        xs.append(rng.standard_normal((n, n)))
-    xs[1] += 0.5 * xs[0]
-    y = rng.standard_normal((n, n))
-    y += 0.05 * xs[0]
     inputs_mib = (K + 1) * n * n * 8 / 2**20
-    stage("inputs made", t0)
-
-    t_setup = time.perf_counter()
-    prep = prepare(y, {f"x{i + 1}": x for i, x in enumerate(xs)})
+    storage = "float32" if mode.endswith("float32") else "float64"
+    if mode == "study":
+        t_setup = time.perf_counter()
+        study = load_study(study_path)
+        y, predictors = study.response, study.predictors
+        stage("study loaded (.npy files)", t0)
+    else:
+        nets = dict(make_networks(n))
+        y = nets.pop("y")
+        predictors = nets
+        stage("inputs made", t0)
+        t_setup = time.perf_counter()
+    prep = prepare(y, predictors, directed=True)
     stage("prepare", t0)
     fit = observed_fit(prep)
     stage("observed fit", t0)
-    plan = build_plan(prep, scheme="dsp", statistic="t", storage=storage)
+    plan = build_plan(prep, scheme="dsp", statistic="t", storage=storage,
+                      overwrite=mode == "study")
     stage("plan", t0)
     setup = time.perf_counter() - t_setup
 
@@ -79,6 +124,7 @@ def child(n: int, slice_: int, storage: str, chunk: int | None) -> dict:
     warm = time.perf_counter() - t_w
     stage("warm-up (observed statistic)", t0)
     cs = chunk or default_chunk_size(plan)
+    cs = min(cs, max(1, slice_ // 2))  # at least two chunks: one per worker
     draws = Draws(prep.blocks, slice_, cs, False, SEED)
     t_s = time.perf_counter()
     for _ in iter_chunks(plan, draws, range(draws.n_chunks), jobs=2):
@@ -86,8 +132,8 @@ def child(n: int, slice_: int, storage: str, chunk: int | None) -> dict:
     sliced = time.perf_counter() - t_s
     stage(f"{slice_} permutations, jobs=2", t0)
     per_perm = sliced / slice_
-    return {"n": n, "storage": storage, "chunk": cs, "setup_s": setup, "warmup_s": warm,
-            "slice": slice_, "slice_s": sliced, "per_perm_s": per_perm,
+    return {"n": n, "mode": mode, "storage": storage, "chunk": cs, "setup_s": setup,
+            "warmup_s": warm, "slice": slice_, "slice_s": sliced, "per_perm_s": per_perm,
             "projected_s": setup + PERMUTATIONS * per_perm, "inputs_mib": inputs_mib,
             "peak_mib": rss_mib()[1], "stages": stages,
             "observed_vs_qr": float(np.max(np.abs(observed - fit.t[1:]))),
@@ -105,48 +151,54 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=10_000)
     ap.add_argument("--slice", type=int, default=32)
-    ap.add_argument("--storage", default="float64,float32")
+    ap.add_argument("--modes", default="study,arrays-float64,arrays-float32")
     ap.add_argument("--chunk", type=int, default=None,
                     help="chunk size (default: the engine's default_chunk_size)")
     ap.add_argument("--json", help="also write the results to this file")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
-        n, sl, storage = int(args.child[0]), int(args.child[1]), args.child[2]
-        chunk = int(args.child[3]) if len(args.child) > 3 else None
-        print(json.dumps(child(n, sl, storage, chunk)))
+        n, sl, mode, study_path = (int(args.child[0]), int(args.child[1]), args.child[2],
+                                   args.child[3])
+        chunk = int(args.child[4]) if len(args.child) > 4 else None
+        print(json.dumps(child(n, sl, mode, chunk, study_path)))
         return 0
     import os
+    import tempfile
     bw = bandwidth()
     print(f"n = {args.n}, 3 predictors, scheme dsp, {PERMUTATIONS:,} permutations projected "
           f"from a slice of {args.slice}; two-thread read bandwidth {bw / 1e9:.2f} GB/s; "
           f"load average {os.getloadavg()[0]:.2f}")
     results = []
-    for storage in args.storage.split(","):
-        extra = [str(args.chunk)] if args.chunk else []
-        proc = subprocess.run([sys.executable, __file__, "--child", str(args.n),
-                               str(args.slice), storage, *extra],
-                              capture_output=True, text=True)
-        if proc.returncode != 0:
-            print(proc.stderr[-3000:], file=sys.stderr)
-            return 1
-        res = json.loads(proc.stdout.strip().splitlines()[-1])
-        itemsize = 4 if storage == "float32" else 8
-        res["floor_per_perm_s"] = args.n * args.n * itemsize * res["relabelled_layers"] / bw
-        results.append(res)
-        print(f"\n[{storage}] chunk {res['chunk']}: setup {res['setup_s']:.1f} s, "
-              f"{res['per_perm_s'] * 1e3:.0f} ms per permutation (floor "
-              f"{res['floor_per_perm_s'] * 1e3:.0f} ms), projected {PERMUTATIONS:,} "
-              f"permutations: {res['projected_s'] / 60:.1f} min; peak memory "
-              f"{res['peak_mib'] / 1024:.2f} GiB = {res['peak_mib'] / res['inputs_mib']:.2f} x "
-              f"the inputs ({res['inputs_mib'] / 1024:.2f} GiB); observed t vs QR "
-              f"{res['observed_vs_qr']:.1e}")
-        prev = None
-        for st in res["stages"]:
-            delta = "" if prev is None else f" ({st['rss_mib'] - prev:+.0f} MiB)"
-            print(f"  {st['stage']:<30} {st['seconds']:7.1f} s  resident "
-                  f"{st['rss_mib']:8.0f} MiB{delta}  peak {st['peak_mib']:8.0f} MiB")
-            prev = st["rss_mib"]
+    modes = args.modes.split(",")
+    with tempfile.TemporaryDirectory(prefix="dyadperm-large-") as folder:
+        study_path = write_study(folder, args.n) if "study" in modes else "-"
+        for mode in modes:
+            extra = [str(args.chunk)] if args.chunk else []
+            proc = subprocess.run([sys.executable, __file__, "--child", str(args.n),
+                                   str(args.slice), mode, study_path, *extra],
+                                  capture_output=True, text=True)
+            if proc.returncode != 0:
+                print(proc.stderr[-3000:], file=sys.stderr)
+                return 1
+            res = json.loads(proc.stdout.strip().splitlines()[-1])
+            itemsize = 4 if res["storage"] == "float32" else 8
+            res["floor_per_perm_s"] = args.n * args.n * itemsize * res["relabelled_layers"] / bw
+            results.append(res)
+            print(f"\n[{mode}] {res['storage']} layers, chunk {res['chunk']}: setup "
+                  f"{res['setup_s']:.1f} s, {res['per_perm_s'] * 1e3:.0f} ms per permutation "
+                  f"(floor {res['floor_per_perm_s'] * 1e3:.0f} ms), projected "
+                  f"{PERMUTATIONS:,} permutations: {res['projected_s'] / 60:.1f} min; peak "
+                  f"memory {res['peak_mib'] / 1024:.2f} GiB = "
+                  f"{res['peak_mib'] / res['inputs_mib']:.2f} x the inputs "
+                  f"({res['inputs_mib'] / 1024:.2f} GiB); observed t vs QR "
+                  f"{res['observed_vs_qr']:.1e}")
+            prev = None
+            for st in res["stages"]:
+                delta = "" if prev is None else f" ({st['rss_mib'] - prev:+.0f} MiB)"
+                print(f"  {st['stage']:<30} {st['seconds']:7.1f} s  resident "
+                      f"{st['rss_mib']:8.0f} MiB{delta}  peak {st['peak_mib']:8.0f} MiB")
+                prev = st["rss_mib"]
     if args.json:
         with open(args.json, "w") as fh:
             json.dump({"bandwidth": bw, "results": results}, fh, indent=1)

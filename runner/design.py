@@ -113,7 +113,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         if mat.shape != resp.shape:
             raise InputError(f"predictor {name!r} has shape {mat.shape[0]} x {mat.shape[1]}; "
                              f"the response has {resp.shape[0]} x {resp.shape[1]}")
-        if np.isinf(mat).any():
+        if _any_rows(np.isinf, mat):
             raise InputError(f"{name!r} has an infinite value; use NaN for a missing value")
 
     n, m = resp.shape
@@ -177,7 +177,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
             lower = np.tril_indices(n, -1)
             a[lower] = a.T[lower]
         internal.append(a)
-    complete = excluded is None and not any(np.isnan(a[mask]).any() for a in internal)
+    complete = excluded is None and not any(_any_rows(np.isnan, a, mask) for a in internal)
     n_dyads = int(mask.sum())
     labels_out = tuple(labels)
     return Prepared(names, resp.name, tuple(internal), mask, blocks, col_start, col_stop,
@@ -252,6 +252,18 @@ def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> 
     if missing:
         raise InputError(f"predictor {name!r}: no {what} for node {missing[0]!r}")
     return np.array([pos[lab] for lab in want], dtype=np.int64)
+
+
+def _any_rows(test, mat: np.ndarray, mask: np.ndarray | None = None) -> bool:
+    """Whether ``test`` (np.isnan, np.isinf) holds for some cell of ``mat`` (on ``mask``),
+    in blocks of rows, so no temporary the size of the matrix is made."""
+    step = max(1, STREAM_DYADS // max(mat.shape[1], 1))
+    for i0 in range(0, mat.shape[0], step):
+        blk = mat[i0:i0 + step]
+        hit = test(blk) if mask is None else test(blk) & mask[i0:i0 + step]
+        if hit.any():
+            return True
+    return False
 
 
 def _symmetric(mat: np.ndarray) -> bool:
