@@ -441,20 +441,19 @@ def _read_matrix(rows, shown: str, header_line: int, header: list[str],
 
 
 def _dense_block(arr: np.ndarray, shown: str) -> RawNetwork:
-    if arr.ndim != 2:
-        raise InputError(f"{shown}: a network must be a 2-d array; got {arr.ndim} dimension(s) "
-                         f"with shape {arr.shape}")
-    if arr.dtype.kind not in "fiub":
-        raise InputError(f"{shown}: a network must hold numbers; got dtype {arr.dtype}")
-    if 0 in arr.shape:
-        raise InputError(f"{shown}: empty array of shape {arr.shape}")
+    _check_block_header(shown, arr.shape, arr.dtype)
     values = np.ascontiguousarray(arr, dtype=np.float64)
-    bad = np.isinf(values)
+    _check_finite(values, shown)
+    return RawNetwork(path=shown, kind="dense", values=values)
+
+
+def _check_finite(block: np.ndarray, shown: str, first_row: int = 0) -> None:
+    """InputError naming the first infinite cell of ``block`` (rows from ``first_row``)."""
+    bad = np.isinf(block)
     if bad.any():
         i, j = np.argwhere(bad)[0]
-        raise InputError(f"{shown}: infinite value at row {i}, column {j} (0-based) is not data "
-                         "(use NaN for a missing value)")
-    return RawNetwork(path=shown, kind="dense", values=values)
+        raise InputError(f"{shown}: infinite value at row {first_row + i}, column {j} "
+                         "(0-based) is not data (use NaN for a missing value)")
 
 
 # Bytes read at once when a lazy block is copied into place (a few row blocks of temporary).
@@ -503,11 +502,7 @@ class LazyBlock:
 
     def _checked(self, r0: int, buf: np.ndarray) -> np.ndarray:
         block = buf.astype(np.float64, copy=False)
-        bad = np.isinf(block)
-        if bad.any():
-            i, j = np.argwhere(bad)[0]
-            raise InputError(f"{self.shown}: infinite value at row {r0 + i}, column {j} "
-                             "(0-based) is not data (use NaN for a missing value)")
+        _check_finite(block, self.shown, r0)
         return block
 
     def copy_to(self, out: np.ndarray) -> None:
@@ -522,6 +517,7 @@ class LazyBlock:
 
 
 def _check_block_header(shown: str, shape: tuple[int, ...], dtype: np.dtype) -> None:
+    """InputError unless a dense block of this shape and dtype can be a network."""
     if len(shape) != 2:
         raise InputError(f"{shown}: a network must be a 2-d array; got {len(shape)} "
                          f"dimension(s) with shape {tuple(shape)}")

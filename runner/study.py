@@ -418,8 +418,8 @@ class Study:
         self.col_node_ids = col_node_ids
         self.node_table = node_table
         self.col_node_table = col_node_table
-        self.response = response
-        self.predictors = predictors
+        self._response = response
+        self._predictors = predictors
         self.groups = groups
         self.notes = notes
         self.output = output
@@ -427,6 +427,25 @@ class Study:
         self.layers_in_place = layers_in_place
         self._spent = False
         self._reload = reload
+
+    def _fresh(self) -> None:
+        """Read the network files again when a run has standardised the layers in place."""
+        if self._spent:
+            fresh = self._reload()
+            self._response, self._predictors = fresh.response, fresh.predictors
+            self._spent = False
+
+    @property
+    def response(self) -> Dyadic:
+        """The response network (read again from its file after an in-place run)."""
+        self._fresh()
+        return self._response
+
+    @property
+    def predictors(self) -> dict[str, Dyadic | NodeDerived | Reverse]:
+        """The predictors by name, in model order (read again after an in-place run)."""
+        self._fresh()
+        return self._predictors
 
     def __repr__(self) -> str:
         shape = f"{len(self.node_ids)}" + (f" x {len(self.col_node_ids)}"
@@ -469,11 +488,7 @@ class Study:
         """
         import dyadperm  # the engine imports this module's package; import it late
 
-        if self._spent:
-            # the last run standardised the layers in place: read the network files again
-            fresh = self._reload()
-            self.response, self.predictors = fresh.response, fresh.predictors
-            self._spent = False
+        response, predictors = self.response, self.predictors
         t = self.spec["test"]
         if permutations is not None:
             permutations = _integer(permutations, 1, None, _arg_error("permutations"))
@@ -510,11 +525,13 @@ class Study:
             stop=rule,
         )
         if t["kind"] == "correlation":
-            (predictor,) = self.predictors.values()
-            return dyadperm.correlate(self.response, predictor, method=t["method"], **common)
+            (predictor,) = predictors.values()
+            return dyadperm.correlate(response, predictor, method=t["method"], **common)
         if self.layers_in_place:
-            self._spent = True  # even a failed run may have overwritten some layers
-        return dyadperm.regress(self.response, dict(self.predictors), model=t["model"],
+            # the run may standardise the layers in place (even a failed one, part way):
+            # whoever reads the networks next gets them from the files again
+            self._spent = True
+        return dyadperm.regress(response, dict(predictors), model=t["model"],
                                 scheme=t["scheme"], statistic=t["statistic"],
                                 overwrite_inputs=self.layers_in_place, **common)
 

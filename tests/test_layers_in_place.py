@@ -70,6 +70,7 @@ def test_study_in_place_matches_array_path(tmp_path, rng, monkeypatch, scheme, m
     study = dp.load_study(tmp_path / "s.toml")
     assert study.layers_in_place
     base = study.response.values.base
+    pred_base = study.predictors["a"].values.base
     # the engine's layout: [predictors..., response] or, for y, [response] and [predictors]
     assert base.shape == ((N, N, 1) if scheme == "y" else (N, N, 3))
     plans = _spy_plans(monkeypatch)
@@ -79,7 +80,7 @@ def test_study_in_place_matches_array_path(tmp_path, rng, monkeypatch, scheme, m
     # no copy: the plan's stacks are the arrays the files were loaded into
     stacks = {id(ps.rel) for ps in plan.passes} | {id(ps.fix) for ps in plan.passes}
     assert id(base) in stacks
-    assert id(study.predictors["a"].values.base) in stacks
+    assert id(pred_base) in stacks
     want = dp.regress(y, {"a": xs[0], "b": xs[1]}, scheme=scheme, permutations=150, seed=11,
                       directed=True)
     np.testing.assert_array_equal(got.null, want.null)  # same bits as the array path
@@ -90,7 +91,12 @@ def test_study_in_place_matches_array_path(tmp_path, rng, monkeypatch, scheme, m
     ok = np.isfinite(cols).all(axis=1) & np.isfinite(y[off])
     ols = sm.OLS(y[off][ok], cols[ok]).fit()
     np.testing.assert_allclose(got.stat, ols.tvalues, rtol=1e-10)
-    # a second run reads the files again (the first overwrote the layers) and agrees
+    # the run overwrote the loaded layers; whoever reads the networks next (a report, a
+    # calibration) gets them from the files again, equal to what was saved
+    assert not np.array_equal(base[:, :, -1], y, equal_nan=True)
+    np.testing.assert_array_equal(study.response.values, y)
+    np.testing.assert_array_equal(study.predictors["a"].values, xs[0])
+    # and so does a second run, which agrees with the first
     again = study.run()
     np.testing.assert_array_equal(again.null, got.null)
 
