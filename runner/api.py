@@ -439,14 +439,15 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
               progress: bool | Callable[[int, int], None] = False,
               storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
             shard: str | None = None, provenance: dict | None = None,
-            stop: Any = None) -> CorrelationResult:
+            stop: Any = None, overwrite_inputs: bool = False) -> CorrelationResult:
     """QAP correlation of two networks (the Mantel test for matrices).
 
     Pearson r (or Spearman's, on average ranks of the dyad values) over the dyad set, with
     p-values from relabelling ``b`` (Mantel 1967, Cancer Research 27:209–220; Hubert &
     Schultz 1976; Krackhardt 1987). Only the cross product changes per relabelling.
-    Other parameters as in :func:`regress`. Caution: partial Mantel tests are not offered;
-    see the README on when they fail.
+    Other parameters as in :func:`regress` (``overwrite_inputs``: Pearson on two networks
+    that are each the single layer of an ``(n, m, 1)`` float64 array). Caution: partial
+    Mantel tests are not offered; see the README on when they fail.
 
     Given several networks instead (``correlate([a, b, c])`` or a dict name -> network),
     returns a LayerCorrelationResult: every pairwise correlation from shared
@@ -455,7 +456,7 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
     """
     if b is None:  # several networks: the matrix of pairwise correlations
         return _precision.correlate_layers(
-            a, **{k: v for k, v in locals().items() if k not in ("a", "b")})
+            a, **{k: v for k, v in locals().items() if k not in ("a", "b", "overwrite_inputs")})
     rule = _precision.stop_rule(stop)
     if _sparse.takes(a, b):  # sparse first network, sparse or derived second
         _no_stop_rule(rule, "the sparse path")
@@ -465,8 +466,11 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
     bname = getattr(b, "name", None) or "b"
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
                            response_name=getattr(a, "name", None) or "a")
-    plan = build_correlation_plan(prep, method=method, storage=storage)
     n_dy = prep.n_dyads if prep.complete else int(_count_complete(prep))
+    # a plan that overwrites the inputs needs their fingerprints first
+    fingerprints = input_fingerprints(prep) if overwrite_inputs else None
+    plan = build_correlation_plan(prep, method=method, storage=storage,
+                                  overwrite=bool(overwrite_inputs))
     settings = dict(kind="correlation", model="correlation", scheme="y", statistic="r",
                     method=method, storage=storage, dyads=dyads,
                     groups=None if groups is None else _store.fingerprint(np.asarray(groups).astype(str)))
@@ -477,7 +481,8 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
         prep, plan, settings=settings, summary=summary,
         fit_arrays=correlation_fit(plan, prep, n_dy), permutations=permutations, seed=seed,
         jobs=jobs, exact=exact, chunk_size=chunk_size, progress=progress, out=out,
-        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler)
+        provenance=provenance, shard=shard, backend=backend, scheduler=scheduler,
+        fingerprints=fingerprints)
 
 
 def _sparse_args(args: dict) -> dict:

@@ -336,8 +336,12 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
     return g0
 
 
-def build_correlation_plan(prep: Prepared, *, method: str, storage: str = "float64") -> Plan:
-    """QAP correlation of the response with one predictor (Pearson or Spearman)."""
+def build_correlation_plan(prep: Prepared, *, method: str, storage: str = "float64",
+                           overwrite: bool = False) -> Plan:
+    """QAP correlation of the response with one predictor (Pearson or Spearman).
+
+    ``overwrite``: as in ``build_plan`` (Spearman ranks into new arrays whatever it says).
+    """
     if method not in ("pearson", "spearman"):
         raise InputError(f"method must be 'pearson' or 'spearman'; got {method!r}")
     if prep.k != 1:
@@ -350,8 +354,8 @@ def build_correlation_plan(prep: Prepared, *, method: str, storage: str = "float
             raise InputError(f"{name!r} has no variation over the dyad set")
     if storage not in STORAGE:
         raise InputError(f"storage must be one of {', '.join(STORAGE)}; got {storage!r}")
-    b = _stack(prep, [0], mean, sd, storage)
-    a = _stack(prep, [1], mean, sd, storage)
+    b = _stack(prep, [0], mean, sd, storage, overwrite)
+    a = _stack(prep, [1], mean, sd, storage, overwrite)
     idx = np.zeros(1, np.int64)
     gram0 = _identity_gram(prep, b, idx, a, idx) if prep.complete else None
     ps = Pass(b, idx, a, idx, gram0, np.zeros((1, 3, 1)), np.zeros(1, np.int64), np.ones(1))

@@ -400,8 +400,8 @@ class Study:
         Run file from ``[output] file``.
     layers_in_place : bool
         The networks were loaded as the layers of the engine's stack (``.npy``/HDF5 files
-        of a linear regression): a run standardises them in place, so the data are held
-        once; a later run reads the network files again.
+        of a linear regression or a Pearson correlation): a run standardises them in place,
+        so the data are held once; a later run reads the network files again.
     """
 
     def __init__(self, *, path: Path, text: str, spec: dict, node_ids: tuple[str, ...],
@@ -524,16 +524,17 @@ class Study:
             provenance={"study_text": self.text, "study_path": str(self.path)},
             stop=rule,
         )
-        if t["kind"] == "correlation":
-            (predictor,) = predictors.values()
-            return dyadperm.correlate(response, predictor, method=t["method"], **common)
         if self.layers_in_place:
             # the run may standardise the layers in place (even a failed one, part way):
             # whoever reads the networks next gets them from the files again
             self._spent = True
+        common["overwrite_inputs"] = self.layers_in_place
+        if t["kind"] == "correlation":
+            (predictor,) = predictors.values()
+            return dyadperm.correlate(response, predictor, method=t["method"], **common)
         return dyadperm.regress(response, dict(predictors), model=t["model"],
                                 scheme=t["scheme"], statistic=t["statistic"],
-                                overwrite_inputs=self.layers_in_place, **common)
+                                **common)
 
 
 # --------------------------------------------------------------------------- loading
@@ -673,15 +674,19 @@ class _Loader:
     def layer_layout(self, entries: list) -> list[list[str]] | None:
         """Network names per layer array when the study can load into the engine's layers.
 
-        A linear regression whose response and predictors are each one .npy or HDF5 file
-        (no derived or reverse predictors, no file per group) loads every file straight
-        into one (n, m, L) array laid out as the engine's layer stack: [predictors...,
-        response] for dsp and freedman-lane, [response] and [predictors...] for y. The run
-        then standardises that array in place (``regress(overwrite_inputs=True)``), so
-        the data are held once, never twice. None: load as usual.
+        A linear regression or a Pearson correlation whose networks are each one .npy or
+        HDF5 file (no derived or reverse predictors, no file per group) loads every file
+        straight into an (n, m, L) array laid out as the engine's layer stack:
+        [predictors..., response] for dsp and freedman-lane, [response] and
+        [predictors...] for y and correlations. The run then standardises those arrays in
+        place (``overwrite_inputs=True``), so the data are held once, never twice. None:
+        load as usual.
         """
         test = self.spec["test"]
-        if test["kind"] != "regression" or test["model"] != "linear":
+        if test["kind"] == "correlation":
+            if test["method"] != "pearson":
+                return None  # Spearman ranks into new arrays anyway
+        elif test["model"] != "linear":
             return None
         for _, entry in entries:
             file = entry.get("file")
@@ -691,7 +696,9 @@ class _Loader:
                 return None
         names = [e["name"] for _, e in entries]
         response, xs = names[0], names[1:]
-        return [[response], xs] if test["scheme"] == "y" else [xs + [response]]
+        if test["kind"] == "correlation" or test["scheme"] == "y":
+            return [[response], xs]
+        return [xs + [response]]
 
     def layer_slots(self, layout: list[list[str]], rows: tuple[str, ...],
                     cols: tuple[str, ...] | None) -> dict[str, np.ndarray]:

@@ -195,3 +195,52 @@ def test_owned_base_needs_the_exact_layout(rng):
     assert schemes.owned_base(prep, [1, 0, 2], np.float64) is None  # order differs
     assert schemes.owned_base(prep, [0, 1, 2], np.float32) is None  # storage differs
     assert schemes.owned_base(prep, [0, 1], np.float64) is None  # not every layer
+
+
+def test_correlation_study_in_place(tmp_path, rng, monkeypatch):
+    """A Pearson correlation study of two .npy networks: loaded as two (n, n, 1) layer
+    arrays, standardised in place; same bits as dp.correlate on the arrays, and r equal
+    to scipy's pearsonr over the off-diagonal dyads."""
+    from scipy.stats import pearsonr
+
+    x = rng.standard_normal((N, N))
+    y = 0.3 * x + rng.standard_normal((N, N))
+    np.save(tmp_path / "x.npy", x)
+    np.save(tmp_path / "y.npy", y)
+    (tmp_path / "c.toml").write_text("""[study]
+title = "correlation in place"
+directed = true
+[response]
+name = "y"
+file = "y.npy"
+[[predictor]]
+name = "x"
+file = "x.npy"
+[test]
+kind = "correlation"
+permutations = 150
+seed = 4
+""")
+    study = dp.load_study(tmp_path / "c.toml")
+    assert study.layers_in_place
+    bases = {id(study.response.values.base), id(study.predictors["x"].values.base)}
+    seen = []
+    orig = api.build_correlation_plan
+
+    def spy(prep, **kw):
+        seen.append(orig(prep, **kw))
+        return seen[-1]
+
+    monkeypatch.setattr(api, "build_correlation_plan", spy)
+    got = study.run()
+    ps = seen[-1].passes[0]
+    assert {id(ps.rel), id(ps.fix)} == bases  # no copy
+    want = dp.correlate(y, x, permutations=150, seed=4, directed=True)
+    np.testing.assert_array_equal(got.null, want.null)
+    off = ~np.eye(N, dtype=bool)
+    np.testing.assert_allclose(got.stat, [pearsonr(x[off], y[off])[0]], rtol=1e-12)
+    # Spearman ranks into new arrays: loaded as usual
+    (tmp_path / "s.toml").write_text((tmp_path / "c.toml").read_text()
+                                     .replace('kind = "correlation"',
+                                              'kind = "correlation"\nmethod = "spearman"'))
+    assert not dp.load_study(tmp_path / "s.toml").layers_in_place
