@@ -244,3 +244,42 @@ seed = 4
                                      .replace('kind = "correlation"',
                                               'kind = "correlation"\nmethod = "spearman"'))
     assert not dp.load_study(tmp_path / "s.toml").layers_in_place
+
+
+@pytest.mark.parametrize("shape", ["undirected", "two-mode"])
+@pytest.mark.parametrize("scheme", ["dsp", "y"])
+def test_other_shapes_in_place(tmp_path, rng, shape, scheme):
+    """Undirected (symmetric files, upper triangle) and two-mode (rectangular) studies
+    through the in-place path: the same bits as dp.regress on the arrays."""
+    m = N if shape == "undirected" else N + 5
+    mats = [rng.standard_normal((N, m)) for _ in range(3)]
+    if shape == "undirected":
+        mats = [a + a.T for a in mats]
+    for name, a in zip(("x0", "x1", "y"), mats):
+        np.save(tmp_path / f"{name}.npy", a)
+    head = ('directed = false' if shape == "undirected" else 'two_mode = true')
+    (tmp_path / "s.toml").write_text(f"""[study]
+title = "shapes"
+{head}
+[response]
+name = "y"
+file = "y.npy"
+[[predictor]]
+name = "a"
+file = "x0.npy"
+[[predictor]]
+name = "b"
+file = "x1.npy"
+[test]
+scheme = "{scheme}"
+permutations = 120
+seed = 9
+""")
+    study = dp.load_study(tmp_path / "s.toml")
+    assert study.layers_in_place
+    got = study.run()
+    want = dp.regress(mats[2], {"a": mats[0], "b": mats[1]}, scheme=scheme, permutations=120,
+                      seed=9, directed=False if shape == "undirected" else None)
+    assert got.directed == want.directed and got.two_mode == (shape == "two-mode")
+    np.testing.assert_array_equal(got.null, want.null)
+    np.testing.assert_array_equal(got.p, want.p)
