@@ -123,3 +123,39 @@ def correlation_stats(gram, out):
             out[b] = cov / np.sqrt(va * vb)
         else:
             out[b] = np.nan
+
+
+@njit(**KERNEL_OPTIONS)
+def masked_moments(mat, mask, out):
+    """Count, mean and sum of squared deviations of ``mat`` over the cells of ``mask``.
+
+    Parameters
+    ----------
+    mat : float64 (n, m), any strides
+    mask : bool (n, m)
+    out : float64 (3,)
+        Written: [N, mean, sum over the mask of (x - mean)^2]. Two passes (mean first), each
+        summing row by row and then the row sums, so rounding grows with n + m, not n * m.
+    """
+    n, m = mat.shape
+    count = 0
+    total = 0.0
+    for i in range(n):
+        row = 0.0
+        for j in range(m):
+            if mask[i, j]:
+                row += mat[i, j]  # sum_j x_ij over the row's dyads
+                count += 1
+        total += row
+    mean = total / max(count, 1)
+    m2 = 0.0
+    for i in range(n):
+        row = 0.0
+        for j in range(m):
+            if mask[i, j]:
+                d = mat[i, j] - mean
+                row += d * d  # sum_j (x_ij - mean)^2
+        m2 += row
+    out[0] = count
+    out[1] = mean
+    out[2] = m2

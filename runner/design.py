@@ -18,6 +18,7 @@ from scipy.linalg import solve_triangular
 
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
 from .errors import DyadpermWarning, InputError
+from .kernels.stats import masked_moments
 from .permutations import Blocks
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).
@@ -420,6 +421,12 @@ def _standardised_condition(rx: np.ndarray, k: int, names: Sequence[str]) -> flo
 
 def standardise(prep: Prepared) -> tuple[np.ndarray, np.ndarray]:
     """Mean and standard deviation of each matrix over the observed complete dyads."""
+    if prep.complete:
+        # every dyad is complete in every matrix: one kernel pass pair per matrix
+        mom = np.empty((len(prep.matrices), 3))
+        for c, mat in enumerate(prep.matrices):
+            masked_moments(mat, prep.mask, mom[c])
+        return mom[:, 1].copy(), np.sqrt(mom[:, 2] / max(prep.n_dyads, 1))
     count = 0
     s1 = np.zeros(len(prep.matrices))
     for block in iter_dyad_rows(prep, prep.matrices):
