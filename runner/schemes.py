@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import rankdata
 
-from .design import Prepared, iter_dyad_rows, standardise
+from .design import Prepared, fold_rows, iter_dyad_rows, standardise
 from .errors import InputError
 from .kernels.gather import gather_cross, gather_gram
 from .kernels.stats import correlation_stats, fill_gram, regression_stats
@@ -256,7 +256,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared) -> np.ndarray:
         r = np.zeros((0, n_layers))
         for i0 in range(0, stack.shape[0], step):
             block = np.asarray(stack[i0:i0 + step][prep.mask[i0:i0 + step]], dtype=np.float64)
-            r = np.linalg.qr(np.concatenate([r, block]), mode="r")
+            r = fold_rows(r, block)
         if r.shape[0] < n_layers or not np.all(np.abs(np.diag(r)) > 0):
             raise InputError("the predictors are perfectly collinear over the dyad set")
         rinv = np.linalg.solve(np.triu(r), np.eye(n_layers))
