@@ -21,6 +21,12 @@ permutation):
   4 fixed layers per pass with two interleaved partial sums each; with several
   (dsp, freedman-lane) fused tiles of 3 relabelled x 4 fixed (or 4 x 3) layers, twelve
   sums per pass over the row, the three or four gathered values sharing one index load.
+- Vector tiles. When a tile's layers are consecutive in their records (the dsp and
+  freedman-lane stacks of 3 predictors are), ``tile_vec`` keeps the twelve sums in three
+  4-lane vectors, reads each record with one 4-wide load and does three vector fused
+  multiply-adds per dyad instead of twelve scalar ones (numba has no vector types, so
+  that loop is written in LLVM IR). Each lane still sums one pair in increasing column
+  order with one fused multiply-add per term: the same bits as the scalar tiles.
 
 Summation order (what makes results bit-identical for any chunk size, number of jobs or
 block size): for each permutation b and pair (a, c), the products of row i are summed in
@@ -87,6 +93,125 @@ else:
             fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0")
             builder.call(fn, [builder.bitcast(ptr, i8p), i32(0), i32(3), i32(1)])
             return context.get_dummy_value()
+        return sig, codegen
+
+
+# Columns per call of the vector tile (the prefetches of the next stored row are issued
+# between calls). Long enough that loading and storing the accumulators is cheap.
+VEC_COLUMNS = 64
+
+
+def _tile_vec_python(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc):
+    """Pure-Python twin of ``tile_vec`` (used when numba's JIT is off)."""
+    for j in range(j0, j1):
+        g = rb + co[j]
+        o = fb + (j - js) * lf
+        u = [float(relf[g + r0 + t]) for t in range(4)]
+        v = [float(fixf[o + f0 + t]) for t in range(4)]
+        for a in range(3):
+            for c in range(4):
+                if swap:  # lanes: relabelled layers; sums s_ca, c < 3
+                    acc[a * 4 + c] += v[a] * u[c]
+                else:  # lanes: fixed layers; sums s_ac, a < 3
+                    acc[a * 4 + c] += u[a] * v[c]
+
+
+def _tile_vec_codegen(swap):
+    """LLVM IR of a 3 x 4 tile loop with three <4 x double> accumulators.
+
+    For j in [j0, j1): u = rel[rb + co[j] + r0 : +4] and v = fix[fb + (j - js) lf + f0 : +4]
+    (one 4-wide load each, widened to double), then for a = 0, 1, 2:
+    acc_a = fma(splat(u[a]), v, acc_a) -- or, with ``swap``, fma(splat(v[a]), u, acc_a).
+    Each lane is one (relabelled, fixed) pair's sum, in increasing j, with one fused
+    multiply-add per term: the same operations, in the same order, as the scalar tiles,
+    so the results are the same bits. acc (12,) float64 is read on entry and written back.
+    """
+    def codegen(context, builder, signature, args):
+        from llvmlite import ir
+        (relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc) = args
+        aty = signature.args
+        rel_p = context.make_array(aty[0])(context, builder, relf).data
+        co_p = context.make_array(aty[2])(context, builder, co).data
+        fix_p = context.make_array(aty[3])(context, builder, fixf).data
+        acc_p = context.make_array(aty[11])(context, builder, acc).data
+        i32, i64, dbl = ir.IntType(32), ir.IntType(64), ir.DoubleType()
+        v4d = ir.VectorType(dbl, 4)
+        elt = rel_p.type.pointee
+        v4e = ir.VectorType(elt, 4)
+        fma = cgutils.get_or_insert_function(
+            builder.module, ir.FunctionType(v4d, [v4d, v4d, v4d]), "llvm.fma.v4f64")
+        start = []
+        for a in range(3):
+            vec = ir.Constant(v4d, ir.Undefined)
+            for c in range(4):
+                x = builder.load(builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
+                vec = builder.insert_element(vec, x, ir.Constant(i32, c))
+            start.append(vec)
+        entry = builder.block
+        head = builder.append_basic_block("tile.head")
+        body = builder.append_basic_block("tile.body")
+        done = builder.append_basic_block("tile.done")
+        builder.branch(head)
+        builder.position_at_end(head)
+        j = builder.phi(i64)
+        j.add_incoming(j0, entry)
+        sums = []
+        for a in range(3):
+            ph = builder.phi(v4d)
+            ph.add_incoming(start[a], entry)
+            sums.append(ph)
+        builder.cbranch(builder.icmp_signed("<", j, j1), body, done)
+        builder.position_at_end(body)
+        g = builder.add(rb, builder.sext(builder.load(builder.gep(co_p, [j])), i64))
+        o = builder.add(fb, builder.mul(builder.sub(j, js), lf))
+
+        def load4(ptr, at):
+            raw = builder.load(builder.bitcast(builder.gep(ptr, [at]), v4e.as_pointer()),
+                               align=4)
+            return builder.fpext(raw, v4d) if elt != dbl else raw
+
+        u = load4(rel_p, builder.add(g, r0))
+        v = load4(fix_p, builder.add(o, f0))
+        lanes, split = (u, v) if swap else (v, u)
+        new = []
+        for a in range(3):
+            s = builder.shuffle_vector(split, split, ir.Constant(ir.VectorType(i32, 4), [a] * 4))
+            new.append(builder.call(fma, [s, lanes, sums[a]]))  # s_a. += split_a * lanes
+        step = builder.block
+        j.add_incoming(builder.add(j, ir.Constant(i64, 1)), step)
+        for a in range(3):
+            sums[a].add_incoming(new[a], step)
+        builder.branch(head)
+        builder.position_at_end(done)
+        for a in range(3):
+            for c in range(4):
+                x = builder.extract_element(sums[a], ir.Constant(i32, c))
+                builder.store(x, builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
+        return context.get_dummy_value()
+    return codegen
+
+
+if config.DISABLE_JIT:
+    def tile_vec(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc):
+        """Pure-Python twin of the vector tile (the kernels run as Python code)."""
+        _tile_vec_python(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc)
+else:
+    @intrinsic
+    def tile_vec(typingctx, swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc):
+        """3 x 4 tile of sums over columns [j0, j1) in vector registers (see
+        ``_tile_vec_codegen``); ``swap`` must be a literal bool: False puts the fixed
+        layers in the lanes (tile 3 x 4), True the relabelled layers (tile 4 x 3)."""
+        if not isinstance(swap, types.BooleanLiteral):
+            return None
+        if not all(isinstance(x, types.Array) and x.ndim == 1 and x.layout == "C"
+                   for x in (relf, co, fixf, acc)):
+            return None
+        sig = types.void(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc)
+        inner = _tile_vec_codegen(swap.literal_value)
+
+        def codegen(context, builder, signature, args):
+            sub = types.void(*signature.args[1:])
+            return inner(context, builder, sub, args[1:])
         return sig, codegen
 
 
@@ -347,11 +472,41 @@ def choose_tile(n_rel, n_fix):
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
+def _vec_tile_ok(idx, at, width, n_cols):
+    """Whether layers idx[at : at + width] are consecutive, and a 4-wide read from
+    idx[at] stays inside a stored record of ``n_cols`` layers."""
+    if at + width > idx.shape[0] or idx[at] + 4 > n_cols:
+        return False
+    for t in range(1, width):
+        if idx[at + t] != idx[at] + t:
+            return False
+    return True
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _vec_tile_row(swap, relf, rb0, r0, co, fixf, fb, lf, c0, js, je, pf, pf_end, pf_n,
+                  line, vacc):
+    """A full tile of one row by ``tile_vec``, VEC_COLUMNS columns per call, with the
+    prefetches of the scalar tiles (pf_n per 8 columns) issued between calls."""
+    vacc[:] = 0.0
+    j0 = js
+    while j0 < je:
+        j1 = min(j0 + VEC_COLUMNS, je)
+        pf = _prefetch_some(relf, pf, pf_end, pf_n * ((j1 - j0 + 7) // 8), line)
+        tile_vec(swap, relf, rb0, co, fixf, fb, lf, r0, c0, j0, j1, js, vacc)
+        j0 = j1
+    return pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
 def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end, pf_n,
-               line, tile, acc):
+               line, tile, acc, lr, vacc):
     """One row of one permutation through 3 x 4 (or 4 x 3) tiles; adds into acc (R, Q).
 
-    A tile past the last layer repeats the last index; those sums are dropped.
+    A tile past the last layer repeats the last index; those sums are dropped. A full
+    tile whose layers are consecutive in their records runs in vector registers
+    (``tile_vec``, same bits); any other tile in scalar registers (``_tile34``,
+    ``_tile43``). ``lr``: layers per stored record of ``relf``; ``vacc``: (12,) workspace.
     """
     n_rel = rel_idx.shape[0]
     n_fix = fix_idx.shape[0]
@@ -362,6 +517,20 @@ def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end
     for a in range(0, n_rel, ta):
         for c in range(0, n_fix, tc):
             pfn = pf_n if (a == 0 and c == 0) else 0
+            if (_vec_tile_ok(rel_idx, a, ta, lr) and _vec_tile_ok(fix_idx, c, tc, lf)):
+                if tile == 34:
+                    pf = _vec_tile_row(False, relf, rb0, rel_idx[a], co, fixf, fb, lf,
+                                       fix_idx[c], js, je, pf, pf_end, pfn, line, vacc)
+                    for x in range(3):
+                        for y in range(4):
+                            acc[a + x, c + y] += vacc[x * 4 + y]
+                else:
+                    pf = _vec_tile_row(True, relf, rb0, rel_idx[a], co, fixf, fb, lf,
+                                       fix_idx[c], js, je, pf, pf_end, pfn, line, vacc)
+                    for x in range(4):
+                        for y in range(3):
+                            acc[a + x, c + y] += vacc[y * 4 + x]
+                continue
             r0 = rel_idx[a]
             r1 = rel_idx[min(a + 1, last_a)]
             r2 = rel_idx[min(a + 2, last_a)]
@@ -439,6 +608,7 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     line = max(1, CACHE_LINE // relf.itemsize)  # elements per cache line
     row_lines = (rowlen + line - 1) // line
     tile = choose_tile(n_rel, n_fix)
+    vacc = np.zeros(12)  # accumulators of the vector tiles (one row at a time)
     for b0 in range(0, n_perm, block):
         nb = min(block, n_perm - b0)
         for q in range(nb):
@@ -467,7 +637,7 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                 pf_end = nxt + row_lines * line
                 if tile == 34 or tile == 43:
                     pf = _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf,
-                                    pf_end, pf_n, line, tile, tot[q])
+                                    pf_end, pf_n, line, tile, tot[q], lr, vacc)
                 else:
                     for a in range(n_rel):
                         rb = rb0 + rel_idx[a]
