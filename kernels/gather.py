@@ -11,7 +11,8 @@ permutation):
   row is small enough for the first-level caches, so the random column reads hit cache
   once the row is there.
 - Prefetch of rows ahead. While row i of permutation b is gathered, the stored row that
-  row i + AHEAD will read is requested line by line (a software prefetch, spread over the
+  the step AHEAD steps later will read (steps run over the block's permutations, then
+  rows) is requested line by line (a software prefetch, spread over the
   gather so it streams at memory bandwidth instead of waiting on one miss at a time).
 - Blocks of permutations. ``block`` permutations go through row i one after the other,
   so the fixed row i (all its fixed layers) is loaded from memory once per block, not
@@ -50,10 +51,14 @@ from .options import KERNEL_OPTIONS
 # Permutations processed together per pass over the fixed rows: their gathers share each
 # load of a fixed row. Results do not depend on this constant (see the module notes).
 PERM_BLOCK = 8
-# Cap of the automatic block, and the bytes of relabelled rows a block may gather from at
-# once: more rows than fit in a core's L2 cache thrash it. Measured on a 2-core EPYC (ms per
-# permutation by block 1/2/4/8/16): rows of 16 KB 9.9/8.4/8.3/6.3/5.6, 62 KB
-# 32/19/19/27/56, 156 KB 132/140/202/361/492 -- best near 256 KB of rows in flight.
+# Cap of the automatic block, and the bytes of column offsets (int32, one row per
+# permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
+# permutation) ahead, so only a few stored rows are in flight whatever the block; the
+# block's own working set is its column offsets. Measured on the 2-core EPYC (dsp tile,
+# ms per permutation): n = 10,000 float32 block 1/4/6 141/124/124; n = 5000 float32
+# 3/6/12 34.4/32.9/30.9; n = 2000 float64 4/8/16 10.3/13.5/9.8. (Before prefetching by
+# steps, blocks of wide rows thrashed L2: rows of 156 KB took 132/140/202/361/492 ms at
+# block 1/2/4/8/16.)
 MAX_BLOCK = 16
 BLOCK_BYTES = 256 * 1024
 # Fixed layers summed together per pass over a row (the register accumulators of one
@@ -615,11 +620,12 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
             for j in range(m):
                 # offset of column col_perms[b, j] inside a stored row
                 coloff[q, j] = np.int32(col_perms[b0 + q, j] * lr)
-            for i in range(min(AHEAD, n_rows)):
-                pf = row_perms[b0 + q, i] * rowlen
-                for _ in range(row_lines):
-                    prefetch(relf, np.uint64(pf))
-                    pf += line
+        # the stored rows of the first AHEAD steps (a step: row i of one permutation)
+        for t in range(min(AHEAD, n_rows * nb)):
+            pf = row_perms[b0 + t % nb, t // nb] * rowlen
+            for _ in range(row_lines):
+                prefetch(relf, np.uint64(pf))
+                pf += line
         tot[:] = 0.0
         for i in range(n_rows):
             js = col_start[i]
@@ -632,7 +638,9 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                 b = b0 + q
                 co = coloff[q]
                 rb0 = row_perms[b, i] * rowlen
-                nxt = row_perms[b, i + AHEAD] * rowlen if i + AHEAD < n_rows else rb0
+                # the stored row of the step AHEAD steps on (steps run q fastest)
+                t = i * nb + q + AHEAD
+                nxt = row_perms[b0 + t % nb, t // nb] * rowlen if t < n_rows * nb else rb0
                 pf = nxt
                 pf_end = nxt + row_lines * line
                 if tile == 34 or tile == 43:
@@ -680,10 +688,10 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
 
 
 def auto_block(rel) -> int:
-    """Permutations per pass: as many relabelled rows as fit in ``BLOCK_BYTES``, 1 to
-    ``MAX_BLOCK``."""
-    row_bytes = rel.shape[1] * rel.shape[2] * rel.itemsize
-    return int(min(MAX_BLOCK, max(1, BLOCK_BYTES // max(row_bytes, 1))))
+    """Permutations per pass: as many rows of int32 column offsets as fit in
+    ``BLOCK_BYTES``, 1 to ``MAX_BLOCK``."""
+    offsets_bytes = rel.shape[1] * 4
+    return int(min(MAX_BLOCK, max(1, BLOCK_BYTES // max(offsets_bytes, 1))))
 
 
 def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop, out,

@@ -75,15 +75,15 @@ def test_sparse_cross_equals_edge_sum(n, invert):
         np.testing.assert_allclose(out[b], ref, rtol=1e-10, atol=1e-9)
 
 
-def test_auto_block_fits_rows_in_cache_and_changes_no_bit():
-    """The automatic block keeps about BLOCK_BYTES of relabelled rows in flight (1 for very
-    wide rows) and gives the same bits as any explicit block (common practice: blocking
-    must not change a sum's order)."""
+def test_auto_block_fits_offsets_in_cache_and_changes_no_bit():
+    """The automatic block keeps about BLOCK_BYTES of column offsets in cache (one int32
+    row per permutation) and gives the same bits as any explicit block (common practice:
+    blocking must not change a sum's order)."""
     from dyadperm.kernels.gather import BLOCK_BYTES, MAX_BLOCK, auto_block, gather_cross
 
-    assert auto_block(np.empty((4, 2000, 1))) == MAX_BLOCK  # 16 KB rows
-    assert auto_block(np.empty((4, 2000, 4))) == BLOCK_BYTES // (2000 * 4 * 8)
-    assert auto_block(np.empty((2, 10_000, 4), dtype=np.float32)) == 1
+    assert auto_block(np.empty((4, 2000, 4))) == MAX_BLOCK  # 8 KB of offsets each
+    assert auto_block(np.empty((2, 10_000, 4), dtype=np.float32)) == BLOCK_BYTES // 40_000
+    assert auto_block(np.empty((2, 100_000, 1))) == 1
     rng = np.random.default_rng(3)
     n = 11
     rel = rng.normal(size=(n, n, 2))
