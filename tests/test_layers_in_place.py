@@ -31,9 +31,15 @@ def _write(tmp_path, rng, *, scheme, missing=False):
     with h5py.File(tmp_path / "layers.h5", "w") as fh:
         fh["x1"] = xs[1]
     np.save(tmp_path / "y.npy", y)
+    _study_file(tmp_path, "directed = true", "layers.h5:/x1", scheme, 150, 11)
+    return y, xs
+
+
+def _study_file(tmp_path, head, b_file, scheme, permutations, seed):
+    """s.toml: response y.npy on predictors a (x0.npy) and b (``b_file``)."""
     (tmp_path / "s.toml").write_text(f"""[study]
 title = "in place"
-directed = true
+{head}
 [response]
 name = "y"
 file = "y.npy"
@@ -42,13 +48,12 @@ name = "a"
 file = "x0.npy"
 [[predictor]]
 name = "b"
-file = "layers.h5:/x1"
+file = "{b_file}"
 [test]
 scheme = "{scheme}"
-permutations = 150
-seed = 11
+permutations = {permutations}
+seed = {seed}
 """)
-    return y, xs
 
 
 def _spy_plans(monkeypatch):
@@ -258,23 +263,7 @@ def test_other_shapes_in_place(tmp_path, rng, shape, scheme):
     for name, a in zip(("x0", "x1", "y"), mats):
         np.save(tmp_path / f"{name}.npy", a)
     head = ('directed = false' if shape == "undirected" else 'two_mode = true')
-    (tmp_path / "s.toml").write_text(f"""[study]
-title = "shapes"
-{head}
-[response]
-name = "y"
-file = "y.npy"
-[[predictor]]
-name = "a"
-file = "x0.npy"
-[[predictor]]
-name = "b"
-file = "x1.npy"
-[test]
-scheme = "{scheme}"
-permutations = 120
-seed = 9
-""")
+    _study_file(tmp_path, head, "x1.npy", scheme, 120, 9)
     study = dp.load_study(tmp_path / "s.toml")
     assert study.layers_in_place
     got = study.run()
