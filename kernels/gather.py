@@ -48,9 +48,6 @@ from numba.extending import intrinsic
 from ..errors import InputError
 from .options import KERNEL_OPTIONS
 
-# Permutations processed together per pass over the fixed rows: their gathers share each
-# load of a fixed row. Results do not depend on this constant (see the module notes).
-PERM_BLOCK = 8
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
 # permutation) ahead, so only a few stored rows are in flight whatever the block; the

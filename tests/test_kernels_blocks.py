@@ -25,13 +25,13 @@ from reference import KERNEL_ATOL, KERNEL_RTOL, gather_cross_ref
 
 import dyadperm as dp
 from dyadperm.errors import InputError
-from dyadperm.kernels.gather import PERM_BLOCK, choose_tile, gather_cross
+from dyadperm.kernels.gather import MAX_BLOCK, choose_tile, gather_cross
 
 # float32 storage against float64 (see the module docstring for where these come from)
 T32_RTOL = 1e-5
 T32_ATOL = 1e-5
 
-BLOCKS = (1, 2, 3, PERM_BLOCK, 16)
+BLOCKS = (1, 2, 3, 8, MAX_BLOCK)
 
 
 def _inputs(rng, n, m, Lr, Lf, R, Q, B, *, two_mode, ranges, dtype=np.float64):
