@@ -13,10 +13,10 @@ from . import design as _design
 from . import precision as _precision
 from . import sparse as _sparse
 from . import store as _store
-from .engine import Draws, default_chunk_size, iter_chunks, run_all
+from .engine import Draws, default_chunk_size, iter_chunks, run_all, workers_used
 from .errors import DyadpermWarning, InputError
 from .permutations import EXACT_LIMIT, Blocks
-from .result import CorrelationResult, LayerCorrelationResult, RegressionResult
+from .result import CorrelationResult, LayerCorrelationResult, RegressionResult, statistic_label
 from .schemes import Plan, build_correlation_plan, build_plan, check_options
 
 MODELS = ("linear", "logistic")
@@ -334,7 +334,9 @@ def run_to_result(prep, plan: Plan, *, settings: dict, summary: dict, fit_arrays
         _check_agreement(observed, agree_with, prep.names)
     return build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
-                        seed=None if draws.exact else draws.entropy, planned=draws.total)
+                        seed=None if draws.exact else draws.entropy, planned=draws.total,
+                        workers=workers_used(run["jobs"], run.get("backend", "threads"),
+                                             draws.n_chunks))
 
 
 def correlation_fit(plan: Plan, prep, n_dyads: Any) -> dict:
@@ -363,7 +365,7 @@ def _summary(prep, *, kind, model, scheme, statistic, method, n_dyads, terms) ->
 
 
 def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk_size: int,
-                 seed: int | None, planned: int | None = None):
+                 seed: int | None, planned: int | None = None, workers: int | None = None):
     """The result object from what a run stores: used by live runs and by open_result.
 
     ``null`` holds the rows the run uses (a stopped run: up to its stopping point);
@@ -379,12 +381,13 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
         stat=np.asarray(observed["stat"], dtype=np.float64),
         null=null, permutations=int(np.shape(null)[0]), exact=bool(exact),
         n_nodes=int(summary["n_nodes"]), n_dyads=int(summary["n_dyads"]),
-        scheme=summary["scheme"], model=summary["model"], statistic=summary["statistic"],
+        scheme=summary["scheme"], model=summary["model"],
+        statistic=statistic_label(summary["model"], summary["statistic"]),
         seed=seed, directed=bool(summary["directed"]), two_mode=bool(summary["two_mode"]),
         response=summary["response"], exceed=pv.exceed, failed=pv.failed,
         chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())) + st.notes,
         alpha=st.rule.alpha, stop=st.rule.to_dict(), stopped_by=st.stopped_by,
-        planned=st.planned)
+        planned=st.planned, workers=workers)
     if summary["kind"] == "correlation":
         return CorrelationResult(p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less,
                                  p_se=pv.p_se, p_interval=pv.p_interval,

@@ -692,7 +692,7 @@ def calibrate_study(study: Any, *, replicates: int = 200, permutations: int = 19
     """
     t = study.spec["test"]
     if jobs is None:
-        jobs = t["jobs"] if _sets_jobs(study.text) else -1
+        jobs = -1 if t["jobs"] is None else t["jobs"]
     notes = []
     if t["kind"] == "correlation":
         if t["method"] != "pearson":
@@ -718,13 +718,6 @@ def calibrate_study(study: Any, *, replicates: int = 200, permutations: int = 19
     if notes:
         res = replace(res, notes=res.notes + tuple(notes))
     return res
-
-
-def _sets_jobs(text: str) -> bool:
-    """Whether the study file itself sets ``[test] jobs`` (the loaded spec fills a default)."""
-    import tomllib
-
-    return "jobs" in tomllib.loads(text).get("test", {})
 
 
 # --------------------------------------------------------------------------- output

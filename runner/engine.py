@@ -59,6 +59,17 @@ def default_chunk_size(plan: Plan) -> int:
     return int(np.clip(CHUNK_WORK // max(per_perm, 1), MIN_CHUNK, MAX_CHUNK))
 
 
+def workers_used(jobs: int, backend: str, n_chunks: int) -> int | None:
+    """Workers that compute a run's chunks: ``jobs`` (-1: every core), at most one per
+    chunk; None for a Dask cluster (its scheduler decides)."""
+    if backend == "dask":
+        return None
+    import joblib
+
+    wanted = int(joblib.cpu_count()) if jobs == -1 else int(jobs)
+    return max(1, min(wanted, n_chunks))
+
+
 def compute_chunk(plan: Plan, draws: Draws, c: int) -> tuple[int, np.ndarray]:
     """Statistics (count, k) of chunk ``c``."""
     rows, cols = draws.permutations(c)

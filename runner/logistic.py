@@ -105,7 +105,7 @@ import numpy as np
 from . import api as _api
 from . import design as _design
 from . import store as _store
-from .engine import CHUNK_WORK, MAX_CHUNK
+from .engine import CHUNK_WORK, MAX_CHUNK, workers_used
 from .errors import DyadpermWarning, InputError, NumericalError
 from .kernels.gather import gather_cross
 from .kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
@@ -561,8 +561,8 @@ def regress(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t
     else:
         direct = fit.z[1:] if statistic == "t" else fit.coef[1:]
         stat = fit.z if statistic == "t" else fit.coef
-        note = ("model 'logistic': the t column holds Wald z statistics"
-                if statistic == "t" else "model 'logistic': estimates are log odds ratios")
+        note = ("model 'logistic': z is the Wald statistic b / se; estimates are log odds "
+                "ratios")
     model = "logistic"
     settings = dict(kind="regression", model=model, scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads,
@@ -583,7 +583,8 @@ def regress(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t
     _check_agreement(observed, direct, prep.names, statistic)
     return _api.build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
                              exact=draws.exact, chunk_size=draws.chunk_size,
-                             seed=None if draws.exact else draws.entropy)
+                             seed=None if draws.exact else draws.entropy,
+                             workers=workers_used(jobs, backend, draws.n_chunks))
 
 
 def _check_agreement(kernel: np.ndarray, direct: np.ndarray, names, statistic: str) -> None:

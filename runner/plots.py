@@ -23,8 +23,8 @@ ACCENT = "#1f4e9a"      # dark blue: reads as dark grey in black-and-white print
 ALPHA_LINE = "#b2182b"  # dark red
 BAND = "#9ecae1"
 
-_STAT_LABEL = {"t": "t statistic", "coef": "coefficient", "score": "score statistic",
-               "r": "correlation r"}
+_STAT_LABEL = {"t": "t statistic", "z": "Wald z statistic", "coef": "coefficient",
+               "score": "score statistic", "r": "correlation r"}
 
 
 def _figure(width: float = WIDTH, height: float = HEIGHT):
@@ -67,8 +67,6 @@ def _stat_name(res: Any) -> str:
     if isinstance(res, (CorrelationResult, LayerCorrelationResult)):
         return _STAT_LABEL["r"]
     label = _STAT_LABEL.get(res.statistic, res.statistic)
-    if res.model == "logistic" and res.statistic == "t":
-        label = "Wald z statistic"
     return label
 
 

@@ -60,9 +60,17 @@ def _alpha(res: Any, alpha: float | None) -> float:
 
 def _draws_line(res: Any) -> str:
     if res.exact:
-        return f"null: all {res.permutations:,} relabellings (exact enumeration)"
+        w = _workers(res)
+        return (f"null: all {res.permutations:,} relabellings (exact enumeration"
+                f"{w})")
     return (f"null: {res.permutations:,} random relabellings, seed {res.seed} "
-            f"(chunks of {res.chunk_size:,})")
+            f"(chunks of {res.chunk_size:,}{_workers(res)})")
+
+
+def _workers(res: Any) -> str:
+    """", N workers" when the result says how many computed its chunks."""
+    w = getattr(res, "workers", None)
+    return "" if w is None else f", {w} worker{'s' * (w != 1)}"
 
 
 def _stop_lines(res: Any) -> list[str]:

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class _Common:
     """Fields shared by regression and correlation results.
 
@@ -58,6 +58,9 @@ class _Common:
     stop_verdict: tuple[str, ...] = ()
     #: permutations the run was planned with (``permutations`` is how many it used)
     planned: int = 0
+    #: workers that computed the chunks of this call (None: read from a run file, or a
+    #: Dask cluster)
+    workers: int | None = None
 
     # -- shared helpers -----------------------------------------------------------------
     def _estimates(self) -> np.ndarray:
@@ -72,6 +75,17 @@ class _Common:
             out[f.name] = _plain(getattr(self, f.name))
         return out
 
+    def __repr__(self) -> str:
+        """What the table's header says, and the terms; the arrays stay attributes."""
+        from .report import header_lines
+
+        rows = getattr(self.null, "shape", (self.permutations,))
+        lines = [f"<{type(self).__name__}"] + ["  " + line for line in header_lines(self)]
+        lines.append("  terms: " + ", ".join(self.terms))
+        lines.append(f"  arrays: p, p_interval, stat, ... and null ({rows[0]:,} x "
+                     f"{rows[1] if len(rows) > 1 else '?'}); .table() prints the table>")
+        return "\n".join(lines)
+
     def table(self) -> str:
         """Formatted text table (see the README for how to read it)."""
         from .report import format_table as _format
@@ -79,7 +93,7 @@ class _Common:
         return _format(self)
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class RegressionResult(_Common):
     """Result of :func:`dyadperm.regress`. ``coef`` is the least-squares coefficient of
     each term; ``r2`` the fit's R squared (linear) and ``deviance`` NaN (logistic: the
@@ -93,7 +107,7 @@ class RegressionResult(_Common):
         return self.coef
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class CorrelationResult(_Common):
     """Result of :func:`dyadperm.correlate`: one term, ``r`` the correlation of the two
     networks over the dyad set, ``method`` pearson or spearman."""
@@ -105,7 +119,7 @@ class CorrelationResult(_Common):
         return self.r
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class LayerCorrelationResult(_Common):
     """Result of :func:`dyadperm.correlate` given several networks: one term per pair.
 
@@ -132,6 +146,11 @@ class LayerCorrelationResult(_Common):
         if what == "r":
             np.fill_diagonal(out, 1.0)
         return out
+
+
+def statistic_label(model: str, statistic: str) -> str:
+    """The name a result gives its statistic: the Wald statistic of a logistic fit is a z."""
+    return "z" if model == "logistic" and statistic == "t" else statistic
 
 
 def _plain(v: Any) -> Any:

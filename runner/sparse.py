@@ -77,7 +77,7 @@ from scipy.stats import rankdata
 from .design import (ObservedFit, _group_order, _standardised_condition, decide_directed,
                      decide_dyads, name_predictors)
 from .dyadic import NodeDerived, Reverse, _node_vector
-from .engine import MAX_CHUNK, run_all
+from .engine import MAX_CHUNK, run_all, workers_used
 from .errors import InputError
 from .kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
                              sparse_cross)
@@ -874,7 +874,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "y"
                       fit=np.array([fit.r2, np.nan]), kernel_stat=observed)
     return _api.build_result(summary, fit_arrays, null, exact=draws.exact,
                              chunk_size=draws.chunk_size,
-                             seed=None if draws.exact else draws.entropy)
+                             seed=None if draws.exact else draws.entropy,
+                             workers=workers_used(jobs, backend, draws.n_chunks))
 
 
 def _rank_edges(ed: Edges, N: int) -> Edges:
@@ -957,4 +958,5 @@ def correlate(a: Any, b: Any, *, method: str = "pearson", permutations: int = 10
     fit_arrays = dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan]), kernel_stat=r)
     return _api.build_result(summary, fit_arrays, null, exact=draws.exact,
                              chunk_size=draws.chunk_size,
-                             seed=None if draws.exact else draws.entropy)
+                             seed=None if draws.exact else draws.entropy,
+                             workers=workers_used(jobs, backend, draws.n_chunks))

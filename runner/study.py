@@ -38,7 +38,7 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     exact = "auto"            # "auto" | true | false
     groups = "district"       # optional node-table column; relabelling stays within groups
     dyads = "within"          # within | all (only with groups; default within)
-    jobs = 1                  # integer >= 1, or -1 for all cores
+    jobs = 2                  # integer >= 1, or -1 for all cores; omitted = every core
     chunk_size = 256          # integer >= 1; omitted = the engine's choice
     stop = "none"             # none | besag-clifford | gandy (sequential stopping)
     stop_exceedances = 10     # besag-clifford only: h, exceedances that end a term
@@ -101,7 +101,7 @@ _CHOICES = {
 _REGRESSION_ONLY = ("model", "scheme", "statistic")
 _DEFAULTS = {"kind": "regression", "model": "linear", "scheme": "dsp", "statistic": "t",
              "method": "pearson", "permutations": 10_000, "seed": None, "alpha": 0.05,
-             "exact": "auto", "groups": None, "dyads": None, "jobs": 1, "chunk_size": None}
+             "exact": "auto", "groups": None, "dyads": None, "jobs": None, "chunk_size": None}
 _RESERVED_NAMES = ("intercept",)
 
 
@@ -467,7 +467,8 @@ class Study:
         seed : int, optional
             Entropy for the permutation streams (>= 0).
         jobs : int, optional
-            Workers (>= 1, or -1 for all cores).
+            Workers (>= 1, or -1 for all cores); default the file's ``jobs``, else every
+            core.
         out : str or Path, optional
             Run file; default ``[output] file`` (or no run file).
         progress : bool or callable(done, total)
@@ -510,7 +511,7 @@ class Study:
         common = dict(
             permutations=t["permutations"] if permutations is None else permutations,
             seed=t["seed"] if seed is None else seed,
-            jobs=t["jobs"] if jobs is None else jobs,
+            jobs=jobs if jobs is not None else -1 if t["jobs"] is None else t["jobs"],
             directed=self.spec["study"]["directed"],
             groups=self.groups,
             dyads=t["dyads"],

@@ -119,7 +119,7 @@ def test_load_full_study(folder):
     assert s.spec["test"] == {"kind": "regression", "model": "linear", "scheme": "freedman-lane",
                               "statistic": "t", "method": None, "permutations": 10_000,
                               "seed": 7, "alpha": 0.05, "exact": "auto", "groups": "district",
-                              "dyads": "within", "jobs": 1, "chunk_size": None,
+                              "dyads": "within", "jobs": None, "chunk_size": None,
                               "stop": "none", "stop_exceedances": None, "stop_risk": None}
     assert s.spec["study"] == {"title": "Water between farms", "nodes": "farms.csv",
                                "id_column": "farm", "col_nodes": None, "col_id_column": None,
@@ -438,7 +438,7 @@ def test_run_overrides(folder, monkeypatch):
     s.run()
     kwargs = fake.calls[1][1]
     assert (kwargs["permutations"], kwargs["seed"], kwargs["jobs"], kwargs["chunk_size"],
-            kwargs["out"]) == (300, 11, 1, None, None)
+            kwargs["out"]) == (300, 11, -1, None, None)  # no jobs in the file: every core
 
 
 @pytest.mark.parametrize("override, match", [
