@@ -130,7 +130,7 @@ def perms_of(n: int, count: int):
     """The run's relabellings 0 .. count-1 (the engine's own draws, seed SEED)."""
     import numpy as np
 
-    from dyadperm.permutations import Blocks, draw
+    from dyadperm.pipeline.permutations import Blocks, draw
     rows, _ = draw(Blocks(n, n, ((0, n),), None), SEED, 0, count)
     return np.asarray(rows)
 
@@ -150,9 +150,9 @@ def peak_mib() -> float:
 def child_engine(n: int, perms: int, storage: str, chunk: int | None) -> dict:
     import numpy as np
 
-    from dyadperm.design import prepare
-    from dyadperm.engine import Draws, default_chunk_size, iter_chunks
-    from dyadperm.schemes import build_plan
+    from dyadperm.inputs.design import prepare
+    from dyadperm.pipeline.engine import Draws, iter_chunks
+    from dyadperm.routes.linear import build_statistics as build_plan
 
     y, xs = make_inputs(n)
     prep = prepare(y, {f"x{i + 1}": x for i, x in enumerate(xs)})
@@ -161,7 +161,7 @@ def child_engine(n: int, perms: int, storage: str, chunk: int | None) -> dict:
         plan = build_plan(prep, scheme=scheme, statistic="t", storage=storage)
         total = perms if scheme == "y" else max(perms // 2, 4)
         # at least 4 chunks, so both workers stay busy on a short timed slice
-        cs = chunk or min(default_chunk_size(plan), max(1, total // 4))
+        cs = chunk or min(plan.chunk_size(), max(1, total // 4))
         draws = Draws(prep.blocks, total, cs, False, SEED)
         ident = np.arange(n, dtype=np.int64)[None, :]
         plan.statistics(ident, ident)  # compile (or load the cached kernels)
@@ -283,7 +283,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="1-minute smoke version")
     ap.add_argument("--sizes", help="comma-separated n (default 500,1000,2000,5000)")
     ap.add_argument("--chunk", type=int, default=None,
-                    help="chunk size (default: the engine's default_chunk_size)")
+                    help="chunk size (default: the plan's chunk_size())")
     ap.add_argument("--markdown", help="also write the table as Markdown to this file")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)

@@ -82,9 +82,9 @@ def write_study(folder, n: int) -> str:
 def child(n: int, slice_: int, mode: str, chunk: int | None, study_path: str) -> dict:
     import numpy as np
 
-    from dyadperm.design import observed_fit, prepare
-    from dyadperm.engine import Draws, default_chunk_size, iter_chunks
-    from dyadperm.schemes import build_plan
+    from dyadperm.inputs.design import observed_fit, prepare
+    from dyadperm.pipeline.engine import Draws, iter_chunks
+    from dyadperm.routes.linear import build_statistics as build_plan
     from dyadperm.study import load_study
 
     stages = []
@@ -123,7 +123,7 @@ def child(n: int, slice_: int, mode: str, chunk: int | None, study_path: str) ->
     observed = plan.statistics(ident, ident)[0]  # warm-up: compiles or loads the kernels
     warm = time.perf_counter() - t_w
     stage("warm-up (observed statistic)", t0)
-    cs = chunk or default_chunk_size(plan)
+    cs = chunk or plan.chunk_size()
     cs = min(cs, max(1, slice_ // 2))  # at least two chunks: one per worker
     draws = Draws(prep.blocks, slice_, cs, False, SEED)
     t_s = time.perf_counter()
@@ -153,7 +153,7 @@ def main(argv=None) -> int:
     ap.add_argument("--slice", type=int, default=32)
     ap.add_argument("--modes", default="study,arrays-float64,arrays-float32")
     ap.add_argument("--chunk", type=int, default=None,
-                    help="chunk size (default: the engine's default_chunk_size)")
+                    help="chunk size (default: the plan's chunk_size())")
     ap.add_argument("--json", help="also write the results to this file")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)

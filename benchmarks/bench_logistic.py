@@ -3,9 +3,9 @@
 For n = 1000 nodes (dense directed networks, a 0/1 response with about 30 % ties) and
 k = 1 and k = 3 predictors, prints in one run, per relabelling:
 
-- linear y / linear dsp: ``dyadperm.schemes`` plans (the linear engine), the yardstick;
+- linear y / linear dsp: ``dyadperm.routes.linear`` statistics (the linear engine), the yardstick;
 - logistic score, scheme y and dsp (``statistic="score"``): the dot-product routes of
-  ``dyadperm.logistic`` (y: one product x'y_pi when k = 1, reduced refits otherwise;
+  ``dyadperm.routes.logistic`` (y: one product x'y_pi when k = 1, reduced refits otherwise;
   dsp: the row-wise sums of ``kernels.irls.score_rows``);
 - logistic refit, scheme y and dsp (``statistic="t"``, the Wald z): Newton refits;
 - naive: what a user would write in numpy: relabel with fancy indexing
@@ -20,7 +20,7 @@ best of ``--rounds`` rounds in which every route runs once in turn, so a busy ma
 slows all routes alike. The statistics of the engine and of the naive loop are compared on
 the same relabellings (largest relative gap reported). Also recorded: mean Newton steps
 per refit from the warm start used and from the alternatives (the choice the module
-docstring of ``dyadperm.logistic`` explains), the bytes of each plan's stored arrays, and
+docstring of ``dyadperm.routes.logistic`` explains), the bytes of each plan's stored arrays, and
 each child's peak resident memory (ru_maxrss).
 
 Each k runs in a fresh subprocess. Usage:
@@ -102,10 +102,10 @@ def child(n: int, k: int, rounds: int) -> dict:
 
     import numpy as np
 
-    from dyadperm import logistic as lg
-    from dyadperm.design import prepare
-    from dyadperm.permutations import draw
-    from dyadperm.schemes import build_plan
+    from dyadperm.routes import logistic as lg
+    from dyadperm.inputs.design import prepare
+    from dyadperm.pipeline.permutations import draw
+    from dyadperm.routes.linear import build_statistics as build_plan
 
     y, xs = make_inputs(n, k)
     prep = prepare(y, {f"x{i + 1}": x for i, x in enumerate(xs)})

@@ -32,9 +32,9 @@ from pathlib import Path
 import numpy as np
 
 import dyadperm as dp
-from dyadperm import sparse as sparse_path
-from dyadperm.engine import Draws, run_all
-from dyadperm.permutations import draw
+from dyadperm.routes import sparse as sparse_path
+from dyadperm.pipeline.engine import Draws, run_all
+from dyadperm.pipeline.permutations import draw
 
 N_NODES = 100_000
 N_EDGES = 1_000_000
@@ -138,7 +138,7 @@ def main() -> None:
     fit = sparse_path.observed_fit_sparse(prep, mom, plan, y_mean, y_sd)
     t_setup = time.perf_counter() - t
 
-    chunk = sparse_path.default_chunk_size(prep)
+    chunk = sparse_path.chunk_size(prep)
     draws = Draws(prep.blocks, args.slice, chunk, False, SEED)
     t = time.perf_counter()
     cpu0 = cpu_seconds()

@@ -45,7 +45,6 @@ from numba import config, njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
-from ..errors import InputError
 from .options import KERNEL_OPTIONS
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
@@ -732,7 +731,7 @@ def gather_cross(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, co
     """
     m = fix.shape[1]
     if m * rel.shape[2] >= 2**31:
-        raise InputError(f"gather_cross: a stored row must hold fewer than 2**31 values for "
+        raise ValueError(f"gather_cross: a stored row must hold fewer than 2**31 values for "
                          f"int32 column offsets; got {m} columns x {rel.shape[2]} layers")
     rel = np.ascontiguousarray(rel)
     fix = np.ascontiguousarray(fix)

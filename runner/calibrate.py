@@ -59,7 +59,7 @@ Cost
 ----
 terms x replicates x schemes x (permutations + 1) relabelled statistics, twice with
 ``effect`` (``CalibrationResult.passes``; the wall time is ``seconds``). Each replicate
-builds the engine's own plan for every scheme (``schemes.build_plan`` on the simulated
+builds the engine's own plan for every scheme (``routes.linear.build_statistics`` on the simulated
 response) and runs the engine's relabelling kernels, so a statistic costs what it costs
 in a normal run; with complete data ``dsp`` and ``freedman-lane`` read the same layers
 and share one relabelling pass per replicate. The defaults (200 replicates, 199
@@ -82,13 +82,15 @@ import numpy as np
 from scipy.stats import binom
 from scipy.stats import t as t_dist
 
-from . import design as _design
-from .errors import InputError, NumericalError
-from .kernels.gather import gather_cross
-from .kernels.stats import fill_gram, regression_stats
-from .permutations import EXACT_LIMIT, Blocks, enumerate_exact
-from .pvalues import clopper_pearson, pvalues
-from .schemes import SCHEMES, STATISTICS, build_plan
+from .errors import InputError
+from .inputs import design as _design
+from .inputs.blocks import Blocks
+from .output.result import _plain
+from .pipeline.engine import parallel_map
+from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
+from .pipeline.pvalues import clopper_pearson, pvalues
+from .routes.linear import build_statistics, shared_statistics
+from .settings import EXACT_LIMIT, SCHEMES, STATISTICS, entropy_of
 
 __all__ = ["CalibrationResult", "Replicate", "calibrate", "calibrate_study",
            "simulated_response", "plot_calibration", "check_plot_path"]
@@ -102,9 +104,6 @@ BAND_LEVEL = 0.95
 INTERVAL_LEVEL = 0.95
 # alpha (m + 1) within this of a whole number counts as whole (floating point of 0.05 * 200).
 WHOLE_TOL = 1e-9
-# The shared relabelling pass and the engine's plan add the same products in the same
-# order; they must agree on the identity statistic to this relative tolerance.
-SHARED_RTOL = 1e-9
 
 
 @dataclass(frozen=True, eq=False)
@@ -201,7 +200,6 @@ class CalibrationResult:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-ready dict (lists; p-values per replicate left out)."""
-        from .result import _plain
 
         out: dict[str, Any] = {}
         for name in self.__dataclass_fields__:
@@ -273,16 +271,6 @@ def _check(*, schemes, replicates, permutations, alpha, effect, seed, jobs, incl
                 alpha=alpha, effect=effect, seed=seed, jobs=jobs, band_level=band_level)
 
 
-def _entropy(seed: Any) -> int:
-    if isinstance(seed, np.random.SeedSequence):
-        if seed.spawn_key or not isinstance(seed.entropy, int):
-            raise InputError("`seed`: give a root SeedSequence with a single integer entropy")
-        return seed.entropy
-    if seed is None:
-        return int(np.random.SeedSequence().entropy)
-    return int(seed)
-
-
 # --------------------------------------------------------------------------- simulation
 
 @dataclass(frozen=True, eq=False)
@@ -320,42 +308,15 @@ def _reduced(prep: _design.Prepared, j: int, ok: np.ndarray) -> _Reduced:
     return _Reduced(fitted, resid, shift)
 
 
-def _relabelling(blocks: Blocks, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    rows = np.empty(blocks.n_rows, dtype=np.int64)
-    for s, e in blocks.row_blocks:
-        rows[s:e] = s + rng.permutation(e - s)
-    if blocks.col_blocks is None:
-        return rows, rows
-    cols = np.empty(blocks.n_cols, dtype=np.int64)
-    for s, e in blocks.col_blocks:
-        cols[s:e] = s + rng.permutation(e - s)
-    return rows, cols
-
-
-def _relabellings(blocks: Blocks, rng: np.random.Generator, count: int
-                  ) -> tuple[np.ndarray, np.ndarray]:
-    """``count`` random relabellings within blocks, drawn at once: (count, n), (count, m)."""
-    def within(ranges, size):
-        out = np.empty((count, size), dtype=np.int64)
-        for s, e in ranges:
-            out[:, s:e] = s + rng.permuted(np.tile(np.arange(e - s, dtype=np.int64),
-                                                    (count, 1)), axis=1)
-        return out
-
-    rows = within(blocks.row_blocks, blocks.n_rows)
-    cols = rows if blocks.col_blocks is None else within(blocks.col_blocks, blocks.n_cols)
-    return rows, cols
-
-
 def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks, count: int):
     """Replicate r of term j: the relabelling of its residuals, then ``count`` relabellings
     for its tests (none when ``count`` is 0), all from SeedSequence(entropy, (j, r))."""
     rng = np.random.Generator(np.random.PCG64(
         np.random.SeedSequence(entropy, spawn_key=(term, replicate))))
-    rows, cols = _relabelling(blocks, rng)
+    rows, cols = draw_from(rng, blocks)
     if count == 0:
         return rows, cols, None
-    return rows, cols, _relabellings(blocks, rng, count)
+    return rows, cols, draw_many_from(rng, blocks, count)
 
 
 def _as_response(prep: _design.Prepared, values: np.ndarray) -> np.ndarray:
@@ -383,10 +344,10 @@ def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, 
     sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete)
     plans = []
     for s in schemes:  # only the passes that fill term j's statistic
-        plan = build_plan(sim, scheme=s, statistic=statistic)
+        plan = build_statistics(sim, scheme=s, statistic=statistic)
         plans.append(replace(plan, passes=tuple(ps for ps in plan.passes if j in ps.terms)))
     if all(ps.gram0 is not None for plan in plans for ps in plan.passes):
-        stats = _shared_statistics(plans, j, batch)
+        stats = shared_statistics(plans, j, batch)
     else:  # missing values: the engine's own passes (one full Gram per permutation and term)
         stats = [plan.statistics(*batch)[:, j] for plan in plans]
     out = np.empty(len(schemes) + int(include_ols))
@@ -397,70 +358,9 @@ def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, 
         if statistic == "t":
             t_obs = stats[0][0]  # the identity relabelling: the full-model t (engine check)
         else:
-            t_obs = build_plan(sim, scheme=schemes[0], statistic="t").statistics(*ident)[0][j]
+            t_obs = build_statistics(sim, scheme=schemes[0], statistic="t").statistics(*ident)[0][j]
         df = int(np.isfinite(ystar[ok_x]).sum()) - (prep.k + 1)
         out[-1] = 2.0 * t_dist.sf(abs(t_obs), df) if df > 0 else np.nan
-    return out
-
-
-def _shared_statistics(plans, j: int, batch) -> list[np.ndarray]:
-    """Statistic of term ``j`` under each plan, sharing relabelling passes between plans.
-
-    Each plan's pass needs, per relabelling, the cross products of its relabelled layers
-    with its fixed layers (``Plan.statistics`` reads them with ``gather_cross``). Passes of
-    different plans that hold equal layer arrays share their products: each pass gathers
-    only the (relabelled, fixed) pairs that no earlier pass over the same layers gathered
-    (``dsp`` needs X_pi'[X, y]; ``freedman-lane`` then only y_pi'X). Each Gram is then
-    filled and read by the engine's own kernels (``fill_gram``, ``regression_stats``) with
-    that pass's invariant Gram and transforms, exactly as ``Plan.statistics`` does. The
-    first relabelling's statistic is checked against ``Plan.statistics``.
-    """
-    rows, cols = batch
-    n_perm = rows.shape[0]
-    col_start, col_stop = plans[0].col_start, plans[0].col_stop
-    groups: list[tuple[np.ndarray, np.ndarray, dict]] = []  # rel, fix, {(a, c): products}
-    out = [np.full(n_perm, np.nan) for _ in plans]
-    for i, plan in enumerate(plans):
-        for ps in plan.passes:
-            for rel, fix, have in groups:
-                if rel.dtype == ps.rel.dtype and fix.dtype == ps.fix.dtype \
-                        and np.array_equal(rel, ps.rel) and np.array_equal(fix, ps.fix):
-                    break
-            else:
-                rel, fix, have = ps.rel, ps.fix, {}
-                groups.append((rel, fix, have))
-            # gather the missing pairs, one call per set of relabelled layers that lack the
-            # same fixed layers
-            lacking: dict[tuple[int, ...], list[int]] = {}
-            for a in ps.rel_idx.tolist():
-                need = tuple(c for c in ps.fix_idx.tolist() if (a, c) not in have)
-                if need:
-                    lacking.setdefault(need, []).append(a)
-            for need, rel_idx in lacking.items():
-                part = np.empty((n_perm, len(rel_idx), len(need)))
-                gather_cross(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(need, np.int64),
-                             rows, cols, col_start, col_stop, part)
-                for x, a in enumerate(rel_idx):
-                    for y, c in enumerate(need):
-                        have[(a, c)] = part[:, x, y]
-            cross = np.empty((n_perm, ps.rel_idx.size, ps.fix_idx.size))
-            for x, a in enumerate(ps.rel_idx.tolist()):
-                for y, c in enumerate(ps.fix_idx.tolist()):
-                    cross[:, x, y] = have[(a, c)]
-            d = ps.gram0.shape[0]
-            gram = np.empty((n_perm, d, d))
-            fill_gram(cross, ps.gram0, gram)
-            t = int(np.flatnonzero(ps.terms == j)[0])
-            stats = np.empty((n_perm, 1))
-            regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
-                             np.ascontiguousarray(ps.scale[t:t + 1]), plan.use_t, stats)
-            out[i] = stats[:, 0]
-    for plan, st in zip(plans, out):
-        ref = plan.statistics(rows[:1], cols[:1])[0, j]
-        if not abs(st[0] - ref) <= SHARED_RTOL * max(1.0, abs(ref)):
-            raise NumericalError(f"calibrate: the shared relabelling pass gives {float(st[0])!r} "
-                                 f"for the first relabelling but the engine's plan gives "
-                                 f"{float(ref)!r}")
     return out
 
 
@@ -576,7 +476,7 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
                   statistic=statistic, band_level=band_level)
     schemes, R, M = opts["schemes"], opts["replicates"], opts["permutations"]
     alpha, effect = opts["alpha"], opts["effect"]
-    entropy = _entropy(opts["seed"])
+    entropy = entropy_of(opts["seed"])
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     _design.observed_fit(prep)  # the same input checks as a run (collinearity, no variation)
 
@@ -627,7 +527,7 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     power_p = np.empty((k, n_methods, R)) if effect is not None else None
     tasks = [(j, r) for j in range(k) for r in range(R)]
     tick = progress if callable(progress) else None
-    for done, (j, r, p0, p1) in enumerate(_run(one, tasks, opts["jobs"]), start=1):
+    for done, (j, r, p0, p1) in enumerate(parallel_map(one, tasks, opts["jobs"]), start=1):
         null_p[j, :, r] = p0
         if p1 is not None:
             power_p[j, :, r] = p1
@@ -663,18 +563,6 @@ def _rates(p: np.ndarray, alpha: float, R: int):
     with np.errstate(invalid="ignore"):
         rej = (p <= alpha).sum(axis=2)
     return rej, rej / R, clopper_pearson(rej, R, INTERVAL_LEVEL)
-
-
-def _run(fn, tasks, jobs: int):
-    """Yield fn(*task) for every task, in any order; threads when ``jobs`` is not 1."""
-    if jobs == 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield fn(*task)
-        return
-    from joblib import Parallel, delayed
-
-    parallel = Parallel(n_jobs=jobs, backend="threading", return_as="generator_unordered")
-    yield from parallel(delayed(fn)(*task) for task in tasks)
 
 
 def calibrate_study(study: Any, *, replicates: int = 200, permutations: int = 199,

@@ -15,7 +15,14 @@ from typing import Optional
 
 import typer
 
+from .calibrate import calibrate_study, check_plot_path
+from .demo import write_demo
 from .errors import DyadpermError, InputError, NumericalError, RunFileError
+from .inputs.describe import describe_study
+from .output.report import make_report
+from .pipeline import store
+from .planning import plan_study
+from .study import load_study
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
                   help="Permutation tests (QAP, MRQAP) for network data.")
@@ -99,8 +106,6 @@ def run(
     stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
 ) -> None:
     """Run a study and print its table (and keep a run file with --out)."""
-    from .study import load_study
-
     st = load_study(study)
     target = out if out is not None else st.output
     if target is not None and Path(target).exists():
@@ -136,9 +141,6 @@ def extend(
     stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
 ) -> None:
     """Finish the missing chunks of a run, then add permutations up to --permutations."""
-    from . import store
-    from .study import load_study
-
     hdr = store.read_header(run_file)
     if not hdr.study_path:
         raise RunFileError(f"{run_file}: was made from Python, not a study file; extend it by "
@@ -170,8 +172,6 @@ def merge(
     shards: list[Path] = typer.Argument(..., help="Shard run files."),
 ) -> None:
     """Join shard run files of one run, after checking they belong together."""
-    from . import store
-
     if out.exists():
         raise RunFileError(f"{out}: exists; choose a new file for the merged run")
     hdr = store.merge(out, shards)
@@ -193,8 +193,6 @@ def report(
                                           "(default: the run's)."),
 ) -> None:
     """Print the result table of a run file; write CSV, plots and HTML on request."""
-    from .report import make_report
-
     rep = make_report(run_file, as_json=as_json, csv_file=csv_file, plots=plots,
                       html_file=html_file, alpha=alpha)
     typer.echo(rep.text)
@@ -212,16 +210,12 @@ def plan(
                              "-1 uses every core."),
 ) -> None:
     """Permutations needed for a Monte Carlo precision, and the time they take here."""
-    from .precision import plan_study
-
     typer.echo(plan_study(study, precision=precision, alpha=alpha, jobs=jobs).text())
 
 
 @app.command()
 def check(study: Path = typer.Argument(..., help="Study file (TOML).")) -> None:
     """Validate a study's inputs and describe what was read."""
-    from .describe import describe_study
-
     typer.echo(describe_study(study).text())
 
 
@@ -232,9 +226,6 @@ def demo(
     progress: Optional[bool] = typer.Option(None, "--progress/--quiet"),
 ) -> None:
     """Write the invented irrigation-cooperative study and its data, then run it."""
-    from .demo import write_demo
-    from .study import load_study
-
     t0 = time.perf_counter()
     path = write_demo(dir)
     typer.echo(f"demo study written to {path}")
@@ -262,9 +253,6 @@ def calibrate(
     as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
 ) -> None:
     """Size (and power) of each scheme on simulated responses that keep the study's design."""
-    from .calibrate import calibrate_study, check_plot_path
-    from .study import load_study
-
     if plot is not None:
         check_plot_path(plot)
     bar = _progress(progress)

@@ -29,7 +29,7 @@ from pathlib import Path
 import dyadperm as dp
 from dyadperm import InputError
 from dyadperm.calibrate import OLS, plot_calibration, simulated_response
-from dyadperm.schemes import build_plan
+from dyadperm.routes.linear import build_statistics as build_plan
 from reference import (INTERVAL_RTOL, P_ATOL, SCHEMES, design, dyads, exact_pvalues,
                        random_pvalues, scheme_stat, vec)
 
@@ -222,7 +222,7 @@ def test_missing_values_and_groups_follow_the_engine():
                 t.append(fit.tvalues[j + 1])  # source: statsmodels OLS on complete dyads
             p_ref = random_pvalues(np.array(t[:1]), np.array(t[1:])[:, None])[0][0]
             assert res.null_p[j, 0, r] == pytest.approx(p_ref, abs=P_ATOL)
-            prep = dp.design.prepare(ystar, preds)
+            prep = dp.inputs.design.prepare(ystar, preds)
             assert not prep.complete
             for s, scheme in enumerate(SCHEMES[1:], start=1):
                 plan = build_plan(prep, scheme=scheme, statistic="t")

@@ -22,7 +22,7 @@ from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 import dyadperm as dp
-from dyadperm.io import (NodeTable, RawNetwork, align, collect_labels, read_network,
+from dyadperm.inputs.io import (NodeTable, RawNetwork, align, collect_labels, read_network,
                          read_node_table, split_h5_path)
 
 

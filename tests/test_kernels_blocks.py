@@ -166,7 +166,8 @@ def test_rows_too_long_for_int32_offsets_are_refused():
     rel = np.lib.stride_tricks.as_strided(np.zeros(1), shape=(2, 2**30, 2), strides=(0, 0, 0))
     fix = np.lib.stride_tricks.as_strided(np.zeros(1), shape=(2, 2**30, 1), strides=(0, 0, 0))
     perms = np.zeros((1, 2), np.int64)
-    with pytest.raises(InputError, match=r"fewer than 2\*\*31 values .* got 1073741824 "
+    # kernels raise plain errors (they import nothing of the runner)
+    with pytest.raises(ValueError, match=r"fewer than 2\*\*31 values .* got 1073741824 "
                                          r"columns x 2 layers"):
         gather_cross(rel, np.zeros(1, np.int64), fix, np.zeros(1, np.int64), perms,
                      np.zeros((1, 2**30), np.int64), np.zeros(2, np.int64),

@@ -11,11 +11,11 @@ import pytest
 import statsmodels.api as sm
 
 import dyadperm as dp
-import dyadperm.api as api
-from dyadperm import schemes
+from dyadperm.routes import correlation as correlation_route
+from dyadperm.routes import linear as schemes
 from dyadperm.errors import InputError
-from dyadperm.io import align, read_network
-from dyadperm.store import read_header
+from dyadperm.inputs.io import align, read_network
+from dyadperm.pipeline.store import read_header
 
 N = 14
 SCHEMES = ("dsp", "y", "freedman-lane")
@@ -58,13 +58,13 @@ seed = {seed}
 
 def _spy_plans(monkeypatch):
     plans = []
-    orig = api.build_plan
+    orig = schemes.build_statistics
 
     def spy(prep, **kw):
         plans.append((kw.get("overwrite"), orig(prep, **kw)))
         return plans[-1][1]
 
-    monkeypatch.setattr(api, "build_plan", spy)
+    monkeypatch.setattr(schemes, "build_statistics", spy)
     return plans
 
 
@@ -193,7 +193,7 @@ def test_lazy_block_errors_name_the_cell(tmp_path, rng):
 
 
 def test_owned_base_needs_the_exact_layout(rng):
-    from dyadperm.design import prepare
+    from dyadperm.inputs.design import prepare
     base = rng.standard_normal((8, 8, 3))
     prep = prepare(base[:, :, 2], {"a": base[:, :, 0], "b": base[:, :, 1]}, directed=True)
     assert schemes.owned_base(prep, [0, 1, 2], np.float64) is base
@@ -230,13 +230,13 @@ seed = 4
     assert study.layers_in_place
     bases = {id(study.response.values.base), id(study.predictors["x"].values.base)}
     seen = []
-    orig = api.build_correlation_plan
+    orig = correlation_route.build_correlation_statistics
 
     def spy(prep, **kw):
         seen.append(orig(prep, **kw))
         return seen[-1]
 
-    monkeypatch.setattr(api, "build_correlation_plan", spy)
+    monkeypatch.setattr(correlation_route, "build_correlation_statistics", spy)
     got = study.run()
     ps = seen[-1].passes[0]
     assert {id(ps.rel), id(ps.fix)} == bases  # no copy

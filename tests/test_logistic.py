@@ -26,7 +26,7 @@ from scipy.optimize import linprog
 from scipy.special import expit
 
 import dyadperm as dp
-from dyadperm import logistic as lg
+from dyadperm.routes import logistic as lg
 from dyadperm.kernels import irls as kn
 from reference import P_ATOL, TIE_RTOL, relabel
 
@@ -801,7 +801,7 @@ def test_score_y_with_one_predictor_keeps_the_observed_reduced_fit(rng):
                      permutations=40, seed=4)
     rows, cols = dyad_index(n, n)
     X = np.column_stack([np.ones(len(rows)), x[rows, cols]])
-    draws = dp.engine.Draws(dp.design.prepare(Y, {"x": x}).blocks, 40, 40, False, 4)
+    draws = dp.pipeline.engine.Draws(dp.inputs.design.prepare(Y, {"x": x}).blocks, 40, 40, False, 4)
     rp, _ = draws.permutations(0)
     for b in range(40):
         yb = relabel(Y, rp[b], rp[b])[rows, cols]

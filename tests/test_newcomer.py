@@ -117,7 +117,7 @@ def test_repr_is_short_and_shows_the_header_and_terms(rng):
 
 
 def test_logistic_statistic_is_named_z_in_every_output(rng, tmp_path):
-    from dyadperm.report import csv_text, json_text
+    from dyadperm.output.report import csv_text, json_text
 
     n = 14
     x = rng.normal(size=(n, n))
@@ -128,6 +128,6 @@ def test_logistic_statistic_is_named_z_in_every_output(rng, tmp_path):
     assert '"statistic": "z"' in json_text(res)
     assert csv_text(res).splitlines()[0].split(",")[3] == "statistic"
     # the plot's axis names the Wald z statistic
-    from dyadperm import plots
+    from dyadperm.output import plots
 
     assert plots._stat_name(res).startswith("Wald z")

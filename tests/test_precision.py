@@ -22,9 +22,11 @@ import pytest
 import scipy.stats as st
 
 import dyadperm as dp
-from dyadperm import precision
+from dyadperm import planning, settings
+from dyadperm.pipeline import adjustment, stopping
+from dyadperm.routes import correlation
 from dyadperm.errors import InputError, RunFileError
-from dyadperm.permutations import Blocks, draw
+from dyadperm.pipeline.permutations import Blocks, draw
 from reference import INTERVAL_RTOL, P_ATOL, STAT_ATOL, STAT_RTOL, dyads, relabel, vec
 
 
@@ -76,7 +78,7 @@ def test_layer_p_interval_equal_scipy_clopper_pearson(rng):
 def test_inverse_sampling_interval_solves_the_binomial_tail_equations():
     h = np.array([1, 3, 10, 10, 20])
     tau = np.array([7, 3, 13, 250, 4000])
-    iv = precision.inverse_sampling_interval(h, tau)
+    iv = stopping.inverse_sampling_interval(h, tau)
     for (lo, hi), hh, ll in zip(iv, h, tau):
         # source: scipy.stats.binom; P(tau <= l) = P(Bin(l, p) >= h) at the lower limit and
         # P(tau >= l) = P(Bin(l - 1, p) <= h - 1) at the upper one, each 2.5% (common practice)
@@ -97,7 +99,7 @@ def test_inverse_sampling_interval_solves_the_binomial_tail_equations():
     (0.003, 0.05, 5_278),    # by hand: 0.0475 / 0.000009 = 5277.8 -> 5278
 ])
 def test_permutations_needed(d, alpha, expected):
-    assert precision.permutations_needed(d, alpha) == expected
+    assert planning.permutations_needed(d, alpha) == expected
 
 
 @pytest.mark.parametrize("args, match", [
@@ -107,7 +109,7 @@ def test_permutations_needed(d, alpha, expected):
 ])
 def test_permutations_needed_errors(args, match):
     with pytest.raises(InputError, match=match):
-        precision.permutations_needed(*args)
+        planning.permutations_needed(*args)
 
 
 def _study(folder, n=12, extra_test="", k=2, seed=1):
@@ -133,7 +135,7 @@ def _study(folder, n=12, extra_test="", k=2, seed=1):
 
 def test_plan_study_times_the_study(tmp_path):
     path = _study(tmp_path, n=12)
-    est = precision.plan_study(path, precision=0.002, alpha=0.05, jobs=2, budget=0.3)
+    est = planning.plan_study(path, precision=0.002, alpha=0.05, jobs=2, budget=0.3)
     assert est.permutations == 11_875  # methods.md worked example
     assert est.workers == 2 and est.machine_cores >= 1
     assert not est.exact and est.relabellings == math.factorial(12)
@@ -144,7 +146,7 @@ def test_plan_study_times_the_study(tmp_path):
 
 def test_plan_study_says_when_enumeration_is_smaller(tmp_path):
     path = _study(tmp_path, n=5)
-    est = precision.plan_study(path, precision=0.002, jobs=1, budget=0.2)
+    est = planning.plan_study(path, precision=0.002, jobs=1, budget=0.2)
     # 5! = 120 relabellings < 11,875: the run enumerates them (methods.md, exact="auto")
     assert est.exact and est.relabellings == 120 and est.run_permutations == 120
     assert est.timed_permutations == 120  # the whole run fitted in the timing run
@@ -154,28 +156,28 @@ def test_plan_study_says_when_enumeration_is_smaller(tmp_path):
 # --------------------------------------------------------------------------- stop rules
 
 def test_stop_rule_validation():
-    assert precision.stop_rule("besag-clifford") == precision.StopRule("besag-clifford", 10,
+    assert settings.stop_rule("besag-clifford") == settings.StopRule("besag-clifford", 10,
                                                                          None, 0.05)
-    assert precision.stop_rule("gandy", risk=0.01, alpha=0.01).risk == 0.01
+    assert settings.stop_rule("gandy", risk=0.01, alpha=0.01).risk == 0.01
     with pytest.raises(InputError, match=r"`stop` must be one of none, besag-clifford, gandy; "
                                          r"got 'bc'"):
-        precision.stop_rule("bc")
+        settings.stop_rule("bc")
     with pytest.raises(InputError, match=r"`stop_risk` applies to stop = gandy only \(stop is "
                                          r"besag-clifford\); got 0\.1"):
-        precision.stop_rule("besag-clifford", risk=0.1)
+        settings.stop_rule("besag-clifford", risk=0.1)
     with pytest.raises(InputError, match=r"`stop_risk` must be a number with 0 < stop_risk "
                                          r"< 0\.5; got 0\.5"):
-        precision.stop_rule("gandy", risk=0.5)
+        settings.stop_rule("gandy", risk=0.5)
     with pytest.raises(InputError, match=r"`stop_exceedances` must be an integer >= 1; got 0"):
-        precision.stop_rule("besag-clifford", exceedances=0)
+        settings.stop_rule("besag-clifford", exceedances=0)
 
 
 def test_besag_clifford_p_is_h_over_l_at_the_hth_exceedance(rng):
     # a null of 60 relabellings of two terms, built by hand
     observed = np.array([1.0, 3.0])
     null = rng.normal(size=(60, 2)) * np.array([1.5, 1.0])
-    rule = precision.StopRule("besag-clifford", 4, None, 0.05)
-    a = precision.assess(null, observed, exact=False, stop=rule.to_dict(), planned=100)
+    rule = settings.StopRule("besag-clifford", 4, None, 0.05)
+    a = stopping.assess(null, observed, exact=False, stop=rule.to_dict(), planned=100)
     for j in range(2):
         hits = np.flatnonzero(np.abs(null[:, j]) >= abs(observed[j]))
         if hits.size >= 4:
@@ -188,7 +190,7 @@ def test_besag_clifford_p_is_h_over_l_at_the_hth_exceedance(rng):
     assert a.stopped_by is None or a.stopped_by == "besag-clifford"
 
 
-def _enumerate_gandy(b: precision.GandyBoundaries, n_max: int, p: float):
+def _enumerate_gandy(b: stopping.GandyBoundaries, n_max: int, p: float):
     """Every 0/1 sequence of length n_max with its probability under p: the step at which
     it stops at the upper / lower boundary (or never), straight from the definition."""
     U, L = b.arrays(1, n_max)
@@ -207,7 +209,7 @@ def _enumerate_gandy(b: precision.GandyBoundaries, n_max: int, p: float):
 def test_gandy_boundaries_meet_their_definition_by_enumeration():
     # a large alpha and risk and a short spending sequence make the boundaries bite early
     alpha, eps, k, n_max = 0.3, 0.1, 5, 14
-    b = precision.GandyBoundaries(alpha, eps, spending=k)
+    b = stopping.GandyBoundaries(alpha, eps, spending=k)
     U, L, paths = _enumerate_gandy(b, n_max, alpha)
     spent_u = spent_l = 0.0
     for n in range(1, n_max + 1):
@@ -237,7 +239,7 @@ def test_gandy_resampling_risk_is_bounded_for_every_p(p):
     # most eps for every p [memory: the paper's uniform bound], here computed exactly by
     # enumerating all 2^14 sequences of a test with alpha 0.3, eps 0.1
     alpha, eps, n_max = 0.3, 0.1, 14
-    b = precision.GandyBoundaries(alpha, eps, spending=5)
+    b = stopping.GandyBoundaries(alpha, eps, spending=5)
     _, _, paths = _enumerate_gandy(b, n_max, p)
     wrong_upper = sum(pr for pr, s, fu, fl in paths if fu < fl)    # says p > alpha
     wrong_lower = sum(pr for pr, s, fu, fl in paths if fl < fu)    # says p <= alpha
@@ -248,11 +250,11 @@ def test_gandy_resampling_risk_is_bounded_for_every_p(p):
 def test_sequential_stop_point_ignores_chunk_completion_order(rng):
     observed = np.array([2.5, 0.1])
     null = rng.normal(size=(400, 2))
-    rule = precision.StopRule("gandy", None, 0.001, 0.05)
+    rule = settings.StopRule("gandy", None, 0.001, 0.05)
     chunks = [(c, null[c * 25:(c + 1) * 25]) for c in range(16)]
     stops = []
     for order in (range(16), rng.permutation(16), rng.permutation(16)):
-        seq = precision.Sequential(rule, observed, chunk_size=25, total=400)
+        seq = stopping.Sequential(rule, observed, chunk_size=25, total=400)
         at = None
         for c in order:
             if seq.feed(int(c), chunks[int(c)][1]) and at is None:
@@ -357,10 +359,6 @@ def test_stop_rule_errors_where_it_cannot_apply(rng, tmp_path):
                                          r"cannot be combined with shard"):
         dp.regress(y, preds, permutations=50, seed=1, out=tmp_path / "a.h5", shard="1/2",
                    stop="gandy")
-    with pytest.raises(InputError, match=r"stop: stop rules are not available on model "
-                                         r"'logistic' yet"):
-        dp.regress((y > 0).astype(float), preds, model="logistic", permutations=50,
-                   stop="besag-clifford")
     with pytest.raises(InputError, match=r"`stop` must be one of"):
         dp.correlate(y, preds["strong"], permutations=50, stop="early")
 
@@ -406,9 +404,9 @@ def test_maxt_exact_and_with_failed_fits():
     null = np.array([[0.5, np.nan], [2.0, 0.1], [-3.0, 0.2], [0.1, 0.1]])
     obs = np.array([2.0, 0.15])
     # source: Westfall & Young (1993), brute force; a NaN counts as most extreme (methods.md)
-    np.testing.assert_allclose(precision.maxt_adjusted(null, obs, exact=True),
+    np.testing.assert_allclose(adjustment.maxt_adjusted(null, obs, exact=True),
                                _maxt_brute(null, obs, True))
-    np.testing.assert_allclose(precision.maxt_adjusted(null, obs, exact=False),
+    np.testing.assert_allclose(adjustment.maxt_adjusted(null, obs, exact=False),
                                _maxt_brute(null, obs, False))
 
 
@@ -440,7 +438,7 @@ def test_layer_statistics_against_relabelled_matrices(rng):
                                               vec(nets[j], rows, cols))[0], rel=1e-10)
     # permuted: network 0 fixed, networks 1..3 each relabelled by its own permutation,
     # the permutations drawn as the engine draws them (copies of the node set)
-    blocks = precision.copy_blocks(Blocks(n, n, ((0, n),), None), 3)
+    blocks = correlation.copy_blocks(Blocks(n, n, ((0, n),), None), 3)
     perms, _ = draw(blocks, res.seed, 0, 50)
     for b in range(50):
         own = [perms[b, (k - 1) * n:k * n] - (k - 1) * n for k in range(1, 4)]

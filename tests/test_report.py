@@ -23,7 +23,7 @@ import pytest
 import scipy.stats as st
 
 import dyadperm as dp
-from dyadperm import report
+from dyadperm.output import report
 from dyadperm.errors import InputError
 from reference import INTERVAL_RTOL
 
@@ -201,7 +201,7 @@ def test_exact_runs_have_no_convergence_plot(rng, tmp_path):
 
 
 def test_running_p_and_band(regression):
-    from dyadperm import plots
+    from dyadperm.output import plots
 
     ls, p, lo, hi = plots.running_p(regression, 0, points=50)
     null = np.abs(np.asarray(regression.null)[:, 0])

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 import dyadperm as dp
-from dyadperm import store
+from dyadperm.pipeline import store
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "demo.toml"

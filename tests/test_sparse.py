@@ -35,8 +35,8 @@ import scipy.stats as st
 import statsmodels.api as sm
 
 import dyadperm as dp
-from dyadperm import sparse as dsp_
-from dyadperm.dyadic import NodeDerived
+from dyadperm.routes import sparse as dsp_
+from dyadperm.inputs.dyadic import NodeDerived
 from dyadperm.kernels.sparse import gap_gap_sum, row_lookup
 
 # Tolerances (named in one place)
@@ -445,8 +445,6 @@ def test_errors_name_the_rule(rng):
     with pytest.raises(dp.InputError, match="response 'ties' has no variation"):
         dp.regress(dp.SparseNetwork([], [], None, n, name="ties"), {"s": s}, scheme="y",
                    permutations=10)
-    with pytest.raises(dp.InputError, match="out/shard: the sparse path does not write run"):
-        dp.regress(net, {"s": s}, scheme="y", permutations=10, out="run.h5")
     with pytest.raises(dp.InputError, match="the sparse path takes one-mode"):
         dp.regress(sp.csr_array(np.ones((4, 5))), {"s": dp.sender(np.arange(4.0))},
                    scheme="y", permutations=10)

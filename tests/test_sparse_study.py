@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 import dyadperm as dp
-import dyadperm.study as study_mod
-from dyadperm import describe
+import dyadperm.inputs.study_file as study_mod
+from dyadperm.inputs import describe
 
 
 @pytest.fixture

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 import dyadperm as dp
-from dyadperm.dyadic import Dyadic, NodeDerived, Reverse
+from dyadperm.inputs.dyadic import Dyadic, NodeDerived, Reverse
 from dyadperm.study import Study, load_study
 
 FARMS = [["farm", "crop", "age", "district", "note"],
@@ -403,7 +403,7 @@ class Capture:
 
 def test_run_passes_file_settings_to_regress(folder, monkeypatch):
     fake = Capture()
-    monkeypatch.setattr(dp, "regress", fake, raising=False)
+    monkeypatch.setattr(dp.api, "regress", fake)
     s = load(folder, test='scheme = "y"\nstatistic = "coef"\npermutations = 300\nseed = 11\n'
                           'jobs = -1\nchunk_size = 64\ngroups = "district"\ndyads = "all"\n'
                           'exact = false',
@@ -426,7 +426,7 @@ def test_run_passes_file_settings_to_regress(folder, monkeypatch):
 
 def test_run_overrides(folder, monkeypatch):
     fake = Capture()
-    monkeypatch.setattr(dp, "regress", fake, raising=False)
+    monkeypatch.setattr(dp.api, "regress", fake)
     s = load(folder, test="permutations = 300\nseed = 11")
     s.run(permutations=50, seed=0, jobs=2, out=str(folder / "o.h5"), progress=True,
           chunk_size=10)
@@ -449,7 +449,7 @@ def test_run_overrides(folder, monkeypatch):
 ])
 def test_run_override_errors(folder, monkeypatch, override, match):
     fake = Capture()
-    monkeypatch.setattr(dp, "regress", fake, raising=False)
+    monkeypatch.setattr(dp.api, "regress", fake)
     s = load(folder)
     with pytest.raises(dp.InputError, match=match):
         s.run(**override)
@@ -458,7 +458,7 @@ def test_run_override_errors(folder, monkeypatch, override, match):
 
 def test_run_correlation_calls_correlate(folder, monkeypatch):
     fake = Capture()
-    monkeypatch.setattr(dp, "correlate", fake, raising=False)
+    monkeypatch.setattr(dp.api, "correlate", fake)
     s = load(folder, predictor=['name = "kinship"\nfile = "kin.csv"'],
              test='kind = "correlation"\nmethod = "spearman"\npermutations = 20')
     assert s.spec["test"]["model"] is None and s.spec["test"]["method"] == "spearman"

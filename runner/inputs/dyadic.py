@@ -16,7 +16,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 DERIVED_KINDS = ("same", "gap", "sender", "receiver", "pair_sum")
 

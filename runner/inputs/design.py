@@ -17,9 +17,9 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
-from .errors import DyadpermWarning, InputError
-from .kernels.stats import masked_moments
-from .permutations import Blocks
+from ..errors import DyadpermWarning, InputError
+from ..kernels.stats import masked_moments
+from .blocks import Blocks
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).
 STREAM_DYADS = 1 << 20

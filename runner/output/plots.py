@@ -13,7 +13,8 @@ from typing import Any
 
 import numpy as np
 
-from .pvalues import clopper_pearson
+from ..pipeline.pvalues import clopper_pearson
+from ..pipeline.stopping import exceedances
 
 # One place for the look of every figure.
 WIDTH, HEIGHT, DPI = 6.4, 4.6, 150
@@ -55,16 +56,8 @@ def _legend(fig, ax) -> None:
                frameon=False)
 
 
-def _tested(res: Any) -> np.ndarray:
-    from .report import _tested as tested
-
-    return tested(res)
-
-
 def _stat_name(res: Any) -> str:
-    from .result import CorrelationResult, LayerCorrelationResult
-
-    if isinstance(res, (CorrelationResult, LayerCorrelationResult)):
+    if res.kind in ("correlation", "layers"):
         return _STAT_LABEL["r"]
     label = _STAT_LABEL.get(res.statistic, res.statistic)
     return label
@@ -80,7 +73,7 @@ def null_histogram(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
     The observed statistic is a solid line; its mirror image -observed a dashed one, since
     the two-sided p-value counts relabellings beyond either.
     """
-    i = int(_tested(res)[column])
+    i = int(res.tested_index()[column])
     term = res.terms[i]
     null = np.asarray(res.null[:, column], dtype=np.float64)
     null = null[np.isfinite(null)]
@@ -115,9 +108,7 @@ def null_histogram(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
 def running_p(res: Any, column: int, points: int = 400) -> tuple[np.ndarray, ...]:
     """(l, p_l, low_l, high_l) at up to ``points`` log-spaced l: the p-value after the first
     l relabellings, (b_l + 1) / (l + 1), with its Clopper-Pearson interval."""
-    from .precision import exceedances
-
-    i = int(_tested(res)[column])
+    i = int(res.tested_index()[column])
     null = np.asarray(res.null[:, column], dtype=np.float64)
     b = np.cumsum(exceedances(null[:, None], np.asarray(res.stat)[i:i + 1])[:, 0])
     m = null.shape[0]
@@ -134,7 +125,7 @@ def convergence(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
     Log scales on both axes: early relabellings and small p-values stay readable. A
     dotted line marks alpha; a stop rule's stopping point is marked when there is one.
     """
-    i = int(_tested(res)[column])
+    i = int(res.tested_index()[column])
     term = res.terms[i]
     ls, p, lo, hi = running_p(res, column)
     fig = _figure()

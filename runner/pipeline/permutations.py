@@ -15,28 +15,10 @@ codes; index 0 is the identity.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
-
 import numpy as np
 
-EXACT_LIMIT = 10_000_000
-
-
-@dataclass(frozen=True)
-class Blocks:
-    """Relabelling structure: row blocks and (two-mode) column blocks, as (start, stop)."""
-
-    n_rows: int
-    n_cols: int
-    row_blocks: tuple[tuple[int, int], ...]
-    col_blocks: tuple[tuple[int, int], ...] | None  # None: one-mode, columns follow rows
-
-    def count(self) -> int:
-        """Number of distinct relabellings (n!, n!m!, or the product of block sizes' factorials)."""
-        total = 1
-        for s, e in self.row_blocks + (self.col_blocks or ()):
-            total *= math.factorial(e - s)
-        return total
+from ..inputs.blocks import Blocks
+from ..settings import EXACT_LIMIT  # noqa: F401  (re-exported)
 
 
 def draw(blocks: Blocks, entropy: int, first: int, count: int) -> tuple[np.ndarray, np.ndarray]:
@@ -90,3 +72,35 @@ def unrank(index: int, n: int) -> np.ndarray:
         k, index = divmod(index, f)
         out[pos] = pool.pop(k)
     return out
+
+
+# --------------------------------------------------------------------------- from a generator
+# Simulation studies (``dyadperm.calibrate``) draw the relabellings of a replicate from that
+# replicate's own generator, in the order given here.
+
+def draw_from(rng: np.random.Generator, blocks: Blocks) -> tuple[np.ndarray, np.ndarray]:
+    """One relabelling within blocks from ``rng``: (n,), (m,) (the same array one-mode)."""
+    rows = np.empty(blocks.n_rows, dtype=np.int64)
+    for s, e in blocks.row_blocks:
+        rows[s:e] = s + rng.permutation(e - s)
+    if blocks.col_blocks is None:
+        return rows, rows
+    cols = np.empty(blocks.n_cols, dtype=np.int64)
+    for s, e in blocks.col_blocks:
+        cols[s:e] = s + rng.permutation(e - s)
+    return rows, cols
+
+
+def draw_many_from(rng: np.random.Generator, blocks: Blocks, count: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """``count`` random relabellings within blocks, drawn at once: (count, n), (count, m)."""
+    def within(ranges, size):
+        out = np.empty((count, size), dtype=np.int64)
+        for s, e in ranges:
+            out[:, s:e] = s + rng.permuted(np.tile(np.arange(e - s, dtype=np.int64),
+                                                    (count, 1)), axis=1)
+        return out
+
+    rows = within(blocks.row_blocks, blocks.n_rows)
+    cols = rows if blocks.col_blocks is None else within(blocks.col_blocks, blocks.n_cols)
+    return rows, cols

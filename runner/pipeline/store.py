@@ -25,7 +25,6 @@ old one, which is atomic. Only the driver process writes; an exclusive lock on
 from __future__ import annotations
 
 import fcntl
-import hashlib
 import json
 import os
 import zlib
@@ -36,19 +35,12 @@ from typing import Any, Iterable
 import h5py
 import numpy as np
 
-from .errors import RunFileError
+from .. import __version__
+from ..errors import RunFileError
+from ..settings import parse_shard
 
 FORMAT = "dyadperm run file"
 FORMAT_VERSION = 1
-
-
-def fingerprint(arr: np.ndarray) -> str:
-    """SHA-256 of an array's dtype, shape and bytes."""
-    a = np.ascontiguousarray(arr)
-    h = hashlib.sha256()
-    h.update(f"{a.dtype.str}{a.shape}".encode())
-    h.update(a.tobytes())
-    return h.hexdigest()
 
 
 @dataclass(frozen=True)
@@ -140,7 +132,6 @@ def create(path: str | Path, header: RunHeader) -> None:
         a = f.attrs
         a["format"] = FORMAT
         a["format_version"] = FORMAT_VERSION
-        from . import __version__
         a["package_version"] = __version__
         a["identity"] = json.dumps(header.identity, sort_keys=True)
         a["terms"] = json.dumps(list(header.terms))
@@ -330,18 +321,6 @@ def missing_chunks(done: np.ndarray, shard: str = "") -> list[int]:
         i, n = parse_shard(shard)
         todo = todo[todo % n == i - 1]
     return [int(c) for c in todo]
-
-
-def parse_shard(shard: str) -> tuple[int, int]:
-    """"i/N" -> (i, N), 1 <= i <= N."""
-    try:
-        i_s, n_s = shard.split("/")
-        i, n = int(i_s), int(n_s)
-    except ValueError:
-        raise RunFileError(f"shard must look like i/N (e.g. 2/8); got {shard!r}") from None
-    if not (n >= 1 and 1 <= i <= n):
-        raise RunFileError(f"shard must look like i/N with 1 <= i <= N; got {shard!r}")
-    return i, n
 
 
 def check_same_run(path: Path, hdr: RunHeader, identity: dict) -> None:

@@ -12,6 +12,8 @@ from pathlib import Path
 import numpy as np
 
 from .design import iter_dyad_rows, prepare
+from .sparse import SparseNetwork
+from .study_file import read_study
 
 # Share of missing dyad values above which a network is flagged.
 MOSTLY_MISSING = 0.5
@@ -71,11 +73,7 @@ class StudySummary:
 
 def describe_study(path: str | Path) -> StudySummary:
     """Load and validate a study file, and summarise its inputs (raises InputError)."""
-    from .study import load_study
-
-    st = load_study(path)
-    from .sparse import SparseNetwork
-
+    st = read_study(path)
     if isinstance(st.response, SparseNetwork):
         return _describe_sparse(st)
     prep = prepare(st.response, st.predictors, directed=st.spec["study"]["directed"],
@@ -133,8 +131,6 @@ def _symmetric_input(mat: np.ndarray, prep) -> bool:
 
 def _describe_sparse(st) -> StudySummary:
     """Summary of a study kept as edge lists (the sparse path): no n x n array is built."""
-    from .sparse import SparseNetwork
-
     n = len(st.node_ids)
     directed = st.spec["study"]["directed"]
     nets = []

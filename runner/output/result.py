@@ -8,6 +8,8 @@ from typing import Any
 
 import numpy as np
 
+from .table import format_table, header_lines
+
 
 @dataclass(frozen=True, eq=False, repr=False)
 class _Common:
@@ -77,8 +79,6 @@ class _Common:
 
     def __repr__(self) -> str:
         """What the table's header says, and the terms; the arrays stay attributes."""
-        from .report import header_lines
-
         rows = getattr(self.null, "shape", (self.permutations,))
         lines = [f"<{type(self).__name__}"] + ["  " + line for line in header_lines(self)]
         lines.append("  terms: " + ", ".join(self.terms))
@@ -88,9 +88,14 @@ class _Common:
 
     def table(self) -> str:
         """Formatted text table (see the README for how to read it)."""
-        from .report import format_table as _format
+        return format_table(self)
 
-        return _format(self)
+    #: "regression", "correlation" or "layers": which table and report a result gets
+    kind = "regression"
+
+    def tested_index(self) -> np.ndarray:
+        """Indices (into ``terms``) of the tested terms, in the column order of ``null``."""
+        return np.arange(len(self.terms))
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -106,6 +111,10 @@ class RegressionResult(_Common):
     def _estimates(self) -> np.ndarray:
         return self.coef
 
+    def tested_index(self) -> np.ndarray:
+        """Every term but the intercept (relabelling says nothing about it)."""
+        return np.arange(1, len(self.terms))
+
 
 @dataclass(frozen=True, eq=False, repr=False)
 class CorrelationResult(_Common):
@@ -114,6 +123,7 @@ class CorrelationResult(_Common):
 
     r: np.ndarray = field(default=None)
     method: str = "pearson"
+    kind = "correlation"
 
     def _estimates(self) -> np.ndarray:
         return self.r
@@ -132,6 +142,7 @@ class LayerCorrelationResult(_Common):
     method: str = "pearson"
     layers: tuple[str, ...] = ()
     pairs: tuple[tuple[int, int], ...] = ()
+    kind = "layers"
 
     def _estimates(self) -> np.ndarray:
         return self.r
@@ -167,23 +178,3 @@ def _plain(v: Any) -> Any:
         return bool(v)
     return v
 
-
-def _num(x: float, width: int, digits: int = 4) -> str:
-    if x is None or not np.isfinite(x):
-        return "-".rjust(width)
-    if x != 0 and (abs(x) >= 1e5 or abs(x) < 1e-3):
-        return f"{x:.{digits - 1}e}".rjust(width)
-    return f"{x:.{digits}f}".rjust(width)
-
-
-def _pval(x: float, width: int) -> str:
-    if not np.isfinite(x):
-        return "-".rjust(width)
-    return (f"{x:.4f}" if x >= 1e-4 else f"{x:.1e}").rjust(width)
-
-
-def format_table(res: _Common) -> str:
-    """The terminal table (kept here for old imports; see dyadperm.report.format_table)."""
-    from .report import format_table as _format
-
-    return _format(res)

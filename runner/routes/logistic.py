@@ -96,23 +96,21 @@ Z'(y - mu) = 0 at the reduced fit, so e and x_j have the same U and I).
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
 
-from . import api as _api
-from . import design as _design
-from . import store as _store
-from .engine import CHUNK_WORK, MAX_CHUNK, workers_used
-from .errors import DyadpermWarning, InputError, NumericalError
-from .kernels.gather import gather_cross
-from .kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
+from ..errors import InputError, NumericalError
+from ..inputs import design as _design
+from ..kernels.gather import gather_cross
+from ..settings import LOGISTIC_SCHEMES as SCHEMES  # noqa: F401  (re-exported)
+from ..settings import LOGISTIC_STATISTICS as STATISTICS  # noqa: F401  (re-exported)
+from ..settings import check_regression
+from .plan import Plan, chunk_size_for, dense_identity, groups_fingerprint, summary
+from ..kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
                            score_from_sums, score_logistic, score_rows, score_y)
 
-SCHEMES = ("y", "dsp")
-STATISTICS = ("t", "coef", "score")
 # Newton steps allowed per fit; a converging fit from a warm start needs under ten.
 MAX_ITER = 50
 # Converged when no coefficient (standardised predictors) moves more than TOL * (1 + |b|).
@@ -127,22 +125,6 @@ SEPARATION_SHARE = 1e-3
 
 
 # --- checks ---------------------------------------------------------------------------------
-def check_settings(*, scheme: Any, statistic: Any, storage: Any) -> None:
-    """Scheme, statistic and storage of a logistic regression."""
-    if scheme == "freedman-lane":
-        raise InputError("scheme 'freedman-lane' is not offered for model='logistic': fitted "
-                         "probabilities plus relabelled residuals are not 0/1, so the "
-                         "logistic likelihood of the refit is undefined; use 'dsp' or 'y'")
-    if scheme not in SCHEMES:
-        raise InputError(f"scheme must be one of {', '.join(SCHEMES)} for model='logistic'; "
-                         f"got {scheme!r}")
-    if statistic not in STATISTICS:
-        raise InputError(f"statistic must be one of {', '.join(STATISTICS)} for "
-                         f"model='logistic'; got {statistic!r}")
-    if storage != "float64":
-        raise InputError(f"storage must be 'float64' for model='logistic'; got {storage!r}")
-
-
 def check_binary(prep: _design.Prepared) -> None:
     """Raise InputError naming the first response value (user's order) that is not 0 or 1."""
     Y = prep.matrices[-1]
@@ -372,7 +354,7 @@ class LogisticPlan:
 
     def chunk_size(self) -> int:
         """Permutations per chunk, aiming at the engine's work per chunk."""
-        return int(np.clip(CHUNK_WORK // max(self.work_per_permutation, 1.0), 1, MAX_CHUNK))
+        return chunk_size_for(self.work_per_permutation, least=1)
 
 
 def _reduced_columns(k: int) -> np.ndarray:
@@ -528,31 +510,25 @@ def observed_score(dd: DyadData, prep: _design.Prepared) -> np.ndarray:
     return out
 
 
-# --- entry point ----------------------------------------------------------------------------
-def regress(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
-            permutations: int = 10_000, seed: Any = None, jobs: int = 1,
-            directed: bool | None = None, groups: Any = None, dyads: str | None = None,
-            exact: Any = "auto", chunk_size: int | None = None, out: Any = None,
-            progress: Any = False, storage: str = "float64", backend: str = "threads",
-            scheduler: str | None = None, shard: str | None = None,
-            provenance: dict | None = None):
-    """Logistic regression with permutation p-values: ``dyadperm.regress(model="logistic")``.
+# --- the route ------------------------------------------------------------------------------
+def plan(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
+         storage: str = "float64", directed: bool | None = None, groups: Any = None,
+         dyads: str | None = None) -> Plan:
+    """The logistic route: ``dyadperm.regress(model="logistic")``.
 
-    Parameters are those of :func:`dyadperm.regress`; here ``scheme`` is "y" or "dsp" and
-    ``statistic`` is "t" (the Wald z, default), "coef" or "score" (the signed score
-    statistic of each term under its reduced model). The result's ``coef``/``se`` are the
-    Wald fit's, ``deviance`` is -2 log L, ``r2`` is NaN; with "score" its ``stat`` holds
-    the score statistics (NaN for the intercept, which is not tested).
+    ``scheme`` is "y" or "dsp" and ``statistic`` is "t" (the Wald z, default), "coef" or
+    "score" (the signed score statistic of each term under its reduced model). The
+    result's ``coef``/``se`` are the Wald fit's, ``deviance`` is -2 log L, ``r2`` is NaN;
+    with "score" its ``stat`` holds the score statistics (NaN for the intercept, which is
+    not tested).
     """
-    _api._check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
-                       chunk_size=chunk_size)
-    check_settings(scheme=scheme, statistic=statistic, storage=storage)
+    check_regression(model="logistic", scheme=scheme, statistic=statistic, storage=storage)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     check_binary(prep)
     _design.observed_fit(prep)  # the shared checks: too few dyads, collinear, no variation
     dd = dyad_data(prep)
     fit = observed_fit(prep, dd)
-    plan = build_plan(prep, dd, fit, scheme=scheme, statistic=statistic)
+    stats = build_plan(prep, dd, fit, scheme=scheme, statistic=statistic)
     if statistic == "score":
         direct = observed_score(dd, prep)
         stat = np.concatenate([[np.nan], direct])
@@ -563,37 +539,12 @@ def regress(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t
         stat = fit.z if statistic == "t" else fit.coef
         note = ("model 'logistic': z is the Wald statistic b / se; estimates are log odds "
                 "ratios")
-    model = "logistic"
-    settings = dict(kind="regression", model=model, scheme=scheme, statistic=statistic,
-                    method=None, storage=storage, dyads=dyads,
-                    groups=None if groups is None else _store.fingerprint(
-                        np.asarray(groups).astype(str)))
-    summary = _api._summary(prep, kind="regression", model=model, scheme=scheme,
-                            statistic=statistic, method=None, n_dyads=fit.n_dyads,
-                            terms=("intercept",) + prep.names)
-    summary["notes"] = [note]
+    settings = dict(kind="regression", model="logistic", scheme=scheme, statistic=statistic,
+                    method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups))
+    info = summary(prep, kind="regression", model="logistic", scheme=scheme,
+                   statistic=statistic, method=None, n_dyads=fit.n_dyads,
+                   terms=("intercept",) + prep.names)
+    info["notes"] = [note]
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=stat, fit=np.array([np.nan, fit.deviance]))
-    draws, observed, null = _api._execute(
-        prep, plan, permutations=permutations, seed=seed, jobs=jobs, exact=exact,
-        chunk_size=plan.chunk_size() if chunk_size is None else chunk_size, progress=progress,
-        out=out, settings=settings, summary=summary, observed_fit=fit_arrays,
-        provenance=provenance, shard=shard or "", backend=backend, scheduler=scheduler)
-    if null is None:
-        return None
-    _check_agreement(observed, direct, prep.names, statistic)
-    return _api.build_result(summary, {**fit_arrays, "kernel_stat": observed}, null,
-                             exact=draws.exact, chunk_size=draws.chunk_size,
-                             seed=None if draws.exact else draws.entropy,
-                             workers=workers_used(jobs, backend, draws.n_chunks))
-
-
-def _check_agreement(kernel: np.ndarray, direct: np.ndarray, names, statistic: str) -> None:
-    """The identity relabelling through the plan must give the directly computed statistic."""
-    with np.errstate(invalid="ignore"):
-        gap = np.abs(kernel - direct) / np.maximum(1.0, np.abs(direct))
-    if np.any(~(gap <= _api.AGREEMENT)):
-        j = int(np.nanargmax(np.where(np.isnan(gap), np.inf, gap)))
-        warnings.warn(f"logistic permutation statistic ({statistic}) of {names[j]!r} is "
-                      f"{kernel[j]:.10g} through the permutation kernels but {direct[j]:.10g} "
-                      "from the observed fit; treat its p-value with caution",
-                      DyadpermWarning, stacklevel=3)
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=stats.chunk_size(), fit=fit_arrays,
+                summary=info, identity=dense_identity(prep, settings), expected=direct)

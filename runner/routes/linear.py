@@ -22,17 +22,23 @@ permutation's complete dyads (``gather_gram``), one pass per tested term.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any, Sequence
 
 import numpy as np
 from scipy.stats import rankdata
 
-from .design import Prepared, fold_rows, iter_dyad_rows, standardise
-from .errors import InputError
-from .kernels.gather import gather_cross, gather_gram
-from .kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..errors import InputError, NumericalError
+from ..inputs import design as _design
+from ..inputs.design import Prepared, fold_rows, iter_dyad_rows, standardise
+from ..kernels.gather import gather_cross, gather_gram
+from ..kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
+from .plan import (Plan, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
+                   summary)
 
-SCHEMES = ("y", "dsp", "freedman-lane")
-STATISTICS = ("t", "coef")
+# The shared relabelling pass and a plan's own statistics add the same products in the same
+# order; they must agree on the first relabelling's statistic to this relative tolerance.
+SHARED_RTOL = 1e-9
 
 
 @dataclass(frozen=True, eq=False)
@@ -50,8 +56,9 @@ class Pass:
 
 
 @dataclass(frozen=True, eq=False)
-class Plan:
-    """Everything the engine needs to turn relabellings into statistics."""
+class GramStatistics:
+    """Statistics of relabellings read off Gram matrices: the dense linear schemes and
+    correlations (the kernel side of their plans)."""
 
     passes: tuple[Pass, ...]
     k: int
@@ -86,8 +93,14 @@ class Plan:
                 out[:, ps.terms] = stats
         return out
 
+    def chunk_size(self) -> int:
+        """Permutations per chunk: one chunk's kernel work (dyads x cross products) near
+        ``plan.CHUNK_WORK``."""
+        return chunk_size_for(self.n_dyads * sum((p.rel_idx.size + 1) * (p.fix_idx.size + 1)
+                                                 for p in self.passes))
 
-STORAGE = {"float64": np.float64, "float32": np.float32}
+
+STORAGE = {"float64": np.float64, "float32": np.float32}  # what ``storage`` names
 
 
 def owned_base(prep: Prepared, layers: list[int], dtype) -> np.ndarray | None:
@@ -152,29 +165,21 @@ def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
     return np.linalg.solve(gram[np.ix_(idx, idx)], gram[idx, 1 + target])
 
 
-def check_options(*, scheme: str, statistic: str, storage: str = "float64") -> None:
-    """InputError naming the first of scheme, statistic, storage that is not offered."""
-    for name, value, offered in (("scheme", scheme, SCHEMES), ("statistic", statistic, STATISTICS),
-                                 ("storage", storage, tuple(STORAGE))):
-        if value not in offered:
-            raise InputError(f"{name} must be one of {', '.join(offered)}; got {value!r}")
-
-
-def build_plan(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
-               overwrite: bool = False) -> Plan:
+def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
+                     overwrite: bool = False) -> GramStatistics:
     """Layers, invariant Gram blocks and transforms of a regression scheme.
 
     ``overwrite``: the layer stacks may be the inputs themselves, standardised in place
     (see ``owned_base``); ``prep.matrices`` then no longer hold the data.
     """
-    check_options(scheme=scheme, statistic=statistic, storage=storage)
+    check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
     if prep.complete:
         passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite)]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
-    return Plan(tuple(passes), prep.k, False, statistic == "t", prep.col_start, prep.col_stop,
-                prep.n_dyads)
+    return GramStatistics(tuple(passes), prep.k, False, statistic == "t", prep.col_start,
+                          prep.col_stop, prep.n_dyads)
 
 
 def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
@@ -336,46 +341,88 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
     return g0
 
 
-def build_correlation_plan(prep: Prepared, *, method: str, storage: str = "float64",
-                           overwrite: bool = False) -> Plan:
-    """QAP correlation of the response with one predictor (Pearson or Spearman).
 
-    ``overwrite``: as in ``build_plan`` (Spearman ranks into new arrays whatever it says).
+def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np.ndarray]:
+    """Statistic of term ``j`` under each plan, sharing relabelling passes between plans.
+
+    Each plan's pass needs, per relabelling, the cross products of its relabelled layers
+    with its fixed layers (``GramStatistics.statistics`` reads them with ``gather_cross``). Passes of
+    different plans that hold equal layer arrays share their products: each pass gathers
+    only the (relabelled, fixed) pairs that no earlier pass over the same layers gathered
+    (``dsp`` needs X_pi'[X, y]; ``freedman-lane`` then only y_pi'X). Each Gram is then
+    filled and read by the engine's own kernels (``fill_gram``, ``regression_stats``) with
+    that pass's invariant Gram and transforms, exactly as ``GramStatistics.statistics`` does. The
+    first relabelling's statistic is checked against ``GramStatistics.statistics``.
     """
-    if method not in ("pearson", "spearman"):
-        raise InputError(f"method must be 'pearson' or 'spearman'; got {method!r}")
-    if prep.k != 1:
-        raise InputError(f"correlation takes exactly one predictor network; got {prep.k}")
-    if method == "spearman":
-        prep = _ranked(prep)
-    mean, sd = standardise(prep)
-    for layer, name in ((0, prep.names[0]), (1, prep.response_name)):
-        if not sd[layer] > 0:
-            raise InputError(f"{name!r} has no variation over the dyad set")
-    if storage not in STORAGE:
-        raise InputError(f"storage must be one of {', '.join(STORAGE)}; got {storage!r}")
-    b = _stack(prep, [0], mean, sd, storage, overwrite)
-    a = _stack(prep, [1], mean, sd, storage, overwrite)
-    idx = np.zeros(1, np.int64)
-    gram0 = _identity_gram(prep, b, idx, a, idx) if prep.complete else None
-    ps = Pass(b, idx, a, idx, gram0, np.zeros((1, 3, 1)), np.zeros(1, np.int64), np.ones(1))
-    return Plan((ps,), 1, True, True, prep.col_start, prep.col_stop, prep.n_dyads)
+    rows, cols = batch
+    n_perm = rows.shape[0]
+    col_start, col_stop = plans[0].col_start, plans[0].col_stop
+    groups: list[tuple[np.ndarray, np.ndarray, dict]] = []  # rel, fix, {(a, c): products}
+    out = [np.full(n_perm, np.nan) for _ in plans]
+    for i, plan in enumerate(plans):
+        for ps in plan.passes:
+            for rel, fix, have in groups:
+                if rel.dtype == ps.rel.dtype and fix.dtype == ps.fix.dtype \
+                        and np.array_equal(rel, ps.rel) and np.array_equal(fix, ps.fix):
+                    break
+            else:
+                rel, fix, have = ps.rel, ps.fix, {}
+                groups.append((rel, fix, have))
+            # gather the missing pairs, one call per set of relabelled layers that lack the
+            # same fixed layers
+            lacking: dict[tuple[int, ...], list[int]] = {}
+            for a in ps.rel_idx.tolist():
+                need = tuple(c for c in ps.fix_idx.tolist() if (a, c) not in have)
+                if need:
+                    lacking.setdefault(need, []).append(a)
+            for need, rel_idx in lacking.items():
+                part = np.empty((n_perm, len(rel_idx), len(need)))
+                gather_cross(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(need, np.int64),
+                             rows, cols, col_start, col_stop, part)
+                for x, a in enumerate(rel_idx):
+                    for y, c in enumerate(need):
+                        have[(a, c)] = part[:, x, y]
+            cross = np.empty((n_perm, ps.rel_idx.size, ps.fix_idx.size))
+            for x, a in enumerate(ps.rel_idx.tolist()):
+                for y, c in enumerate(ps.fix_idx.tolist()):
+                    cross[:, x, y] = have[(a, c)]
+            d = ps.gram0.shape[0]
+            gram = np.empty((n_perm, d, d))
+            fill_gram(cross, ps.gram0, gram)
+            t = int(np.flatnonzero(ps.terms == j)[0])
+            stats = np.empty((n_perm, 1))
+            regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
+                             np.ascontiguousarray(ps.scale[t:t + 1]), plan.use_t, stats)
+            out[i] = stats[:, 0]
+    for plan, st in zip(plans, out):
+        ref = plan.statistics(rows[:1], cols[:1])[0, j]
+        if not abs(st[0] - ref) <= SHARED_RTOL * max(1.0, abs(ref)):
+            raise NumericalError(f"calibrate: the shared relabelling pass gives {float(st[0])!r} "
+                                 f"for the first relabelling but the engine's plan gives "
+                                 f"{float(ref)!r}")
+    return out
 
-
-def _ranked(prep: Prepared) -> Prepared:
-    """Replace each matrix's dyad values by their average ranks (ties share a rank)."""
-    mats = []
-    n = prep.mask.shape[0]
-    for a in prep.matrices:
-        r = np.full(a.shape, np.nan)
-        vals = a[prep.mask]
-        ok = ~np.isnan(vals)
-        ranks = np.full(vals.shape, np.nan)
-        ranks[ok] = rankdata(vals[ok], method="average")
-        r[prep.mask] = ranks
-        if not prep.directed and not prep.two_mode:
-            lower = np.tril_indices(n, -1)
-            r[lower] = r.T[lower]
-        mats.append(r)
-    from dataclasses import replace
-    return replace(prep, matrices=tuple(mats))
+def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str = "float64",
+         directed: bool | None = None, groups: Any = None, dyads: str | None = None,
+         overwrite_inputs: bool = False) -> Plan:
+    """The dense linear route: prepared inputs, the QR fit for the table, and the scheme's
+    statistics (``build_statistics``) for the pipeline."""
+    check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
+    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    fit = _design.observed_fit(prep)
+    # statistics that overwrite the inputs need their fingerprints first
+    fingerprints = input_fingerprints(prep) if overwrite_inputs else None
+    stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,
+                             overwrite=bool(overwrite_inputs))
+    settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
+                    method=None, storage=storage, dyads=dyads,
+                    groups=groups_fingerprint(groups))
+    info = summary(prep, kind="regression", model="linear", scheme=scheme,
+                   statistic=statistic, method=None, n_dyads=fit.n_dyads,
+                   terms=("intercept",) + prep.names)
+    fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
+                      fit=np.array([fit.r2, np.nan]))
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=stats.chunk_size(),
+                fit=fit_arrays, summary=info,
+                identity=dense_identity(prep, settings, fingerprints),
+                expected=fit.t[1:] if statistic == "t" else None)

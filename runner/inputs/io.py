@@ -41,7 +41,7 @@ from typing import Iterable, Iterator, Sequence
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = ["NodeTable", "RawNetwork", "read_node_table", "read_network", "align",
            "collect_labels", "split_h5_path", "FORMATS"]

@@ -20,192 +20,13 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError
-from .result import CorrelationResult, LayerCorrelationResult, _num, _plain, _pval
-
-#: One-line notes under the table, in the order they are shown.
-NOTE_P = ("p: two-sided permutation p-value (|statistic| at least the observed); "
-          "MC s.e.: its Monte Carlo standard error")
-NOTE_INTERVAL = ("95% interval: Clopper-Pearson interval of the Monte Carlo p-value "
-                 "(b + 1 of m + 1 relabellings)")
-NOTE_ADJUSTED = ("adjusted p: familywise, single-step max statistic over the {k} tested "
-                 "terms (Westfall & Young 1993); * marks adjusted p <= {alpha:g}")
-NOTE_ONE = "* marks p <= {alpha:g}"
-NOTE_SIDED = "one-sided p-values and exceedance counts: report --csv or --json"
-
-
-# --------------------------------------------------------------------------- helpers
-
-def _kind(res: Any) -> str:
-    if isinstance(res, LayerCorrelationResult):
-        return "layers"
-    if isinstance(res, CorrelationResult):
-        return "correlation"
-    return "regression"
-
-
-def _tested(res: Any) -> np.ndarray:
-    """Indices (into ``res.terms``) of the tested terms, in null-column order."""
-    return np.flatnonzero(np.isfinite(res.p)) if _kind(res) == "regression" \
-        else np.arange(len(res.terms))
-
-
-def _alpha(res: Any, alpha: float | None) -> float:
-    if alpha is None:
-        return float(res.alpha)
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise InputError(f"`alpha` must be a number with 0 < alpha < 1; got {alpha!r}")
-    return float(alpha)
-
-
-def _draws_line(res: Any) -> str:
-    if res.exact:
-        w = _workers(res)
-        return (f"null: all {res.permutations:,} relabellings (exact enumeration"
-                f"{w})")
-    return (f"null: {res.permutations:,} random relabellings, seed {res.seed} "
-            f"(chunks of {res.chunk_size:,}{_workers(res)})")
-
-
-def _workers(res: Any) -> str:
-    """", N workers" when the result says how many computed its chunks."""
-    w = getattr(res, "workers", None)
-    return "" if w is None else f", {w} worker{'s' * (w != 1)}"
-
-
-def _stop_lines(res: Any) -> list[str]:
-    """What the stop rule did: the run as a whole, then each tested term."""
-    rule = (res.stop or {}).get("rule", "none")
-    if rule == "none" or res.exact:
-        return []
-    from .precision import StopRule
-
-    desc = StopRule.from_dict(res.stop).describe()
-    if res.stopped_by:
-        lines = [f"stop rule {desc}: stopped the run after {res.permutations:,} of "
-                 f"{res.planned:,} planned relabellings (every tested term done)"]
-    else:
-        lines = [f"stop rule {desc}: ran all {res.permutations:,} planned relabellings "
-                 "(not every term was done earlier)"]
-    for i in _tested(res):
-        term, at = res.terms[i], res.stop_at[i]
-        if rule == "besag-clifford":
-            h = res.stop["exceedances"]
-            what = (f"{h}th exceedance after {int(at):,} relabellings: p = {h}/{int(at):,} "
-                    "(Besag & Clifford 1991), interval exact for sampling to the "
-                    f"{h}th exceedance" if np.isfinite(at)
-                    else f"fewer than {h} exceedances: p = (b + 1)/(m + 1)")
-        else:
-            verdict = res.stop_verdict[i] if i < len(res.stop_verdict) else ""
-            what = (f"decided {verdict.replace('alpha', format(res.stop['alpha'], 'g'))} "
-                    f"after {int(at):,} relabellings (Gandy 2009)" if np.isfinite(at)
-                    else "undecided: the p-value is too close to alpha for this many "
-                         "relabellings")
-        lines.append(f"  {term}: {what}")
-    return lines
-
-
-def header_lines(res: Any) -> list[str]:
-    """The lines above the table: what was fitted, on what, with which null."""
-    kind = _kind(res)
-    mode = "two-mode" if res.two_mode else ("directed" if res.directed else "undirected")
-    if kind == "regression":
-        k = len(_tested(res))
-        fit = (f"R squared {res.r2:.4f}" if np.isfinite(res.r2)
-               else f"deviance {res.deviance:.4f}" if np.isfinite(res.deviance) else "")
-        lines = [f"regression of {res.response} on {k} predictor{'s' * (k != 1)} (MRQAP)",
-                 f"model {res.model} | scheme {res.scheme} | statistic {res.statistic}"
-                 + (f" | {fit}" if fit else "")]
-    elif kind == "correlation":
-        lines = [f"QAP correlation of {res.response} with {res.terms[0]} ({res.method})"]
-    else:
-        lines = [f"QAP correlations of {len(res.layers)} networks, {len(res.terms)} pairs "
-                 f"({res.method}), shared relabellings"]
-    lines.append(f"{res.n_nodes:,} nodes | {res.n_dyads:,} dyads ({mode})")
-    lines.append(_draws_line(res))
-    return lines
-
-
-def _interval(res: Any, i: int) -> str:
-    if not np.isfinite(res.p[i]):
-        return "-"
-    if res.exact:
-        return "exact"
-    lo, hi = res.p_interval[i]
-    return f"[{_pval(lo, 0).strip()}, {_pval(hi, 0).strip()}]"
-
-
-def format_table(res: Any, *, alpha: float | None = None) -> str:
-    """The terminal table: what was run, one row per term, then notes.
-
-    Columns: the estimate (coefficient or r) and its classical standard error, the
-    statistic, the permutation p-value with its Monte Carlo standard error and 95%
-    Clopper-Pearson interval, and (several tested terms) the familywise adjusted p.
-    """
-    a = _alpha(res, alpha)
-    kind = _kind(res)
-    tested = _tested(res)
-    several = len(tested) > 1
-    est_name = "estimate" if kind == "regression" else "r"
-    w = max(12, max(len(t) for t in res.terms) + 2)
-    cols = [(f"{'term':<{w}}", w), (f"{est_name:>11}", 11), (f"{'std.error':>11}", 11)]
-    if kind == "regression":
-        cols.append((f"{res.statistic:>9}", 9))
-    cols += [(f"{'p':>9}", 9), (f"{'MC s.e.':>9}", 9), (f"{'95% interval':>21}", 21)]
-    if several:
-        cols.append((f"{'adjusted p':>12}", 12))
-    cols.append(("  ", 2))
-    head = "".join(c for c, _ in cols).rstrip()
-    lines = header_lines(res) + _stop_lines(res) + ["", head, "-" * len(head)]
-    est = res._estimates()
-    for i, term in enumerate(res.terms):
-        row = f"{term:<{w}}{_num(est[i], 11)}{_num(res.se[i], 11)}"
-        if kind == "regression":
-            row += _num(res.stat[i], 9, 3)
-        tested_i = np.isfinite(res.p[i])
-        se = "-" if res.exact or not tested_i else _pval(res.p_se[i], 0).strip()
-        row += f"{_pval(res.p[i], 9)}{se:>9}{_interval(res, i):>21}"
-        decisive = res.p_adjusted[i] if several else res.p[i]
-        if several:
-            row += _pval(res.p_adjusted[i], 12)
-        mark = "*" if tested_i and np.isfinite(decisive) and decisive <= a else ""
-        lines.append((row + f" {mark}").rstrip())
-    if kind == "layers":
-        lines += [""] + matrix_lines(res, alpha=a)
-    lines += ["", NOTE_P]
-    if not res.exact:
-        lines.append(NOTE_INTERVAL)
-    lines.append(NOTE_ADJUSTED.format(k=len(tested), alpha=a) if several
-                 else NOTE_ONE.format(alpha=a))
-    lines.append(NOTE_SIDED)
-    if np.any(np.asarray(res.failed) > 0):
-        names = [res.terms[i] for i in tested]
-        bad = ", ".join(f"{t}: {int(f)}" for t, f in zip(names, res.failed) if f)
-        lines.append(f"failed permuted fits, counted as extreme: {bad}")
-    for note in res.notes:
-        lines.append(f"note: {note}")
-    return "\n".join(lines)
-
-
-def matrix_lines(res: LayerCorrelationResult, *, alpha: float) -> list[str]:
-    """The correlation matrix as text; * marks pairs with adjusted p <= alpha."""
-    r = res.matrix("r")
-    padj = res.matrix("p_adjusted")
-    names = list(res.layers)
-    w = max(8, max(len(n) for n in names) + 1)
-    lines = [f"correlation matrix (* adjusted p <= {alpha:g})",
-             " " * w + "".join(f"{n[:w - 1]:>{w}}" for n in names)]
-    for i, name in enumerate(names):
-        cells = []
-        for j in range(len(names)):
-            if i == j:
-                cells.append(f"{'-':>{w}}")
-            else:
-                mark = "*" if padj[i, j] <= alpha else " "
-                cells.append(f"{r[i, j]:>{w - 1}.3f}{mark}")
-        lines.append(f"{name:<{w}}" + "".join(cells))
-    return lines
-
+from ..errors import InputError
+from ..pipeline import store
+from ..pipeline.run import open_result
+from . import plots
+from .result import _plain
+from .table import (NOTE_ADJUSTED, NOTE_INTERVAL, NOTE_ONE, NOTE_P, _alpha, _interval, _num,
+                    _pval, _stop_lines, format_table, header_lines, matrix_lines)
 
 # --------------------------------------------------------------------------- CSV / JSON
 
@@ -216,9 +37,9 @@ CSV_COLUMNS = ("term", "estimate", "std_error", "statistic", "p", "p_se", "p_low
 
 def csv_text(res: Any) -> str:
     """One row per term; empty cells where a value does not apply (the intercept's p)."""
-    tested = list(_tested(res))
+    tested = list(res.tested_index())
     buf = io.StringIO()
-    layers = _kind(res) == "layers"
+    layers = res.kind == "layers"
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(CSV_COLUMNS + (("network_a", "network_b") if layers else ()))
     est = res._estimates()
@@ -249,8 +70,6 @@ def json_text(res: Any, provenance: dict | None = None) -> str:
 
 def provenance(path: Any) -> dict:
     """Where a run file's result comes from: versions, seed, settings, input fingerprints."""
-    from . import store
-
     hdr = store.read_header(path)
     ident = hdr.identity
     fingerprints = {k.split(":", 1)[1]: v for k, v in ident.items()
@@ -271,15 +90,13 @@ def _safe(name: str) -> str:
 
 def plot_images(res: Any, *, alpha: float | None = None) -> list[tuple[str, str, bytes]]:
     """Every plot of a result as (file name, caption, PNG bytes)."""
-    from . import plots
-
     a = _alpha(res, alpha)
     out = []
-    if _kind(res) == "layers":
+    if res.kind == "layers":
         out.append(("correlation_matrix.png",
                     "Correlation matrix of the networks; * marks familywise adjusted "
                     f"p <= {a:g}", plots.correlation_heatmap(res, alpha=a)))
-    for col, i in enumerate(_tested(res)):
+    for col, i in enumerate(res.tested_index()):
         stem = f"{col + 1:02d}_{_safe(res.terms[i])}"
         out.append((f"{stem}_null.png", f"{res.terms[i]}: null distribution and the observed "
                     "statistic", plots.null_histogram(res, col, alpha=a)))
@@ -328,8 +145,8 @@ def _cell(x: float) -> str:
 
 
 def _result_table_html(res: Any, alpha: float) -> str:
-    kind = _kind(res)
-    tested = _tested(res)
+    kind = res.kind
+    tested = res.tested_index()
     several = len(tested) > 1
     est_name = "estimate" if kind == "regression" else "r"
     heads = ["term", est_name, "std.error"] + ([res.statistic] if kind == "regression" else []) \
@@ -362,7 +179,7 @@ def html_text(res: Any, *, provenance: dict | None = None, alpha: float | None =
     study_text = prov.get("study_text", "")
     if title is None:
         title = _study_title(study_text) or header_lines(res)[0]
-    tested = _tested(res)
+    tested = res.tested_index()
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              f"<title>{_e(title)}</title>", f"<style>{_CSS}</style></head><body>",
              f"<h1>{_e(title)}</h1>",
@@ -372,7 +189,7 @@ def html_text(res: Any, *, provenance: dict | None = None, alpha: float | None =
                          + [NOTE_ADJUSTED.format(k=len(tested), alpha=a) if len(tested) > 1
                             else NOTE_ONE.format(alpha=a)]
                          + [f"note: {n}" for n in res.notes]), "</p>"]
-    if _kind(res) == "layers":
+    if res.kind == "layers":
         parts.append("<pre>" + _e("\n".join(matrix_lines(res, alpha=a))) + "</pre>")
     parts.append("<h2>Plots</h2>")
     for name, caption, png in plot_images(res, alpha=a):
@@ -426,8 +243,6 @@ def make_report(run_file: Any, *, as_json: bool = False, csv_file: Any = None,
                 plots: Any = None, html_file: Any = None,
                 alpha: float | None = None) -> Report:
     """Read a run file and produce the report pieces asked for (the CLI's ``report``)."""
-    from .api import open_result
-
     res = open_result(run_file)
     a = _alpha(res, alpha)
     prov = provenance(run_file)

@@ -10,21 +10,16 @@ the seed and its index. Only this module knows about workers.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Iterable, Iterator
+from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
 
+from ..errors import InputError
 from .permutations import Blocks, draw, enumerate_exact
-from .schemes import Plan
 
-# Work per chunk (dyads x cross products) the default chunk size aims at: a few tenths of a
-# second of kernel time, so progress, storage and resume stay fine-grained while the cost
-# of storing a chunk (one flush) stays a few percent.
-CHUNK_WORK = 1e9
-MAX_CHUNK = 1000
-# Kernels share each read of the fixed layers among the permutations of a chunk (up to a
-# block of 8), so a chunk is never smaller than this.
-MIN_CHUNK = 16
+# A plan is anything with ``k`` and ``statistics(row_perms, col_perms)`` (see
+# dyadperm.routes.plan); this module needs nothing else of it.
+Plan = Any
 
 
 @dataclass(frozen=True)
@@ -51,12 +46,6 @@ class Draws:
         if self.exact:
             return enumerate_exact(self.blocks, first, count)
         return draw(self.blocks, self.entropy, first, count)
-
-
-def default_chunk_size(plan: Plan) -> int:
-    """A chunk size that keeps one chunk's kernel work near ``CHUNK_WORK``."""
-    per_perm = plan.n_dyads * sum((p.rel_idx.size + 1) * (p.fix_idx.size + 1) for p in plan.passes)
-    return int(np.clip(CHUNK_WORK // max(per_perm, 1), MIN_CHUNK, MAX_CHUNK))
 
 
 def workers_used(jobs: int, backend: str, n_chunks: int) -> int | None:
@@ -106,7 +95,6 @@ def _iter_dask(plan: Plan, draws: Draws, chunk_ids: list[int], scheduler: str | 
     try:
         from distributed import Client
     except ImportError:
-        from .errors import InputError
         raise InputError("backend 'dask' needs the dask extra: pip install 'dyadperm[dask]'") from None
     import joblib
     from joblib import Parallel, delayed
@@ -129,3 +117,15 @@ def run_all(plan: Plan, draws: Draws, *, jobs: int = 1, backend: str = "threads"
         if on_chunk is not None:
             on_chunk(c, stats)
     return null
+
+
+def parallel_map(fn: Callable, tasks: list, jobs: int) -> Iterator:
+    """Yield fn(*task) for every task, in any order; threads when ``jobs`` is not 1."""
+    if jobs == 1 or len(tasks) <= 1:
+        for task in tasks:
+            yield fn(*task)
+        return
+    from joblib import Parallel, delayed
+
+    parallel = Parallel(n_jobs=jobs, backend="threading", return_as="generator_unordered")
+    yield from parallel(delayed(fn)(*task) for task in tasks)

@@ -1,0 +1,390 @@
+"""Sparse inputs: networks given by their edges, on the engine's internal node order.
+
+A :class:`SparseNetwork` (or a scipy.sparse matrix) holds a network of very many nodes in
+O(edges) memory. :func:`prepare_sparse` puts a sparse response, sparse predictors and
+predictors derived from node attributes on one node order (groups contiguous), decides
+directedness and the dyad set as ``design.prepare`` does for dense inputs, and keeps
+everything as edge lists and attribute vectors: no n x n array is ever built. The sparse
+route (``dyadperm.routes.sparse``) computes on these.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from ..errors import InputError
+from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER  # noqa: F401
+from .blocks import Blocks
+from .design import _group_order, decide_directed, decide_dyads, name_predictors
+from .dyadic import NodeDerived, Reverse, _node_vector
+
+KIND_CODES = {"same": SAME, "gap": GAP, "sender": SENDER, "receiver": RECEIVER,
+              "pair_sum": PAIR_SUM}
+# Dense layers of a scipy.sparse input above this many bytes are never built: schemes that
+# need them (dsp, freedman-lane) are refused instead.
+DENSIFY_LIMIT = 2 * 1024 ** 3
+
+
+# --- input ------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class SparseNetwork:
+    """A one-mode network given by its edges; every other dyad holds 0.
+
+    Parameters
+    ----------
+    rows, cols : sequence of int, length E
+        Edge endpoints as node positions 0 .. n - 1 (source, target for directed data).
+    weights : sequence of float, length E, or None
+        Edge values (None: every edge has value 1). No NaN: the sparse path has no
+        missing values. Zero values are allowed and mean no tie.
+    labels : sequence of str, or int
+        The n node labels (isolated nodes included), or n for labels "0" .. "n-1".
+    directed : bool or None
+        None: undirected when the edges are symmetric (and every other input too).
+        False: each pair may be listed once, in either orientation (or in both with
+        the same value).
+    name : str or None
+        Name used in messages and result tables.
+
+    Self-loops are allowed and ignored (the diagonal never enters a fit). The same
+    (row, col) pair given twice is an error.
+    """
+
+    rows: Any
+    cols: Any
+    weights: Any = None
+    labels: Any = None
+    directed: bool | None = None
+    name: str | None = None
+
+    def __post_init__(self) -> None:
+        what = self.name or "network"
+        rows = np.asarray(self.rows)
+        cols = np.asarray(self.cols)
+        if rows.ndim != 1 or cols.ndim != 1 or rows.shape != cols.shape:
+            raise InputError(f"{what}: rows and cols must be 1-d of one length; got shapes "
+                             f"{rows.shape} and {cols.shape}")
+        if rows.size and (rows.dtype.kind not in "iu" or cols.dtype.kind not in "iu"):
+            raise InputError(f"{what}: rows and cols must be integer node positions; got "
+                             f"dtypes {rows.dtype} and {cols.dtype}")
+        labels = self.labels
+        if labels is None:
+            raise InputError(f"{what}: give labels (the node labels, or the number of nodes)")
+        if isinstance(labels, (int, np.integer)) and not isinstance(labels, bool):
+            labels = tuple(str(i) for i in range(int(labels)))
+        else:
+            labels = tuple(str(v) for v in labels)
+        n = len(labels)
+        if len(set(labels)) != n:
+            raise InputError(f"{what}: node labels must be distinct")
+        if rows.size:
+            lo = min(int(rows.min()), int(cols.min()))
+            hi = max(int(rows.max()), int(cols.max()))
+            if lo < 0 or hi >= n:
+                bad = lo if lo < 0 else hi
+                raise InputError(f"{what}: node position {bad} is outside 0 .. {n - 1} "
+                                 f"({n} labels)")
+        if self.weights is None:
+            w = np.ones(rows.shape[0])
+        else:
+            w = np.asarray(self.weights)
+            if w.shape != rows.shape:
+                raise InputError(f"{what}: need one weight per edge ({rows.shape[0]}); got "
+                                 f"shape {w.shape}")
+            if w.size and w.dtype.kind not in "fiub":
+                raise InputError(f"{what}: weights must be numbers; got dtype {w.dtype}")
+            w = w.astype(np.float64)
+        bad = np.flatnonzero(~np.isfinite(w))
+        if bad.size:
+            e = int(bad[0])
+            raise InputError(f"{what}: edge {e} ({labels[rows[e]]!r}, {labels[cols[e]]!r}) has "
+                             f"value {w[e]}; the sparse path takes no missing or infinite "
+                             "values (give dense arrays with NaN for missing dyads)")
+        rows = rows.astype(np.int64)
+        cols = cols.astype(np.int64)
+        keys = rows * max(n, 1) + cols
+        uniq, first, counts = np.unique(keys, return_index=True, return_counts=True)
+        if uniq.size < keys.size:
+            e = int(first[np.argmax(counts > 1)])
+            raise InputError(f"{what}: the dyad ({labels[rows[e]]!r}, {labels[cols[e]]!r}) is "
+                             "given more than once")
+        if self.directed is False:
+            rows, cols, w = _undirected_edges(rows, cols, w, labels, what)
+        object.__setattr__(self, "rows", rows)
+        object.__setattr__(self, "cols", cols)
+        object.__setattr__(self, "weights", w)
+        object.__setattr__(self, "labels", labels)
+
+    @property
+    def n(self) -> int:
+        return len(self.labels)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.n, self.n)
+
+    def toarray(self) -> np.ndarray:
+        """The dense n x n float64 array (for networks that fit in memory)."""
+        out = np.zeros((self.n, self.n))
+        out[self.rows, self.cols] = self.weights
+        return out
+
+    @classmethod
+    def from_scipy(cls, matrix: Any, *, labels: Any = None, directed: bool | None = None,
+                   name: str | None = None) -> "SparseNetwork":
+        """A SparseNetwork from a square scipy.sparse matrix (duplicates summed)."""
+        coo = sp.coo_array(matrix)
+        coo.sum_duplicates()
+        if coo.shape[0] != coo.shape[1]:
+            raise InputError(f"{name or 'network'}: the sparse path takes one-mode (square) "
+                             f"networks; got {coo.shape[0]} x {coo.shape[1]} (pass "
+                             ".toarray() for two-mode data)")
+        return cls(coo.row, coo.col, coo.data, coo.shape[0] if labels is None else labels,
+                   directed, name)
+
+
+def _undirected_edges(rows, cols, w, labels, what):
+    """Edges of an undirected network in both orientations.
+
+    Each pair may be given once (either orientation) or in both with the same value.
+    """
+    n = max(len(labels), 1)
+    lo, hi = np.minimum(rows, cols), np.maximum(rows, cols)
+    keys = lo * n + hi
+    order = np.argsort(keys, kind="stable")
+    k_s, w_s = keys[order], w[order]
+    same_key = k_s[1:] == k_s[:-1]
+    clash = same_key & (w_s[1:] != w_s[:-1])
+    if clash.any():
+        e = int(order[1:][clash][0])
+        raise InputError(f"{what}: directed=False but the dyad ({labels[rows[e]]!r}, "
+                         f"{labels[cols[e]]!r}) is given in both orientations with different "
+                         "values")
+    first = np.concatenate([[True], ~same_key]) if k_s.size else np.zeros(0, dtype=bool)
+    lo, hi, w1 = lo[order][first], hi[order][first], w_s[first]
+    loop = lo == hi
+    return (np.concatenate([lo, hi[~loop]]), np.concatenate([hi, lo[~loop]]),
+            np.concatenate([w1, w1[~loop]]))
+
+
+def is_sparse(obj: Any) -> bool:
+    """True for inputs the sparse path reads as edges: scipy.sparse or SparseNetwork."""
+    return isinstance(obj, SparseNetwork) or sp.issparse(obj)
+
+
+def _predictor_objects(predictors: Any) -> list[tuple[str, Any]]:
+    return name_predictors(predictors, named=(SparseNetwork, NodeDerived, Reverse))
+
+
+def _fits_sparse(obj: Any) -> bool:
+    if isinstance(obj, NodeDerived) or is_sparse(obj):
+        return True
+    return isinstance(obj, Reverse) and (obj.network is None or is_sparse(obj.network))
+
+
+def takes(y: Any, predictors: Any, *, scheme: str = "y") -> bool:
+    """Whether :func:`dyadperm.regress` / ``correlate`` should run on the sparse path.
+
+    True when the response is sparse and every predictor is sparse or derived, unless a
+    small scipy.sparse input asks for a scheme that needs dense residual matrices (it is
+    densified on the dense path, as before). A :class:`SparseNetwork` response with a dense
+    predictor is an error (it has no dense form to fall back on).
+    """
+    if not is_sparse(y):
+        return False
+    try:
+        items = _predictor_objects(predictors)
+    except InputError:
+        return False  # the dense path reports the same error in its own words
+    for name, obj in items:
+        if not _fits_sparse(obj):
+            if isinstance(y, SparseNetwork):
+                raise InputError(f"predictor {name!r} is a {type(obj).__name__}: with a "
+                                 "SparseNetwork response every predictor must be sparse or "
+                                 "derived from node attributes (or densify the response "
+                                 "with .toarray())")
+            return False
+    if scheme != "y" and sp.issparse(y):
+        n = y.shape[0] * y.shape[1]
+        if 8 * n * (len(items) + 2) <= DENSIFY_LIMIT:
+            return False
+    return True
+
+
+# --- preparation --------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class Edges:
+    """Edges of one network on the dyad set, internal node order, sorted by (src, dst)."""
+
+    src: np.ndarray
+    dst: np.ndarray
+    w: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.src.shape[0])
+
+
+@dataclass(frozen=True, eq=False)
+class Term:
+    """One predictor: derived (kind code < NETWORK, node attribute) or a sparse network."""
+
+    name: str
+    kind: int
+    attr: np.ndarray | None  # internal order; centred values, or group codes for same
+    shift: float  # the predictor's mean in the user's units minus its mean here
+    edges: Edges | None
+
+
+@dataclass(frozen=True, eq=False)
+class SparsePrepared:
+    """Inputs of the sparse path on the engine's internal node order (see design.py)."""
+
+    names: tuple[str, ...]
+    response_name: str
+    n: int
+    n_dyads: int
+    directed: bool
+    labels: tuple[str, ...]
+    row_order: np.ndarray
+    blocks: Blocks
+    ranges: tuple[tuple[int, int], ...]  # D = pairs inside one of these ranges
+    y: Edges
+    terms: tuple[Term, ...]
+
+    @property
+    def k(self) -> int:
+        return len(self.terms)
+
+
+def _as_network(obj: Any, name: str, labels: tuple[str, ...] | None) -> SparseNetwork:
+    if isinstance(obj, SparseNetwork):
+        net = obj
+    else:
+        if labels is not None and obj.shape != (len(labels), len(labels)):
+            raise InputError(f"predictor {name!r} has shape {obj.shape[0]} x {obj.shape[1]}; "
+                             f"the response has {len(labels)} x {len(labels)}")
+        net = SparseNetwork.from_scipy(obj, labels=labels, name=name)
+    if labels is not None and net.labels != labels:
+        pos = {lab: i for i, lab in enumerate(labels)}
+        extra = [lab for lab in net.labels if lab not in pos]
+        if extra:
+            raise InputError(f"predictor {name!r}: unknown node label {extra[0]!r} (not a node "
+                             "of the response)")
+        if len(net.labels) != len(labels):
+            have = set(net.labels)
+            missing = [lab for lab in labels if lab not in have]
+            raise InputError(f"predictor {name!r}: no row for node {missing[0]!r}")
+        remap = np.array([pos[lab] for lab in net.labels], dtype=np.int64)
+        net = SparseNetwork(remap[net.rows], remap[net.cols], net.weights, labels,
+                            net.directed, net.name)
+    return net
+
+
+def _offdiag(net: SparseNetwork) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    keep = (net.rows != net.cols) & (net.weights != 0.0)
+    return net.rows[keep], net.cols[keep], net.weights[keep]
+
+
+def _symmetric_edges(net: SparseNetwork) -> bool:
+    r, c, w = _offdiag(net)
+    n = max(net.n, 1)
+    a = np.argsort(r * n + c)
+    b = np.argsort(c * n + r)
+    return bool(np.array_equal((r * n + c)[a], (c * n + r)[b]) and np.array_equal(w[a], w[b]))
+
+
+def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, groups: Any = None,
+                   dyads: str | None = None, response_name: str = "response") -> SparsePrepared:
+    """Edges, attribute vectors, dyad set and relabelling blocks of a sparse problem."""
+    rname = getattr(y, "name", None) or response_name
+    resp = _as_network(y, rname, None)
+    labels = resp.labels
+    n = resp.n
+    if n < 3:
+        raise InputError(f"too few nodes: got {n} x {n}; need at least 3 nodes (2 x 2 two-mode)")
+    items = _predictor_objects(predictors)
+
+    # predictors in the user's node order
+    raw: list[tuple[str, str, Any]] = []  # (name, kind, attribute vector or network)
+    for name, obj in items:
+        if isinstance(obj, NodeDerived):
+            source = obj.values
+            if obj.kind == "receiver" and obj.col_values is not None:
+                source = obj.col_values  # receiver keeps the target's attribute here
+            vec = _node_vector(source, labels, name)
+            if obj.kind != "same" and vec.dtype.kind not in "fiub":
+                raise InputError(f"derived predictor '{obj.kind}' needs a numeric attribute; "
+                                 "got text values")
+            if vec.dtype.kind == "f" and np.isnan(vec).any():
+                node = labels[int(np.flatnonzero(np.isnan(vec))[0])]
+                raise InputError(f"{name}: node {node!r} has no attribute value (NaN); the "
+                                 "sparse path takes no missing values")
+            raw.append((name, obj.kind, vec))
+        elif isinstance(obj, Reverse):
+            net = resp if obj.network is None else _as_network(obj.network, name, labels)
+            net = SparseNetwork(net.cols, net.rows, net.weights, labels, net.directed, name)
+            raw.append((name, "network", net))
+        else:
+            raw.append((name, "network", _as_network(obj, name, labels)))
+    names = tuple(name for name, _, _ in raw)
+
+    # directedness, as on the dense path
+    asym = [] if _symmetric_edges(resp) else [rname]
+    for name, kind, val in raw:
+        if kind == "network":
+            if not _symmetric_edges(val):
+                asym.append(name)
+        elif kind in ("sender", "receiver") and np.unique(val).size > 1:
+            asym.append(name)
+    explicit = [net.directed for net in [resp] + [v for _, k, v in raw if k == "network"]
+                if net.directed is not None]
+    is_directed = decide_directed(directed, asym, explicit)
+
+    # groups: blocks of the relabelling and, with dyads="within", the dyad set
+    row_order, row_blocks, _ = _group_order(groups, n, "groups")
+    dyads = decide_dyads(dyads, groups)
+    blocks = Blocks(n, n, tuple(row_blocks), None)
+    ranges = tuple(row_blocks) if dyads == "within" else ((0, n),)
+    pos = np.empty(n, dtype=np.int64)
+    pos[row_order] = np.arange(n, dtype=np.int64)
+    block_of = np.empty(n, dtype=np.int64)
+    for b, (s, e) in enumerate(ranges):
+        block_of[s:e] = b
+
+    def edges_of(net: SparseNetwork) -> Edges:
+        r, c, w = _offdiag(net)
+        i, j = pos[r], pos[c]
+        keep = block_of[i] == block_of[j]
+        if not is_directed:
+            keep &= i < j
+        i, j, w = i[keep], j[keep], w[keep]
+        o = np.lexsort((j, i))
+        return Edges(np.ascontiguousarray(i[o]), np.ascontiguousarray(j[o]),
+                     np.ascontiguousarray(w[o]))
+
+    terms = []
+    for name, kind, val in raw:
+        if kind == "network":
+            terms.append(Term(name, NETWORK, None, 0.0, edges_of(val)))
+            continue
+        vec = val[row_order]
+        if kind == "same":
+            _, codes = np.unique(vec, return_inverse=True)
+            terms.append(Term(name, SAME, codes.astype(np.float64), 0.0, None))
+        else:
+            a = vec.astype(np.float64)
+            mid = float(a.mean())
+            factor = {"gap": 0.0, "sender": 1.0, "receiver": 1.0, "pair_sum": 2.0}[kind]
+            terms.append(Term(name, KIND_CODES[kind], a - mid, factor * mid, None))
+    sizes = np.array([e - s for s, e in ranges], dtype=np.int64)
+    n_dyads = int((sizes * (sizes - 1)).sum())
+    if not is_directed:
+        n_dyads //= 2
+    return SparsePrepared(names, rname, n, n_dyads, is_directed, labels,
+                          row_order.astype(np.int64), blocks, ranges, edges_of(resp),
+                          tuple(terms))

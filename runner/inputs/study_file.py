@@ -1,0 +1,786 @@
+"""Study files: a TOML file that states one permutation study, read into a :class:`Study`.
+
+Schema (every section and key; unknown ones are an error that lists the allowed keys)::
+
+    [study]
+    title = "..."             # required
+    nodes = "farms.csv"       # optional node table; paths are relative to the study file
+    id_column = "farm"        # required when nodes is given
+    col_nodes = "events.csv"  # two-mode only: column node table (optional)
+    col_id_column = "event"   # required when col_nodes is given
+    two_mode = true           # optional; implied by col_nodes; default false
+    directed = true           # optional override; omitted = inferred by the engine
+    inside_folder = true      # optional: refuse any path outside the study file's folder
+
+    [response]
+    name = "water"            # optional; default: the file's stem
+    file = "water.csv"        # required: .csv (edge list or matrix), .npy, or file.h5:/dataset
+                              # or one file per group: file = { a = "a.csv", b = "b.csv" }
+                              # (keys are the values of the [test] groups column)
+    format = "auto"           # optional: auto | edges | matrix
+    missing = "NA"            # optional extra missing-value marker
+
+    [[predictor]]             # one or more; each has a name and exactly one source key
+    name = "kinship"
+    file = "kinship.csv"      # a network file (format and missing allowed as in [response])
+    # or one of: same | gap | sender | receiver | pair_sum = "<node-table column>"
+    # or: reverse = "<name of the response or of a network predictor>"
+
+    [test]
+    kind = "regression"       # regression | correlation (correlation: exactly one predictor)
+    model = "linear"          # regression only: linear | logistic
+    scheme = "dsp"            # regression only: y | dsp | freedman-lane
+    statistic = "t"           # regression only: t | coef | score (score: logistic only)
+    method = "pearson"        # correlation only: pearson | spearman
+    permutations = 10000      # integer >= 1
+    seed = 20261202           # integer >= 0, optional
+    alpha = 0.05              # 0 < alpha < 1
+    exact = "auto"            # "auto" | true | false
+    groups = "district"       # optional node-table column; relabelling stays within groups
+    dyads = "within"          # within | all (only with groups; default within)
+    jobs = 2                  # integer >= 1, or -1 for all cores; omitted = every core
+    chunk_size = 256          # integer >= 1; omitted = the engine's choice
+    stop = "none"             # none | besag-clifford | gandy (sequential stopping)
+    stop_exceedances = 10     # besag-clifford only: h, exceedances that end a term
+    stop_risk = 0.001         # gandy only: bound on the chance of a different decision
+
+    [output]
+    file = "water_run.h5"     # optional run file, relative to the study file
+
+Node ids come from the node table (file order). Without one they are the union of the
+labels in the response and predictor files, in order of first appearance (response first);
+when no file carries labels (.npy, HDF5 only) they are ``"0" .. "n-1"``.
+
+Two-mode data (rows and columns are different node sets) are declared with ``col_nodes``
+or ``two_mode = true``. Derived predictors then use the row table for ``sender``, the
+column table for ``receiver``, and both tables (a column of the same name) for ``same``,
+``gap`` and ``pair_sum``.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import InputError
+from ..settings import DEFAULT_EXCEEDANCES, DEFAULT_RISK, STOP_RULES
+from .dyadic import Dyadic, NodeDerived, Reverse, gap, pair_sum, receiver, reverse, same, sender
+from .sparse import SparseNetwork
+from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
+    read_node_table, split_h5_path
+
+# Dense layers larger than this (bytes) send an all-edge-list study to the sparse path.
+SPARSE_ABOVE = 1 << 30
+
+__all__ = ["StudyInputs", "read_study"]
+
+_SECTIONS: dict[str, tuple[str, ...]] = {
+    "study": ("title", "nodes", "id_column", "col_nodes", "col_id_column", "two_mode",
+              "directed", "inside_folder"),
+    "response": ("name", "file", "format", "missing"),
+    "predictor": ("name", "file", "format", "missing", "same", "gap", "sender", "receiver",
+                  "pair_sum", "reverse"),
+    "test": ("kind", "model", "scheme", "statistic", "method", "permutations", "seed", "alpha",
+             "exact", "groups", "dyads", "jobs", "chunk_size", "stop", "stop_exceedances",
+             "stop_risk"),
+    "output": ("file",),
+}
+_DERIVED = {"same": same, "gap": gap, "sender": sender, "receiver": receiver,
+            "pair_sum": pair_sum}
+_SOURCES = ("file", *_DERIVED, "reverse")
+_NUMERIC_KINDS = ("gap", "sender", "receiver", "pair_sum")
+_CHOICES = {
+    "kind": ("regression", "correlation"),
+    "model": ("linear", "logistic"),
+    "scheme": ("y", "dsp", "freedman-lane"),
+    "statistic": ("t", "coef", "score"),
+    "method": ("pearson", "spearman"),
+    "dyads": ("within", "all"),
+}
+_REGRESSION_ONLY = ("model", "scheme", "statistic")
+_DEFAULTS = {"kind": "regression", "model": "linear", "scheme": "dsp", "statistic": "t",
+             "method": "pearson", "permutations": 10_000, "seed": None, "alpha": 0.05,
+             "exact": "auto", "groups": None, "dyads": None, "jobs": None, "chunk_size": None}
+_RESERVED_NAMES = ("intercept",)
+
+
+class _Checker:
+    """Type and range checks whose messages name the study file, section, key and value."""
+
+    def __init__(self, shown: str) -> None:
+        self.shown = shown
+
+    def error(self, section: str, key: str, rule: str, value: Any = ...) -> InputError:
+        got = "" if value is ... else f"; got {value!r}"
+        return InputError(f"{self.shown} {section} {key}: {rule}{got}")
+
+    def keys(self, section: str, table: Any, allowed: tuple[str, ...]) -> dict:
+        if not isinstance(table, dict):
+            raise InputError(f"{self.shown} {section}: must be a table of keys; "
+                             f"got {type(table).__name__}")
+        for key in table:
+            if key not in allowed:
+                raise InputError(f"{self.shown} {section} {key}: unknown key; allowed keys: "
+                                 + ", ".join(allowed))
+        return table
+
+    def text(self, section: str, table: dict, key: str, *, required: bool = False,
+             choices: tuple[str, ...] | None = None, default: str | None = None) -> str | None:
+        if key not in table:
+            if required:
+                raise self.error(section, key, "is required")
+            return default
+        value = table[key]
+        if not isinstance(value, str):
+            raise self.error(section, key, "must be a string", value)
+        if choices is not None and value not in choices:
+            raise self.error(section, key, f"must be one of {', '.join(choices)}", value)
+        if choices is None and not value.strip():
+            raise self.error(section, key, "must not be empty", value)
+        return value
+
+    def flag(self, section: str, table: dict, key: str, default: bool | None) -> bool | None:
+        if key not in table:
+            return default
+        value = table[key]
+        if not isinstance(value, bool):
+            raise self.error(section, key, "must be true or false", value)
+        return value
+
+    def integer(self, section: str, table: dict, key: str, default: int | None, *,
+                minimum: int, also: int | None = None) -> int | None:
+        if key not in table:
+            return default
+        return _integer(table[key], minimum, also,
+                        lambda rule, v: self.error(section, key, rule, v))
+
+
+def _integer(value: Any, minimum: int, also: int | None, error) -> int:
+    rule = f"must be an integer >= {minimum}" + ("" if also is None else f" or {also}")
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise error(rule, value)
+    if value < minimum and value != also:
+        raise error(rule, value)
+    return int(value)
+
+
+def _arg_error(name: str):
+    return lambda rule, value: InputError(f"`{name}` {rule}; got {value!r}")
+
+
+# --------------------------------------------------------------------------- validation
+
+def _validate(doc: dict, check: _Checker) -> dict:
+    """Check every key's type and range, fill defaults; returns the spec dict."""
+    for key in doc:
+        if key not in _SECTIONS:
+            raise InputError(f"{check.shown}: unknown section [{key}]; allowed sections: "
+                             + ", ".join(_SECTIONS))
+    for required in ("study", "response", "predictor"):
+        if required not in doc:
+            shown = "[[predictor]]" if required == "predictor" else f"[{required}]"
+            raise InputError(f"{check.shown}: section {shown} is required")
+
+    st = check.keys("[study]", doc["study"], _SECTIONS["study"])
+    study = {"title": check.text("[study]", st, "title", required=True)}
+    for key in ("nodes", "id_column", "col_nodes", "col_id_column"):
+        study[key] = check.text("[study]", st, key)
+    for table_key, id_key in (("nodes", "id_column"), ("col_nodes", "col_id_column")):
+        if study[table_key] is not None and study[id_key] is None:
+            raise check.error("[study]", id_key, f"is required when {table_key} is given")
+        if study[id_key] is not None and study[table_key] is None:
+            raise check.error("[study]", id_key, f"needs {table_key} (a node table)",
+                              study[id_key])
+    two_mode = check.flag("[study]", st, "two_mode", None)
+    if two_mode is False and study["col_nodes"] is not None:
+        raise check.error("[study]", "two_mode", "must be true when col_nodes is given", False)
+    study["two_mode"] = bool(two_mode or study["col_nodes"] is not None)
+    study["directed"] = check.flag("[study]", st, "directed", None)
+    study["inside_folder"] = bool(check.flag("[study]", st, "inside_folder", False))
+    if study["two_mode"] and study["directed"] is not None:
+        raise check.error("[study]", "directed", "applies to one-mode data only (this study "
+                          "is two-mode)", study["directed"])
+
+    rs = check.keys("[response]", doc["response"], _SECTIONS["response"])
+    response = _network_entry("[response]", rs, check)
+    if "name" not in rs:
+        response["name"] = _file_stem(response["file"])
+    else:
+        response["name"] = check.text("[response]", rs, "name")
+
+    preds = doc["predictor"]
+    if isinstance(preds, dict):
+        raise InputError(f"{check.shown} [predictor]: write each predictor as [[predictor]] "
+                         "(an array of tables)")
+    if not isinstance(preds, list) or not preds:
+        raise InputError(f"{check.shown}: at least one [[predictor]] is required")
+    predictors = [_predictor_entry(k + 1, p, check) for k, p in enumerate(preds)]
+    _check_names(response, predictors, check)
+
+    te = check.keys("[test]", doc.get("test", {}), _SECTIONS["test"])
+    test = _test_entry(te, check, len(predictors))
+
+    out = check.keys("[output]", doc.get("output", {}), _SECTIONS["output"])
+    output = {"file": check.text("[output]", out, "file")}
+
+    for p in predictors:
+        if "reverse" in p and study["two_mode"]:
+            raise check.error(p["section"], "reverse", "applies to one-mode data only (this "
+                              "study is two-mode)", p["reverse"])
+    if test["groups"] is not None and study["nodes"] is None:
+        raise check.error("[test]", "groups", "needs [study] nodes (a node table)",
+                          test["groups"])
+    for p in predictors:
+        kind = p["kind"]
+        if kind in _DERIVED and study["nodes"] is None and (kind != "receiver"
+                                                            or not study["two_mode"]):
+            raise check.error(p["section"], kind, "needs [study] nodes (a node table)", p[kind])
+        if study["two_mode"] and kind in _DERIVED and kind != "sender" \
+                and study["col_nodes"] is None:
+            raise check.error(p["section"], kind, "needs [study] col_nodes (the column node "
+                              "table) for two-mode data", p[kind])
+    return {"study": study, "response": response,
+            "predictor": [{k: v for k, v in p.items() if k not in ("section", "kind")}
+                          for p in predictors],
+            "test": test, "output": output}
+
+
+def _network_entry(section: str, table: dict, check: _Checker) -> dict:
+    files = table.get("file")
+    if isinstance(files, dict):  # one file per group: { group = "file.csv", ... }
+        if not files:
+            raise check.error(section, "file", "needs at least one group = file entry", files)
+        for group, name in files.items():
+            if not isinstance(name, str) or not name.strip():
+                raise check.error(section, f"file.{group}", "must be a file name", name)
+        file: Any = dict(files)
+    else:
+        file = check.text(section, table, "file", required=True)
+    return {"file": file,
+            "format": check.text(section, table, "format", choices=FORMATS, default="auto"),
+            "missing": check.text(section, table, "missing")}
+
+
+def _predictor_entry(number: int, table: Any, check: _Checker) -> dict:
+    section = f"[[predictor]] #{number}"
+    table = check.keys(section, table, _SECTIONS["predictor"])
+    name = check.text(section, table, "name", required=True)
+    given = [k for k in _SOURCES if k in table]
+    if len(given) != 1:
+        raise InputError(f"{check.shown} {section} ({name!r}): needs exactly one of "
+                         + ", ".join(_SOURCES) + "; got "
+                         + (", ".join(given) if given else "none"))
+    kind = given[0]
+    entry: dict[str, Any] = {"section": section, "kind": kind, "name": name}
+    if kind == "file":
+        entry.update(_network_entry(section, table, check))
+    else:
+        for key in ("format", "missing"):
+            if key in table:
+                raise check.error(section, key, "applies to a network file only (not to "
+                                  f"{kind})", table[key])
+        entry[kind] = check.text(section, table, kind)
+    return entry
+
+
+def _check_names(response: dict, predictors: list[dict], check: _Checker) -> None:
+    seen = {response["name"]: "[response]"}
+    for p in predictors:
+        name = p["name"]
+        if name in _RESERVED_NAMES:
+            raise check.error(p["section"], "name", "is reserved for the model's intercept "
+                              "term; choose another", name)
+        if name in seen:
+            raise check.error(p["section"], "name", f"is already used by {seen[name]}", name)
+        seen[name] = p["section"]
+    networks = {response["name"]} | {p["name"] for p in predictors if p["kind"] == "file"}
+    for p in predictors:
+        if p["kind"] == "reverse" and p["reverse"] not in networks:
+            raise check.error(p["section"], "reverse", "must name the response or a network "
+                              f"predictor (one of {', '.join(sorted(networks))})", p["reverse"])
+
+
+def _test_entry(te: dict, check: _Checker, n_predictors: int) -> dict:
+    sec = "[test]"
+    kind = check.text(sec, te, "kind", choices=_CHOICES["kind"], default=_DEFAULTS["kind"])
+    test: dict[str, Any] = {"kind": kind}
+    for key in ("model", "scheme", "statistic", "method"):
+        regression_key = key in _REGRESSION_ONLY
+        if key in te and regression_key != (kind == "regression"):
+            raise check.error(sec, key, f"applies to kind = "
+                              f"{'regression' if regression_key else 'correlation'} only "
+                              f"(kind is {kind})", te[key])
+        wanted = regression_key == (kind == "regression")
+        test[key] = (check.text(sec, te, key, choices=_CHOICES[key], default=_DEFAULTS[key])
+                     if wanted else None)
+    if test["statistic"] == "score" and test["model"] != "logistic":
+        raise check.error(sec, "statistic", 'score applies to model = "logistic" only',
+                          "score")
+    if kind == "correlation" and n_predictors != 1:
+        raise check.error(sec, "kind", f"correlation needs exactly one [[predictor]] "
+                          f"(found {n_predictors})", kind)
+    test["permutations"] = check.integer(sec, te, "permutations", _DEFAULTS["permutations"],
+                                         minimum=1)
+    test["seed"] = check.integer(sec, te, "seed", None, minimum=0)
+    alpha = te.get("alpha", _DEFAULTS["alpha"])
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise check.error(sec, "alpha", "must be a number with 0 < alpha < 1", alpha)
+    test["alpha"] = float(alpha)
+    exact = te.get("exact", _DEFAULTS["exact"])
+    if not (isinstance(exact, bool) or exact == "auto"):
+        raise check.error(sec, "exact", 'must be "auto", true or false', exact)
+    test["exact"] = exact
+    test["groups"] = check.text(sec, te, "groups")
+    if "dyads" in te and test["groups"] is None:
+        raise check.error(sec, "dyads", "applies only with groups", te["dyads"])
+    test["dyads"] = (check.text(sec, te, "dyads", choices=_CHOICES["dyads"], default="within")
+                     if test["groups"] is not None else None)
+    test["jobs"] = check.integer(sec, te, "jobs", _DEFAULTS["jobs"], minimum=1, also=-1)
+    test["chunk_size"] = check.integer(sec, te, "chunk_size", _DEFAULTS["chunk_size"],
+                                       minimum=1)
+    _stop_entry(te, test, check)
+    return test
+
+
+def _stop_entry(te: dict, test: dict, check: _Checker) -> None:
+    """stop, stop_exceedances, stop_risk (dyadperm.precision); keys of another rule are errors."""
+    sec = "[test]"
+    rule = check.text(sec, te, "stop", choices=STOP_RULES, default="none")
+    test["stop"] = rule
+    for key, owner in (("stop_exceedances", "besag-clifford"), ("stop_risk", "gandy")):
+        if key in te and rule != owner:
+            raise check.error(sec, key, f"applies to stop = {owner} only (stop is {rule})",
+                              te[key])
+    test["stop_exceedances"] = (check.integer(sec, te, "stop_exceedances", DEFAULT_EXCEEDANCES,
+                                              minimum=1)
+                                if rule == "besag-clifford" else None)
+    risk = te.get("stop_risk", DEFAULT_RISK)
+    if rule == "gandy" and (isinstance(risk, bool) or not isinstance(risk, (int, float))
+                            or not 0 < risk < 0.5):
+        raise check.error(sec, "stop_risk", "must be a number with 0 < stop_risk < 0.5", risk)
+    test["stop_risk"] = float(risk) if rule == "gandy" else None
+
+
+def _file_stem(file: str) -> str:
+    h5 = split_h5_path(file)
+    return Path(h5[0] if h5 is not None else file).stem
+
+
+# --------------------------------------------------------------------------- Study
+
+class StudyInputs:
+    """A validated study: its inputs read and placed on one node order (``dyadperm.Study``
+    adds ``run``).
+
+    Attributes
+    ----------
+    path : Path
+        The study file (absolute).
+    text : str
+        The study file's raw text, kept for provenance.
+    spec : dict
+        The validated settings with defaults filled: sections ``study``, ``response``,
+        ``predictor`` (a list), ``test`` and ``output``; keys that do not apply are None.
+    title : str
+    node_ids : tuple of str
+        Node order (row nodes for two-mode data).
+    col_node_ids : tuple of str or None
+        Column node order for two-mode data.
+    node_table, col_node_table : NodeTable or None
+    response : Dyadic
+    predictors : dict of str to Dyadic, NodeDerived or Reverse
+        In file order.
+    groups : ndarray or None
+        Group of each node (node order) from the ``groups`` column.
+    notes : list of str
+        Things the user should know that are not errors (self-loops ignored, ...).
+    output : Path or None
+        Run file from ``[output] file``.
+    layers_in_place : bool
+        The networks were loaded as the layers of the engine's stack (``.npy``/HDF5 files
+        of a linear regression or a Pearson correlation): a run standardises them in place,
+        so the data are held once; a later run reads the network files again.
+    """
+
+    def __init__(self, *, path: Path, text: str, spec: dict, node_ids: tuple[str, ...],
+                 col_node_ids: tuple[str, ...] | None, node_table: NodeTable | None,
+                 col_node_table: NodeTable | None, response: Dyadic,
+                 predictors: dict[str, Dyadic | NodeDerived | Reverse],
+                 groups: np.ndarray | None, notes: list[str], output: Path | None,
+                 layers_in_place: bool = False, reload: Any = None) -> None:
+        self.path = path
+        self.text = text
+        self.spec = spec
+        self.title: str = spec["study"]["title"]
+        self.node_ids = node_ids
+        self.col_node_ids = col_node_ids
+        self.node_table = node_table
+        self.col_node_table = col_node_table
+        self._response = response
+        self._predictors = predictors
+        self.groups = groups
+        self.notes = notes
+        self.output = output
+        # the networks are layers of the engine's stack: the first run may overwrite them
+        self.layers_in_place = layers_in_place
+        self._spent = False
+        self._reload = reload
+
+    def _fresh(self) -> None:
+        """Read the network files again when a run has standardised the layers in place."""
+        if self._spent:
+            fresh = self._reload()
+            self._response, self._predictors = fresh.response, fresh.predictors
+            self._spent = False
+
+    @property
+    def response(self) -> Dyadic:
+        """The response network (read again from its file after an in-place run)."""
+        self._fresh()
+        return self._response
+
+    @property
+    def predictors(self) -> dict[str, Dyadic | NodeDerived | Reverse]:
+        """The predictors by name, in model order (read again after an in-place run)."""
+        self._fresh()
+        return self._predictors
+
+    def __repr__(self) -> str:
+        shape = f"{len(self.node_ids)}" + (f" x {len(self.col_node_ids)}"
+                                           if self.col_node_ids is not None else "")
+        return (f"Study({self.title!r}, nodes={shape}, response={self.response.name!r}, "
+                f"predictors={list(self.predictors)!r}, kind={self.spec['test']['kind']!r})")
+
+
+# --------------------------------------------------------------------------- loading
+
+def read_study(path: str | Path, cls: type = StudyInputs) -> Any:
+    """Read, validate and load a study file into ``cls`` (a StudyInputs class).
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML study file. Paths inside it are relative to its folder.
+
+    Returns
+    -------
+    StudyInputs (of class ``cls``)
+        Settings validated, node tables and network files read and aligned on one node
+        order, derived predictors built from node-table columns.
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable study file; invalid TOML (the parser's line and column); an
+        unknown section or key (the allowed ones listed); a value of the wrong type or
+        range (study file, section, key, rule and value named); a file that does not exist
+        (key and resolved path named); any error of the readers in :mod:`dyadperm.io`.
+    """
+    path = Path(path).resolve()
+    shown = path.name
+    if not path.is_file():
+        raise InputError(f"{path}: no such study file")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{shown}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{shown}: not valid TOML: {exc}") from None
+    check = _Checker(shown)
+    spec = _validate(doc, check)
+    return _Loader(path, check, spec, cls).load(text)
+
+
+class _Loader:
+    """Reads the files a validated spec names and builds the Study."""
+
+    def __init__(self, path: Path, check: _Checker, spec: dict, cls: type) -> None:
+        self.cls = cls
+        self.base = path.parent
+        self.path = path
+        self.check = check
+        self.spec = spec
+        self.notes: list[str] = []
+
+    def resolve(self, section: str, key: str, file: str) -> Path | str:
+        """Absolute path of ``file`` (``file.h5:/dataset`` keeps its dataset part)."""
+        h5 = split_h5_path(file)
+        on_disk = Path(h5[0] if h5 is not None else file)
+        full = on_disk if on_disk.is_absolute() else (self.base / on_disk)
+        if self.spec["study"]["inside_folder"] and \
+                not full.resolve().is_relative_to(self.base.resolve()):
+            raise self.check.error(section, key, "is outside the study file's folder "
+                                   "([study] inside_folder = true)", file)
+        if not full.is_file():
+            raise self.check.error(section, key, f"no such file {full}", file)
+        return f"{full}:{h5[1]}" if h5 is not None else full
+
+    def table(self, key: str, id_key: str) -> NodeTable | None:
+        sd = self.spec["study"]
+        if sd[key] is None:
+            return None
+        return read_node_table(self.resolve("[study]", key, sd[key]), sd[id_key])
+
+    def load(self, text: str) -> Any:
+        sd, test = self.spec["study"], self.spec["test"]
+        nodes, col_nodes = self.table("nodes", "id_column"), self.table("col_nodes",
+                                                                          "col_id_column")
+        entries = [("[response]", self.spec["response"])] + [
+            (f"[[predictor]] #{k + 1}", p) for k, p in enumerate(self.spec["predictor"])]
+        raws: dict[str, tuple[RawNetwork, str]] = {}
+        grouped: dict[str, dict[str, tuple[RawNetwork, str]]] = {}
+        layout = self.layer_layout(entries)
+        for section, entry in entries:
+            if "file" not in entry:
+                continue
+            if isinstance(entry["file"], dict):
+                grouped[entry["name"]] = {
+                    group: (read_network(self.resolve(section, f"file.{group}", file),
+                                         fmt=entry["format"], missing=entry["missing"]), file)
+                    for group, file in entry["file"].items()}
+                continue
+            where = self.resolve(section, "file", entry["file"])
+            raws[entry["name"]] = (read_network(where, fmt=entry["format"],
+                                                missing=entry["missing"],
+                                                lazy=layout is not None), entry["file"])
+        rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()] + [
+            r for parts in grouped.values() for r, _ in parts.values()])
+
+        networks: dict[str, Any] = {}
+        sparse = self.sparse_route(raws, rows, cols)
+        slots = {} if sparse or layout is None else self.layer_slots(layout, rows, cols)
+        for name, (raw, file) in raws.items():
+            if sparse:
+                networks[name] = self.sparse_network(name, raw, file, rows)
+                continue
+            values, notes = align(raw, rows, cols, directed=sd["directed"], source=file,
+                                  row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"],
+                                  out=slots.get(name))
+            self.notes.extend(notes)
+            networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name)
+
+        for name, parts in grouped.items():
+            networks[name] = self.assemble_groups(name, parts, nodes, rows)
+
+        predictors: dict[str, Dyadic | NodeDerived | Reverse] = {}
+        for section, p in entries[1:]:
+            name = p["name"]
+            if "file" in p:
+                predictors[name] = networks[name]
+            elif "reverse" in p:
+                predictors[name] = reverse(networks[p["reverse"]], name=name)
+            else:
+                predictors[name] = self.derived(section, p, nodes, col_nodes, len(rows))
+        groups = None
+        if test["groups"] is not None:
+            groups = self.attribute("[test]", "groups", nodes, test["groups"], need_all=True)
+        output = None
+        if self.spec["output"]["file"] is not None:
+            output = Path(self.spec["output"]["file"])
+            output = output if output.is_absolute() else self.base / output
+        return self.cls(path=self.path, text=text, spec=self.spec, node_ids=rows,
+                     col_node_ids=cols, node_table=nodes, col_node_table=col_nodes,
+                     response=networks[self.spec["response"]["name"]], predictors=predictors,
+                     groups=groups, notes=self.notes, output=output,
+                     layers_in_place=bool(slots),
+                     reload=lambda: _Loader(self.path, self.check, self.spec, self.cls).load(text))
+
+    def layer_layout(self, entries: list) -> list[list[str]] | None:
+        """Network names per layer array when the study can load into the engine's layers.
+
+        A linear regression or a Pearson correlation whose networks are each one .npy or
+        HDF5 file (no derived or reverse predictors, no file per group) loads every file
+        straight into an (n, m, L) array laid out as the engine's layer stack:
+        [predictors..., response] for dsp and freedman-lane, [response] and
+        [predictors...] for y and correlations. The run then standardises those arrays in
+        place (``overwrite_inputs=True``), so the data are held once, never twice. None:
+        load as usual.
+        """
+        test = self.spec["test"]
+        if test["kind"] == "correlation":
+            if test["method"] != "pearson":
+                return None  # Spearman ranks into new arrays anyway
+        elif test["model"] != "linear":
+            return None
+        for _, entry in entries:
+            file = entry.get("file")
+            if not isinstance(file, str) or entry.get("format", "auto") != "auto":
+                return None
+            if split_h5_path(file) is None and not file.lower().endswith(".npy"):
+                return None
+        names = [e["name"] for _, e in entries]
+        response, xs = names[0], names[1:]
+        if test["kind"] == "correlation" or test["scheme"] == "y":
+            return [[response], xs]
+        return [xs + [response]]
+
+    def layer_slots(self, layout: list[list[str]], rows: tuple[str, ...],
+                    cols: tuple[str, ...] | None) -> dict[str, np.ndarray]:
+        """One (n, m) view per network into the layer arrays of ``layout``."""
+        n, m = len(rows), len(cols) if cols is not None else len(rows)
+        slots = {}
+        for names in layout:
+            base = np.empty((n, m, len(names)))
+            for pos, name in enumerate(names):
+                slots[name] = base[:, :, pos]
+        return slots
+
+    def assemble_groups(self, name: str, parts: dict, nodes: NodeTable | None,
+                        rows: tuple[str, ...]) -> Dyadic:
+        """One network from one file per group (several separate networks, stacked).
+
+        Each file holds the ties among the nodes of its group (the ``[test] groups`` column);
+        dyads between groups do not exist and never enter (``dyads = "within"``).
+        """
+        test, sd = self.spec["test"], self.spec["study"]
+        section = "[response]" if name == self.spec["response"]["name"] else "[[predictor]]"
+        if nodes is None or test["groups"] is None:
+            raise self.check.error(section, "file", "one file per group needs [study] nodes "
+                                   "and [test] groups", sorted(parts))
+        if test["dyads"] == "all":
+            raise self.check.error("[test]", "dyads", "one file per group gives the dyads "
+                                   "within groups only; use dyads = \"within\"", "all")
+        if sd["two_mode"]:
+            raise self.check.error(section, "file", "one file per group is for one-mode "
+                                   "networks", sorted(parts))
+        labels = np.array([_group_key(v) for v in self.attribute(
+            "[test]", "groups", nodes, test["groups"], need_all=True)])
+        absent = sorted(set(labels) - set(parts))
+        if absent:
+            raise self.check.error(section, f"file.{absent[0]}", "no file for this group "
+                                   f"(groups found in {sd['nodes']}: "
+                                   f"{', '.join(sorted(set(labels)))})", None)
+        full = np.zeros((len(rows), len(rows)))
+        for group, (raw, file) in parts.items():
+            members = np.flatnonzero(labels == group)
+            if members.size == 0:
+                raise self.check.error(section, f"file.{group}", f"no node of group {group!r} "
+                                       f"in {sd['nodes']}", file)
+            values, notes = align(raw, tuple(rows[i] for i in members), None,
+                                  directed=sd["directed"], source=file,
+                                  row_ids_source=f"group {group} of {sd['nodes']}")
+            self.notes.extend(notes)
+            full[np.ix_(members, members)] = values
+        return Dyadic(full, rows, None, sd["directed"], None, name)
+
+    def sparse_route(self, raws: dict, rows: tuple[str, ...], cols) -> bool:
+        """Whether to keep edge lists as edges (the sparse engine path) instead of n x n.
+
+        Yes when the study is one-mode, every network file is a complete edge list (no
+        missing values), the test runs on the sparse path (a correlation, or a linear
+        regression under scheme y, without groups), and the dense layers would take more
+        than ``SPARSE_ABOVE`` bytes. Smaller studies stay dense: same numbers, and run
+        files, stopping rules and every scheme work there.
+        """
+        test = self.spec["test"]
+        if cols is not None or test["groups"] is not None or not raws:
+            return False
+        if test["kind"] == "regression" and (test["model"] != "linear" or test["scheme"] != "y"):
+            return False
+        if not all(raw.is_edges and not np.isnan(raw.weights).any() for raw, _ in raws.values()):
+            return False
+        layers = 1 + len(self.spec["predictor"])
+        return 8.0 * len(rows) ** 2 * layers > SPARSE_ABOVE
+
+    def sparse_network(self, name: str, raw: RawNetwork, file: str, rows: tuple[str, ...]):
+        """A SparseNetwork from an edge list, labels placed on the node order."""
+
+        pos = {lab: i for i, lab in enumerate(rows)}
+        idx = []
+        for labels in (raw.sources, raw.targets):
+            out = np.empty(len(labels), dtype=np.int64)
+            for e, lab in enumerate(labels):
+                if lab not in pos:
+                    raise InputError(f"{file} line {int(raw.lines[e])}: unknown node label "
+                                     f"{str(lab)!r}" + (f" (not in {self.spec['study']['nodes']})"
+                                                   if self.spec["study"]["nodes"] else ""))
+                out[e] = pos[lab]
+            idx.append(out)
+        return SparseNetwork(idx[0], idx[1], np.asarray(raw.weights, dtype=np.float64), rows,
+                             self.spec["study"]["directed"], name)
+
+    def node_ids(self, nodes: NodeTable | None, col_nodes: NodeTable | None,
+                 raws: list[RawNetwork]) -> tuple[tuple[str, ...], tuple[str, ...] | None]:
+        """Row and column node ids (column ids None for one-mode data)."""
+        two_mode = self.spec["study"]["two_mode"]
+        if (nodes is None or (two_mode and col_nodes is None)) and raws:
+            unlabelled = [r for r in raws if not r.labelled]
+            if unlabelled and len(unlabelled) < len(raws):
+                raise InputError(f"{self.check.shown}: {unlabelled[0].name} has no node labels "
+                                 "and other network files have; give [study] nodes (and "
+                                 "col_nodes for two-mode data) so every file can be matched "
+                                 "to nodes")
+            if unlabelled:
+                n, m = unlabelled[0].values.shape
+                rows = nodes.ids if nodes is not None else tuple(str(k) for k in range(n))
+                if not two_mode:
+                    return rows, None
+                cols = col_nodes.ids if col_nodes is not None else tuple(str(k) for k in range(m))
+                return rows, cols
+        if not two_mode:
+            return (nodes.ids if nodes is not None else collect_labels(raws)), None
+        rows = nodes.ids if nodes is not None else collect_labels(raws, axis="rows")
+        cols = col_nodes.ids if col_nodes is not None else collect_labels(raws, axis="cols")
+        return rows, cols
+
+    def attribute(self, section: str, key: str, table: NodeTable, column: str, *,
+                  need_all: bool = False, numeric: bool = False) -> np.ndarray:
+        """A node-table column in node order, checked for what its use needs."""
+        if column not in table.columns:
+            raise self.check.error(section, key, f"no column {column!r} in {table.path.name}; "
+                                   "columns: " + ", ".join(table.columns), column)
+        values = table.columns[column]
+        place = f"{table.path.name} column {column!r}"
+        if numeric and values.dtype.kind != "f":
+            r = next(k for k, v in enumerate(values) if v != "" and not _is_number(v))
+            raise self.check.error(section, key, f"{key} needs numbers; {place} line "
+                                   f"{table.lines[r]} holds {str(values[r])!r}", column)
+        if need_all:
+            empty = np.isnan(values) if values.dtype.kind == "f" else values == ""
+            if empty.any():
+                r = int(np.flatnonzero(empty)[0])
+                raise self.check.error(section, key, f"{key} needs a value for every node; "
+                                       f"{place} line {table.lines[r]} is empty", column)
+        return values
+
+    def derived(self, section: str, p: dict, nodes: NodeTable | None,
+                col_nodes: NodeTable | None, n_rows: int) -> NodeDerived:
+        kind = next(k for k in _DERIVED if k in p)
+        column, name = p[kind], p["name"]
+        numeric, need_all = kind in _NUMERIC_KINDS, kind == "same"
+        if not self.spec["study"]["two_mode"]:
+            values = self.attribute(section, kind, nodes, column, numeric=numeric,
+                                    need_all=need_all)
+            return _DERIVED[kind](values, name=name)
+        col_values = None
+        if kind != "sender":
+            col_values = self.attribute(section, kind, col_nodes, column, numeric=numeric,
+                                        need_all=need_all)
+        if kind == "receiver":
+            # a receiver term of two-mode data uses only the column nodes' attribute
+            return receiver(col_values, name=name)
+        values = self.attribute(section, kind, nodes, column, numeric=numeric,
+                                need_all=need_all)
+        if kind == "sender":
+            return sender(values, name=name)
+        return _DERIVED[kind](values, col_values, name=name)
+
+
+def _group_key(value: Any) -> str:
+    """A group label as the study file writes it: 3.0 -> "3", "north" -> "north"."""
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def _is_number(cell: str) -> bool:
+    try:
+        float(cell)
+    except ValueError:
+        return False
+    return True

@@ -1,0 +1,130 @@
+"""What every route hands the pipeline: a :class:`Plan`.
+
+A route (dense linear, sparse linear, logistic, correlation, the layer correlation matrix)
+turns prepared inputs into a plan; the pipeline (``dyadperm.pipeline.run``) turns any plan
+into a result, with every run feature (seed streams, exact enumeration, chunks, workers,
+run files, resume, growth, shards, stop rules, p-values). A plan holds:
+
+- ``statistics(row_perms, col_perms)``: the (B, k) statistics of B relabellings, through
+  the route's kernels. The observed statistic is the identity relabelling through the same
+  call. A statistic that cannot be computed for a relabelling (a permuted fit that fails)
+  is NaN: the per-permutation failure flag, which the p-values count as at least as extreme.
+- ``blocks``: the relabelling structure (groups, two-mode rows and columns).
+- ``chunk_size``: the route's default permutations per chunk, sized from its work per
+  relabelling so one chunk is a fraction of a second of kernel time.
+- ``fit``: the observed fit for the table (``coef``, ``se``, ``stat``, ``fit`` = [r2,
+  deviance]) and ``expected``, the observed statistics the kernels must reproduce (a
+  warning names a term where they do not: lost precision), or None.
+- ``summary``: what the result reports (kind, model, scheme, statistic, terms, tested
+  terms, response, nodes, dyads, directedness, notes).
+- ``identity``: everything that must agree for a run file to belong to this run (settings
+  and the SHA-256 fingerprint of every input); the pipeline adds the seed, exact
+  enumeration and chunk size.
+
+The object whose ``statistics`` the workers call is ``kernel``; the plan itself is what is
+sent to Dask workers or processes (its arrays are the inputs' layers, scattered once).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+
+from ..inputs.blocks import Blocks
+
+# Work per chunk (dyads x cross products) the default chunk size aims at: a few tenths of a
+# second of kernel time, so progress, storage and resume stay fine-grained while the cost
+# of storing a chunk (one flush) stays a few percent.
+CHUNK_WORK = 1e9
+MAX_CHUNK = 1000
+# Kernels share each read of the fixed layers among the permutations of a chunk (up to a
+# block of 8), so a chunk is never smaller than this.
+MIN_CHUNK = 16
+
+
+class Statistics(Protocol):
+    """The kernel side of a plan: k statistics per relabelling."""
+
+    k: int
+
+    def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray: ...
+
+
+@dataclass(frozen=True, eq=False)
+class Plan:
+    """A route's plan for the pipeline (module docstring)."""
+
+    kernel: Statistics
+    blocks: Blocks
+    chunk_size: int
+    fit: dict
+    summary: dict
+    identity: dict
+    expected: np.ndarray | None = None
+
+    @property
+    def k(self) -> int:
+        return self.kernel.k
+
+    def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
+        """Statistics (B, k) of B relabellings given as row/column permutations."""
+        return self.kernel.statistics(row_perms, col_perms)
+
+    def observed(self) -> np.ndarray:
+        """The observed statistics: the identity relabelling through the same kernels."""
+        ident_r = np.arange(self.blocks.n_rows, dtype=np.int64)[None, :]
+        ident_c = np.arange(self.blocks.n_cols, dtype=np.int64)[None, :]
+        return self.statistics(ident_r, ident_c)[0]
+
+
+def chunk_size_for(work: float, *, budget: float = CHUNK_WORK, least: int = MIN_CHUNK,
+                   most: int = MAX_CHUNK) -> int:
+    """Permutations per chunk that keep a chunk's work near ``budget`` (``work`` per
+    relabelling, in the route's own units), between ``least`` and ``most``."""
+    return int(np.clip(budget // max(work, 1), least, most))
+
+
+def fingerprint(arr: np.ndarray) -> str:
+    """SHA-256 of an array's dtype, shape and bytes."""
+    a = np.ascontiguousarray(arr)
+    h = hashlib.sha256()
+    h.update(f"{a.dtype.str}{a.shape}".encode())
+    h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def groups_fingerprint(groups: Any) -> str | None:
+    return None if groups is None else fingerprint(np.asarray(groups).astype(str))
+
+
+def summary(prep: Any, *, kind: str, model: str, scheme: str, statistic: str, method: Any,
+            n_dyads: Any, terms: Any) -> dict:
+    """What a result reports about a dense (``design.Prepared``) problem."""
+    n, m = prep.mask.shape
+    return dict(kind=kind, model=model, scheme=scheme, statistic=statistic, method=method,
+                terms=list(terms), tested=list(prep.names), response=prep.response_name,
+                n_nodes=n + m if prep.two_mode else n, n_dyads=int(n_dyads),
+                directed=prep.directed, two_mode=prep.two_mode, notes=[])
+
+
+def input_fingerprints(prep: Any) -> dict:
+    """SHA-256 fingerprint of each input network of a dense problem (as prepared), keyed
+    for the run file's identity."""
+    return {f"fingerprint:{name}": fingerprint(mat)
+            for name, mat in zip(prep.names + (prep.response_name,), prep.matrices)}
+
+
+def dense_identity(prep: Any, settings: dict, fingerprints: dict | None = None) -> dict:
+    """The identity of a dense problem's run: its settings, directedness, dyad set,
+    relabelling blocks and inputs. ``fingerprints``: the inputs' fingerprints taken before
+    statistics overwrote them in place; None: take them now."""
+    ident = dict(settings)
+    ident["directed"] = prep.directed
+    ident["mask"] = fingerprint(prep.mask)
+    ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
+    ident.update(input_fingerprints(prep) if fingerprints is None else fingerprints)
+    return ident
