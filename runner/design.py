@@ -2,8 +2,9 @@
 
 ``prepare`` turns a response and predictors (arrays, Dyadic, networkx, scipy.sparse or
 derived predictors) into float64 matrices on one node order, decides directedness, builds
-the dyad set and the relabelling blocks (groups become contiguous ranges of an internal
-node order), and checks the inputs. ``observed_fit`` gives the classical coefficients and
+the dyad set and the relabelling blocks, and checks the inputs. The internal node order
+is decided by the labels (``_group_order``): groups are contiguous ranges, and nodes are
+in label order inside them, so the row order the data came in never changes a result. ``observed_fit`` gives the classical coefficients and
 standard errors by a streaming QR over the dyads (no N x p matrix is built at once).
 """
 
@@ -18,6 +19,7 @@ from scipy.linalg import solve_triangular
 
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
 from .errors import DyadpermWarning, InputError
+from .labels import label_order
 from .kernels.stats import masked_moments
 from .permutations import Blocks
 
@@ -42,7 +44,8 @@ class Prepared:
     order, NaN where missing. Cells off the dyad set are unspecified (the user's own values
     when the inputs are used as given, NaN in reordered copies): read dyad values through
     ``mask``. ``mask`` marks the structural dyad
-    set. ``row_order``/``col_order`` map internal positions to the user's node positions.
+    set. ``row_order``/``col_order`` map internal positions to the user's node positions
+    (the engine's order: groups contiguous, by label inside them; see ``_group_order``).
     """
 
     names: tuple[str, ...]
@@ -135,12 +138,12 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         is_directed = decide_directed(directed, asym, explicit)
 
     # groups and blocks
-    row_order, row_blocks, codes = _group_order(groups, n, "groups")
+    row_order, row_blocks, codes = _group_order(groups, n, "groups", labels)
     if groups is not None and two_mode:
         raise InputError("groups: supported for one-mode networks only")
     dyads = decide_dyads(dyads, groups)
     if two_mode:
-        col_order = np.arange(m, dtype=np.int64)
+        col_order = label_order(col_labels)
         blocks = Blocks(n, m, ((0, n),), ((0, m),))
     else:
         col_order = row_order
@@ -285,16 +288,27 @@ def _symmetric(mat: np.ndarray) -> bool:
     return True
 
 
-def _group_order(groups: Any, n: int, what: str):
+def _group_order(groups: Any, n: int, what: str, labels: Sequence[str] | None = None):
+    """The engine's node order: groups contiguous, and within a group by label.
+
+    Groups follow the order of their values; inside each group (and everywhere without
+    groups) nodes follow :func:`dyadperm.labels.label_order` of ``labels`` (None: node
+    positions), so the order depends on the labels, never on the order the nodes were
+    given in. Returns (order, blocks, group codes per node or None).
+    """
+    by_label = (np.arange(n, dtype=np.int64) if labels is None
+                else label_order(labels))
     if groups is None:
-        return np.arange(n, dtype=np.int64), ((0, n),), None
+        return by_label, ((0, n),), None
     g = np.asarray(groups)
     if g.ndim != 1 or g.shape[0] != n:
         raise InputError(f"{what}: need one label per node ({n}); got shape {g.shape}")
     if g.dtype.kind == "f" and np.isnan(g).any():
         raise InputError(f"{what}: node {int(np.flatnonzero(np.isnan(g))[0])} has no group (NaN)")
     _, codes = np.unique(g.astype(str) if g.dtype.kind == "O" else g, return_inverse=True)
-    order = np.argsort(codes, kind="stable").astype(np.int64)
+    rank = np.empty(n, dtype=np.int64)
+    rank[by_label] = np.arange(n, dtype=np.int64)
+    order = np.lexsort((rank, codes)).astype(np.int64)
     sorted_codes = codes[order]
     cuts = np.flatnonzero(np.diff(sorted_codes)) + 1
     starts = np.concatenate([[0], cuts])

@@ -418,7 +418,7 @@ def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, gro
     is_directed = decide_directed(directed, asym, explicit)
 
     # groups: blocks of the relabelling and, with dyads="within", the dyad set
-    row_order, row_blocks, _ = _group_order(groups, n, "groups")
+    row_order, row_blocks, _ = _group_order(groups, n, "groups", labels)
     dyads = decide_dyads(dyads, groups)
     blocks = Blocks(n, n, tuple(row_blocks), None)
     ranges = tuple(row_blocks) if dyads == "within" else ((0, n),)
