@@ -21,7 +21,8 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError
-from .result import CorrelationResult, LayerCorrelationResult, _num, _plain, _pval
+from .result import (TERM_COLUMNS, CorrelationResult, LayerCorrelationResult, _num, _plain,
+                     _pval, term_rows, tested_terms)
 
 #: One-line notes under the table, in the order they are shown.
 NOTE_P = ("p: two-sided permutation p-value (|statistic| at least the observed); "
@@ -46,8 +47,7 @@ def _kind(res: Any) -> str:
 
 def _tested(res: Any) -> np.ndarray:
     """Indices (into ``res.terms``) of the tested terms, in null-column order."""
-    return np.flatnonzero(np.isfinite(res.p)) if _kind(res) == "regression" \
-        else np.arange(len(res.terms))
+    return tested_terms(res)
 
 
 def _alpha(res: Any, alpha: float | None) -> float:
@@ -201,30 +201,16 @@ def matrix_lines(res: LayerCorrelationResult, *, alpha: float) -> list[str]:
 
 # --------------------------------------------------------------------------- CSV / JSON
 
-CSV_COLUMNS = ("term", "estimate", "std_error", "statistic", "p", "p_se", "p_low", "p_high",
-               "p_adjusted", "p_greater", "p_less", "exceedances", "failed", "stop_at",
-               "stop_verdict")
+CSV_COLUMNS = TERM_COLUMNS  # the rows themselves: dyadperm.result.term_rows (to_frame too)
 
 
 def csv_text(res: Any) -> str:
     """One row per term; empty cells where a value does not apply (the intercept's p)."""
-    tested = list(_tested(res))
     buf = io.StringIO()
-    layers = _kind(res) == "layers"
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(CSV_COLUMNS + (("network_a", "network_b") if layers else ()))
-    est = res._estimates()
-    for i, term in enumerate(res.terms):
-        col = tested.index(i) if i in tested else None
-        verdict = res.stop_verdict[i] if i < len(res.stop_verdict) else ""
-        row = [term, est[i], res.se[i], res.stat[i], res.p[i], res.p_se[i],
-               res.p_interval[i][0], res.p_interval[i][1], res.p_adjusted[i],
-               res.p_greater[i], res.p_less[i],
-               "" if col is None else int(res.exceed[col]),
-               "" if col is None else int(res.failed[col]), res.stop_at[i], verdict]
-        if layers:
-            a, b = res.pairs[i]
-            row += [res.layers[a], res.layers[b]]
+    columns, rows = term_rows(res)
+    w.writerow(columns)
+    for row in rows:
         w.writerow(["" if isinstance(v, float) and not np.isfinite(v) else
                     (repr(float(v)) if isinstance(v, (float, np.floating)) else v)
                     for v in row])
