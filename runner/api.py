@@ -13,6 +13,7 @@ from . import design as _design
 from . import precision as _precision
 from . import sparse as _sparse
 from . import store as _store
+from .dyadic import network_name
 from .engine import Draws, default_chunk_size, iter_chunks, run_all
 from .errors import DyadpermWarning, InputError
 from .permutations import EXACT_LIMIT, Blocks
@@ -215,10 +216,13 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
 
     Parameters
     ----------
-    y : array (n, n) or (n, m), scipy.sparse, networkx graph or Dyadic
-        The response network. NaN marks a missing dyad value.
+    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic or pandas DataFrame
+        The response network. NaN marks a missing dyad value. A DataFrame is labelled by
+        its index (rows) and columns; square: one-mode (columns the same labels, any order).
     predictors : dict name -> network, or list
-        Networks or derived predictors (``dyadperm.same`` ...), in model order.
+        Networks or derived predictors (``dyadperm.same`` ...), in model order. Labelled
+        networks (DataFrame, Dyadic) are aligned to the response's nodes by label; plain
+        arrays are taken in the response's node order.
     model : {"linear", "logistic"}
         Least squares, or logistic regression of a 0/1 response (see dyadperm.logistic).
     scheme : {"y", "dsp", "freedman-lane"}
@@ -234,7 +238,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Worker threads (-1: all cores). Results do not depend on it.
     directed : bool or None
         None: undirected when every input is symmetric.
-    groups : array of one label per node, optional
+    groups : array of one label per node, or a pandas Series indexed by node label, optional
         Relabelling stays within groups.
     dyads : {"within", "all"}
         With groups: keep only within-group dyads (default) or every dyad.
@@ -463,9 +467,9 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
         return _sparse.correlate(a, b, **_sparse_args(locals()))
     _check_common(permutations=permutations, seed=seed, jobs=jobs, exact=exact,
                   chunk_size=chunk_size)
-    bname = getattr(b, "name", None) or "b"
+    bname = network_name(b) or "b"
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
-                           response_name=getattr(a, "name", None) or "a")
+                           response_name=network_name(a) or "a")
     n_dy = prep.n_dyads if prep.complete else int(_count_complete(prep))
     # a plan that overwrites the inputs needs their fingerprints first
     fingerprints = input_fingerprints(prep) if overwrite_inputs else None

@@ -17,9 +17,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from scipy.linalg import solve_triangular
 
-from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
+from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .errors import DyadpermWarning, InputError
-from .labels import label_order
+from .labels import label_order, some_labels
+from .optional import is_frame, is_series
 from .kernels.stats import masked_moments
 from .permutations import Blocks
 
@@ -83,10 +84,10 @@ def name_predictors(predictors: Any, named: tuple[type, ...] = (Dyadic, NodeDeri
     elif isinstance(predictors, (list, tuple)):
         items = []
         for i, v in enumerate(predictors):
-            name = getattr(v, "name", None) if isinstance(v, named) else None
+            name = network_name(v) if isinstance(v, named) else None
             items.append((name or f"x{i + 1}", v))
     else:
-        items = [(getattr(predictors, "name", None) or "x1", predictors)]
+        items = [(network_name(predictors) or "x1", predictors)]
     if not items:
         raise InputError("predictors: give at least one predictor")
     names = [n for n, _ in items]
@@ -101,7 +102,7 @@ def name_predictors(predictors: Any, named: tuple[type, ...] = (Dyadic, NodeDeri
 def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: Any = None,
             dyads: str | None = None, response_name: str = "response") -> Prepared:
     """Align the response and predictors, and build the dyad set and relabelling blocks."""
-    resp = as_dyadic(y, name=getattr(y, "name", None) or response_name)
+    resp = as_dyadic(y, name=network_name(y) or response_name)
     labels = resp.labels
     col_labels = resp.col_labels
     two_mode = resp.two_mode
@@ -138,6 +139,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         is_directed = decide_directed(directed, asym, explicit)
 
     # groups and blocks
+    groups = node_groups(groups, labels)
     row_order, row_blocks, codes = _group_order(groups, n, "groups", labels)
     if groups is not None and two_mode:
         raise InputError("groups: supported for one-mode networks only")
@@ -233,7 +235,9 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
     if isinstance(obj, Dyadic) and obj is resp:
         return resp
     shape = getattr(obj, "shape", None)
-    if not isinstance(obj, Dyadic) and shape is not None and tuple(shape) != resp.shape:
+    # a DataFrame is aligned by its labels: a wrong node set is named by the label check
+    if not isinstance(obj, Dyadic) and not is_frame(obj) and shape is not None \
+            and tuple(shape) != resp.shape:
         raise InputError(f"predictor {name!r} has shape {shape[0]} x {shape[1]}; the response "
                          f"has {resp.shape[0]} x {resp.shape[1]}")
     dy = as_dyadic(obj, name=name, labels=None if isinstance(obj, Dyadic) else resp.labels,
@@ -243,22 +247,34 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
                          f"response is {'two' if resp.two_mode else 'one'}-mode")
     if dy.labels == resp.labels and dy.col_node_labels == resp.col_node_labels:
         return dy
-    rows = _reorder(name, dy.labels, resp.labels, "row")
+    rows = _reorder(name, dy.labels, resp.labels, "row" if resp.two_mode else "node")
     cols = _reorder(name, dy.col_node_labels, resp.col_node_labels, "column")
     ex = None if dy.excluded is None else dy.excluded[np.ix_(rows, cols)]
     return Dyadic(dy.values[np.ix_(rows, cols)], resp.labels, resp.col_labels, dy.directed, ex, name)
 
 
 def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> np.ndarray:
+    """Positions in ``have`` of the labels ``want``; one InputError naming the first few
+    labels that do not match when the two are not the same node set."""
     pos = {lab: i for i, lab in enumerate(have)}
-    extra = [lab for lab in have if lab not in set(want)]
-    if extra:
-        raise InputError(f"predictor {name!r}: unknown node label {extra[0]!r} "
-                         f"(not a {what} node of the response)")
+    wanted = set(want)
+    extra = [lab for lab in have if lab not in wanted]
     missing = [lab for lab in want if lab not in pos]
-    if missing:
-        raise InputError(f"predictor {name!r}: no {what} for node {missing[0]!r}")
+    if extra or missing:
+        parts = ([f"not in the response: {some_labels(extra)}"] if extra else []) \
+            + ([f"missing: {some_labels(missing)}"] if missing else [])
+        raise InputError(f"predictor {name!r}: its {what} labels do not match the "
+                         "response's; " + "; ".join(parts))
     return np.array([pos[lab] for lab in want], dtype=np.int64)
+
+
+def node_groups(groups: Any, labels: Sequence[str]) -> Any:
+    """``groups`` as one label per node in the order of ``labels``: a pandas Series is
+    aligned by its index (its labels beyond ``labels`` unused); anything else is taken in
+    node order as given."""
+    if is_series(groups):
+        return _node_vector(groups, labels, "groups")
+    return groups
 
 
 def _any_rows(test, mat: np.ndarray, mask: np.ndarray | None = None) -> bool:

@@ -48,6 +48,7 @@ from typing import Any, Callable, Iterator, Mapping, Sequence
 import numpy as np
 from scipy.stats import beta as _beta
 
+from .dyadic import network_name
 from .errors import InputError, RunFileError
 from .permutations import Blocks
 from .pvalues import INTERVAL_LEVEL, TIE_TOLERANCE, PValues, clopper_pearson, pvalues
@@ -765,7 +766,7 @@ def _layer_items(networks: Any) -> list[tuple[str, Any]]:
     if isinstance(networks, Mapping):
         items = [(str(k), v) for k, v in networks.items()]
     elif isinstance(networks, (list, tuple)):
-        items = [(getattr(v, "name", None) or f"network{i + 1}", v)
+        items = [(network_name(v) or f"network{i + 1}", v)
                  for i, v in enumerate(networks)]
     else:
         raise InputError("correlate: give two networks (a, b), or a list or dict of networks; "
