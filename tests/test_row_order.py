@@ -183,33 +183,43 @@ def test_plain_arrays_keep_their_order(rng):
     assert prep.matrices[-1] is y  # used as given: no reordered copy
 
 
-@pytest.mark.parametrize("scheme", ["dsp", "y"])
-def test_layers_in_place_with_an_unsorted_node_table(tmp_path, rng, monkeypatch, scheme):
+@pytest.mark.parametrize("scheme, two_mode", [("dsp", False), ("y", False), ("dsp", True)])
+def test_layers_in_place_with_an_unsorted_node_table(tmp_path, rng, monkeypatch, scheme,
+                                                     two_mode):
     """.npy files follow the node table's rows; when those are not in label order the
     study loads the layers in the engine's order, so they are still used without a copy.
     Reference: the same arrays through the API with the node table's labels."""
     import dyadperm.api as api
 
-    n = 13
+    n, m = 13, (9 if two_mode else 13)
     ids = [f"u{k}" for k in rng.permutation(n)]
-    y, x = rng.normal(size=(n, n)), rng.normal(size=(n, n))
+    col_ids = [f"e{k}" for k in rng.permutation(m)] if two_mode else None
+    y, x = rng.normal(size=(n, m)), rng.normal(size=(n, m))
     np.save(tmp_path / "y.npy", y)
     np.save(tmp_path / "x.npy", x)
     (tmp_path / "nodes.csv").write_text("id\n" + "".join(f"{i}\n" for i in ids))
+    head = '[study]\ntitle = "t"\nnodes = "nodes.csv"\nid_column = "id"\n'
+    if two_mode:
+        (tmp_path / "cols.csv").write_text("id\n" + "".join(f"{i}\n" for i in col_ids))
+        head += 'col_nodes = "cols.csv"\ncol_id_column = "id"\n'
     (tmp_path / "s.toml").write_text(
-        '[study]\ntitle = "t"\nnodes = "nodes.csv"\nid_column = "id"\n'
-        '[response]\nname = "y"\nfile = "y.npy"\n[[predictor]]\nname = "x"\nfile = "x.npy"\n'
+        head + '[response]\nname = "y"\nfile = "y.npy"\n'
+        '[[predictor]]\nname = "x"\nfile = "x.npy"\n'
         f'[test]\nscheme = "{scheme}"\npermutations = 100\nseed = 4\n')
     study = dp.load_study(tmp_path / "s.toml")
     assert study.layers_in_place and study.node_ids == sorted_labels(ids)
-    order = label_order(ids)
-    np.testing.assert_array_equal(study.response.values, y[np.ix_(order, order)])
+    ro = label_order(ids)
+    co = label_order(col_ids) if two_mode else ro
+    np.testing.assert_array_equal(study.response.values, y[np.ix_(ro, co)])
     preps = []
     orig = api.build_plan
-    monkeypatch.setattr(api, "build_plan", lambda prep, **kw: preps.append(prep) or orig(prep, **kw))
+    monkeypatch.setattr(api, "build_plan",
+                        lambda prep, **kw: preps.append(prep) or orig(prep, **kw))
     got = study.run()
     assert preps[0].matrices[-1].base is study._response.values.base  # no copy
-    want = dp.regress(dp.Dyadic(y, tuple(ids), name="y"), {"x": dp.Dyadic(x, tuple(ids))},
+    cols = None if col_ids is None else tuple(col_ids)
+    want = dp.regress(dp.Dyadic(y, tuple(ids), cols, name="y"),
+                      {"x": dp.Dyadic(x, tuple(ids), cols)},
                       scheme=scheme, permutations=100, seed=4)
     _same_bits(got, want)
 
