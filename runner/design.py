@@ -4,8 +4,9 @@
 derived predictors) into float64 matrices on one node order, decides directedness, builds
 the dyad set and the relabelling blocks, and checks the inputs. The internal node order
 is decided by the labels (``_group_order``): groups are contiguous ranges, and nodes are
-in label order inside them, so the row order the data came in never changes a result. ``observed_fit`` gives the classical coefficients and
-standard errors by a streaming QR over the dyads (no N x p matrix is built at once).
+in label order inside them, so the row order the data came in never changes a result.
+``observed_fit`` gives the classical coefficients and standard errors by a streaming QR
+over the dyads (no N x p matrix is built at once).
 """
 
 from __future__ import annotations
@@ -19,9 +20,9 @@ from scipy.linalg import solve_triangular
 
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .errors import DyadpermWarning, InputError
+from .kernels.stats import masked_moments
 from .labels import label_order, some_labels
 from .optional import is_frame, is_series
-from .kernels.stats import masked_moments
 from .permutations import Blocks
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).

@@ -220,7 +220,6 @@ class SparseNetwork:
         return cls(coo.row, coo.col, coo.data, coo.shape[0] if labels is None else labels,
                    directed, name)
 
-
     @classmethod
     def from_edges(cls, table: Any, *, source: Any, target: Any, weight: Any = None,
                    nodes: Any = None, directed: bool | None = None,
