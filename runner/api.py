@@ -33,10 +33,13 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
 
     Parameters
     ----------
-    y : array (n, n) or (n, m), scipy.sparse, networkx graph or Dyadic
-        The response network. NaN marks a missing dyad value.
+    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic or pandas DataFrame
+        The response network. NaN marks a missing dyad value. A DataFrame is labelled by
+        its index (rows) and columns; square: one-mode (columns the same labels, any order).
     predictors : dict name -> network, or list
-        Networks or derived predictors (``dyadperm.same`` ...), in model order.
+        Networks or derived predictors (``dyadperm.same`` ...), in model order. Labelled
+        networks (DataFrame, Dyadic) are aligned to the response's nodes by label; plain
+        arrays are taken in the response's node order.
     model : {"linear", "logistic"}
         Least squares, or logistic regression of a 0/1 response (see dyadperm.logistic).
     scheme : {"y", "dsp", "freedman-lane"}
@@ -52,7 +55,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Worker threads (-1: all cores). Results do not depend on it.
     directed : bool or None
         None: undirected when every input is symmetric.
-    groups : array of one label per node, optional
+    groups : array of one label per node, or a pandas Series indexed by node label, optional
         Relabelling stays within groups.
     dyads : {"within", "all"}
         With groups: keep only within-group dyads (default) or every dyad.

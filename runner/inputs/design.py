@@ -2,9 +2,11 @@
 
 ``prepare`` turns a response and predictors (arrays, Dyadic, networkx, scipy.sparse or
 derived predictors) into float64 matrices on one node order, decides directedness, builds
-the dyad set and the relabelling blocks (groups become contiguous ranges of an internal
-node order), and checks the inputs. ``observed_fit`` gives the classical coefficients and
-standard errors by a streaming QR over the dyads (no N x p matrix is built at once).
+the dyad set and the relabelling blocks, and checks the inputs. The internal node order
+is decided by the labels (``_group_order``): groups are contiguous ranges, and nodes are
+in label order inside them, so the row order the data came in never changes a result.
+``observed_fit`` gives the classical coefficients and standard errors by a streaming QR
+over the dyads (no N x p matrix is built at once).
 """
 
 from __future__ import annotations
@@ -16,10 +18,12 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from scipy.linalg import solve_triangular
 
-from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic
 from ..errors import DyadpermWarning, InputError
 from ..kernels.stats import masked_moments
 from .blocks import Blocks
+from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
+from .labels import label_order, some_labels
+from .optional import is_frame, is_series
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).
 STREAM_DYADS = 1 << 20
@@ -42,7 +46,8 @@ class Prepared:
     order, NaN where missing. Cells off the dyad set are unspecified (the user's own values
     when the inputs are used as given, NaN in reordered copies): read dyad values through
     ``mask``. ``mask`` marks the structural dyad
-    set. ``row_order``/``col_order`` map internal positions to the user's node positions.
+    set. ``row_order``/``col_order`` map internal positions to the user's node positions
+    (the engine's order: groups contiguous, by label inside them; see ``_group_order``).
     """
 
     names: tuple[str, ...]
@@ -80,10 +85,10 @@ def name_predictors(predictors: Any, named: tuple[type, ...] = (Dyadic, NodeDeri
     elif isinstance(predictors, (list, tuple)):
         items = []
         for i, v in enumerate(predictors):
-            name = getattr(v, "name", None) if isinstance(v, named) else None
+            name = network_name(v) if isinstance(v, named) else None
             items.append((name or f"x{i + 1}", v))
     else:
-        items = [(getattr(predictors, "name", None) or "x1", predictors)]
+        items = [(network_name(predictors) or "x1", predictors)]
     if not items:
         raise InputError("predictors: give at least one predictor")
     names = [n for n, _ in items]
@@ -98,7 +103,7 @@ def name_predictors(predictors: Any, named: tuple[type, ...] = (Dyadic, NodeDeri
 def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: Any = None,
             dyads: str | None = None, response_name: str = "response") -> Prepared:
     """Align the response and predictors, and build the dyad set and relabelling blocks."""
-    resp = as_dyadic(y, name=getattr(y, "name", None) or response_name)
+    resp = as_dyadic(y, name=network_name(y) or response_name)
     labels = resp.labels
     col_labels = resp.col_labels
     two_mode = resp.two_mode
@@ -135,12 +140,13 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         is_directed = decide_directed(directed, asym, explicit)
 
     # groups and blocks
-    row_order, row_blocks, codes = _group_order(groups, n, "groups")
+    groups = node_groups(groups, labels)
+    row_order, row_blocks, codes = _group_order(groups, n, "groups", labels)
     if groups is not None and two_mode:
         raise InputError("groups: supported for one-mode networks only")
     dyads = decide_dyads(dyads, groups)
     if two_mode:
-        col_order = np.arange(m, dtype=np.int64)
+        col_order = label_order(col_labels)
         blocks = Blocks(n, m, ((0, n),), ((0, m),))
     else:
         col_order = row_order
@@ -230,7 +236,9 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
     if isinstance(obj, Dyadic) and obj is resp:
         return resp
     shape = getattr(obj, "shape", None)
-    if not isinstance(obj, Dyadic) and shape is not None and tuple(shape) != resp.shape:
+    # a DataFrame is aligned by its labels: a wrong node set is named by the label check
+    if not isinstance(obj, Dyadic) and not is_frame(obj) and shape is not None \
+            and tuple(shape) != resp.shape:
         raise InputError(f"predictor {name!r} has shape {shape[0]} x {shape[1]}; the response "
                          f"has {resp.shape[0]} x {resp.shape[1]}")
     dy = as_dyadic(obj, name=name, labels=None if isinstance(obj, Dyadic) else resp.labels,
@@ -240,22 +248,34 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
                          f"response is {'two' if resp.two_mode else 'one'}-mode")
     if dy.labels == resp.labels and dy.col_node_labels == resp.col_node_labels:
         return dy
-    rows = _reorder(name, dy.labels, resp.labels, "row")
+    rows = _reorder(name, dy.labels, resp.labels, "row" if resp.two_mode else "node")
     cols = _reorder(name, dy.col_node_labels, resp.col_node_labels, "column")
     ex = None if dy.excluded is None else dy.excluded[np.ix_(rows, cols)]
     return Dyadic(dy.values[np.ix_(rows, cols)], resp.labels, resp.col_labels, dy.directed, ex, name)
 
 
 def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> np.ndarray:
+    """Positions in ``have`` of the labels ``want``; one InputError naming the first few
+    labels that do not match when the two are not the same node set."""
     pos = {lab: i for i, lab in enumerate(have)}
-    extra = [lab for lab in have if lab not in set(want)]
-    if extra:
-        raise InputError(f"predictor {name!r}: unknown node label {extra[0]!r} "
-                         f"(not a {what} node of the response)")
+    wanted = set(want)
+    extra = [lab for lab in have if lab not in wanted]
     missing = [lab for lab in want if lab not in pos]
-    if missing:
-        raise InputError(f"predictor {name!r}: no {what} for node {missing[0]!r}")
+    if extra or missing:
+        parts = ([f"not in the response: {some_labels(extra)}"] if extra else []) \
+            + ([f"missing: {some_labels(missing)}"] if missing else [])
+        raise InputError(f"predictor {name!r}: its {what} labels do not match the "
+                         "response's; " + "; ".join(parts))
     return np.array([pos[lab] for lab in want], dtype=np.int64)
+
+
+def node_groups(groups: Any, labels: Sequence[str]) -> Any:
+    """``groups`` as one label per node in the order of ``labels``: a pandas Series is
+    aligned by its index (its labels beyond ``labels`` unused); anything else is taken in
+    node order as given."""
+    if is_series(groups):
+        return _node_vector(groups, labels, "groups")
+    return groups
 
 
 def _any_rows(test, mat: np.ndarray, mask: np.ndarray | None = None) -> bool:
@@ -285,16 +305,27 @@ def _symmetric(mat: np.ndarray) -> bool:
     return True
 
 
-def _group_order(groups: Any, n: int, what: str):
+def _group_order(groups: Any, n: int, what: str, labels: Sequence[str] | None = None):
+    """The engine's node order: groups contiguous, and within a group by label.
+
+    Groups follow the order of their values; inside each group (and everywhere without
+    groups) nodes follow :func:`dyadperm.labels.label_order` of ``labels`` (None: node
+    positions), so the order depends on the labels, never on the order the nodes were
+    given in. Returns (order, blocks, group codes per node or None).
+    """
+    by_label = (np.arange(n, dtype=np.int64) if labels is None
+                else label_order(labels))
     if groups is None:
-        return np.arange(n, dtype=np.int64), ((0, n),), None
+        return by_label, ((0, n),), None
     g = np.asarray(groups)
     if g.ndim != 1 or g.shape[0] != n:
         raise InputError(f"{what}: need one label per node ({n}); got shape {g.shape}")
     if g.dtype.kind == "f" and np.isnan(g).any():
         raise InputError(f"{what}: node {int(np.flatnonzero(np.isnan(g))[0])} has no group (NaN)")
     _, codes = np.unique(g.astype(str) if g.dtype.kind == "O" else g, return_inverse=True)
-    order = np.argsort(codes, kind="stable").astype(np.int64)
+    rank = np.empty(n, dtype=np.int64)
+    rank[by_label] = np.arange(n, dtype=np.int64)
+    order = np.lexsort((rank, codes)).astype(np.int64)
     sorted_codes = codes[order]
     cuts = np.flatnonzero(np.diff(sorted_codes)) + 1
     starts = np.concatenate([[0], cuts])

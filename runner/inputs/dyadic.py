@@ -17,6 +17,8 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import InputError
+from .labels import as_labels, some_labels
+from .optional import is_frame, is_series, loaded_pandas
 
 DERIVED_KINDS = ("same", "gap", "sender", "receiver", "pair_sum")
 
@@ -99,8 +101,9 @@ class Dyadic:
 class NodeDerived:
     """A predictor computed from one value per node (see the module docstring).
 
-    ``values`` holds the row nodes' attribute (all nodes for one-mode data), in node order
-    or as a mapping label -> value; ``col_values`` the column nodes' for two-mode data.
+    ``values`` holds the row nodes' attribute (all nodes for one-mode data), in node order,
+    as a mapping label -> value or as a pandas Series indexed by label (both aligned by
+    label); ``col_values`` the column nodes' for two-mode data.
     """
 
     kind: str
@@ -154,10 +157,19 @@ def derived_values(kind: str, a: np.ndarray | None, b: np.ndarray | None, n: int
 
 
 def _node_vector(values: Any, labels: Sequence[str], what: str) -> np.ndarray:
-    if isinstance(values, dict):
-        missing = [lab for lab in labels if lab not in values]
-        if missing:
-            raise InputError(f"{what}: no attribute value for node {missing[0]!r}")
+    """One value per node, in the order of ``labels``.
+
+    ``values``: a sequence in node order, a dict label -> value, or a pandas Series
+    indexed by label (aligned by label; labels it has beyond ``labels`` are not used).
+    """
+    if is_series(values):
+        index = as_labels(values.index, f"{what} (the Series index)")
+        pos = {lab: k for k, lab in enumerate(index)}
+        _no_value(what, [lab for lab in labels if lab not in pos])
+        values = _series_values(values, what)[np.array([pos[lab] for lab in labels],
+                                                       dtype=np.int64)]
+    elif isinstance(values, dict):
+        _no_value(what, [lab for lab in labels if lab not in values])
         values = [values[lab] for lab in labels]
     arr = np.asarray(values)
     if arr.ndim != 1 or arr.shape[0] != len(labels):
@@ -168,6 +180,23 @@ def _node_vector(values: Any, labels: Sequence[str], what: str) -> np.ndarray:
     if arr.dtype.kind == "O":
         arr = arr.astype(str)
     return arr
+
+
+def _no_value(what: str, missing: list[str]) -> None:
+    if missing:
+        raise InputError(f"{what}: no attribute value for node{'s' * (len(missing) > 1)} "
+                         f"{some_labels(missing)}")
+
+
+def _series_values(series: Any, what: str) -> np.ndarray:
+    """A Series' values as a numpy array: numbers as float64 with NaN for missing ones
+    (nullable pandas dtypes too), anything else as objects."""
+    types = loaded_pandas().api.types
+    if types.is_numeric_dtype(series.dtype) and not types.is_bool_dtype(series.dtype):
+        if isinstance(series.dtype, np.dtype):
+            return series.to_numpy()
+        return series.to_numpy(dtype=np.float64, na_value=np.nan)
+    return series.to_numpy(dtype=object)
 
 
 @dataclass(frozen=True, eq=False)
@@ -211,14 +240,29 @@ def reverse(network: Any, *, name: str | None = None) -> Reverse:
     return Reverse(network, name)
 
 
+def network_name(obj: Any) -> str | None:
+    """The name a network object carries (``.name`` text, not empty), else None.
+
+    A DataFrame has no name: ``frame.name`` would be its column labelled "name".
+    """
+    name = None if is_frame(obj) else getattr(obj, "name", None)
+    return name if isinstance(name, str) and name else None
+
+
 def as_dyadic(obj: Any, *, name: str, labels: Sequence[str] | None = None,
               col_labels: Sequence[str] | None = None) -> Dyadic:
     """Coerce a network given by the user into a :class:`Dyadic`.
 
     Accepts a Dyadic, a 2-d numpy array (square: one-mode; rectangular: two-mode), a
-    scipy.sparse matrix (densified; the sparse engine path takes them without this), or a
-    networkx graph (edge attribute ``weight`` if present, else 1).
+    scipy.sparse matrix (densified; the sparse engine path takes them without this), a
+    networkx graph (edge attribute ``weight`` if present, else 1), or a pandas DataFrame
+    labelled by its index (rows) and columns (see :func:`frame_dyadic`).
+
+    ``labels``/``col_labels`` name the nodes of an unlabelled array; a DataFrame keeps its
+    own labels, and is read as two-mode when ``col_labels`` is given (a two-mode response).
     """
+    if is_frame(obj):
+        return frame_dyadic(obj, name=name, two_mode=col_labels is not None)
     if isinstance(obj, Dyadic):
         if obj.name is None:
             return Dyadic(obj.values, obj.labels, obj.col_labels, obj.directed, obj.excluded, name)
@@ -257,6 +301,39 @@ def as_dyadic(obj: Any, *, name: str, labels: Sequence[str] | None = None,
         col_labels = [str(j) for j in range(m)]
     return Dyadic(values, tuple(labels), tuple(col_labels) if two_mode else None,
                   directed, None, name)
+
+
+def frame_dyadic(frame: Any, *, name: str, two_mode: bool = False) -> Dyadic:
+    """A labelled pandas DataFrame as a network.
+
+    The index labels the rows and the columns label the columns (labels as text, each
+    given once). A square DataFrame is one-mode: its columns must hold the index's labels,
+    in any order, and are put in the index's order. A rectangular one (or any, with
+    ``two_mode``) is two-mode: index = row nodes, columns = column nodes. Values must be
+    numbers; NaN (or a missing value of a nullable dtype) marks a missing dyad value.
+    """
+    rows = as_labels(frame.index, f"{name} (the DataFrame's index)")
+    cols = as_labels(frame.columns, f"{name} (the DataFrame's columns)")
+    types = loaded_pandas().api.types
+    for col, dtype in zip(cols, frame.dtypes):
+        if not types.is_numeric_dtype(dtype):
+            raise InputError(f"{name} must hold numbers; the DataFrame's column {col!r} has "
+                             f"dtype {dtype}")
+    values = frame.to_numpy(dtype=np.float64, na_value=np.nan)
+    n, m = values.shape
+    if two_mode or n != m:
+        return Dyadic(values, rows, cols, None, None, name)
+    pos = {lab: j for j, lab in enumerate(cols)}
+    row_set = set(rows)
+    unknown = [lab for lab in cols if lab not in row_set]
+    if unknown:
+        raise InputError(f"{name}: a square DataFrame is one network over the nodes of its "
+                         "index, so its columns must hold the index's labels (in any order); "
+                         f"columns not in the index: {some_labels(unknown)} (for two-mode "
+                         "data give dyadperm.Dyadic(values, labels, col_labels))")
+    if cols != rows:
+        values = values[:, np.array([pos[lab] for lab in rows], dtype=np.int64)]
+    return Dyadic(values, rows, None, None, None, name)
 
 
 def _is_networkx(obj: Any) -> bool:

@@ -505,10 +505,24 @@ class LazyBlock:
         _check_finite(block, self.shown, r0)
         return block
 
-    def copy_to(self, out: np.ndarray) -> None:
-        """Fill ``out`` (n, m), any strides, with the block."""
+    def copy_to(self, out: np.ndarray, rows: np.ndarray | None = None,
+                cols: np.ndarray | None = None) -> None:
+        """Fill ``out`` (n, m), any strides, with the block.
+
+        ``rows``/``cols`` (optional): out[i, j] = block[rows[i], cols[j]], the block's rows
+        and columns put in another order as they are read (a row block at a time).
+        """
+        dest = None
+        if rows is not None:
+            dest = np.empty_like(rows)
+            dest[rows] = np.arange(rows.shape[0])
         for r0, block in self.row_blocks():
-            out[r0:r0 + block.shape[0]] = block
+            if cols is not None:
+                block = block[:, cols]
+            if dest is None:
+                out[r0:r0 + block.shape[0]] = block
+            else:
+                out[dest[r0:r0 + block.shape[0]]] = block
 
     def copy(self) -> np.ndarray:
         out = np.empty(self.shape)
@@ -650,7 +664,9 @@ def _lines_text(lines: Sequence[int]) -> str:
 def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None = None, *,
           directed: bool | None = None, source: str | None = None,
           row_ids_source: str | None = None, col_ids_source: str | None = None,
-          out: np.ndarray | None = None) -> tuple[np.ndarray, list[str]]:
+          out: np.ndarray | None = None,
+          block_ids: tuple[Sequence[str], Sequence[str] | None] | None = None
+          ) -> tuple[np.ndarray, list[str]]:
     """Place a network on a node order.
 
     Parameters
@@ -672,6 +688,10 @@ def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None
     out : ndarray of float64, shape (n, m), optional
         Where to place the values (any strides, e.g. one layer of a 3-d array); returned
         as ``values``. Default: a new array.
+    block_ids : (row ids, column ids or None), optional
+        The node order an unlabelled block (.npy, HDF5) is written in, when ``row_ids``
+        (and ``col_ids``) list the same nodes in another order: the block's rows and
+        columns are placed by these ids. Default: the block follows ``row_ids``/``col_ids``.
 
     Returns
     -------
@@ -707,8 +727,14 @@ def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None
         values, notes = _align_edges(raw, rows, cols, two_mode, directed, shown, row_from,
                                      col_from)
     else:
+        order = None
+        if block_ids is not None and raw.row_labels is None:
+            br = list(block_ids[0])
+            bc = list(block_ids[1]) if two_mode else br
+            order = (_lookup(rows, _index_of(br), lambda k: f"row {k}", shown, row_from),
+                     _lookup(cols, _index_of(bc), lambda k: f"column {k}", shown, col_from))
         values, notes = _align_dense(raw, rows, cols, two_mode, directed, shown, row_from,
-                                     col_from, out)
+                                     col_from, out, order)
     if out is not None and values is not out:
         out[...] = values
         values = out
@@ -772,25 +798,34 @@ def _align_edges(raw, rows, cols, two_mode, directed, shown, row_from, col_from)
     return out, notes
 
 
-def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from, out=None):
+def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from, out=None,
+                 order=None):
     n, m = len(rows), len(cols)
     notes: list[str] = []
     values = raw.values
     if raw.row_labels is None:
+        ri, ci = order if order is not None else (np.arange(n), np.arange(m))
         if values.shape != (n, m):
             want = f"{n} x {m}" if two_mode else f"{n} x {n}"
             raise InputError(f"{shown}: an unlabelled block must match the node ids: "
                              f"expected {want} ({n}{' row' if two_mode else ''} nodes"
                              + (f", {m} column nodes" if two_mode else "")
                              + f"); got {values.shape[0]} x {values.shape[1]}")
-        if out is None:
+        if order is not None:  # the block's rows and columns in another node order
+            if out is None:
+                out = np.empty((n, m))
+            if isinstance(values, LazyBlock):
+                values.copy_to(out, ri, ci)
+            else:
+                out[...] = values[np.ix_(ri, ci)]
+        elif out is None:
             out = values.copy()
         elif isinstance(values, LazyBlock):
             values.copy_to(out)
         else:
             out[...] = values
-        row_names = [f"row {r}" for r in range(n)]
-        col_names = [f"column {c}" for c in range(m)]
+        row_names = [f"row {r}" for r in ri]
+        col_names = [f"column {c}" for c in ci]
     else:
         ri = _lookup(raw.row_labels, _index_of(rows), lambda k: f"line {raw.row_lines[k]}",
                      shown, row_from)

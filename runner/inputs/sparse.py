@@ -11,7 +11,7 @@ route (``dyadperm.routes.sparse``) computes on these.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Mapping
 
 import numpy as np
 import scipy.sparse as sp
@@ -19,8 +19,11 @@ import scipy.sparse as sp
 from ..errors import InputError
 from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER  # noqa: F401
 from .blocks import Blocks
-from .design import _group_order, decide_directed, decide_dyads, name_predictors
-from .dyadic import NodeDerived, Reverse, _node_vector
+from .design import _group_order, _reorder, decide_directed, decide_dyads, name_predictors, \
+    node_groups
+from .dyadic import NodeDerived, Reverse, _node_vector, _series_values, network_name
+from .labels import as_labels, sorted_labels
+from .optional import is_frame, is_series, loaded_pandas
 
 KIND_CODES = {"same": SAME, "gap": GAP, "sender": SENDER, "receiver": RECEIVER,
               "pair_sum": PAIR_SUM}
@@ -146,6 +149,117 @@ class SparseNetwork:
         return cls(coo.row, coo.col, coo.data, coo.shape[0] if labels is None else labels,
                    directed, name)
 
+    @classmethod
+    def from_edges(cls, table: Any, *, source: Any, target: Any, weight: Any = None,
+                   nodes: Any = None, directed: bool | None = None,
+                   name: str | None = None) -> "SparseNetwork":
+        """A network from a table of labelled edges, one row per tie.
+
+        Parameters
+        ----------
+        table : pandas DataFrame, or a mapping column name -> sequence
+            The edge table (a dict of lists or numpy arrays needs no pandas).
+        source, target : column names
+            The tie's endpoints, as node labels (compared as text: ``str`` of each value).
+        weight : column name or None
+            The tie's value (numbers, no missing values: the sparse path has none); None:
+            every listed tie has value 1.
+        nodes : sequence of labels, optional
+            The node set and its order, isolated nodes included. Default: every label seen
+            in ``source`` and ``target``, in the engine's label order
+            (:func:`dyadperm.labels.label_order`).
+        directed, name
+            As for :class:`SparseNetwork`.
+
+        A label not in ``nodes``, a missing label, and the same tie (source, target) listed
+        twice are errors naming the table row (counted from 0), as in study files' edge
+        lists. Self-loops are allowed and ignored.
+        """
+        shown = name or "edge table"
+        src = _edge_labels(table, source, shown)
+        dst = _edge_labels(table, target, shown)
+        if len(src) != len(dst):
+            raise InputError(f"{shown}: columns {source!r} and {target!r} differ in length "
+                             f"({len(src)} and {len(dst)})")
+        w = None if weight is None else _edge_numbers(table, weight, shown)
+        if w is not None and w.shape[0] != len(src):
+            raise InputError(f"{shown}: columns {source!r} and {weight!r} differ in length "
+                             f"({len(src)} and {w.shape[0]})")
+        if nodes is None:
+            labels = sorted_labels(dict.fromkeys(src + dst))
+            where = ""
+        else:
+            labels = as_labels(_column_values(nodes), f"{shown}: nodes")
+            where = " (not in nodes)"
+        pos = {lab: k for k, lab in enumerate(labels)}
+        ends = []
+        for column in (src, dst):
+            idx = np.empty(len(column), dtype=np.int64)
+            for e, lab in enumerate(column):
+                at = pos.get(lab)
+                if at is None:
+                    raise InputError(f"{shown} row {e}: unknown node label {lab!r}{where}")
+                idx[e] = at
+            ends.append(idx)
+        rows, cols = ends
+        key = rows * max(len(labels), 1) + cols
+        order = np.argsort(key, kind="stable")
+        dup = np.flatnonzero(key[order][1:] == key[order][:-1])
+        if dup.size:
+            a, b = sorted((int(order[dup[0]]), int(order[dup[0] + 1])))
+            raise InputError(f"{shown}: duplicate edge {src[a]!r} -> {dst[a]!r} at rows {a} "
+                             f"and {b} (aggregate repeated ties first)")
+        return cls(rows, cols, w, labels, directed, name)
+
+
+def _column_values(values: Any) -> list:
+    """The items of a column: a pandas Series or Index, a numpy array or a sequence."""
+    pd = loaded_pandas()
+    if pd is not None and isinstance(values, (pd.Series, pd.Index)):
+        values = values.to_numpy(dtype=object)
+    if isinstance(values, np.ndarray):
+        return values.astype(object).ravel().tolist()
+    return list(values)
+
+
+def _missing_label(v: Any) -> bool:
+    pd = loaded_pandas()
+    if v is None or (pd is not None and v is pd.NA):
+        return True
+    if isinstance(v, (float, np.floating)):
+        return bool(np.isnan(v))
+    return isinstance(v, str) and not v.strip()
+
+
+def _edge_column(table: Any, key: Any, shown: str) -> Any:
+    if is_frame(table):
+        names = list(table.columns)
+    elif isinstance(table, Mapping):
+        names = list(table.keys())
+    else:
+        raise InputError(f"{shown}: give the edges as a pandas DataFrame or a mapping "
+                         f"column name -> values; got {type(table).__name__}")
+    if key not in names:
+        raise InputError(f"{shown}: no column {key!r}; its columns: "
+                         + ", ".join(str(c) for c in names))
+    return table[key]
+
+
+def _edge_labels(table: Any, key: Any, shown: str) -> list[str]:
+    out = []
+    for e, v in enumerate(_column_values(_edge_column(table, key, shown))):
+        if _missing_label(v):
+            raise InputError(f"{shown} row {e}: column {key!r} has no node label")
+        out.append(str(v))
+    return out
+
+
+def _edge_numbers(table: Any, key: Any, shown: str) -> np.ndarray:
+    col = _edge_column(table, key, shown)
+    if is_series(col):
+        return _series_values(col, f"{shown} column {key!r}")
+    return np.asarray(col)
+
 
 def _undirected_edges(rows, cols, w, labels, what):
     """Edges of an undirected network in both orientations.
@@ -270,16 +384,9 @@ def _as_network(obj: Any, name: str, labels: tuple[str, ...] | None) -> SparseNe
                              f"the response has {len(labels)} x {len(labels)}")
         net = SparseNetwork.from_scipy(obj, labels=labels, name=name)
     if labels is not None and net.labels != labels:
-        pos = {lab: i for i, lab in enumerate(labels)}
-        extra = [lab for lab in net.labels if lab not in pos]
-        if extra:
-            raise InputError(f"predictor {name!r}: unknown node label {extra[0]!r} (not a node "
-                             "of the response)")
-        if len(net.labels) != len(labels):
-            have = set(net.labels)
-            missing = [lab for lab in labels if lab not in have]
-            raise InputError(f"predictor {name!r}: no row for node {missing[0]!r}")
-        remap = np.array([pos[lab] for lab in net.labels], dtype=np.int64)
+        at = _reorder(name, net.labels, labels, "node")  # net's position of each node
+        remap = np.empty_like(at)
+        remap[at] = np.arange(at.shape[0], dtype=np.int64)
         net = SparseNetwork(remap[net.rows], remap[net.cols], net.weights, labels,
                             net.directed, net.name)
     return net
@@ -301,7 +408,7 @@ def _symmetric_edges(net: SparseNetwork) -> bool:
 def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, groups: Any = None,
                    dyads: str | None = None, response_name: str = "response") -> SparsePrepared:
     """Edges, attribute vectors, dyad set and relabelling blocks of a sparse problem."""
-    rname = getattr(y, "name", None) or response_name
+    rname = network_name(y) or response_name
     resp = _as_network(y, rname, None)
     labels = resp.labels
     n = resp.n
@@ -346,7 +453,8 @@ def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, gro
     is_directed = decide_directed(directed, asym, explicit)
 
     # groups: blocks of the relabelling and, with dyads="within", the dyad set
-    row_order, row_blocks, _ = _group_order(groups, n, "groups")
+    groups = node_groups(groups, labels)
+    row_order, row_blocks, _ = _group_order(groups, n, "groups", labels)
     dyads = decide_dyads(dyads, groups)
     blocks = Blocks(n, n, tuple(row_blocks), None)
     ranges = tuple(row_blocks) if dyads == "within" else ((0, n),)

@@ -71,6 +71,7 @@ from .dyadic import Dyadic, NodeDerived, Reverse, gap, pair_sum, receiver, rever
 from .sparse import SparseNetwork
 from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
     read_node_table, split_h5_path
+from .labels import sorted_labels
 
 # Dense layers larger than this (bytes) send an all-edge-list study to the sparse path.
 SPARSE_ABOVE = 1 << 30
@@ -386,7 +387,9 @@ class StudyInputs:
         ``predictor`` (a list), ``test`` and ``output``; keys that do not apply are None.
     title : str
     node_ids : tuple of str
-        Node order (row nodes for two-mode data).
+        Node order (row nodes for two-mode data): the node table's order (or the labels'
+        first appearance in the files), except when the networks load in place
+        (``layers_in_place``, no groups): then the engine's order, by label.
     col_node_ids : tuple of str or None
         Column node order for two-mode data.
     node_table, col_node_table : NodeTable or None
@@ -554,13 +557,20 @@ class _Loader:
         networks: dict[str, Any] = {}
         sparse = self.sparse_route(raws, rows, cols)
         slots = {} if sparse or layout is None else self.layer_slots(layout, rows, cols)
+        block_ids = None
+        if slots and test["groups"] is None:
+            # load the layers straight in the engine's node order (by label), so that it
+            # can use them as they are instead of copying them into its own order
+            ordered = (sorted_labels(rows), None if cols is None else sorted_labels(cols))
+            if ordered != (rows, cols):
+                block_ids, (rows, cols) = (rows, cols), ordered
         for name, (raw, file) in raws.items():
             if sparse:
                 networks[name] = self.sparse_network(name, raw, file, rows)
                 continue
             values, notes = align(raw, rows, cols, directed=sd["directed"], source=file,
                                   row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"],
-                                  out=slots.get(name))
+                                  out=slots.get(name), block_ids=block_ids)
             self.notes.extend(notes)
             networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name)
 

@@ -24,36 +24,22 @@ from ..errors import InputError
 from ..pipeline import store
 from ..pipeline.run import open_result
 from . import plots
-from .result import _plain
+from .result import TERM_COLUMNS, _plain, term_rows
 from .table import (NOTE_ADJUSTED, NOTE_INTERVAL, NOTE_ONE, NOTE_P, _alpha, _interval, _num,
                     _pval, _stop_lines, format_table, header_lines, matrix_lines)
 
 # --------------------------------------------------------------------------- CSV / JSON
 
-CSV_COLUMNS = ("term", "estimate", "std_error", "statistic", "p", "p_se", "p_low", "p_high",
-               "p_adjusted", "p_greater", "p_less", "exceedances", "failed", "stop_at",
-               "stop_verdict")
+CSV_COLUMNS = TERM_COLUMNS  # the rows themselves: dyadperm.output.result.term_rows (to_frame too)
 
 
 def csv_text(res: Any) -> str:
     """One row per term; empty cells where a value does not apply (the intercept's p)."""
-    tested = list(res.tested_index())
     buf = io.StringIO()
-    layers = res.kind == "layers"
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(CSV_COLUMNS + (("network_a", "network_b") if layers else ()))
-    est = res._estimates()
-    for i, term in enumerate(res.terms):
-        col = tested.index(i) if i in tested else None
-        verdict = res.stop_verdict[i] if i < len(res.stop_verdict) else ""
-        row = [term, est[i], res.se[i], res.stat[i], res.p[i], res.p_se[i],
-               res.p_interval[i][0], res.p_interval[i][1], res.p_adjusted[i],
-               res.p_greater[i], res.p_less[i],
-               "" if col is None else int(res.exceed[col]),
-               "" if col is None else int(res.failed[col]), res.stop_at[i], verdict]
-        if layers:
-            a, b = res.pairs[i]
-            row += [res.layers[a], res.layers[b]]
+    columns, rows = term_rows(res)
+    w.writerow(columns)
+    for row in rows:
         w.writerow(["" if isinstance(v, float) and not np.isfinite(v) else
                     (repr(float(v)) if isinstance(v, (float, np.floating)) else v)
                     for v in row])

@@ -8,7 +8,15 @@ from typing import Any
 
 import numpy as np
 
+from ..inputs.optional import require_pandas
 from .table import format_table, header_lines
+
+#: Columns of the per-term table that the CSV report and ``to_frame`` give, in order;
+#: layer correlation results add ``LAYER_COLUMNS`` (the two networks of each pair).
+TERM_COLUMNS = ("term", "estimate", "std_error", "statistic", "p", "p_se", "p_low", "p_high",
+                "p_adjusted", "p_greater", "p_less", "exceedances", "failed", "stop_at",
+                "stop_verdict")
+LAYER_COLUMNS = ("network_a", "network_b")
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -76,6 +84,16 @@ class _Common:
                 continue
             out[f.name] = _plain(getattr(self, f.name))
         return out
+
+    def to_frame(self) -> Any:
+        """The per-term table as a pandas DataFrame: one row per term, the columns and
+        values of the CSV report (``dyadperm report --csv``); NaN where the report leaves
+        a cell empty (the intercept's p-values, an undecided stop verdict). Needs pandas.
+        """
+        pd = require_pandas("to_frame()")
+        columns, rows = term_rows(self)
+        return pd.DataFrame({name: [np.nan if _empty(row[k]) else row[k] for row in rows]
+                             for k, name in enumerate(columns)})
 
     def __repr__(self) -> str:
         """What the table's header says, and the terms; the arrays stay attributes."""
@@ -162,6 +180,40 @@ class LayerCorrelationResult(_Common):
 def statistic_label(model: str, statistic: str) -> str:
     """The name a result gives its statistic: the Wald statistic of a logistic fit is a z."""
     return "z" if model == "logistic" and statistic == "t" else statistic
+
+
+def term_rows(res: _Common) -> tuple[tuple[str, ...], list[list]]:
+    """The per-term table: its columns and one row of values per term.
+
+    Values are as stored (numpy floats, NaN where a value does not apply), with ``""``
+    for the exceedance and failure counts of an untested term and for an empty stop
+    verdict. The CSV report writes these rows (empty cells for ``""`` and non-finite
+    numbers); ``to_frame`` holds them with NaN for those cells.
+    """
+    tested = list(res.tested_index())
+    layers = res.kind == "layers"
+    est = res._estimates()
+    rows = []
+    for i, term in enumerate(res.terms):
+        col = tested.index(i) if i in tested else None
+        verdict = res.stop_verdict[i] if i < len(res.stop_verdict) else ""
+        row = [term, est[i], res.se[i], res.stat[i], res.p[i], res.p_se[i],
+               res.p_interval[i][0], res.p_interval[i][1], res.p_adjusted[i],
+               res.p_greater[i], res.p_less[i],
+               "" if col is None else int(res.exceed[col]),
+               "" if col is None else int(res.failed[col]), res.stop_at[i], verdict]
+        if layers:
+            a, b = res.pairs[i]
+            row += [res.layers[a], res.layers[b]]
+        rows.append(row)
+    return TERM_COLUMNS + (LAYER_COLUMNS if layers else ()), rows
+
+
+def _empty(v: Any) -> bool:
+    """A cell the CSV report leaves empty: "" or a number that is not finite."""
+    if isinstance(v, str):
+        return v == ""
+    return isinstance(v, (float, np.floating)) and not np.isfinite(v)
 
 
 def _plain(v: Any) -> Any:

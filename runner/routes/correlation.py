@@ -24,6 +24,7 @@ from ..errors import InputError
 from ..inputs import design as _design
 from ..inputs.blocks import Blocks
 from ..inputs.design import Prepared, standardise
+from ..inputs.dyadic import network_name
 from ..settings import check_correlation
 from .linear import GramStatistics, Pass, _identity_gram, _stack
 from .plan import (Plan, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
@@ -154,7 +155,7 @@ def _layer_items(networks: Any) -> list[tuple[str, Any]]:
     if isinstance(networks, Mapping):
         items = [(str(k), v) for k, v in networks.items()]
     elif isinstance(networks, (list, tuple)):
-        items = [(getattr(v, "name", None) or f"network{i + 1}", v)
+        items = [(network_name(v) or f"network{i + 1}", v)
                  for i, v in enumerate(networks)]
     else:
         raise InputError("correlate: give two networks (a, b), or a list or dict of networks; "
@@ -195,9 +196,9 @@ def plan(a: Any, b: Any, *, method: str = "pearson", storage: str = "float64",
          overwrite_inputs: bool = False) -> Plan:
     """The dense correlation route: network ``b`` relabelled against ``a``."""
     check_correlation(method=method, storage=storage)
-    bname = getattr(b, "name", None) or "b"
+    bname = network_name(b) or "b"
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
-                           response_name=getattr(a, "name", None) or "a")
+                           response_name=network_name(a) or "a")
     n_dy = prep.n_dyads if prep.complete else int(_count_complete(prep))
     # statistics that overwrite the inputs need their fingerprints first
     fingerprints = input_fingerprints(prep) if overwrite_inputs else None

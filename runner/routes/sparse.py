@@ -76,6 +76,7 @@ from scipy.stats import rankdata
 
 from ..errors import InputError
 from ..inputs.design import ObservedFit, _standardised_condition
+from ..inputs.dyadic import network_name
 from ..inputs.sparse import (DENSIFY_LIMIT, KIND_CODES, Edges, SparseNetwork,  # noqa: F401
                              SparsePrepared, Term, is_sparse, prepare_sparse, takes)
 from ..kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
@@ -529,9 +530,9 @@ def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = 
     """QAP correlation on the sparse path: ``b`` is relabelled, as on the dense path, so the
     sum runs over ``a``'s edges with ``b`` read at (pi(i), pi(j))."""
     check_correlation(method=method, storage=storage)
-    bname = getattr(b, "name", None) or "b"
+    bname = network_name(b) or "b"
     prep = prepare_sparse(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
-                          response_name=getattr(a, "name", None) or "a")
+                          response_name=network_name(a) or "a")
     N = prep.n_dyads
     if method == "spearman":
         t = prep.terms[0]
