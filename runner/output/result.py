@@ -71,6 +71,10 @@ class _Common:
     #: workers that computed the chunks of this call (None: read from a run file, or a
     #: Dask cluster)
     workers: int | None = None
+    #: the observed statistic of each tested term through the permutation kernels (the
+    #: identity relabelling), which the p-values compare ``null`` with; ``stat`` holds the
+    #: fit's own, equal to rounding
+    observed: np.ndarray = field(default=None)
 
     # -- shared helpers -----------------------------------------------------------------
     def _estimates(self) -> np.ndarray:

@@ -201,7 +201,8 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
         response=summary["response"], exceed=pv.exceed, failed=pv.failed,
         chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())) + st.notes,
         alpha=st.rule.alpha, stop=st.rule.to_dict(), stopped_by=st.stopped_by,
-        planned=st.planned, workers=workers)
+        planned=st.planned, workers=workers,
+        observed=np.asarray(observed["kernel_stat"], dtype=np.float64))
     if summary["kind"] == "correlation":
         return CorrelationResult(p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less,
                                  p_se=pv.p_se, p_interval=pv.p_interval,
