@@ -42,151 +42,186 @@ out ``reassoc`` (kernels/options.py), so the compiler keeps this order.
 import numpy as np
 from numba import njit
 
+from .gather import prefetch
 from .options import KERNEL_OPTIONS
 
 # Predictor codes of the sparse path (kernels/sparse.py uses the same numbers).
 SAME, GAP, SENDER, RECEIVER, PAIR_SUM, NETWORK = 0, 1, 2, 3, 4, 5
 # Reader modes of ``edge_pair_sums``.
 FORWARD, BACKWARD = 0, 1
-# Edges handled together by each reader in turn (their arrays stay in cache).
+# Edges handled together by each derived reader in turn (their arrays stay in cache).
 EDGE_BLOCK = 2048
+# Source nodes ahead whose mapped row pointer, and whose mapped row, are prefetched while a
+# run of edges reads its own row.
+PTR_AHEAD = 4
+ROW_AHEAD = 2
 
 
 @njit(**KERNEL_OPTIONS)
-def _row_find(nptr, nidx, nval, s, i, j):
-    """Value of row table ``s`` at (i, j): binary search of j in row i; 0.0 if absent."""
-    lo = nptr[s, i]
-    hi = nptr[s, i + 1]
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        v = nidx[mid]
-        if v < j:
-            lo = mid + 1
-        elif v > j:
-            hi = mid
-        else:
-            return nval[mid]
-    return 0.0
-
-
-@njit(**KERNEL_OPTIONS)
-def edge_pair_sums(src, dst, w, eptr, readers, rptr, rcenter, attr_r, attr_c, nptr, nidx,
-                   nval, row_perms, col_perms, out, one_mode):
+def edge_pair_sums(src, dst, w, lrow, readers, segs, rcenter, attr_r, attr_c, nptr, nidx,
+                   nvalz, row_perms, col_perms, out, one_mode):
     """Sums over edge lists of a layer read at the mapped endpoints of each edge.
 
     Parameters
     ----------
     src, dst : int64 (E,)
-        Endpoints of the edge lists, one after the other (list s holds edges
-        eptr[s] .. eptr[s + 1] - 1; row node, column node).
+        Endpoints (row node, column node) of the edge lists, one after the other, each
+        sorted by source.
     w : float64 (E,)
         Edge values.
-    eptr : int64 (S + 1,)
-    readers : int64 (T, 3)
-        Per reader: mode (FORWARD: read at (pr(i), pc(j)); BACKWARD: at
-        (pr^-1(i), pc^-1(j))), kind (SAME, GAP or NETWORK) and column of ``attr_r`` /
-        ``attr_c`` (derived) or row table (NETWORK). Readers of list s are
-        rptr[s] .. rptr[s + 1] - 1.
-    rptr : int64 (S + 1,)
+    lrow : int64 (S, n + 1)
+        Edges of list s with source i: lrow[s, i] .. lrow[s, i + 1] - 1.
+    readers : int64 (T, 4)
+        Per reader: edge list, mode (FORWARD: the other layer is read at (pr(i), pc(j));
+        BACKWARD: at (pr^-1(i), pc^-1(j))), kind (SAME, GAP or NETWORK), and column of
+        ``attr_r`` / ``attr_c`` (derived) or row table (NETWORK).
+    segs : int64 (K, 2)
+        Readers segs[k, 0] .. segs[k, 1] - 1 form segment k: derived readers of one list
+        and mode (one pass over the list's edges serves them all), or network readers of
+        one row table and mode (one sweep over source nodes: the mapped row is expanded
+        once for the edges of every list).
     rcenter : float64 (T,)
         Mean of the layer each reader evaluates.
     attr_r : float64 (n, Q); attr_c : float64 (m, Q)
         Row and column attributes of the derived layers read on edges (``same``: category
         codes as numbers; ``gap``: values). One-mode: the same array twice.
-    nptr : int64 (P, n + 1); nidx : int64 (nnz,); nval : float64 (nnz,)
-        Network layers by rows (sorted column indices; undirected: both orientations).
+    nptr : int64 (P, n + 1); nidx : int32 (nnz,); nvalz : float64 (nnz + 1,)
+        Network layers by rows: row i of table s holds the sorted column indices
+        nidx[nptr[s, i]:nptr[s, i + 1]], with values nvalz[1 + same positions]
+        (nvalz[0] = 0: the value of an absent dyad). Undirected: both orientations.
     row_perms : int64 (B, n); col_perms : int64 (B, m)
         Relabellings (one-mode: the same array).
     out : float64 (B, T)
-        Written: out[b, t] = sum over edges e of list s of w_e * (x_t(mapped endpoints of
-        e) - rcenter[t]).
+        Written: out[b, t] = sum over the edges e of the reader's list, in stored order, of
+        w_e * (x_t(mapped endpoints of e) - rcenter[t]).
     one_mode : bool
         Rows and columns are one node set relabelled together.
+
+    Notes
+    -----
+    A network reader expands the mapped row of its table into ``where`` (column ->
+    1 + position of the value, 0 elsewhere) once per source node, so each edge reads its
+    value without a search; the rows of later source nodes are prefetched.
     """
     n_perm = row_perms.shape[0]
     n = row_perms.shape[1]
     m = col_perms.shape[1]
     n_attr = attr_r.shape[1]
-    n_lists = eptr.shape[0] - 1
     n_read = readers.shape[0]
     need_fwd = False
     need_bwd = False
     for t in range(n_read):
-        if readers[t, 0] == FORWARD:
+        if readers[t, 1] == FORWARD:
             need_fwd = True
         else:
             need_bwd = True
-    inv_r = np.empty(n, dtype=np.int64)
-    inv_c = inv_r if one_mode else np.empty(m, dtype=np.int64)
-    fwd_r = np.empty((n, n_attr))
-    fwd_c = fwd_r if one_mode else np.empty((m, n_attr))
-    bwd_r = np.empty((n, n_attr))
-    bwd_c = bwd_r if one_mode else np.empty((m, n_attr))
-    acc = np.empty(max(n_read, 1))
+    # int32 copies of the node maps: the random reads of a pass stay in a smaller cache
+    fwd_r = np.empty(n, dtype=np.int32)
+    fwd_c = fwd_r if one_mode else np.empty(m, dtype=np.int32)
+    inv_r = np.empty(n, dtype=np.int32)
+    inv_c = inv_r if one_mode else np.empty(m, dtype=np.int32)
+    afwd_r = np.empty((n, n_attr))
+    afwd_c = afwd_r if one_mode else np.empty((m, n_attr))
+    abwd_r = np.empty((n, n_attr))
+    abwd_c = abwd_r if one_mode else np.empty((m, n_attr))
+    where = np.zeros(m, dtype=np.int32)
+    acc = np.zeros(max(n_read, 1))
     for b in range(n_perm):
-        pr = row_perms[b]
-        pc = pr if one_mode else col_perms[b]
+        for i in range(n):
+            fwd_r[i] = row_perms[b, i]
+        if not one_mode:
+            for j in range(m):
+                fwd_c[j] = col_perms[b, j]
         if need_bwd:
             for i in range(n):
-                inv_r[pr[i]] = i
+                inv_r[fwd_r[i]] = i
             if not one_mode:
                 for j in range(m):
-                    inv_c[pc[j]] = j
+                    inv_c[fwd_c[j]] = j
         if n_attr > 0:
-            # relabelled copies of the attributes: fwd[v] = attr[p(v)], bwd[v] = attr[p^-1(v)]
+            # relabelled copies of the attributes: afwd[v] = attr[p(v)], abwd[v] = attr[p^-1(v)]
             if need_fwd:
                 for v in range(n):
                     for q in range(n_attr):
-                        fwd_r[v, q] = attr_r[pr[v], q]
+                        afwd_r[v, q] = attr_r[fwd_r[v], q]
                 if not one_mode:
                     for v in range(m):
                         for q in range(n_attr):
-                            fwd_c[v, q] = attr_c[pc[v], q]
+                            afwd_c[v, q] = attr_c[fwd_c[v], q]
             if need_bwd:
                 for v in range(n):
                     for q in range(n_attr):
-                        bwd_r[v, q] = attr_r[inv_r[v], q]
+                        abwd_r[v, q] = attr_r[inv_r[v], q]
                 if not one_mode:
                     for v in range(m):
                         for q in range(n_attr):
-                            bwd_c[v, q] = attr_c[inv_c[v], q]
-        for s in range(n_lists):
-            lo = eptr[s]
-            hi = eptr[s + 1]
-            for t in range(rptr[s], rptr[s + 1]):
-                acc[t] = 0.0
-            for e0 in range(lo, hi, EDGE_BLOCK):
-                e1 = min(e0 + EDGE_BLOCK, hi)
-                for t in range(rptr[s], rptr[s + 1]):
-                    kind = readers[t, 1]
-                    col = readers[t, 2]
+                            abwd_c[v, q] = attr_c[inv_c[v], q]
+        for t in range(n_read):
+            acc[t] = 0.0
+        for k in range(segs.shape[0]):
+            t0 = segs[k, 0]
+            t1 = segs[k, 1]
+            if readers[t0, 1] == FORWARD:
+                tr = afwd_r
+                tc = afwd_c
+                mr = fwd_r
+                mcol = fwd_c
+            else:
+                tr = abwd_r
+                tc = abwd_c
+                mr = inv_r
+                mcol = inv_c
+            if readers[t0, 2] != NETWORK:
+                # edges in blocks that stay in cache while each reader runs a tight loop
+                # over them; each reader still sums its edges in order
+                s = readers[t0, 0]
+                for e0 in range(lrow[s, 0], lrow[s, n], EDGE_BLOCK):
+                    e1 = min(e0 + EDGE_BLOCK, lrow[s, n])
+                    for t in range(t0, t1):
+                        col = readers[t, 3]
+                        mc = rcenter[t]
+                        acc_t = acc[t]
+                        if readers[t, 2] == SAME:
+                            for e in range(e0, e1):
+                                x = 1.0 if tr[src[e], col] == tc[dst[e], col] else 0.0
+                                # acc += w_e * (x at the mapped endpoints - mean of x)
+                                acc_t += w[e] * (x - mc)
+                        else:
+                            for e in range(e0, e1):
+                                acc_t += w[e] * (abs(tr[src[e], col] - tc[dst[e], col]) - mc)
+                        acc[t] = acc_t
+                continue
+            ptr = nptr[readers[t0, 3]]
+            for i in range(n):
+                # prefetch the mapped rows of later sources: their pointers, then the rows
+                if i + PTR_AHEAD < n:
+                    prefetch(ptr, mr[i + PTR_AHEAD])
+                if i + ROW_AHEAD < n:
+                    q0 = ptr[mr[i + ROW_AHEAD]]
+                    prefetch(nidx, q0)
+                    prefetch(nvalz, q0 + 1)
+                busy = False
+                for t in range(t0, t1):
+                    s = readers[t, 0]
+                    if lrow[s, i + 1] > lrow[s, i]:
+                        busy = True
+                if not busy:
+                    continue
+                u = mr[i]
+                for p in range(ptr[u], ptr[u + 1]):
+                    where[nidx[p]] = p + 1
+                for t in range(t0, t1):
+                    s = readers[t, 0]
                     mc = rcenter[t]
-                    if readers[t, 0] == FORWARD:
-                        tr = fwd_r
-                        tc = fwd_c
-                        mr = pr
-                        mcol = pc
-                    else:
-                        tr = bwd_r
-                        tc = bwd_c
-                        mr = inv_r
-                        mcol = inv_c
                     acc_t = acc[t]
-                    if kind == SAME:
-                        for e in range(e0, e1):
-                            x = 1.0 if tr[src[e], col] == tc[dst[e], col] else 0.0
-                            # acc += w_e * (x at the mapped endpoints - mean of x)
-                            acc_t += w[e] * (x - mc)
-                    elif kind == GAP:
-                        for e in range(e0, e1):
-                            acc_t += w[e] * (abs(tr[src[e], col] - tc[dst[e], col]) - mc)
-                    else:
-                        for e in range(e0, e1):
-                            x = _row_find(nptr, nidx, nval, col, mr[src[e]], mcol[dst[e]])
-                            acc_t += w[e] * (x - mc)
+                    for e in range(lrow[s, i], lrow[s, i + 1]):
+                        # acc += w_e * (x_net(m(i), m(j)) - mean of x_net)
+                        acc_t += w[e] * (nvalz[where[mcol[dst[e]]]] - mc)
                     acc[t] = acc_t
-            for t in range(rptr[s], rptr[s + 1]):
-                out[b, t] = acc[t]
+                for p in range(ptr[u], ptr[u + 1]):
+                    where[nidx[p]] = 0
+        for t in range(n_read):
+            out[b, t] = acc[t]
 
 
 @njit(**KERNEL_OPTIONS)

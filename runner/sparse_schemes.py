@@ -158,9 +158,10 @@ def _separable_parts(layer: PairLayer):
 
 
 def _row_tables(layers, which, n, undirected):
-    """Network layers ``which`` by rows: (nptr (P, n + 1), nidx, nval); see kernels."""
+    """Network layers ``which`` by rows: (nptr (P, n + 1), nidx int32, nvalz), see
+    ``kernels.sparse_pairs.edge_pair_sums`` (nvalz[0] = 0, the values from index 1)."""
     nptr = np.zeros((max(len(which), 1), n + 1), dtype=np.int64)
-    idx, val = [], []
+    idx, val = [], [np.zeros(1)]
     offset = 0
     for s, li in enumerate(which):
         ed = layers[li].edges
@@ -173,9 +174,9 @@ def _row_tables(layers, which, n, undirected):
         idx.append(j[o])
         val.append(w[o])
         offset += i.shape[0]
-    nidx = np.concatenate(idx) if idx else np.zeros(1, dtype=np.int64)
-    nval = np.concatenate(val) if val else np.zeros(1)
-    return nptr, np.ascontiguousarray(nidx, dtype=np.int64), np.ascontiguousarray(nval)
+    nidx = np.concatenate(idx) if idx else np.zeros(1, dtype=np.int32)
+    return (nptr, np.ascontiguousarray(nidx, dtype=np.int32),
+            np.ascontiguousarray(np.concatenate(val)))
 
 
 class _Columns:
@@ -256,15 +257,15 @@ class PairSums:
     src: np.ndarray
     dst: np.ndarray
     w: np.ndarray
-    eptr: np.ndarray
+    lrow: np.ndarray
     readers: np.ndarray
-    rptr: np.ndarray
+    segs: np.ndarray
     rcenter: np.ndarray
     edge_attr_r: np.ndarray
     edge_attr_c: np.ndarray
     nptr: np.ndarray
     nidx: np.ndarray
-    nval: np.ndarray
+    nvalz: np.ndarray
     edge_pos: np.ndarray
     # sums over nodes (rows, then columns)
     node_vals_r: np.ndarray
@@ -309,9 +310,9 @@ class PairSums:
         out = np.zeros((B, self.R * self.F))
         if self.edge_pos.size:
             tmp = np.empty((B, self.edge_pos.size))
-            edge_pair_sums(self.src, self.dst, self.w, self.eptr, self.readers, self.rptr,
+            edge_pair_sums(self.src, self.dst, self.w, self.lrow, self.readers, self.segs,
                            self.rcenter, self.edge_attr_r, self.edge_attr_c, self.nptr,
-                           self.nidx, self.nval, row_perms, col_perms, tmp, dy.one_mode)
+                           self.nidx, self.nvalz, row_perms, col_perms, tmp, dy.one_mode)
             out[:, self.edge_pos] += tmp
         for vals, wts, spec, pos, perms in (
                 (self.node_vals_r, self.node_wts_r, self.node_spec_r, self.node_pos_r,
@@ -346,12 +347,20 @@ class PairSums:
 
 
 def build_pair_sums(layers: list[PairLayer], rel: list[int], fix: list[int],
-                    dyads: PairDyads) -> PairSums:
+                    dyads: PairDyads, *, look_up: str = "relabelled") -> PairSums:
     """Kernel inputs of C[r, f] = sum over D of (x_rel[r] relabelled - mean) * (x_fix[f] - mean).
 
     Pairs are routed by kind (module docstring): separable layers to sums over nodes;
-    networks to edge passes; ``same``/``gap`` pairs to their closed forms.
+    networks to edge passes; ``same``/``gap`` pairs to their closed forms. ``look_up``:
+    for a pair of two networks, ``"relabelled"`` iterates the fixed network's edges and
+    looks the relabelled one up at (pi(i), pi(j)); ``"fixed"`` iterates the relabelled
+    one's edges and looks the fixed one up at (pi^-1(u), pi^-1(v)). Lookups of one network
+    share a sweep over source nodes, so the choice that looks up the fewest networks is
+    the fastest (dsp: "relabelled"; Freedman–Lane: "fixed"; the response is then never
+    looked up).
     """
+    if look_up not in ("relabelled", "fixed"):
+        raise ValueError(f"look_up must be 'relabelled' or 'fixed'; got {look_up!r}")
     dy = dyads
     n, m = dy.n, dy.m
     one_mode = dy.one_mode
@@ -434,7 +443,7 @@ def build_pair_sums(layers: list[PairLayer], rel: list[int], fix: list[int],
                     node_term("c", pos, ("ri", a), ri, ("sepc", c), gc - beta)
                 halve.append(pos)
             elif ka == NETWORK or kc == NETWORK:
-                if kc == NETWORK and (ka != NETWORK or lc.edges.size <= la.edges.size):
+                if kc == NETWORK and (ka != NETWORK or look_up == "relabelled"):
                     # iterate the fixed layer's edges, read x_a at (pi(i), pi(j))
                     lst, mode, other = c, FORWARD, a
                 else:
@@ -469,20 +478,38 @@ def build_pair_sums(layers: list[PairLayer], rel: list[int], fix: list[int],
         col = vals[0].keys[li]
         rank_r[:, col], rank_c[:, col] = _ranks(dy, layers[li].row, layers[li].col)
 
-    # edge lists in layer order, their readers grouped by list
-    src, dst, w, eptr, readers, rptr, rcenter, epos = [], [], [], [0], [], [0], [], []
-    for li in sorted(edge_lists):
+    # edge lists in layer order; readers in segments: derived readers of one list and mode,
+    # network readers of one row table and mode
+    lists = sorted(edge_lists)
+    src, dst, w = [], [], []
+    lrow = np.zeros((max(len(lists), 1), n + 1), dtype=np.int64)
+    offset = 0
+    for s_, li in enumerate(lists):
         ed = layers[li].edges
         src.append(ed.src)
         dst.append(ed.dst)
         w.append(ed.w)
-        eptr.append(eptr[-1] + ed.size)
-        for mode, kind, col, mean, pos in edge_lists[li]:
-            readers.append((mode, kind, col))
-            rcenter.append(mean)
-            epos.append(pos)
-        rptr.append(len(readers))
-    nptr, nidx, nval = _row_tables(layers, lookups, n, undirected)
+        lrow[s_, 1:] = np.cumsum(np.bincount(ed.src, minlength=n))
+        lrow[s_] += offset
+        offset += ed.size
+    entries = [(s_, mode, kind, col, mean, pos) for s_, li in enumerate(lists)
+               for mode, kind, col, mean, pos in edge_lists[li]]
+    entries.sort(key=lambda e: (e[2] == NETWORK,) + ((e[3], e[1], e[0]) if e[2] == NETWORK
+                                                      else (e[0], e[1], 0)))
+    readers = [e[:4] for e in entries]
+    rcenter = [e[4] for e in entries]
+    epos = [e[5] for e in entries]
+
+    def segment_key(e):
+        return (e[3], e[1]) if e[2] == NETWORK else (e[0], e[1], -1)
+
+    segs = []
+    for t, e in enumerate(entries):
+        if t == 0 or segment_key(e) != segment_key(entries[t - 1]):
+            segs.append([t, t + 1])
+        else:
+            segs[-1][1] = t + 1
+    nptr, nidx, nvalz = _row_tables(layers, lookups, n, undirected)
 
     def cat(parts, dtype):
         return np.ascontiguousarray(np.concatenate(parts) if parts else np.zeros(0, dtype),
@@ -508,12 +535,12 @@ def build_pair_sums(layers: list[PairLayer], rel: list[int], fix: list[int],
     nr, nc = node["r"], node["c"]
     return PairSums(
         dyads=dy, R=R, F=F,
-        src=cat(src, np.int64), dst=cat(dst, np.int64), w=cat(w, np.float64),
-        eptr=np.array(eptr, dtype=np.int64),
-        readers=np.array(readers, dtype=np.int64).reshape(-1, 3),
-        rptr=np.array(rptr, dtype=np.int64), rcenter=np.array(rcenter, dtype=np.float64),
+        src=cat(src, np.int64), dst=cat(dst, np.int64), w=cat(w, np.float64), lrow=lrow,
+        readers=np.array(readers, dtype=np.int64).reshape(-1, 4),
+        segs=np.array(segs, dtype=np.int64).reshape(-1, 2),
+        rcenter=np.array(rcenter, dtype=np.float64),
         edge_attr_r=edge_attr[0].array(), edge_attr_c=edge_attr[1].array(),
-        nptr=nptr, nidx=nidx, nval=nval, edge_pos=np.array(epos, dtype=np.int64),
+        nptr=nptr, nidx=nidx, nvalz=nvalz, edge_pos=np.array(epos, dtype=np.int64),
         node_vals_r=nr["vals"].array(), node_wts_r=nr["wts"].array(),
         node_spec_r=np.array(nr["spec"], dtype=np.int64).reshape(-1, 2),
         node_pos_r=np.array(nr["pos"], dtype=np.int64),
@@ -629,7 +656,8 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     xs = list(range(k))
     ylayer = k
     rel, fix = (xs, xs + [ylayer]) if scheme == "dsp" else (xs + [ylayer], xs)
-    pairs = build_pair_sums(layers, rel, fix, dyads)
+    pairs = build_pair_sums(layers, rel, fix, dyads,
+                            look_up="relabelled" if scheme == "dsp" else "fixed")
     inv_scale = 1.0 / np.outer(sd[rel], sd[fix])
 
     # observed Gram of [1, x_1..x_k, y] in standardised units (layer l at 1 + l)
