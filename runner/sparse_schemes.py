@@ -24,7 +24,9 @@ Each C[a, c] has a cheap exact form (``kernels.sparse_pairs``):
   fixed, the other layer's row and column sums read at relabelled nodes): O(n);
 - a sparse network with anything else: one pass over an edge list, the other layer read
   at the mapped endpoints (by the substitution u = pi(i), v = pi(j) either side may be the
-  one iterated; network x network iterates the shorter list and looks the other up);
+  one iterated). Network x network: dsp iterates the fixed network's edges and reads the
+  relabelled one, Freedman–Lane the other way round, so the response is never looked up
+  and every edge list that reads one network shares a sweep over its mapped rows;
 - ``same`` x ``same``: a contingency table of (fixed category, relabelled category), one
   fixed category at a time: O(n + categories);
 - ``gap`` x ``same``: nodes in increasing order of the gap attribute, running counts and
@@ -50,12 +52,15 @@ import numpy as np
 from .kernels.sparse_pairs import (BACKWARD, FORWARD, GAP, NETWORK, PAIR_SUM, RECEIVER, SAME,
                                    SENDER, edge_pair_sums, gap_gap_sums, gap_same_sums,
                                    node_pair_sums, same_same_sums)
+from .errors import InputError
 from .kernels.stats import fill_gram, regression_stats
 from .schemes import _transform, check_options
 from .sparse import (Edges, Moments, SparsePrepared, _check_collinear, _response_sd,
                      fixed_products)
 
 SEPARABLE = (SENDER, RECEIVER, PAIR_SUM)
+# Row tables hold int32 column indices and positions (kernels.sparse_pairs.edge_pair_sums).
+INT32_LIMIT = 2 ** 31 - 1
 
 
 # --- layers and dyad sets ---------------------------------------------------------------------
@@ -174,6 +179,10 @@ def _row_tables(layers, which, n, undirected):
         idx.append(j[o])
         val.append(w[o])
         offset += i.shape[0]
+    if offset >= INT32_LIMIT or n >= INT32_LIMIT:
+        raise InputError(f"the sparse dsp and freedman-lane kernels index rows with 32-bit "
+                         f"integers: at most {INT32_LIMIT - 1:,} nodes and stored entries; "
+                         f"got {n:,} nodes and {offset:,} entries")
     nidx = np.concatenate(idx) if idx else np.zeros(1, dtype=np.int32)
     return (nptr, np.ascontiguousarray(nidx, dtype=np.int32),
             np.ascontiguousarray(np.concatenate(val)))
