@@ -1,4 +1,5 @@
-"""DSP and Freedman–Lane on the sparse path: O(edges + n) memory, O(edges + n log n) per relabelling.
+"""DSP and Freedman–Lane on the sparse path: memory O(edges + n), time per relabelling
+O(edges + n log n).
 
 The dense engine reads every scheme off the Gram matrix of v = [1, relabelled layers,
 fixed layers] through a linear map per tested term (``schemes``). With complete data over

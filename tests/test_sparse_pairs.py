@@ -255,7 +255,7 @@ def test_node_pair_sums_direct(rng):
             assert out[b, t] == pytest.approx(vals[p, pc] @ wts[:, qc], rel=KERNEL_RTOL)
 
 
-# --- invariance ------------------------------------------------------------------------------------
+# --- invariance -------------------------------------------------------------------------------
 @pytest.mark.parametrize("mode", ["directed", "undirected", "two-mode"])
 def test_sums_are_bit_identical_across_batch_splits(rng, mode):
     """A relabelling's sums do not depend on the batch that computes it (common practice:

@@ -108,7 +108,7 @@ CASES = {
 }
 
 
-# --- against the dense engine ----------------------------------------------------------------------
+# --- against the dense engine -----------------------------------------------------------------
 @pytest.mark.parametrize("case", list(CASES))
 def test_statistics_match_dense_engine(rng, case):
     prep, dprep, _, _ = problem(rng, 240, **CASES[case])
@@ -151,7 +151,7 @@ def test_statistics_match_dense_engine_n2000(rng, case):
             assert close(plan.statistics(rows, rows), ref.statistics(rows, rows))
 
 
-# --- observed fit ----------------------------------------------------------------------------------
+# --- observed fit -----------------------------------------------------------------------------
 @pytest.mark.parametrize("directed", [True, False])
 def test_observed_statistic_is_the_full_model_fit(rng, directed):
     prep, _, Y, dense = problem(rng, 70, directed=directed)
@@ -175,7 +175,7 @@ def test_observed_statistic_is_the_full_model_fit(rng, directed):
         assert r2 == pytest.approx(fit.rsquared, rel=FIT_RTOL)
 
 
-# --- exact enumeration -------------------------------------------------------------------------------
+# --- exact enumeration ------------------------------------------------------------------------
 @pytest.mark.parametrize("directed", [True, False])
 @pytest.mark.parametrize("scheme", SCHEMES)
 def test_exact_enumeration_matches_brute_force_n6(rng, scheme, directed):
@@ -203,7 +203,7 @@ def test_exact_enumeration_matches_brute_force_n6(rng, scheme, directed):
             np.testing.assert_array_equal(a, b)
 
 
-# --- invariance and memory ---------------------------------------------------------------------------
+# --- invariance and memory --------------------------------------------------------------------
 def test_null_is_bit_identical_for_any_chunking_and_jobs(rng):
     prep, _, _, _ = problem(rng, 80, directed=True, groups=True, dyads="within")
     for scheme in SCHEMES:
