@@ -16,7 +16,7 @@ from .routes import correlation as _correlation
 from .routes import linear as _linear
 from .routes import logistic as _logistic
 from .routes import sparse as _sparse
-from .settings import check_regression, run_options
+from .settings import check_ci, check_regression, run_options
 
 __all__ = ["correlate", "open_result", "regress"]
 
@@ -28,7 +28,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             out: Any = None, progress: bool | Callable[[int, int], None] = False,
             storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
             shard: str | None = None, provenance: dict | None = None,
-            stop: Any = None, overwrite_inputs: bool = False) -> RegressionResult:
+            stop: Any = None, overwrite_inputs: bool = False,
+            ci: Any = 0.95) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
@@ -78,6 +79,12 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         Sequential stopping rule, applied at chunk boundaries to the finished prefix in
         permutation order (same seed and chunk size, same stopping point, whatever
         ``jobs``); a name takes the rule's defaults (see dyadperm.pipeline.stopping).
+    ci : float or None
+        Level of the interval of each coefficient (default 0.95; None: none): the values b
+        that the scheme's own test of beta = b does not reject at 1 - ci, on the same
+        relabellings (test inversion; dyadperm.pipeline.intervals). Linear model, schemes
+        dsp and freedman-lane with statistic t; scheme y gets none (its null relabels the
+        whole response, which is no null of beta = b alone), and a note says so.
     overwrite_inputs : bool
         Allow the engine to standardise the input arrays in place instead of copying them
         into its layer stack, which halves the memory of a large dense study. Used only
@@ -104,6 +111,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
                        chunk_size=chunk_size, out=out, progress=progress, backend=backend,
                        scheduler=scheduler, shard=shard, stop=stop, provenance=provenance)
     check_regression(model=model, scheme=scheme, statistic=statistic, storage=storage)
+    level = check_ci(ci)
     where = dict(directed=directed, groups=groups, dyads=dyads)
     if model == "logistic":  # binary response: Newton refits or score statistics
         plan = _logistic.plan(y, predictors, scheme=scheme, statistic=statistic,
@@ -113,7 +121,8 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
                             storage=storage, **where)
     else:
         plan = _linear.plan(y, predictors, scheme=scheme, statistic=statistic,
-                            storage=storage, overwrite_inputs=overwrite_inputs, **where)
+                            storage=storage, overwrite_inputs=overwrite_inputs, ci=level,
+                            **where)
     return run(plan, opts)
 
 

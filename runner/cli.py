@@ -76,6 +76,8 @@ def _progress(progress: Optional[bool]):
 _STOP_HELP = ("Sequential stopping: none, besag-clifford or gandy (overrides the study "
               "file).")
 _STOP_H_HELP = "besag-clifford: exceedances h that end a term (default 10)."
+_CI_HELP = ("Level of the coefficient intervals, e.g. 0.9 (overrides the file; 0: none). "
+            "Intervals invert the scheme's own test (dsp, freedman-lane).")
 _STOP_RISK_HELP = ("gandy: bound on the chance of a decision at alpha other than an "
                    "infinite run's (default 0.001).")
 
@@ -104,6 +106,7 @@ def run(
     stop: Optional[str] = typer.Option(None, help=_STOP_HELP),
     stop_exceedances: Optional[int] = typer.Option(None, help=_STOP_H_HELP),
     stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
+    ci: Optional[float] = typer.Option(None, help=_CI_HELP),
 ) -> None:
     """Run a study and print its table (and keep a run file with --out)."""
     st = load_study(study)
@@ -116,7 +119,8 @@ def run(
     res = st.run(permutations=permutations, seed=seed, jobs=jobs, out=target,
                  progress=_progress(progress), chunk_size=chunk_size,
                  backend=backend, scheduler=scheduler, shard=shard, stop=stop,
-                 stop_exceedances=stop_exceedances, stop_risk=stop_risk)
+                 stop_exceedances=stop_exceedances, stop_risk=stop_risk,
+                 ci=False if ci == 0 else ci)
     for note in st.notes:
         _say(f"note: {note}")
     if shard is not None:

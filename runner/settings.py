@@ -67,6 +67,17 @@ def check_regression(*, model: Any, scheme: Any, statistic: Any, storage: Any) -
             raise InputError(f"{name} must be one of {', '.join(offered)}; got {value!r}")
 
 
+def check_ci(ci: Any) -> float | None:
+    """The level of coefficient intervals (0 < ci < 1), or None for none."""
+    if ci is None or ci is False:
+        return None
+    if isinstance(ci, bool) or not isinstance(ci, (int, float, np.integer, np.floating)) \
+            or not math.isfinite(float(ci)) or not 0 < float(ci) < 1:
+        raise InputError(f"ci must be a level with 0 < ci < 1 (0.95 for 95% intervals), or "
+                         f"None for no intervals; got {ci!r}")
+    return float(ci)
+
+
 def check_correlation(*, method: Any, storage: Any) -> None:
     if method not in METHODS:
         raise InputError(f"method must be 'pearson' or 'spearman'; got {method!r}")

@@ -13,7 +13,7 @@ from typing import Any
 
 from . import api as _api
 from .inputs.study_file import StudyInputs, _arg_error, _integer, read_study
-from .settings import stop_rule
+from .settings import check_ci, stop_rule
 
 __all__ = ["Study", "load_study"]
 
@@ -25,7 +25,8 @@ class Study(StudyInputs):
             jobs: int | None = None, out: str | Path | None = None, progress: Any = False,
             chunk_size: int | None = None, backend: str = "threads",
             scheduler: str | None = None, shard: str | None = None, stop: str | None = None,
-            stop_exceedances: int | None = None, stop_risk: float | None = None) -> Any:
+            stop_exceedances: int | None = None, stop_risk: float | None = None,
+            ci: Any = None) -> Any:
         """Run the study with the engine; arguments left as None use the file's settings.
 
         Parameters
@@ -47,8 +48,11 @@ class Study(StudyInputs):
             Where chunks run ("threads", "processes", "dask" with a scheduler address) and
             which shard "i/N" of the chunks to compute (see ``dyadperm.regress``).
         stop, stop_exceedances, stop_risk : optional
-            Sequential stopping rule and its settings (see ``dyadperm.precision``); a
-            setting given without ``stop`` applies to the file's rule.
+            Sequential stopping rule and its settings (see ``dyadperm.pipeline.stopping``);
+            a setting given without ``stop`` applies to the file's rule.
+        ci : float or False, optional
+            Level of the coefficient intervals (regressions); False: none. Default: the
+            file's ``ci`` (0.95 when it sets none).
 
         Returns
         -------
@@ -98,8 +102,8 @@ class Study(StudyInputs):
             (predictor,) = predictors.values()
             return _api.correlate(response, predictor, method=t["method"], **common)
         return _api.regress(response, dict(predictors), model=t["model"],
-                                scheme=t["scheme"], statistic=t["statistic"],
-                                **common)
+                            scheme=t["scheme"], statistic=t["statistic"],
+                            ci=t["ci"] if ci is None else check_ci(ci), **common)
 
 
 def load_study(path: str | Path) -> Study:

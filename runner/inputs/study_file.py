@@ -43,6 +43,7 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     stop = "none"             # none | besag-clifford | gandy (sequential stopping)
     stop_exceedances = 10     # besag-clifford only: h, exceedances that end a term
     stop_risk = 0.001         # gandy only: bound on the chance of a different decision
+    ci = 0.95                 # regression only: level of the coefficient intervals (false: none)
 
     [output]
     file = "water_run.h5"     # optional run file, relative to the study file
@@ -86,7 +87,7 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
                   "pair_sum", "reverse"),
     "test": ("kind", "model", "scheme", "statistic", "method", "permutations", "seed", "alpha",
              "exact", "groups", "dyads", "jobs", "chunk_size", "stop", "stop_exceedances",
-             "stop_risk"),
+             "stop_risk", "ci"),
     "output": ("file",),
 }
 _DERIVED = {"same": same, "gap": gap, "sender": sender, "receiver": receiver,
@@ -343,6 +344,19 @@ def _test_entry(te: dict, check: _Checker, n_predictors: int) -> dict:
     test["chunk_size"] = check.integer(sec, te, "chunk_size", _DEFAULTS["chunk_size"],
                                        minimum=1)
     _stop_entry(te, test, check)
+    test["ci"] = 0.95 if kind == "regression" else None
+    if "ci" in te:
+        if kind != "regression":
+            raise check.error(sec, "ci", "applies to kind = regression only (kind is "
+                              f"{kind})", te["ci"])
+        ci = te["ci"]
+        if ci is False:
+            test["ci"] = None
+        elif isinstance(ci, bool) or not isinstance(ci, (int, float)) or not 0 < ci < 1:
+            raise check.error(sec, "ci", "must be a level with 0 < ci < 1 (0.95 for 95% "
+                              "intervals), or false for none", ci)
+        else:
+            test["ci"] = float(ci)
     return test
 
 

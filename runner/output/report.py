@@ -25,8 +25,9 @@ from ..pipeline import store
 from ..pipeline.run import open_result
 from . import plots
 from .result import TERM_COLUMNS, _plain, term_rows
-from .table import (NOTE_ADJUSTED, NOTE_INTERVAL, NOTE_ONE, NOTE_P, _alpha, _interval, _num,
-                    _pval, _stop_lines, format_table, header_lines, matrix_lines)
+from .table import (NOTE_ADJUSTED, NOTE_CI, NOTE_INTERVAL, NOTE_ONE, NOTE_P, _alpha, _interval, _num,
+                    _pval, _stop_lines, ci_label, ci_text, format_table, header_lines,
+                    matrix_lines)
 
 # --------------------------------------------------------------------------- CSV / JSON
 
@@ -135,7 +136,9 @@ def _result_table_html(res: Any, alpha: float) -> str:
     tested = res.tested_index()
     several = len(tested) > 1
     est_name = "estimate" if kind == "regression" else "r"
-    heads = ["term", est_name, "std.error"] + ([res.statistic] if kind == "regression" else []) \
+    label = ci_label(res)
+    heads = ["term", est_name, "std.error"] + ([label] if label is not None else []) \
+        + ([res.statistic] if kind == "regression" else []) \
         + ["p", "MC s.e.", "95% interval", "p (stat &ge; obs)", "p (stat &le; obs)"] \
         + (["adjusted p"] if several else []) + [""]
     rows = ["<tr>" + "".join(f"<th>{h if '&' in h else _e(h)}</th>" for h in heads) + "</tr>"]
@@ -143,6 +146,8 @@ def _result_table_html(res: Any, alpha: float) -> str:
     for i, term in enumerate(res.terms):
         tested_i = np.isfinite(res.p[i])
         cells = [_e(term), _e(_num(est[i], 0).strip()), _e(_num(res.se[i], 0).strip())]
+        if label is not None:
+            cells.append(_e(ci_text(res, i)))
         if kind == "regression":
             cells.append(_e(_num(res.stat[i], 0, 3).strip()))
         se = "&ndash;" if res.exact or not tested_i else _cell(res.p_se[i])
@@ -174,6 +179,8 @@ def html_text(res: Any, *, provenance: dict | None = None, alpha: float | None =
              "<br>".join(_e(x) for x in [NOTE_P] + ([] if res.exact else [NOTE_INTERVAL])
                          + [NOTE_ADJUSTED.format(k=len(tested), alpha=a) if len(tested) > 1
                             else NOTE_ONE.format(alpha=a)]
+                         + ([] if ci_label(res) is None else
+                            [NOTE_CI.format(label=ci_label(res), alpha=1 - res.ci_level)])
                          + [f"note: {n}" for n in res.notes]), "</p>"]
     if res.kind == "layers":
         parts.append("<pre>" + _e("\n".join(matrix_lines(res, alpha=a))) + "</pre>")

@@ -15,7 +15,7 @@ from .table import format_table, header_lines
 #: layer correlation results add ``LAYER_COLUMNS`` (the two networks of each pair).
 TERM_COLUMNS = ("term", "estimate", "std_error", "statistic", "p", "p_se", "p_low", "p_high",
                 "p_adjusted", "p_greater", "p_less", "exceedances", "failed", "stop_at",
-                "stop_verdict")
+                "stop_verdict", "ci_low", "ci_high", "ci_low_mc_se", "ci_high_mc_se")
 LAYER_COLUMNS = ("network_a", "network_b")
 
 
@@ -129,6 +129,15 @@ class RegressionResult(_Common):
     coef: np.ndarray = field(default=None)
     r2: float = float("nan")
     deviance: float = float("nan")
+    #: the interval of each coefficient at ``ci_level``: the values b that the scheme's own
+    #: test of beta = b does not reject, on the same relabellings (NaN for the intercept,
+    #: and where no interval is computed: see ``notes``; dyadperm.pipeline.intervals)
+    ci_low: np.ndarray = field(default=None)
+    ci_high: np.ndarray = field(default=None)
+    #: 0.95 for 95% intervals; NaN when the run computed none
+    ci_level: float = float("nan")
+    #: Monte Carlo standard error of ci_low and ci_high (p x 2), from halves of the run
+    ci_mc_se: np.ndarray = field(default=None)
 
     def _estimates(self) -> np.ndarray:
         return self.coef
@@ -206,11 +215,19 @@ def term_rows(res: _Common) -> tuple[tuple[str, ...], list[list]]:
                res.p_greater[i], res.p_less[i],
                "" if col is None else int(res.exceed[col]),
                "" if col is None else int(res.failed[col]), res.stop_at[i], verdict]
+        row += ci_cells(res, i)
         if layers:
             a, b = res.pairs[i]
             row += [res.layers[a], res.layers[b]]
         rows.append(row)
     return TERM_COLUMNS + (LAYER_COLUMNS if layers else ()), rows
+
+
+def ci_cells(res: _Common, i: int) -> list:
+    """Term i's interval and the Monte Carlo errors of its ends (NaN: none)."""
+    if getattr(res, "ci_low", None) is None:
+        return [np.nan] * 4
+    return [res.ci_low[i], res.ci_high[i], res.ci_mc_se[i][0], res.ci_mc_se[i][1]]
 
 
 def _empty(v: Any) -> bool:

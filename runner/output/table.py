@@ -23,6 +23,9 @@ NOTE_ADJUSTED = ("adjusted p: familywise, single-step max statistic over the {k}
                  "terms (Westfall & Young 1993); * marks adjusted p <= {alpha:g}")
 NOTE_ONE = "* marks p <= {alpha:g}"
 NOTE_SIDED = "one-sided p-values and exceedance counts: report --csv or --json"
+NOTE_CI = ("{label}: the coefficients that the scheme's own test, on the same relabellings, "
+           "does not reject at {alpha:g} (test inversion); the Monte Carlo errors of its ends: "
+           "report --csv or --json")
 
 
 # --------------------------------------------------------------------------- helpers
@@ -101,6 +104,22 @@ def header_lines(res: Any) -> list[str]:
     return lines
 
 
+def ci_label(res: Any) -> str | None:
+    """The column label of a result's coefficient intervals ("95% CI"), or None."""
+    level = getattr(res, "ci_level", float("nan"))
+    if level is None or not np.isfinite(level):
+        return None
+    return f"{100 * level:g}% CI"
+
+
+def ci_text(res: Any, i: int) -> str:
+    """Term i's interval as "[low, high]" ("-" where there is none)."""
+    lo, hi = res.ci_low[i], res.ci_high[i]
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return "-"
+    return f"[{_num(lo, 0).strip()}, {_num(hi, 0).strip()}]"
+
+
 def _interval(res: Any, i: int) -> str:
     if not np.isfinite(res.p[i]):
         return "-"
@@ -124,6 +143,9 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
     est_name = "estimate" if kind == "regression" else "r"
     w = max(12, max(len(t) for t in res.terms) + 2)
     cols = [(f"{'term':<{w}}", w), (f"{est_name:>11}", 11), (f"{'std.error':>11}", 11)]
+    label = ci_label(res)
+    if label is not None:
+        cols.append((f"{label:>23}", 23))
     if kind == "regression":
         cols.append((f"{res.statistic:>9}", 9))
     cols += [(f"{'p':>9}", 9), (f"{'MC s.e.':>9}", 9), (f"{'95% interval':>21}", 21)]
@@ -135,6 +157,8 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
     est = res._estimates()
     for i, term in enumerate(res.terms):
         row = f"{term:<{w}}{_num(est[i], 11)}{_num(res.se[i], 11)}"
+        if label is not None:
+            row += f"{ci_text(res, i):>23}"
         if kind == "regression":
             row += _num(res.stat[i], 9, 3)
         tested_i = np.isfinite(res.p[i])
@@ -153,6 +177,8 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
     lines.append(NOTE_ADJUSTED.format(k=len(tested), alpha=a) if several
                  else NOTE_ONE.format(alpha=a))
     lines.append(NOTE_SIDED)
+    if label is not None:
+        lines.append(NOTE_CI.format(label=label, alpha=1 - res.ci_level))
     if np.any(np.asarray(res.failed) > 0):
         names = [res.terms[i] for i in tested]
         bad = ", ".join(f"{t}: {int(f)}" for t, f in zip(names, res.failed) if f)

@@ -22,6 +22,12 @@ from .permutations import Blocks, draw, enumerate_exact
 Plan = Any
 
 
+def row_width(plan: Plan) -> int:
+    """Numbers per relabelling a plan returns: its ``width`` (statistics, then a route's
+    extra numbers), or ``k`` for a plan of statistics only."""
+    return int(getattr(plan, "width", plan.k))
+
+
 @dataclass(frozen=True)
 class Draws:
     """Which relabellings a run uses: random (by seed entropy) or the full enumeration."""
@@ -109,7 +115,7 @@ def run_all(plan: Plan, draws: Draws, *, jobs: int = 1, backend: str = "threads"
             scheduler: str | None = None,
             on_chunk: Callable[[int, np.ndarray], None] | None = None) -> np.ndarray:
     """Every chunk's statistics assembled in permutation order (total, k)."""
-    null = np.empty((draws.total, plan.k))
+    null = np.empty((draws.total, row_width(plan)))
     for c, stats in iter_chunks(plan, draws, range(draws.n_chunks), jobs=jobs, backend=backend,
                                 scheduler=scheduler):
         first, count = draws.chunk_rows(c)

@@ -200,3 +200,38 @@ def _hull(rows, observed, exact, alpha) -> tuple[float, float, int]:
     if not parts:
         return np.nan, np.nan, 0
     return parts[0][0], parts[-1][1], len(parts)
+
+
+def for_terms(spec: dict, extra: np.ndarray | None, observed: np.ndarray | None,
+              names: list[str], *, exact: bool) -> tuple[np.ndarray, ...]:
+    """Every tested term's interval from a run's extra numbers (m, WIDTH * k).
+
+    ``spec``: what the route put in the run's summary: ``level`` and either ``scale`` (per
+    term, the factor taking b from the kernels' units to the coefficient's) or ``reason``
+    (why no interval exists for this run). Returns (low, high, mc_se (k, 2), notes).
+    """
+    k = len(names)
+    low, high = np.full(k, np.nan), np.full(k, np.nan)
+    mc = np.full((k, 2), np.nan)
+    if spec.get("reason"):
+        return low, high, mc, [spec["reason"]]
+    notes = []
+    alpha = 1.0 - float(spec["level"])
+    for j, name in enumerate(names):
+        cols = slice(WIDTH * j, WIDTH * (j + 1))
+        iv = invert(np.asarray(extra)[:, cols], np.asarray(observed)[cols], exact=exact,
+                    alpha=alpha)
+        s = float(spec["scale"][j])
+        ends = np.array([iv.low, iv.high]) * s
+        errs = iv.mc_se * abs(s)
+        if s < 0:
+            ends, errs = ends[::-1], errs[::-1]
+        low[j], high[j] = ends
+        mc[j] = errs
+        if iv.pieces > 1:
+            notes.append(f"{name}: the values its test accepts are {iv.pieces} separate "
+                         "intervals; the interval shown is their hull")
+        elif iv.pieces == 0:
+            notes.append(f"{name}: its test rejects every value, so it has no interval "
+                         "(too few relabellings for this level?)")
+    return low, high, mc, notes

@@ -28,7 +28,7 @@ from ..errors import DyadpermWarning, InputError
 from ..output.result import (CorrelationResult, LayerCorrelationResult, RegressionResult,
                              statistic_label)
 from ..settings import EXACT_LIMIT, RunOptions, StopRule, entropy_of
-from . import store
+from . import intervals, store
 from .engine import Draws, iter_chunks, run_all, workers_used
 from .stopping import (assess, closing, finish_progress, run_until, sequential_for,
                        usable_rows)
@@ -73,7 +73,7 @@ def _ticker(progress: Any, total: int):
 
 
 def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray | None]:
-    """Run every missing chunk; return (draws, observed statistic, null or None for a shard).
+    """Run every missing chunk; return (draws, observed row, null or None for a shard).
 
     With ``opts.out`` the chunks stream to a run file; an existing file of the same run is
     resumed (and grown when more permutations are asked for); one of another run is refused.
@@ -82,7 +82,8 @@ def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray 
     cs = opts.chunk_size if opts.chunk_size is not None else plan.chunk_size
     summary = {**plan.summary, "stop": opts.stop.to_dict()}
     # the observed statistic goes through the same kernels as the permuted ones
-    observed = plan.observed()
+    row = plan.observed()
+    observed = row[:plan.k]
     out = Path(opts.out) if opts.out is not None else None
     if out is not None and out.exists():
         hdr = store.read_header(out)
@@ -108,7 +109,7 @@ def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray 
                 tested=tuple(summary["tested"]), permutations=draws.total,
                 chunk_size=draws.chunk_size, exact=draws.exact, shard=opts.shard,
                 study_text=prov.get("study_text", ""), study_path=prov.get("study_path", ""),
-                summary=summary, observed={**plan.fit, "kernel_stat": observed}))
+                summary=summary, observed=observed_arrays(plan, row), extra=plan.extra))
     tick = _ticker(opts.progress, draws.total)
     where = dict(jobs=opts.jobs, backend=opts.backend, scheduler=opts.scheduler)
     # a stop rule reads the finished prefix at chunk boundaries
@@ -116,11 +117,11 @@ def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray 
                          total=draws.total)
     if out is None:
         if seq is not None:
-            return draws, observed, run_until(seq, plan, draws, tick=tick,
+            return draws, row, run_until(seq, plan, draws, tick=tick,
                                               progress=opts.progress, **where)
         null = run_all(plan, draws, **where,
                        on_chunk=None if tick is None else (lambda c, st: tick(st.shape[0])))
-        return draws, observed, null
+        return draws, row, null
     if seq is not None:
         _, prior, prior_done = store.load(out, require_complete=False)
         seq.start_from(prior, prior_done)
@@ -141,25 +142,34 @@ def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray 
                     finish_progress(opts.progress, seq)
                     break
     if opts.shard:
-        return draws, observed, None
+        return draws, row, None
     if seq is None:
         _, null, _ = store.load(out)
-        return draws, observed, null
+        return draws, row, null
     _, null, done = store.load(out, require_complete=False)
     rows = usable_rows(opts.stop, null, done, observed, exact=draws.exact,
                        chunk_size=draws.chunk_size, total=draws.total, where=out)
-    return draws, observed, null[:rows]
+    return draws, row, null[:rows]
+
+
+def observed_arrays(plan: Any, row: np.ndarray) -> dict:
+    """What a result (and a run file) keeps of the observed data: the route's fit, the
+    kernels' observed statistics and, when the plan has them, its extra numbers."""
+    out = {**plan.fit, "kernel_stat": row[:plan.k]}
+    if plan.extra:
+        out["kernel_extra"] = row[plan.k:]
+    return out
 
 
 def run(plan: Any, opts: RunOptions):
     """Run the relabellings of a plan and build its result (None for a shard)."""
-    draws, observed, null = execute(plan, opts)
+    draws, row, null = execute(plan, opts)
     if null is None:
         return None
     if plan.expected is not None:
-        check_agreement(observed, plan.expected, plan.summary)
+        check_agreement(row[:plan.k], plan.expected, plan.summary)
     summary = {**plan.summary, "stop": opts.stop.to_dict()}
-    return build_result(summary, {**plan.fit, "kernel_stat": observed}, null,
+    return build_result(summary, observed_arrays(plan, row), null,
                         exact=draws.exact, chunk_size=draws.chunk_size,
                         seed=None if draws.exact else draws.entropy, planned=draws.total,
                         workers=workers_used(opts.jobs, opts.backend, draws.n_chunks))
@@ -183,9 +193,12 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
                  seed: int | None, planned: int | None = None, workers: int | None = None):
     """The result object from what a run stores: used by live runs and by open_result.
 
-    ``null`` holds the rows the run uses (a stopped run: up to its stopping point);
+    ``null`` holds the rows the run uses (a stopped run: up to its stopping point), the
+    statistics of the tested terms first, then any extra numbers of the route;
     ``planned`` is the total the run was planned with (default: those rows).
     """
+    k = len(summary["tested"])
+    rows, null = null, null[:, :k]
     st = assess(np.asarray(null), np.asarray(observed["kernel_stat"], dtype=np.float64),
                 exact=exact, stop=summary.get("stop"), planned=planned)
     pv = st.pv
@@ -216,7 +229,17 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
             pairs=tuple((int(i), int(j)) for i, j in summary["pairs"]), **tested, **common)
     nan1 = np.full(1, np.nan)
     fitv = np.asarray(observed["fit"], dtype=np.float64)
-    return RegressionResult(
+    spec = summary.get("interval")
+    ci = {}
+    if spec:
+        low, high, mc, ci_notes = intervals.for_terms(
+            spec, np.asarray(rows)[:, k:], observed.get("kernel_extra"),
+            list(summary["tested"]), exact=exact)
+        ci = dict(ci_low=np.concatenate([nan1, low]), ci_high=np.concatenate([nan1, high]),
+                  ci_mc_se=np.concatenate([np.full((1, 2), np.nan), mc]),
+                  ci_level=float(spec["level"]))
+        common["notes"] = common["notes"] + tuple(ci_notes)
+    return RegressionResult(**ci,
         p_adjusted=np.concatenate([nan1, st.p_adjusted]),
         stop_at=np.concatenate([nan1, st.stop_at]), stop_verdict=("",) + st.verdict,
         p=np.concatenate([nan1, pv.p]), p_greater=np.concatenate([nan1, pv.p_greater]),

@@ -37,7 +37,7 @@ from scipy.stats import beta as _beta
 from ..errors import RunFileError
 from ..settings import StopRule
 from .adjustment import maxt_adjusted
-from .engine import iter_chunks
+from .engine import iter_chunks, row_width
 from .pvalues import INTERVAL_LEVEL, TIE_TOLERANCE, PValues, clopper_pearson, pvalues
 
 #: Gandy's spending sequence eps_n = eps * n / (n + k) with k = 1000 [memory: the paper's
@@ -54,8 +54,9 @@ def exceedances(null: np.ndarray, observed: np.ndarray) -> np.ndarray:
     Two-sided, |T_pi| >= |T_obs| with ties within a relative ``TIE_TOLERANCE``, and a
     failed (NaN) permuted statistic counts as extreme: the rule of ``pvalues``.
     """
-    null = np.asarray(null, dtype=np.float64)
     obs = np.asarray(observed, dtype=np.float64)
+    # a row holds the statistics first, then any extra numbers of the route
+    null = np.asarray(null, dtype=np.float64)[:, :obs.shape[0]]
     tol = TIE_TOLERANCE * np.abs(obs)
     with np.errstate(invalid="ignore"):
         return (np.abs(null) >= np.abs(obs) - tol) | np.isnan(null)
@@ -239,7 +240,7 @@ def run_until(seq: Sequential, plan: Any, draws: Any, *, jobs: int, backend: str
               progress: Any) -> np.ndarray:
     """Chunks in order (several in flight with ``jobs`` > 1) until the stop rule is met;
     the null statistics of the used rows (no run file)."""
-    null = np.empty((draws.total, plan.k))
+    null = np.empty((draws.total, row_width(plan)))
     with closing(iter_chunks(plan, draws, range(draws.n_chunks), jobs=jobs, backend=backend,
                              scheduler=scheduler)) as chunks:
         for c, stats in chunks:

@@ -7,11 +7,14 @@ Layout (format version 1):
   model, scheme, statistic, method, seed, chunk size, storage, settings and the SHA-256
   fingerprint of every input array), ``terms``/``tested`` (JSON), ``permutations`` (the
   planned total), ``exact``, ``shard`` ("i/N" or ""), ``study_text``, ``study_path``,
-  ``summary`` (JSON: nodes, dyads, directed, two-mode, response name).
+  ``summary`` (JSON: nodes, dyads, directed, two-mode, response name), and
+  ``extra_columns`` when a row holds more than the statistics (absent: 0).
 - ``observed/``: ``coef``, ``se``, ``stat`` (classical fit), ``kernel_stat`` (the observed
   statistic through the permutation kernels, which the p-values compare against),
-  ``fit`` (r2, deviance).
-- ``null`` (permutations x k, float64, contiguous): row i is permutation i.
+  ``fit`` (r2, deviance), and ``kernel_extra`` (the observed row's extra numbers).
+- ``null`` (permutations x (k + extra_columns), float64, contiguous): row i is permutation
+  i: the statistics of the k tested terms, then the route's extra numbers (the interval
+  rows of ``dyadperm.pipeline.intervals``).
 - ``done`` (chunks, uint8) and ``crc`` (chunks, uint32, CRC-32 of the chunk's rows).
 
 Every dataset is allocated when the file is made; afterwards a run only writes raw data
@@ -58,10 +61,16 @@ class RunHeader:
     study_path: str
     summary: dict
     observed: dict
+    extra: int = 0  # numbers per row after the statistics (a route's extra numbers)
 
     @property
     def n_chunks(self) -> int:
         return -(-self.permutations // self.chunk_size)
+
+    @property
+    def width(self) -> int:
+        """Numbers per row of ``null``: one statistic per tested term, then ``extra``."""
+        return len(self.tested) + self.extra
 
 
 def _lock(path: Path):
@@ -112,9 +121,9 @@ def _header(f: h5py.File, path: Path) -> RunHeader:
             tested=tuple(json.loads(a["tested"])), permutations=int(a["permutations"]),
             chunk_size=int(a["chunk_size"]), exact=bool(a["exact"]), shard=str(a["shard"]),
             study_text=str(a["study_text"]), study_path=str(a["study_path"]),
-            summary=json.loads(a["summary"]), observed=obs)
-        k = len(hdr.tested)
-        if f["null"].shape != (hdr.permutations, k) or f["done"].shape != (hdr.n_chunks,) \
+            summary=json.loads(a["summary"]), observed=obs,
+            extra=int(a.get("extra_columns", 0)))
+        if f["null"].shape != (hdr.permutations, hdr.width) or f["done"].shape != (hdr.n_chunks,) \
                 or f["crc"].shape != (hdr.n_chunks,):
             raise RunFileError(f"{path}: run file datasets do not match its header "
                                "(truncated or corrupted)")
@@ -127,7 +136,7 @@ def create(path: str | Path, header: RunHeader) -> None:
     """Write a new run file with every dataset allocated; atomic (temp file + rename)."""
     path = Path(path)
     tmp = path.with_name(path.name + ".tmp")
-    k = len(header.tested)
+    width = header.width
     with h5py.File(tmp, "w") as f:
         a = f.attrs
         a["format"] = FORMAT
@@ -146,7 +155,9 @@ def create(path: str | Path, header: RunHeader) -> None:
         g = f.create_group("observed")
         for name, value in header.observed.items():
             g.create_dataset(name, data=np.asarray(value))
-        f.create_dataset("null", data=np.full((header.permutations, k), np.nan))
+        if header.extra:
+            a["extra_columns"] = header.extra
+        f.create_dataset("null", data=np.full((header.permutations, width), np.nan))
         f.create_dataset("done", data=np.zeros(header.n_chunks, dtype=np.uint8))
         f.create_dataset("crc", data=np.zeros(header.n_chunks, dtype=np.uint32))
     _fsync(tmp)

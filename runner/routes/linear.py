@@ -404,7 +404,7 @@ def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np
 
 def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str = "float64",
          directed: bool | None = None, groups: Any = None, dyads: str | None = None,
-         overwrite_inputs: bool = False) -> Plan:
+         overwrite_inputs: bool = False, ci: float | None = None) -> Plan:
     """The dense linear route: prepared inputs, the QR fit for the table, and the scheme's
     statistics (``build_statistics``) for the pipeline."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)

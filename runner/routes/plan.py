@@ -20,6 +20,9 @@ run files, resume, growth, shards, stop rules, p-values). A plan holds:
 - ``identity``: everything that must agree for a run file to belong to this run (settings
   and the SHA-256 fingerprint of every input); the pipeline adds the seed, exact
   enumeration and chunk size.
+- ``extra``: numbers per relabelling that follow the k statistics in each row the kernels
+  return (0 for most plans): what a route needs besides the statistics, stored with them
+  in the run file (the interval rows of ``dyadperm.pipeline.intervals``, say).
 
 The object whose ``statistics`` the workers call is ``kernel``; the plan itself is what is
 sent to Dask workers or processes (its arrays are the inputs' layers, scattered once).
@@ -65,17 +68,25 @@ class Plan:
     summary: dict
     identity: dict
     expected: np.ndarray | None = None
+    extra: int = 0
 
     @property
     def k(self) -> int:
+        """Statistics per relabelling (one per tested term)."""
         return self.kernel.k
 
+    @property
+    def width(self) -> int:
+        """Numbers per relabelling: the k statistics, then ``extra``."""
+        return self.kernel.k + self.extra
+
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
-        """Statistics (B, k) of B relabellings given as row/column permutations."""
+        """Rows (B, width) of B relabellings given as row/column permutations: the
+        statistics, then the extra numbers."""
         return self.kernel.statistics(row_perms, col_perms)
 
     def observed(self) -> np.ndarray:
-        """The observed statistics: the identity relabelling through the same kernels."""
+        """The observed row: the identity relabelling through the same kernels."""
         ident_r = np.arange(self.blocks.n_rows, dtype=np.int64)[None, :]
         ident_c = np.arange(self.blocks.n_cols, dtype=np.int64)[None, :]
         return self.statistics(ident_r, ident_c)[0]
