@@ -89,7 +89,7 @@ from .output.result import _plain
 from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
 from .pipeline.pvalues import clopper_pearson, pvalues
-from .routes.linear import build_statistics, shared_statistics
+from .routes.linear import build_statistics, fit_pivot, shared_statistics
 from .settings import EXACT_LIMIT, SCHEMES, STATISTICS, entropy_of
 
 __all__ = ["CalibrationResult", "Replicate", "calibrate", "calibrate_study",
@@ -478,7 +478,8 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     alpha, effect = opts["alpha"], opts["effect"]
     entropy = entropy_of(opts["seed"])
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    _design.observed_fit(prep)  # the same input checks as a run (collinearity, no variation)
+    # the same input checks as a run (the one rule of a fittable design, no variation)
+    _design.observed_fit(prep, pivot=fit_pivot(prep))
 
     count = prep.blocks.count()
     exact = count <= M
