@@ -364,6 +364,45 @@ def test_valid_rate_when_alpha_times_m_plus_one_is_not_whole():
     assert res.notes == ("with 30 relabellings a valid test rejects 0.0323 of the time, not "
                          "0.05: p-values come in steps of 1/31",)
     assert "note: with 30 relabellings" in res.table()
+    # the classical OLS test has continuous p-values: a valid one rejects alpha itself, so
+    # its column is judged against the band around 0.05, the schemes' around 1/31
+    nlo, nhi = binom.interval(0.95, 20, 0.05)  # source: scipy.stats.binom
+    np.testing.assert_allclose(res.nominal_band, [nlo / 20, nhi / 20])
+    np.testing.assert_allclose(res.band_of(OLS), res.nominal_band)
+    np.testing.assert_allclose(res.band_of("dsp"), res.band)
+
+
+def _verdict(rate, band):
+    lo, hi = band
+    return "too liberal" if rate > hi else "too conservative" if rate < lo else "inside band"
+
+
+def test_classical_ols_verdict_uses_the_band_around_alpha():
+    """With m = 30 the schemes' band is centred at 1/31 = 3.2% and the classical test's at
+    5%. On 400 replicates of independent normal dyads (a valid classical test: common
+    practice) the OLS rate here is 6.25%: inside the band around 5% but above the schemes'
+    band (95% binomial band for 1/31 over 400 is 1.5%-5.0%, scipy.stats.binom), where the
+    valid classical test would read "too liberal"; each column is judged against its own."""
+    rng = np.random.default_rng(9515)
+    n, reps = 12, 400
+    Y, X1 = rng.normal(size=(n, n)), rng.normal(size=(n, n))
+    res = dp.calibrate(Y, {"x1": X1}, schemes=["y"], replicates=reps, permutations=30,
+                       seed=95)
+    ols = res.methods.index(OLS)
+    lo, hi = binom.interval(0.95, reps, 1 / 31)  # source: scipy.stats.binom
+    np.testing.assert_allclose(res.band, [lo / reps, hi / reps])
+    nlo, nhi = binom.interval(0.95, reps, 0.05)
+    np.testing.assert_allclose(res.nominal_band, [nlo / reps, nhi / reps])
+    for a in range(len(res.terms)):
+        for b, method in enumerate(res.methods):
+            band = res.nominal_band if method == OLS else res.band
+            assert res.verdicts()[a][b] == _verdict(res.rate[a, b], band)
+    rate = res.rate[0, ols]
+    assert rate > hi / reps  # outside the schemes' band: the old yardstick called it liberal
+    assert nlo / reps <= rate <= nhi / reps and res.verdicts()[0][ols] == "inside band"
+    assert res.rate[0, 0] <= hi / reps  # the scheme within its own band's top
+    assert (f"judged against the band around alpha 0.05 itself, [{100 * nlo / reps:.1f}%, "
+            f"{100 * nhi / reps:.1f}%]") in res.table()
 
 
 def test_same_seed_same_result_for_any_jobs_other_seed_differs():
