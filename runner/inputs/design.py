@@ -465,10 +465,11 @@ def check_design(factor: np.ndarray, names: Sequence[str], *, pivot: float,
     for j, name in enumerate(names):
         raw = norms[j] if raw_norms is None else raw_norms[j]
         if not norms[j] > pivot * raw or not norms[j] > 0.0:
-            how = "constant" if not norms[j] > QR_PIVOT * raw else "nearly constant"
-            spread = norms[j] / raw if raw > 0.0 else 0.0
-            raise InputError(f"predictor {name!r} is {how} {where}: its spread about its mean "
-                             f"is {spread:.2g} of its size, below the {pivot:g} a fit resolves")
+            if not norms[j] > QR_PIVOT * raw:
+                raise InputError(f"predictor {name!r} is constant {where}")
+            raise InputError(f"predictor {name!r} is nearly constant {where}: its spread about "
+                             f"its mean is {norms[j] / raw:.2g} of its size, below the "
+                             f"{pivot:g} a fit resolves")
     fs = factor / norms
     _, sv, vt = np.linalg.svd(fs)
     scaled = vt / np.maximum(sv, np.finfo(np.float64).tiny)[:, None]
