@@ -185,3 +185,50 @@ def test_collinear_set_of_three_is_named_with_its_condition_number():
                                             r"predictors over the dyad set: its residuals keep "
                                             r"\S+ of its spread, below the 1e-05 a test needs"):
         dp.regress(2 * a - b + 1, {"a": a, "b": b}, permutations=19)
+
+
+STUDY = """[study]
+title = "Invented: ten nodes, three missing dyads, x2 a near copy of x1"
+
+[response]
+file = "y.npy"
+
+[[predictor]]
+name = "x1"
+file = "x1.npy"
+
+[[predictor]]
+name = "x2"
+file = "x2.npy"
+
+[[predictor]]
+name = "x3"
+file = "x3.npy"
+
+[test]
+scheme = "{scheme}"
+permutations = 999
+seed = 1
+"""
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_issue_case_through_the_command_line(scheme, tmp_path, capsys):
+    """What a user sees: `dyadperm run` exits 2 with one line naming the pair and the
+    condition number; `dyadperm check` says a run would refuse the design."""
+    from dyadperm.inputs.describe import describe_study
+    from test_bad_inputs import _run_cli
+
+    y, X = issue_case()
+    np.save(tmp_path / "y.npy", y)
+    for name, x in X.items():
+        np.save(tmp_path / f"{name}.npy", x)
+    path = tmp_path / "study.toml"
+    path.write_text(STUDY.format(scheme=scheme))
+    code, err = _run_cli(["run", path, "--quiet"], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert err.strip().startswith("dyadperm: error: predictor 'x2' is nearly collinear with "
+                                  "'x1' over the 87 complete dyads")
+    notes = describe_study(path).notes
+    assert any(n.startswith("a run would refuse this design: predictor 'x2' is nearly "
+                            "collinear with 'x1'") for n in notes), notes

@@ -433,6 +433,14 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
 
 
+def fit_pivot(complete: bool, *, storage: str = "float64", model: str = "linear") -> float:
+    """The relative pivot a route's fits resolve (``kernels.options``): ``QR_PIVOT`` for the
+    dense linear route on complete float64 data (its kernels read an orthonormal basis of
+    the predictors), else ``FIT_PIVOT`` (standardised layers in Gram matrices: missing data,
+    float32 layers, the logistic route's Newton steps)."""
+    return QR_PIVOT if complete and storage == "float64" and model == "linear" else FIT_PIVOT
+
+
 def dyads_phrase(prep: Prepared, n_obs: int) -> str:
     """Where a fit runs, for messages: the dyad set, or its complete dyads with missing data."""
     if prep.complete:

@@ -31,7 +31,7 @@ from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs.design import (Prepared, check_design, check_response, dyads_phrase, fold_rows,
                              iter_dyad_rows, standardise)
-from ..kernels.options import FIT_PIVOT, QR_PIVOT
+from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram
 from ..kernels.stats import correlation_stats, fill_gram, regression_stats
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
@@ -168,10 +168,10 @@ def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
 
 
 def fit_pivot(prep: Prepared, storage: str = "float64") -> float:
-    """The relative pivot this route's fits resolve (``kernels.options``): ``QR_PIVOT`` when
+    """The relative pivot this route's fits resolve (``design.fit_pivot``): ``QR_PIVOT`` when
     the kernels read an orthonormal float64 basis of the predictors (complete data), else
     ``FIT_PIVOT`` (standardised layers in Gram matrices: missing data, or float32 layers)."""
-    return QR_PIVOT if prep.complete and storage == "float64" else FIT_PIVOT
+    return _design.fit_pivot(prep.complete, storage=storage)
 
 
 def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
