@@ -22,7 +22,9 @@ import pytest
 import statsmodels.api as sm
 
 import dyadperm as dp
+from dyadperm.inputs.describe import describe_study
 from dyadperm.kernels import irls, options, stats
+from test_bad_inputs import _run_cli
 
 SCHEMES = ("y", "dsp", "freedman-lane")
 
@@ -216,9 +218,6 @@ seed = 1
 def test_issue_case_through_the_command_line(scheme, tmp_path, capsys):
     """What a user sees: `dyadperm run` exits 2 with one line naming the pair and the
     condition number; `dyadperm check` says a run would refuse the design."""
-    from dyadperm.inputs.describe import describe_study
-    from test_bad_inputs import _run_cli
-
     y, X = issue_case()
     np.save(tmp_path / "y.npy", y)
     for name, x in X.items():
