@@ -30,6 +30,10 @@ P_ATOL = 1e-12
 #: Clopper-Pearson end points: scipy's binomtest finds them by root finding (about 1e-10
 #: relative), a beta quantile gives them directly; both are the same interval.
 INTERVAL_RTOL = 1e-8
+#: The rule of whether a design can be fitted, as the kernels test it on a Gram matrix
+#: (design.md, kernels/options.py): each design column's squared residual on the columns
+#: before it must exceed this fraction of its sum of squares (a relative pivot of 1e-5).
+FIT_PIVOT_SQUARED = 1e-10
 
 SCHEMES = ("y", "dsp", "freedman-lane")
 
@@ -87,9 +91,23 @@ def fill_gram_ref(cross, gram0):
     return out
 
 
+def fittable_ref(xtx: np.ndarray) -> bool:
+    """The fit rule on a design's Gram matrix, by Schur complements: column c's squared
+    residual on columns 0..c-1, xtx[c, c] - xtx[c, :c] xtx[:c, :c]^-1 xtx[:c, c], must exceed
+    FIT_PIVOT_SQUARED * xtx[c, c]."""
+    for c in range(xtx.shape[0]):
+        s = xtx[c, c]
+        if c:
+            s -= xtx[c, :c] @ np.linalg.solve(xtx[:c, :c], xtx[:c, c])
+        if not (s > FIT_PIVOT_SQUARED * xtx[c, c]) or not s > 0:
+            return False
+    return True
+
+
 def regression_stats_ref(gram, transforms, scale, use_t):
     """Twin of ``kernels.stats.regression_stats``: OLS of the last column of T'GT on the
-    others (the tested one last) by explicit inverses of the normal equations."""
+    others (the tested one last) by explicit inverses of the normal equations; NaN when the
+    design breaks the fit rule (``fittable_ref``) or has no residual df."""
     B = gram.shape[0]
     K, _, p1 = transforms.shape
     p = p1 - 1
@@ -98,7 +116,7 @@ def regression_stats_ref(gram, transforms, scale, use_t):
         for k in range(K):
             g = transforms[k].T @ gram[b] @ transforms[k]
             xtx, xty, yty = g[:p, :p], g[:p, p], g[p, p]
-            if np.linalg.matrix_rank(xtx) < p or gram[b, 0, 0] - p <= 0:
+            if not fittable_ref(xtx) or gram[b, 0, 0] - p <= 0:
                 out[b, k] = np.nan
                 continue
             inv = np.linalg.inv(xtx)
