@@ -533,11 +533,18 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         else:
             batch = (np.concatenate([ident[0], perms[0]]), np.concatenate([ident[1], perms[1]]))
         ystar = _simulate(prep, reduced[j], rows, cols)
-        p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x)
-        p1 = None
-        if effect is not None:
-            p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
-                       include_ols, batch, exact, ident, ok_x)
+        try:
+            p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident,
+                       ok_x)
+            p1 = None
+            if effect is not None:
+                p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
+                           include_ols, batch, exact, ident, ok_x)
+        except InputError:
+            # missing values moved with the residuals: on this replicate's complete dyads the
+            # design breaks the fit rule, so a run would refuse this data set (no test)
+            p0 = np.full(n_methods, np.nan)
+            p1 = None if effect is None else np.full(n_methods, np.nan)
         return j, r, p0, p1
 
     null_p = np.empty((k, n_methods, R))
@@ -560,6 +567,12 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     methods = tuple(schemes) + ((OLS,) if include_ols else ())
     passes = k * R * len(schemes) * (m_total + 1) * (2 if effect is not None else 1)
     notes = []
+    for j in range(k):
+        refused = int(np.isnan(null_p[j, 0]).sum())
+        if refused:
+            notes.append(f"{refused} of {R} simulated responses of {prep.names[j]!r} leave the "
+                         "design unfittable over their complete dyads (a run would refuse "
+                         "them): those replicates have no p-value and count as not rejecting")
     if not math.isclose(valid, alpha, rel_tol=1e-9):
         step = m_total if exact else m_total + 1
         notes.append(f"with {m_total} relabellings a valid test rejects {valid:.4f} of the "

@@ -572,3 +572,35 @@ def test_cli_calibrate_demo_study(tmp_path, monkeypatch, capsys):
     assert "plot file" in err and "the suffix must be one of" in err
     code, out, err = _main(monkeypatch, capsys, "calibrate", study, "--replicates", 0)
     assert code == 2 and err == "dyadperm: error: `replicates` must be a whole number >= 1; got 0\n"
+
+
+def test_replicates_whose_design_cannot_be_fitted_have_no_p_value():
+    """Missing values travel with the relabelled residuals: on some simulated responses the
+    indicator, 1 on two dyads, is constant over the complete dyads, a design a run refuses.
+    Those replicates (and only those, by numpy's matrix_rank on each replicate's complete
+    dyads) get NaN p-values, count as not rejecting, and a note says how many."""
+    n = 6
+    rng = np.random.default_rng(0)
+    x1 = rng.normal(size=(n, n))
+    ind = np.zeros((n, n))
+    ind[0, 1] = ind[2, 3] = 1.0
+    y = rng.normal(size=(n, n)) + ind
+    y[0, 1] = y[3, 4] = y[4, 5] = np.nan
+    preds = {"x1": x1, "ind": ind}
+    res = dp.calibrate(y, preds, replicates=50, permutations=19, seed=1)
+    off = _off(n)
+    for j, term in enumerate(res.terms):
+        cannot = []
+        for r in range(50):
+            ystar = simulated_response(y, preds, term=term, replicate=r, seed=1,
+                                       permutations=19).response
+            use = off & np.isfinite(ystar)
+            A = np.column_stack([np.ones(use.sum()), x1[use], ind[use]])
+            cannot.append(np.linalg.matrix_rank(A) < 3)
+        cannot = np.array(cannot)
+        np.testing.assert_array_equal(np.isnan(res.null_p[j]).all(axis=0), cannot)
+        assert not np.isnan(res.null_p[j][:, ~cannot]).any()
+        if cannot.any():
+            assert (f"{int(cannot.sum())} of 50 simulated responses of {term!r} leave the design "
+                    "unfittable") in " ".join(res.notes)
+    assert np.isnan(res.null_p).any()  # the case exercises it
