@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 import dyadperm as dp
+from dyadperm.output import report
 from dyadperm.pipeline import adjustment, pvalues, stopping
 from dyadperm.pipeline.run import run
 from dyadperm.routes import linear
@@ -243,3 +244,20 @@ def test_exact_enumeration_with_a_term_without_statistic():
     assert res.exact and np.isnan(res.p[1]) and np.isnan(res.null[0, 0])
     ref = run(plan, run_options(permutations=500))
     assert res.p[2] == ref.p[2] and np.isfinite(res.p[2])
+
+
+def test_reports_leave_the_missing_statistic_empty():
+    """The CSV report and to_frame leave every p-value cell and the exceedance count of a
+    term without an observed statistic empty (NaN), and fill the others'."""
+    _, broken = _plan(np.nan)
+    res = run(broken, run_options(permutations=99, seed=5))
+    frame = res.to_frame().set_index("term")
+    for column in ("p", "p_se", "p_low", "p_high", "p_adjusted", "p_greater", "p_less",
+                   "exceedances"):
+        assert np.isnan(frame.loc["x2", column]), column
+        assert np.isfinite(frame.loc["x1", column]), column
+    lines = report.csv_text(res).splitlines()
+    header = lines[0].split(",")
+    row = dict(zip(header, next(ln for ln in lines if ln.startswith("x2,")).split(",")))
+    assert row["p"] == row["exceedances"] == row["p_adjusted"] == ""
+    assert row["failed"] != ""
