@@ -231,3 +231,20 @@ def test_issue_case_through_the_command_line(scheme, tmp_path, capsys):
     notes = describe_study(path).notes
     assert any(n.startswith("a run would refuse this design: predictor 'x2' is nearly "
                             "collinear with 'x1'") for n in notes), notes
+
+
+def test_the_named_set_is_the_near_null_combination():
+    """x3 = x1 + 0.001 x2 + 1e-7 noise: x1 and x3 keep about 1e-7 of their spread apart
+    from the others, x2 about 1e-4 (numpy SVD): with missing data (rule 1e-5) the refusal
+    names x3 with x1, and not x2, which the near-null combination barely carries."""
+    rng = np.random.default_rng(64)
+    n = 12
+    x1, x2, noise, y = (rng.normal(size=(n, n)) for _ in range(4))
+    x3 = x1 + 1e-3 * x2 + 1e-7 * noise
+    y[0, 1] = np.nan
+    use = ~np.eye(n, dtype=bool) & np.isfinite(y)
+    apart, _ = _apart([x1, x2, x3], use)
+    assert apart[0] < options.FIT_PIVOT and apart[2] < options.FIT_PIVOT <= apart[1]
+    with pytest.raises(dp.InputError, match=r"predictor 'x3' is nearly collinear with 'x1' over "
+                                            r"the 131 complete dyads .*: condition number "):
+        dp.regress(y, {"x1": x1, "x2": x2, "x3": x3}, permutations=19)

@@ -487,11 +487,13 @@ def check_design(factor: np.ndarray, names: Sequence[str], *, pivot: float,
     with np.errstate(divide="ignore"):
         cond = float(sv[0] / sv[-1]) if sv[-1] > 0.0 else float("inf")
     if not np.all(apart >= pivot):
-        null = np.abs(vt[-1])
-        members = [j for j in range(k) if apart[j] < pivot
-                   or null[j] >= COLLINEAR_SHARE * null.max()]
-        last = members[-1]
-        others = [repr(names[j]) for j in members[:-1]]
+        below = [j for j in range(k) if not apart[j] >= pivot]
+        last = below[-1]  # named first: the last predictor (in model order) below the rule
+        null = np.abs(vt[-1])  # the near-null combination of the standardised predictors
+        partner = max((j for j in range(k) if j != last), key=lambda j: null[j])
+        members = {j for j in below} | {partner} | {
+            j for j in range(k) if null[j] >= COLLINEAR_SHARE * null.max()}
+        others = [repr(names[j]) for j in sorted(members - {last})]
         with_ = others[0] if len(others) == 1 else ", ".join(others[:-1]) + " and " + others[-1]
         how = "perfectly" if apart.min() < QR_PIVOT else "nearly"
         raise InputError(f"predictor {names[last]!r} is {how} collinear with {with_} {where}: "
