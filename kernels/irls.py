@@ -26,7 +26,7 @@ import numpy as np
 from numba import njit
 
 from .gather import prefetch
-from .options import KERNEL_OPTIONS
+from .options import FIT_PIVOT_SQUARED, KERNEL_OPTIONS
 
 # Return codes of ``irls_logistic`` (a converged fit returns its iteration count >= 1).
 FAIL_ITERATIONS = -1  # no convergence in max_iter steps (divergence: separation)
@@ -39,8 +39,9 @@ SCORE_BLOCK = 8
 # Bytes of one cache line, the unit of prefetching.
 CACHE_LINE = 64
 
-# A Cholesky pivot this small relative to its diagonal entry marks a singular information.
-SINGULAR_PIVOT = 1e-12
+# A Cholesky pivot^2 at most this fraction of its diagonal entry marks a singular information:
+# the one rule of whether a fit is possible (``kernels.options``).
+SINGULAR_PIVOT = FIT_PIVOT_SQUARED
 # Halvings of a Newton step tried while the deviance rises.
 MAX_HALVINGS = 30
 # A rise of the deviance below this relative size is rounding, not a worse fit.

@@ -9,10 +9,7 @@ from the Cholesky factor of T'GT (the R of a QR of the data), one permutation at
 import numpy as np
 from numba import njit
 
-from .options import KERNEL_OPTIONS
-
-# A pivot this small relative to its column's sum of squares marks a singular design.
-SINGULAR_PIVOT = 1e-10
+from .options import FIT_PIVOT_SQUARED, KERNEL_OPTIONS
 
 
 @njit(**KERNEL_OPTIONS)
@@ -55,7 +52,11 @@ def regression_stats(gram, transforms, scale, use_t, out):
     use_t : bool
         True: t statistic; False: coefficient.
     out : float64 (B, K)
-        Written; NaN where the permuted design is singular or has no residual df.
+        Written; NaN where the permuted design cannot be fitted or has no residual df.
+
+    A design can be fitted when every design column keeps, apart from the columns before
+    it, at least ``options.FIT_PIVOT`` of its norm: the Cholesky pivot test
+    pivot^2 > FIT_PIVOT_SQUARED * diagonal, the one rule of ``kernels.options``.
     """
     n_perm, d, _ = gram.shape
     n_terms, _, p1 = transforms.shape
@@ -85,7 +86,7 @@ def regression_stats(gram, transforms, scale, use_t, out):
                 for e in range(c):
                     s -= g[c, e] * g[c, e]
                 if c < p:
-                    if not (s > SINGULAR_PIVOT * g[c, c]) or not (s > 0.0):
+                    if not (s > FIT_PIVOT_SQUARED * g[c, c]) or not (s > 0.0):
                         ok = False
                         break
                     g[c, c] = np.sqrt(s)

@@ -52,8 +52,11 @@ which is exactly alpha when alpha (m + 1) is a whole number (m = 199 or 999 at 0
 when every one of the m relabellings is enumerated, a = floor(alpha m) / m.
 The band is the central ``band_level`` binomial interval (``scipy.stats.binom.interval``)
 around a; a rate inside it is what a valid test gives, above it the test rejects too
-often (too liberal), below it too rarely. Each rate also carries its Clopper–Pearson
-interval (Clopper & Pearson 1934, Biometrika 26:404–413).
+often (too liberal), below it too rarely. The classical OLS test has no relabellings: its
+p-values are continuous, so a valid classical test rejects exactly alpha of the time, and
+its column is judged against the band around alpha itself (``nominal_band``; the same band
+whenever a = alpha). Each rate also carries its Clopper–Pearson interval (Clopper &
+Pearson 1934, Biometrika 26:404–413).
 
 Cost
 ----
@@ -89,7 +92,7 @@ from .output.result import _plain
 from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
 from .pipeline.pvalues import clopper_pearson, pvalues
-from .routes.linear import build_statistics, shared_statistics
+from .routes.linear import build_statistics, fit_pivot, shared_statistics
 from .settings import EXACT_LIMIT, SCHEMES, STATISTICS, entropy_of
 
 __all__ = ["CalibrationResult", "Replicate", "calibrate", "calibrate_study",
@@ -129,10 +132,14 @@ class CalibrationResult:
     statistic : str
         ``"t"`` or ``"coef"``.
     valid_rate : float
-        Rejection probability of a valid test here (see the module notes).
+        Rejection probability of a valid relabelling test here (see the module notes).
     band_level : float
     band : ndarray (2,)
-        Rates between which a valid test's rate falls with probability ``band_level``.
+        Rates between which a valid relabelling test's rate falls with probability
+        ``band_level`` (around ``valid_rate``): the yardstick of the schemes.
+    nominal_band : ndarray (2,)
+        The same around ``alpha`` itself: the yardstick of the classical OLS test, whose
+        p-values are continuous (module notes).
     null_p : ndarray (k, methods, replicates)
         Two-sided p-values under the null of each term.
     rejections : ndarray of int (k, methods)
@@ -165,6 +172,7 @@ class CalibrationResult:
     valid_rate: float
     band_level: float
     band: np.ndarray
+    nominal_band: np.ndarray
     interval_level: float
     null_p: np.ndarray
     rejections: np.ndarray
@@ -184,14 +192,22 @@ class CalibrationResult:
     seconds: float
     notes: tuple[str, ...] = ()
 
+    def band_of(self, method: str) -> np.ndarray:
+        """The band a valid test of ``method`` falls in: ``nominal_band`` for the classical
+        OLS test (continuous p-values), ``band`` for a relabelling scheme."""
+        return self.nominal_band if method == OLS else self.band
+
     def verdicts(self) -> tuple[tuple[str, ...], ...]:
-        """Per term and method: ``"inside band"``, ``"too liberal"`` or ``"too conservative"``."""
-        lo, hi = self.band
+        """Per term and method: ``"inside band"``, ``"too liberal"`` or ``"too conservative"``,
+        each method against its own band (``band_of``)."""
         out = []
         for row in self.rate:
-            out.append(tuple("too liberal" if r > hi + WHOLE_TOL else
-                             "too conservative" if r < lo - WHOLE_TOL else "inside band"
-                             for r in row))
+            verdict = []
+            for r, method in zip(row, self.methods):
+                lo, hi = self.band_of(method)
+                verdict.append("too liberal" if r > hi + WHOLE_TOL else
+                               "too conservative" if r < lo - WHOLE_TOL else "inside band")
+            out.append(tuple(verdict))
         return tuple(out)
 
     def table(self) -> str:
@@ -478,7 +494,8 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     alpha, effect = opts["alpha"], opts["effect"]
     entropy = entropy_of(opts["seed"])
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    _design.observed_fit(prep)  # the same input checks as a run (collinearity, no variation)
+    # the same input checks as a run (the one rule of a fittable design, no variation)
+    _design.observed_fit(prep, pivot=fit_pivot(prep))
 
     count = prep.blocks.count()
     exact = count <= M
@@ -516,11 +533,18 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         else:
             batch = (np.concatenate([ident[0], perms[0]]), np.concatenate([ident[1], perms[1]]))
         ystar = _simulate(prep, reduced[j], rows, cols)
-        p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x)
-        p1 = None
-        if effect is not None:
-            p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
-                       include_ols, batch, exact, ident, ok_x)
+        try:
+            p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident,
+                       ok_x)
+            p1 = None
+            if effect is not None:
+                p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
+                           include_ols, batch, exact, ident, ok_x)
+        except InputError:
+            # missing values moved with the residuals: on this replicate's complete dyads the
+            # design breaks the fit rule, so a run would refuse this data set (no test)
+            p0 = np.full(n_methods, np.nan)
+            p1 = None if effect is None else np.full(n_methods, np.nan)
         return j, r, p0, p1
 
     null_p = np.empty((k, n_methods, R))
@@ -535,6 +559,7 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
             tick(done, len(tasks))
 
     lo, hi = binom.interval(opts["band_level"], R, valid)  # source: scipy.stats.binom
+    nlo, nhi = binom.interval(opts["band_level"], R, alpha)
     rej, rate, interval = _rates(null_p, alpha, R)
     prej = prate = pint = None
     if power_p is not None:
@@ -542,6 +567,12 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     methods = tuple(schemes) + ((OLS,) if include_ols else ())
     passes = k * R * len(schemes) * (m_total + 1) * (2 if effect is not None else 1)
     notes = []
+    for j in range(k):
+        refused = int(np.isnan(null_p[j, 0]).sum())
+        if refused:
+            notes.append(f"{refused} of {R} simulated responses of {prep.names[j]!r} leave the "
+                         "design unfittable over their complete dyads (a run would refuse "
+                         "them): those replicates have no p-value and count as not rejecting")
     if not math.isclose(valid, alpha, rel_tol=1e-9):
         step = m_total if exact else m_total + 1
         notes.append(f"with {m_total} relabellings a valid test rejects {valid:.4f} of the "
@@ -550,6 +581,7 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         terms=prep.names, methods=methods, response=prep.response_name, alpha=alpha,
         replicates=R, permutations=m_total, exact=exact, statistic=statistic,
         valid_rate=valid, band_level=opts["band_level"], band=np.array([lo / R, hi / R]),
+        nominal_band=np.array([nlo / R, nhi / R]),
         interval_level=INTERVAL_LEVEL, null_p=null_p, rejections=rej, rate=rate,
         interval=interval, effect=effect, power_p=power_p, power_rejections=prej,
         power_rate=prate, power_interval=pint, seed=entropy,
@@ -662,6 +694,10 @@ def format_calibration(res: CalibrationResult) -> str:
                  "too small); too conservative: too rarely.")
     if OLS in res.methods:
         lines.append("classical OLS: t distribution with dyads taken as independent, for contrast.")
+        nlo, nhi = res.nominal_band
+        if not np.allclose(res.nominal_band, res.band):
+            lines.append(f"classical OLS has continuous p-values: it is judged against the band "
+                         f"around alpha {res.alpha:g} itself, [{_pct(nlo)}, {_pct(nhi)}].")
     for note in res.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)
@@ -722,11 +758,18 @@ def plot_calibration(res: CalibrationResult, path: str | Path) -> Path:
         for side in ("top", "right"):
             ax.spines[side].set_visible(False)
         if band:
-            lo, hi = res.band
-            ax.axhspan(lo, hi, color=BAND, alpha=0.55, lw=0, zorder=0,
-                       label=f"{res.band_level:.0%} band of a valid test")
-            ax.axhline(res.valid_rate, color=ALPHA_LINE, lw=1.4, ls=(0, (5, 3)),
-                       label=f"nominal alpha {res.alpha:g}")
+            # each method's own band (the classical test's is around alpha itself)
+            for b, method in enumerate(res.methods):
+                lo, hi = res.band_of(method)
+                centre = res.alpha if method == OLS else res.valid_rate
+                first = b == 0
+                ax.fill_between([b - 0.45, b + 0.45], lo, hi, color=BAND, alpha=0.55, lw=0,
+                                zorder=0,
+                                label=f"{res.band_level:.0%} band of a valid test" if first
+                                else None)
+                ax.plot([b - 0.45, b + 0.45], [centre, centre], color=ALPHA_LINE, lw=1.4,
+                        ls=(0, (5, 3)),
+                        label=f"rate of a valid test at alpha {res.alpha:g}" if first else None)
         else:
             ax.axhline(res.alpha, color=ALPHA_LINE, lw=1.0, ls=(0, (1, 2)),
                        label=f"alpha {res.alpha:g}")

@@ -2,12 +2,13 @@
 
 Precision d is the Monte Carlo standard error of the p-value at p = alpha, and
 :func:`permutations_needed` gives m = ceil(alpha (1 - alpha) / d^2) relabellings
-(methods.md; alpha 0.05, d 0.002 -> 11,875). The standard error a result reports,
-sqrt(p (1 - p) / (m + 1)) (``dyadperm.pipeline.pvalues``: the p-value (b + 1) / (m + 1)
-counts m + 1 outcomes), is then at most d at p = alpha: the plan is the smallest m whose
-reported standard error at alpha is no larger than asked, within one relabelling of the
-m + 1 = alpha (1 - alpha) / d^2 that makes them equal. :func:`plan_study` times a short
-run of the actual study on this machine and scales it up.
+(methods.md; alpha 0.05, d 0.002 -> 11,875): the smallest m whose binomial standard error
+sqrt(alpha (1 - alpha) / m) is at most d. The standard error a result reports,
+sqrt(p (1 - p) / (m + 1)) (``dyadperm.pipeline.pvalues.mc_standard_error``: the p-value
+(b + 1) / (m + 1) counts m + 1 outcomes), is smaller still, so at p = alpha it is at most d
+(strictly below it). One relabelling fewer would also keep the reported error at most d
+(at 11,874 it equals 0.002 exactly): the plan errs by one relabelling on the safe side.
+:func:`plan_study` times a short run of the actual study on this machine and scales it up.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ import numpy as np
 
 from .api import correlate, regress
 from .errors import DyadpermWarning, InputError
+from .pipeline.pvalues import mc_standard_error
 from .pipeline.stopping import _CANCELLED
 from .settings import check_level
 from .study import Study, load_study
@@ -39,8 +41,8 @@ def permutations_needed(precision: float, alpha: float = 0.05) -> int:
 
     m = ceil(alpha (1 - alpha) / precision^2) (methods.md), so the Monte Carlo standard
     error a run of m relabellings reports at p = alpha, sqrt(alpha (1 - alpha) / (m + 1)),
-    is at most ``precision`` (module docstring). The numbers are taken as the decimals
-    written, so 0.05 and 0.002 give exactly 11,875.
+    is at most ``precision`` (module docstring: m - 1 would still meet it, m - 2 not). The
+    numbers are taken as the decimals written, so 0.05 and 0.002 give exactly 11,875.
     """
     d = check_level("precision", precision, 0.5)
     a = check_level("alpha", alpha)
@@ -77,10 +79,13 @@ class PlanEstimate:
 
     def text(self) -> str:
         """A few lines for the terminal."""
+        se = float(mc_standard_error(self.alpha, self.permutations))
         lines = [f"plan for {self.study}",
                  f"  Monte Carlo precision {self.precision:g} at alpha {self.alpha:g}: "
                  f"{self.permutations:,} random relabellings "
-                 f"(ceil(alpha (1 - alpha) / precision^2))"]
+                 f"(ceil(alpha (1 - alpha) / precision^2))",
+                 f"  a run of them reports the Monte Carlo s.e. sqrt(p (1 - p) / (m + 1)): "
+                 f"{se:.6g} at p = alpha, within the precision asked"]
         if self.exact:
             lines.append(f"  only {self.relabellings:,} distinct relabellings exist: the run "
                          "enumerates them all (exact p-values, no Monte Carlo error)")

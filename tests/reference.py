@@ -30,6 +30,10 @@ P_ATOL = 1e-12
 #: Clopper-Pearson end points: scipy's binomtest finds them by root finding (about 1e-10
 #: relative), a beta quantile gives them directly; both are the same interval.
 INTERVAL_RTOL = 1e-8
+#: The rule of whether a design can be fitted, as the kernels test it on a Gram matrix
+#: (design.md, kernels/options.py): each design column's squared residual on the columns
+#: before it must exceed this fraction of its sum of squares (a relative pivot of 1e-5).
+FIT_PIVOT_SQUARED = 1e-10
 
 SCHEMES = ("y", "dsp", "freedman-lane")
 
@@ -87,9 +91,23 @@ def fill_gram_ref(cross, gram0):
     return out
 
 
+def fittable_ref(xtx: np.ndarray) -> bool:
+    """The fit rule on a design's Gram matrix, by Schur complements: column c's squared
+    residual on columns 0..c-1, xtx[c, c] - xtx[c, :c] xtx[:c, :c]^-1 xtx[:c, c], must exceed
+    FIT_PIVOT_SQUARED * xtx[c, c]."""
+    for c in range(xtx.shape[0]):
+        s = xtx[c, c]
+        if c:
+            s -= xtx[c, :c] @ np.linalg.solve(xtx[:c, :c], xtx[:c, c])
+        if not (s > FIT_PIVOT_SQUARED * xtx[c, c]) or not s > 0:
+            return False
+    return True
+
+
 def regression_stats_ref(gram, transforms, scale, use_t):
     """Twin of ``kernels.stats.regression_stats``: OLS of the last column of T'GT on the
-    others (the tested one last) by explicit inverses of the normal equations."""
+    others (the tested one last) by explicit inverses of the normal equations; NaN when the
+    design breaks the fit rule (``fittable_ref``) or has no residual df."""
     B = gram.shape[0]
     K, _, p1 = transforms.shape
     p = p1 - 1
@@ -98,7 +116,7 @@ def regression_stats_ref(gram, transforms, scale, use_t):
         for k in range(K):
             g = transforms[k].T @ gram[b] @ transforms[k]
             xtx, xty, yty = g[:p, :p], g[:p, p], g[p, p]
-            if np.linalg.matrix_rank(xtx) < p or gram[b, 0, 0] - p <= 0:
+            if not fittable_ref(xtx) or gram[b, 0, 0] - p <= 0:
                 out[b, k] = np.nan
                 continue
             inv = np.linalg.inv(xtx)
@@ -253,12 +271,17 @@ def exact_null(Y, Xs, scheme, statistic, directed=True, two_mode=False):
 
 
 def counts(obs: np.ndarray, null: np.ndarray):
-    """(b_two_sided, b_greater, b_less) with the tie rule of methods.md (relative 1e-9)."""
+    """(b_two_sided, b_greater, b_less) with the tie rule of methods.md (relative 1e-9); a
+    failed permuted fit (NaN) counts as at least as extreme (methods.md, logistic model;
+    the package's rule for every route)."""
     obs = np.asarray(obs, dtype=np.float64)
+    null = np.asarray(null, dtype=np.float64)
     tol = TIE_RTOL * np.abs(obs)
-    b2 = np.sum(np.abs(null) >= np.abs(obs) - tol, axis=0)
-    bg = np.sum(null >= obs - tol, axis=0)
-    bl = np.sum(null <= obs + tol, axis=0)
+    failed = np.isnan(null)
+    with np.errstate(invalid="ignore"):
+        b2 = np.sum((np.abs(null) >= np.abs(obs) - tol) | failed, axis=0)
+        bg = np.sum((null >= obs - tol) | failed, axis=0)
+        bl = np.sum((null <= obs + tol) | failed, axis=0)
     return b2, bg, bl
 
 
@@ -275,6 +298,82 @@ def random_pvalues(obs, null):
     b2, bg, bl = counts(obs, null)
     m = null.shape[0]
     return (b2 + 1) / (m + 1), (bg + 1) / (m + 1), (bl + 1) / (m + 1)
+
+
+# --- missing dyads and failed fits -------------------------------------------------------
+def ols_stat_or_nan(A: np.ndarray, y: np.ndarray, col: int, statistic: str) -> float:
+    """The t statistic (or coefficient) of column ``col`` of the OLS fit of y on A by lstsq;
+    NaN when A cannot be fitted: fewer rows than columns plus one, or rank below its column
+    count (``np.linalg.matrix_rank``'s own tolerance, numpy's default for exactly singular
+    designs)."""
+    N, p = A.shape
+    if N <= p or np.linalg.matrix_rank(A) < p:
+        return np.nan
+    beta, *_ = np.linalg.lstsq(A, y, rcond=None)
+    if statistic == "coef":
+        return float(beta[col])
+    resid = y - A @ beta
+    sigma2 = resid @ resid / (N - p)
+    return float(beta[col] / np.sqrt(sigma2 * np.linalg.inv(A.T @ A)[col, col]))
+
+
+def masked_scheme_stat(Y, Xs, mask, scheme: str, statistic: str, prow, pcol) -> np.ndarray:
+    """The k statistics of one relabelling with missing values (NaN) and a structural dyad
+    set ``mask``, by full refits (methods.md: each fit uses the dyads where every matrix of
+    that fit, fixed or relabelled, is finite; missing values move with their matrix).
+
+    ``Y`` and ``Xs`` are full matrices (undirected data: symmetric, ``mask`` one triangle).
+    "y": relabel Y; fit [1, X] on Y_pi over the dyads where Y_pi and every X are finite.
+    "dsp": residualise x_j on Z = [1, other x] over the observed complete dyads (every
+    matrix finite), E = x_j - Z g as a matrix (NaN where x_j or another x is missing),
+    relabel E, fit y on [Z, E_pi] where all are finite; the E_pi term.
+    "freedman-lane": g from y on Z over the observed complete dyads, fitted = Z g and
+    R = Y - fitted as matrices, y* = fitted + R_pi, fit [1, X] on y* where all are finite.
+    ``statistic`` "t" or "coef" (the coefficient in the data's own units).
+    """
+    Y = np.asarray(Y, dtype=np.float64)
+    Xs = [np.asarray(X, dtype=np.float64) for X in Xs]
+    k = len(Xs)
+    finite_x = np.all([np.isfinite(X) for X in Xs], axis=0)
+    complete = mask & finite_x & np.isfinite(Y)
+    out = np.empty(k)
+    if scheme == "y":
+        Yp = relabel(Y, prow, pcol)
+        use = mask & finite_x & np.isfinite(Yp)
+        A = np.column_stack([np.ones(use.sum())] + [X[use] for X in Xs])
+        for j in range(k):
+            out[j] = ols_stat_or_nan(A, Yp[use], 1 + j, statistic)
+        return out
+    for j in range(k):
+        others = [Xs[c] for c in range(k) if c != j]
+        Z = np.column_stack([np.ones(complete.sum())] + [X[complete] for X in others])
+        target = Xs[j] if scheme == "dsp" else Y
+        g, *_ = np.linalg.lstsq(Z, target[complete], rcond=None)
+        fitted = g[0] + sum((gc * X for gc, X in zip(g[1:], others)), np.zeros_like(Y))
+        if scheme == "dsp":
+            Ep = relabel(Xs[j] - fitted, prow, pcol)
+            ok_others = np.all([np.isfinite(X) for X in others], axis=0) if others \
+                else np.ones_like(mask)
+            use = mask & np.isfinite(Ep) & np.isfinite(Y) & ok_others
+            A = np.column_stack([np.ones(use.sum())] + [X[use] for X in others] + [Ep[use]])
+            out[j] = ols_stat_or_nan(A, Y[use], A.shape[1] - 1, statistic)
+        elif scheme == "freedman-lane":
+            ystar = fitted + relabel(Y - fitted, prow, pcol)
+            use = mask & np.isfinite(ystar) & finite_x
+            A = np.column_stack([np.ones(use.sum())] + [X[use] for X in Xs])
+            out[j] = ols_stat_or_nan(A, ystar[use], 1 + j, statistic)
+        else:
+            raise ValueError(f"scheme must be one of {SCHEMES}; got {scheme!r}")
+    return out
+
+
+def masked_null(Y, Xs, mask, scheme, statistic, relabellings):
+    """(observed (k,), null (len(relabellings), k)) of ``masked_scheme_stat``."""
+    n, m = np.shape(Y)
+    obs = masked_scheme_stat(Y, Xs, mask, scheme, statistic, np.arange(n), np.arange(m))
+    null = np.array([masked_scheme_stat(Y, Xs, mask, scheme, statistic, pr, pc)
+                     for pr, pc in relabellings])
+    return obs, null
 
 
 # --- correlation oracle ------------------------------------------------------------------

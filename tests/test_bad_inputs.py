@@ -113,43 +113,61 @@ CASES = {
                            r"y\.csv line 3: unknown node label 'ZZ'"),
     "text in a number cell": (_file_case("y.csv", "source,target,weight\nA,B,lots\n"),
                               r"y\.csv.*line 2.*'lots'"),
-    "ragged rows": (_file_case("x.csv", "id,A,B,C\nA,1,2,3\nB,1,2\nC,1,2,3\n"), r"x\.csv.*line 3"),
-    "empty file": (_file_case("y.csv", ""), r"y\.csv.*empty"),
-    "infinite value": (_file_case("y.csv", "source,target,weight\nA,B,inf\n"), r"y\.csv.*line 2"),
+    "ragged rows": (_file_case("x.csv", "id,A,B,C\nA,1,2,3\nB,1,2\nC,1,2,3\n"),
+                    r"x\.csv line 3: expected 4 fields \(as in the header\), found 3"),
+    "empty file": (_file_case("y.csv", ""), r"y\.csv: file is empty \(expected a header row\)"),
+    "infinite value": (_file_case("y.csv", "source,target,weight\nA,B,inf\n"),
+                       r"y\.csv line 2 column 3 \(weight\): infinite value 'inf' is not data"),
     "duplicate edge": (_file_case("y.csv", "source,target,weight\nA,B,1\nC,D,1\nA,B,2\n"),
-                       r"y\.csv.*duplicate.*line"),
+                       r"y\.csv: duplicate edge 'A' -> 'B' at lines 2 and 4"),
     "duplicate node id": (_file_case("nodes.csv", "id,team,age,city\nA,0,1,x\nA,1,2,y\n"),
-                          r"nodes\.csv.*duplicate"),
+                          r"nodes\.csv: duplicate node id 'A' at line 2 and line 3"),
     "node table without id column": (_file_case("nodes.csv", "name,team\nA,0\n"),
-                                     r"nodes\.csv.*id"),
+                                     r"nodes\.csv: no id column 'id'; columns found"),
     # study-file errors, each naming section and key
     "unknown study key": (lambda s: s(test='scheme = "dsp"\npermutations = 20\ncolour = 1'),
                           r"\[test\].*colour"),
-    "unknown section": (lambda s: s(extra="a = 1"), r"extra"),
-    "invalid TOML": (lambda s: s(test='scheme = "dsp'), r"study\.toml"),
-    "missing title": (lambda s: s(study='nodes = "nodes.csv"\nid_column = "id"'), r"title"),
-    "missing network file": (lambda s: s(response='file = "nothere.csv"'), r"nothere\.csv"),
-    "unknown scheme": (lambda s: s(test='scheme = "dps"\npermutations = 20'), r"scheme.*'dps'"),
-    "negative permutation count": (lambda s: s(test='permutations = -5'), r"permutations.*-5"),
-    "alpha out of range": (lambda s: s(test='alpha = 1.5'), r"alpha"),
-    "exact not a choice": (lambda s: s(test='exact = "sometimes"'), r"exact"),
-    "jobs zero": (lambda s: s(test='jobs = 0'), r"jobs"),
+    "unknown section": (lambda s: s(extra="a = 1"), r"study\.toml: unknown section \[extra\]"),
+    "invalid TOML": (lambda s: s(test='scheme = "dsp'), r"study\.toml: not valid TOML"),
+    "missing title": (lambda s: s(study='nodes = "nodes.csv"\nid_column = "id"'),
+                      r"study\.toml \[study\] title: is required"),
+    "missing network file": (lambda s: s(response='file = "nothere.csv"'),
+                             r"\[response\] file: no such file .*nothere\.csv"),
+    "unknown scheme": (lambda s: s(test='scheme = "dps"\npermutations = 20'),
+                       r"\[test\] scheme: must be one of y, dsp, freedman-lane; got 'dps'"),
+    "negative permutation count": (lambda s: s(test='permutations = -5'),
+                                   r"\[test\] permutations: must be an integer >= 1; got -5"),
+    "alpha out of range": (lambda s: s(test='alpha = 1.5'),
+                           r"\[test\] alpha: must be a number with 0 < alpha < 1; got 1\.5"),
+    "exact not a choice": (lambda s: s(test='exact = "sometimes"'),
+                           r"\[test\] exact: must be \"auto\", true or false; got 'sometimes'"),
+    "jobs zero": (lambda s: s(test='jobs = 0'),
+                  r"\[test\] jobs: must be an integer >= 1 or -1; got 0"),
     "attribute column missing": (lambda s: s(predictor2='name = "g"\ngap = "height"'),
-                                 r"height"),
-    "gap of a text column": (lambda s: s(predictor2='name = "g"\ngap = "city"'), r"city"),
+                                 r"#2 gap: no column 'height' in nodes\.csv"),
+    "gap of a text column": (lambda s: s(predictor2='name = "g"\ngap = "city"'),
+                             r"gap needs numbers; nodes\.csv column 'city' line 2 holds 'c0'"),
     "reverse of an unknown network": (lambda s: s(predictor2='name = "back"\nreverse = "nope"'),
-                                      r"nope"),
-    "duplicate predictor names": (lambda s: s(predictor2='name = "x"\ngap = "age"'), r"'x'"),
-    "groups column missing": (lambda s: s(test='groups = "club"'), r"club"),
-    "dyads without groups": (lambda s: s(test='dyads = "within"'), r"dyads"),
+                                      r"#2 reverse: must name the response or a network "
+                                      r"predictor \(one of x, y\); got 'nope'"),
+    "duplicate predictor names": (lambda s: s(predictor2='name = "x"\ngap = "age"'),
+                                  r"#2 name: is already used by \[\[predictor\]\] #1; got 'x'"),
+    "groups column missing": (lambda s: s(test='groups = "club"'),
+                              r"\[test\] groups: no column 'club' in nodes\.csv"),
+    "dyads without groups": (lambda s: s(test='dyads = "within"'),
+                             r"\[test\] dyads: applies only with groups; got 'within'"),
     "two sources for a predictor": (lambda s: s(predictor2='name = "g"\ngap = "age"\nsame = "team"'),
-                                    r"predictor"),
+                                    r"#2 \('g'\): needs exactly one of file, same, gap, "
+                                    r"sender, receiver, pair_sum, reverse; got same, gap"),
     # data that cannot be modelled
-    "constant predictor": (lambda s: _const_case(s), r"'flat' is constant"),
+    "constant predictor": (lambda s: _const_case(s),
+                           r"predictor 'flat' is constant over the dyad set"),
     "perfectly collinear predictors": (lambda s: _collinear_case(s),
-                                       r"'twice' is perfectly collinear with 'x'"),
+                                       r"predictor 'twice' is perfectly collinear with 'x' "
+                                       r"over the dyad set: condition number"),
     "response with no variation": (_file_case("y.csv", "source,target,weight\n" + "".join(
-        f"{a},{b},1\n" for a in NODES for b in NODES if a != b)), r"no variation"),
+        f"{a},{b},1\n" for a in NODES for b in NODES if a != b)),
+        r"response 'y' has no variation over the dyad set"),
 }
 
 
@@ -203,18 +221,25 @@ def test_bad_command_lines(study, capsys, tmp_path):
 def test_api_arguments_raise_input_error():
     y = np.random.default_rng(0).normal(size=(6, 6))
     x = np.random.default_rng(1).normal(size=(6, 6))
-    for kwargs, match in [({"scheme": "q"}, "scheme"), ({"permutations": 0}, "permutations"),
-                          ({"statistic": "z2"}, "statistic"), ({"model": "probit"}, "model"),
-                          ({"exact": "yes"}, "exact"), ({"jobs": 0}, "jobs"),
-                          ({"seed": -1}, "seed"), ({"chunk_size": 0}, "chunk_size"),
-                          ({"storage": "float16"}, "storage"), ({"dyads": "within"}, "dyads")]:
+    for kwargs, match in [
+            ({"scheme": "q"}, r"scheme must be one of y, dsp, freedman-lane; got 'q'"),
+            ({"permutations": 0}, r"permutations must be a whole number >= 1; got 0"),
+            ({"statistic": "z2"}, r"statistic must be one of t, coef; got 'z2'"),
+            ({"model": "probit"}, r"model must be one of linear, logistic; got 'probit'"),
+            ({"exact": "yes"}, r"exact must be 'auto', True or False; got 'yes'"),
+            ({"jobs": 0}, r"jobs must be a whole number >= 1, or -1 for all cores; got 0"),
+            ({"seed": -1}, r"seed must be a whole number >= 0, a numpy SeedSequence or None"),
+            ({"chunk_size": 0}, r"chunk_size must be a whole number >= 1; got 0"),
+            ({"storage": "float16"}, r"storage must be one of float64, float32; got 'float16'"),
+            ({"dyads": "within"}, r"dyads: 'within' and 'all' need groups")]:
         with pytest.raises(dp.InputError, match=match):
             dp.regress(y, [x], **kwargs)
     with pytest.raises(dp.InputError, match="'x1' has shape 4 x 4; the response has 4 x 5"):
         dp.regress(np.ones((4, 5)), [np.ones((4, 4))])
-    with pytest.raises(dp.InputError, match="infinite"):
+    with pytest.raises(dp.InputError, match=r"response has an infinite value at row '0', "
+                                            r"column '1'; use NaN for a missing value"):
         dp.regress(np.where(np.eye(6) > 0, 0, np.inf) + y * 0 + 1, [x])
-    with pytest.raises(dp.InputError, match="too few nodes"):
+    with pytest.raises(dp.InputError, match=r"too few nodes: got 2 x 2; need at least 3 nodes"):
         dp.regress(np.ones((2, 2)), [np.ones((2, 2))])
 
 

@@ -3,6 +3,7 @@
 n = 2 and 3, two-mode and triangle ranges. Source of truth: the twins' plain formulas."""
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -10,6 +11,7 @@ from dyadperm.kernels.gather import gather_gram
 from dyadperm.kernels.stats import correlation_stats, fill_gram, regression_stats
 from reference import (KERNEL_ATOL, KERNEL_RTOL, STAT_RTOL, correlation_stats_ref,
                        fill_gram_ref, gather_gram_ref, regression_stats_ref)
+from reference import FIT_PIVOT_SQUARED  # noqa: E402  (the rule, written in the tests)
 
 
 @st.composite
@@ -96,6 +98,33 @@ def test_regression_stats_singular_design_is_nan():
     out = np.empty((1, 1))
     regression_stats(gram, transforms, np.ones(1), True, out)
     assert np.isnan(out[0, 0])
+
+
+@pytest.mark.parametrize("ratio", [4.0, 1.5, 0.7, 0.25])
+@pytest.mark.parametrize("N", [4, 7, 40])
+def test_regression_stats_fit_rule_at_its_boundary(N, ratio):
+    """The kernel's fit rule is the one of kernels/options.py: a design column whose
+    squared residual on the columns before it is ``ratio`` x FIT_PIVOT_SQUARED of its sum of
+    squares is fitted above the rule (ratio > 1) and a failed fit (NaN) below it, as its
+    twin decides by Schur complements. N = 4 leaves one residual df."""
+    rng = np.random.default_rng(int(100 * ratio) + N)
+    a = rng.normal(size=N)
+    z = rng.normal(size=N)
+    basis = np.column_stack([np.ones(N), a])
+    z -= basis @ np.linalg.lstsq(basis, z, rcond=None)[0]  # z orthogonal to 1 and a
+    # column 2 = a + delta z: squared residual delta^2 |z|^2, sum of squares |a|^2 + that
+    target = ratio * FIT_PIVOT_SQUARED
+    delta = np.sqrt(target * (a @ a) / ((1 - target) * (z @ z)))
+    y = rng.normal(size=N)
+    V = np.column_stack([np.ones(N), a, a + delta * z, y])
+    gram = (V.T @ V)[None]
+    transforms = np.eye(4)[None]
+    out = np.empty((1, 1))
+    regression_stats(gram, transforms, np.ones(1), True, out)
+    ref = regression_stats_ref(gram, transforms, np.ones(1), True)
+    assert np.isnan(out[0, 0]) == (ratio < 1) == np.isnan(ref[0, 0])
+    if ratio > 1:
+        np.testing.assert_allclose(out, ref, rtol=1e-3)  # near-singular: fewer digits
 
 
 @settings(max_examples=30, deadline=None)

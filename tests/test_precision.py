@@ -16,6 +16,7 @@ from __future__ import annotations
 import itertools
 import math
 import textwrap
+from fractions import Fraction
 
 import numpy as np
 import pytest
@@ -23,7 +24,7 @@ import scipy.stats as st
 
 import dyadperm as dp
 from dyadperm import planning, settings
-from dyadperm.pipeline import adjustment, stopping
+from dyadperm.pipeline import adjustment, pvalues, stopping
 from dyadperm.routes import correlation
 from dyadperm.errors import InputError, RunFileError
 from dyadperm.pipeline.permutations import Blocks, draw
@@ -102,6 +103,34 @@ def test_permutations_needed(d, alpha, expected):
     assert planning.permutations_needed(d, alpha) == expected
 
 
+@pytest.mark.parametrize("d, alpha", [(0.002, 0.05), (0.003, 0.05), (0.001, 0.01),
+                                      (0.0123, 0.2)])
+def test_planned_m_keeps_the_reported_error_within_the_precision(d, alpha):
+    """planning's docstring: m = ceil(alpha (1 - alpha) / d^2) (methods.md) is the smallest m
+    whose binomial standard error sqrt(alpha (1 - alpha) / m) is at most d; the error a run
+    reports divides by m + 1 (pvalues.mc_standard_error), so at p = alpha it is at most d
+    with the planned m, still at most d with m - 1, and above d with m - 2. Exact in
+    rationals (fractions), then through the package's own formula in floating point."""
+    m = planning.permutations_needed(d, alpha)
+    a, dd = Fraction(repr(alpha)), Fraction(repr(d))
+    var = a * (1 - a)
+    assert var / m <= dd ** 2 < var / (m - 1)  # binomial error: m is the smallest
+    assert var / (m + 1) < dd ** 2             # reported error with the planned m: below d
+    assert var / m <= dd ** 2                  # with m - 1 (m outcomes): still within d
+    assert var / (m - 1) > dd ** 2             # with m - 2: above d
+    assert float(pvalues.mc_standard_error(alpha, m)) <= d
+    assert float(pvalues.mc_standard_error(alpha, m - 2)) > d
+
+
+def test_methods_example_reported_error():
+    # methods.md: alpha 0.05, d 0.002 -> 11,875; 0.0475 / 0.002^2 = 11,875 exactly, so with
+    # m - 1 = 11,874 relabellings the reported error sqrt(0.0475 / 11,875) is exactly d
+    m = planning.permutations_needed(0.002, 0.05)
+    assert m == 11_875
+    assert Fraction(19, 400) / (m - 1 + 1) == Fraction(2, 1000) ** 2
+    assert float(pvalues.mc_standard_error(0.05, m)) == pytest.approx(0.0019999158, rel=1e-8)
+
+
 @pytest.mark.parametrize("args, match", [
     ((0.0, 0.05), r"`precision` must be a number with 0 < precision < 0\.5; got 0\.0"),
     ((0.002, 1.0), r"`alpha` must be a number with 0 < alpha < 1; got 1\.0"),
@@ -142,6 +171,8 @@ def test_plan_study_times_the_study(tmp_path):
     assert est.timed_permutations > 0 and est.rate > 0 and est.seconds > 0
     text = est.text()
     assert "11,875 random relabellings" in text and "2 worker(s)" in text
+    assert ("reports the Monte Carlo s.e. sqrt(p (1 - p) / (m + 1)): 0.00199992 at p = alpha, "
+            "within the precision asked") in text
 
 
 def test_plan_study_says_when_enumeration_is_smaller(tmp_path):

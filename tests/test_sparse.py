@@ -439,8 +439,8 @@ def test_errors_name_the_rule(rng):
         vals = rng.normal(size=n)
         vals[3] = np.nan
         dp.regress(net, {"g": dp.gap(vals)}, scheme="y", permutations=10)
-    with pytest.raises(dp.InputError, match="predictor 'twice' is constant or perfectly "
-                                            "collinear with s"):
+    with pytest.raises(dp.InputError, match="predictor 'twice' is perfectly collinear with 's' "
+                                            "over the dyad set: condition number"):
         dp.regress(net, {"s": s, "twice": s}, scheme="y", permutations=10)
     with pytest.raises(dp.InputError, match="response 'ties' has no variation"):
         dp.regress(dp.SparseNetwork([], [], None, n, name="ties"), {"s": s}, scheme="y",
@@ -450,11 +450,23 @@ def test_errors_name_the_rule(rng):
                    scheme="y", permutations=10)
 
 
-def test_near_collinear_predictors_warn(rng):
+def test_near_collinear_predictors_are_refused_by_the_one_rule(rng):
+    """The sparse path fits from Gram matrices (the normal equations, and the kernels'
+    Cholesky of each relabelling's Gram): a predictor that keeps less than FIT_PIVOT of its
+    spread apart from the others cannot be fitted there, so it is refused before any
+    relabelling, naming the pair and the condition number (kernels.options). Just above
+    the rule the run goes through and the kernels reproduce the fit's t."""
     n = 40
     Y = sparse_response(rng, n, 0.2, directed=True)
     a = rng.normal(size=n)
-    preds = {"a": dp.sender(a), "b": dp.sender(a + 1e-6 * rng.normal(size=n))}
-    # common practice: a condition number above 1e6 makes estimates unstable
-    with pytest.warns(dp.DyadpermWarning, match="predictors are nearly collinear"):
-        dp.regress(sp.csr_array(Y), preds, scheme="y", permutations=10, seed=1)
+    noise = rng.normal(size=n)
+    with pytest.raises(dp.InputError, match=r"predictor 'b' is nearly collinear with 'a' over "
+                                            r"the dyad set: condition number 2\.\d+e\+06; the "
+                                            r"part of 'b' apart from the other predictors is "
+                                            r"9\.\de-07 of its spread, below the 1e-05"):
+        dp.regress(sp.csr_array(Y), {"a": dp.sender(a), "b": dp.sender(a + 1e-6 * noise)},
+                   scheme="y", permutations=10, seed=1)
+    res = dp.regress(sp.csr_array(Y), {"a": dp.sender(a), "b": dp.sender(a + 1e-4 * noise)},
+                     scheme="y", permutations=10, seed=1)
+    assert np.all(np.isfinite(res.observed)) and np.all(np.isfinite(res.p[1:]))
+    np.testing.assert_allclose(res.observed, res.stat[1:], rtol=1e-6)

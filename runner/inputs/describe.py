@@ -1,7 +1,8 @@
 """What a study's inputs look like: the summary ``dyadperm check`` prints.
 
 Nodes, dyads, density, missing values, symmetry per network, and the correlations and
-condition number of the predictors over the dyad set (collinearity).
+condition number of the predictors over the dyad set (collinearity). A design that the
+run would refuse (the one rule of ``design.check_design``) is named in a note.
 """
 
 from __future__ import annotations
@@ -11,7 +12,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .design import iter_dyad_rows, prepare
+from ..errors import InputError
+from .design import (check_design, dyads_phrase, fit_pivot, fold_rows, iter_dyad_rows, prepare,
+                     standardised_condition)
 from .sparse import SparseNetwork
 from .study_file import read_study
 
@@ -84,11 +87,13 @@ def describe_study(path: str | Path) -> StudySummary:
     notes = list(st.notes)
     complete = 0
     sums = np.zeros((len(names) + 1, len(names) + 1))
+    r_acc = np.zeros((0, prep.k + 1))
     for block in iter_dyad_rows(prep, prep.matrices):
         ok = ~np.isnan(block).any(axis=1)
         complete += int(ok.sum())
         z = np.concatenate([np.ones((int(ok.sum()), 1)), block[ok]], axis=1)
         sums += z.T @ z
+        r_acc = fold_rows(r_acc, z[:, :prep.k + 1])  # R of [1, X] over the complete dyads
     for idx, (name, role) in enumerate(zip(names, roles)):
         vals = prep.matrices[idx][prep.mask]
         fin = vals[~np.isnan(vals)]
@@ -109,11 +114,20 @@ def describe_study(path: str | Path) -> StudySummary:
     with np.errstate(divide="ignore", invalid="ignore"):
         corr = cov / np.outer(sd, sd)
     pc = corr[:k, :k]
-    if k > 1 and np.all(np.isfinite(pc)):
-        ev = np.linalg.eigvalsh(pc)
-        cond = float(np.sqrt(ev[-1] / ev[0])) if ev[0] > 0 else float("inf")
+    cond = 1.0
+    if complete > k + 1:
+        rx = r_acc[:k + 1, :k + 1]
+        raw = np.sqrt((rx[:, 1:] * rx[:, 1:]).sum(axis=0))
+        pivot = fit_pivot(prep.complete, model=st.spec["test"].get("model") or "linear")
+        try:
+            cond = check_design(rx[1:, 1:], prep.names, pivot=pivot, raw_norms=raw,
+                                where=dyads_phrase(prep, complete))
+        except InputError as err:
+            notes.append(f"a run would refuse this design: {err}")
+            if np.all(np.sqrt((rx[1:, 1:] ** 2).sum(axis=0)) > 0):
+                cond = standardised_condition(rx[1:, 1:])
     else:
-        cond = 1.0
+        notes.append(f"too few complete dyads for the model: {complete} for {k + 1} terms")
     shape = (f"{prep.mask.shape[0]} x {prep.mask.shape[1]}" if prep.two_mode
              else f"{prep.mask.shape[0]}")
     return StudySummary(st.title, shape, prep.directed, prep.two_mode, prep.n_dyads, complete,

@@ -19,6 +19,7 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from ..errors import DyadpermWarning, InputError
+from ..kernels.options import FIT_PIVOT, QR_PIVOT
 from ..kernels.stats import masked_moments
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
@@ -32,10 +33,8 @@ STREAM_DYADS = 1 << 20
 QR_ROWS = 1 << 14
 # Condition number (of the standardised design) above which a warning is given.
 COND_WARN = 1e6
-# Residual norm of a standardised predictor on the ones before it (sqrt(1 - R^2)) below
-# which it counts as constant or perfectly collinear. Condition numbers up to about
-# 1e11 pass; exact collinearity leaves rounding noise near 1e-15.
-COLLINEAR_PIVOT = 1e-12
+# Share of a collinear set's smallest singular vector above which a predictor is named in it.
+COLLINEAR_SHARE = 0.1
 
 
 @dataclass(frozen=True, eq=False)
@@ -382,11 +381,16 @@ def fold_rows(r: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return r
 
 
-def observed_fit(prep: Prepared) -> ObservedFit:
+def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
+                 response: bool = True) -> ObservedFit:
     """OLS by a streaming QR of [1, X, y] over the complete observed dyads.
 
     Each block of dyads is stacked under the running R factor and re-factorised
-    (tall-skinny QR), which is as stable as a QR of the whole N x (p + 1) matrix.
+    (tall-skinny QR), which is as stable as a QR of the whole N x (p + 1) matrix. Before
+    anything is solved, the design must pass :func:`check_design` with the relative pivot
+    ``pivot`` the route's own fits resolve (``kernels.options``: ``QR_PIVOT`` for the dense
+    linear route on complete float64 data, else ``FIT_PIVOT``), and with ``response`` the
+    response must keep residual variation (:func:`check_response`).
     """
     k = prep.k
     p = k + 1
@@ -405,7 +409,9 @@ def observed_fit(prep: Prepared) -> ObservedFit:
         raise InputError(f"too few dyads for the model: {n_obs} complete dyads for {p} terms")
     r = r_acc[:p + 1, :p + 1]
     rx = r[:p, :p]
-    _check_collinear(rx, prep.names)
+    where = dyads_phrase(prep, n_obs)
+    raw = np.sqrt((rx[:, 1:] * rx[:, 1:]).sum(axis=0))  # the predictors' norms before centring
+    cond = check_design(rx[1:, 1:], prep.names, pivot=pivot, raw_norms=raw, where=where)
     y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
     ymean = sums[-1] / n_obs
     tss = 0.0
@@ -414,51 +420,123 @@ def observed_fit(prep: Prepared) -> ObservedFit:
         tss += float(((block[ok, -1] - ymean) ** 2).sum())
     if tss <= 0.0:
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set")
+    rss = float(y_piv ** 2)
+    if response:
+        check_response(rss, tss, prep.response_name, pivot=FIT_PIVOT, where=where)
     coef = solve_triangular(rx, r[:p, p])
     rinv = solve_triangular(rx, np.eye(p))
-    rss = float(y_piv ** 2)
     sigma2 = rss / (n_obs - p)
     se = np.sqrt(sigma2 * (rinv * rinv).sum(axis=1))
     with np.errstate(divide="ignore", invalid="ignore"):
         t = coef / se
-    cond = _standardised_condition(rx, k, prep.names)
+    warn_condition(rx[1:, 1:], cond, prep.names)
     return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
 
 
-def _check_collinear(rx: np.ndarray, names: Sequence[str]) -> None:
-    """InputError naming a constant or perfectly collinear predictor (QR pivots of the
-    centred predictors, each relative to its own centred norm)."""
-    rc = rx[1:, 1:]
-    norms = np.sqrt((rc * rc).sum(axis=0))
-    raw = np.sqrt((rx[:, 1:] * rx[:, 1:]).sum(axis=0))  # norms before centring
-    for j, name in enumerate(names):
-        if not norms[j] > COLLINEAR_PIVOT * raw[j]:
-            raise InputError(f"predictor {name!r} is constant over the dyad set")
-        if abs(rc[j, j]) / norms[j] < COLLINEAR_PIVOT:
-            others = ", ".join(repr(nm) for nm in names[:j])
-            raise InputError(f"predictor {name!r} is perfectly collinear with {others} "
-                             "over the dyad set")
+def fit_pivot(complete: bool, *, storage: str = "float64", model: str = "linear") -> float:
+    """The relative pivot a route's fits resolve (``kernels.options``): ``QR_PIVOT`` for the
+    dense linear route on complete float64 data (its kernels read an orthonormal basis of
+    the predictors), else ``FIT_PIVOT`` (standardised layers in Gram matrices: missing data,
+    float32 layers, the logistic route's Newton steps)."""
+    return QR_PIVOT if complete and storage == "float64" and model == "linear" else FIT_PIVOT
 
 
-def _standardised_condition(rx: np.ndarray, k: int, names: Sequence[str]) -> float:
-    """Condition number of the centred, unit-length predictors; warn when large."""
-    if k < 2:
+def dyads_phrase(prep: Prepared, n_obs: int) -> str:
+    """Where a fit runs, for messages: the dyad set, or its complete dyads with missing data."""
+    if prep.complete:
+        return "over the dyad set"
+    return (f"over the {n_obs:,} complete dyads (where the response and every predictor "
+            "are observed)")
+
+
+def check_design(factor: np.ndarray, names: Sequence[str], *, pivot: float,
+                 raw_norms: np.ndarray | None = None, where: str = "over the dyad set") -> float:
+    """The one rule of whether a design can be fitted (``kernels.options``).
+
+    ``factor`` (k, k) is any F with F'F = X_c'X_c, the cross products of the k predictors
+    centred over the fit's dyads (the lower-right block of the R factor of [1, X]; a
+    Cholesky or eigen factor of the centred cross products). ``raw_norms`` (k,) are the
+    predictors' norms before centring (None: the constant check reads ``factor`` alone).
+
+    A predictor whose centred norm is at most ``pivot`` x its norm is (nearly) constant; a
+    predictor whose residual on the others keeps less than ``pivot`` of its centred norm,
+    sqrt(1 - R^2) < ``pivot`` (1 / sqrt of its variance inflation factor, from the SVD of
+    the standardised F), is collinear with them. Either gives an InputError: the constant
+    predictor, or the collinear set (those below ``pivot``, with those carrying the
+    smallest singular vector) and the condition number of the standardised predictors.
+    Returns that condition number.
+    """
+    k = len(names)
+    if k == 0:
         return 1.0
-    # With [1, X] = QR, the lower-right block of R is an R factor of the centred X
-    # (X_c'X_c = X'X - N xbar xbar' = R_xx'R_xx).
-    rc = rx[1:, 1:]
-    norms = np.sqrt((rc * rc).sum(axis=0))
-    rs = rc / norms
-    sv = np.linalg.svd(rs, compute_uv=False)
-    cond = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
-    if cond > COND_WARN:
-        corr = rs.T @ rs
-        np.fill_diagonal(corr, 0.0)
-        a, b = np.unravel_index(np.argmax(np.abs(corr)), corr.shape)
-        warnings.warn(f"predictors are nearly collinear (condition number {cond:.3g}; most "
-                      f"correlated pair {names[a]!r} and {names[b]!r}, r = {corr[a, b]:.6f}): "
-                      "estimates are unstable", DyadpermWarning, stacklevel=3)
+    norms = np.sqrt((factor * factor).sum(axis=0))
+    for j, name in enumerate(names):
+        raw = norms[j] if raw_norms is None else raw_norms[j]
+        if not norms[j] > pivot * raw or not norms[j] > 0.0:
+            if not norms[j] > QR_PIVOT * raw:
+                raise InputError(f"predictor {name!r} is constant {where}")
+            raise InputError(f"predictor {name!r} is nearly constant {where}: its spread about "
+                             f"its mean is {norms[j] / raw:.2g} of its size, below the "
+                             f"{pivot:g} a fit resolves")
+    fs = factor / norms
+    _, sv, vt = np.linalg.svd(fs)
+    scaled = vt / np.maximum(sv, np.finfo(np.float64).tiny)[:, None]
+    with np.errstate(over="ignore"):
+        vif = (scaled * scaled).sum(axis=0)
+    apart = 1.0 / np.sqrt(vif)  # sqrt(1 - R^2) of each predictor on the others
+    with np.errstate(divide="ignore"):
+        cond = float(sv[0] / sv[-1]) if sv[-1] > 0.0 else float("inf")
+    if not np.all(apart >= pivot):
+        below = [j for j in range(k) if not apart[j] >= pivot]
+        last = below[-1]  # named first: the last predictor (in model order) below the rule
+        null = np.abs(vt[-1])  # the near-null combination of the standardised predictors
+        partner = max((j for j in range(k) if j != last), key=lambda j: null[j])
+        members = {j for j in below} | {partner} | {
+            j for j in range(k) if null[j] >= COLLINEAR_SHARE * null.max()}
+        others = [repr(names[j]) for j in sorted(members - {last})]
+        with_ = others[0] if len(others) == 1 else ", ".join(others[:-1]) + " and " + others[-1]
+        how = "perfectly" if apart.min() < QR_PIVOT else "nearly"
+        raise InputError(f"predictor {names[last]!r} is {how} collinear with {with_} {where}: "
+                         f"condition number {cond:.3g}; the part of {names[last]!r} apart from "
+                         f"the other predictors is {apart[last]:.2g} of its spread, below the "
+                         f"{pivot:g} a fit resolves; drop or combine them")
     return cond
+
+
+def check_response(rss: float, tss: float, name: str, *, pivot: float = FIT_PIVOT,
+                   where: str = "over the dyad set") -> None:
+    """The same rule for the response: its residual on the design must keep at least
+    ``pivot`` of its centred norm (sqrt(RSS / TSS) >= ``pivot``), or no t statistic (nor
+    residual to relabel) can be computed from it."""
+    if not rss > pivot * pivot * tss:
+        frac = float(np.sqrt(max(rss, 0.0) / tss))
+        raise InputError(f"response {name!r} is fitted exactly by the predictors {where}: "
+                         f"its residuals keep {frac:.2g} of its spread, below the {pivot:g} "
+                         "a test needs (no residual variation to compare)")
+
+
+def standardised_condition(rc: np.ndarray) -> float:
+    """Condition number of the centred, unit-length predictors from a factor ``rc`` of their
+    centred cross products (as in :func:`check_design`)."""
+    if rc.shape[0] < 2:
+        return 1.0
+    rs = rc / np.sqrt((rc * rc).sum(axis=0))
+    sv = np.linalg.svd(rs, compute_uv=False)
+    return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
+
+
+def warn_condition(rc: np.ndarray, cond: float, names: Sequence[str]) -> None:
+    """Warn, naming the most correlated pair, when the condition number ``cond`` of the
+    standardised predictors (factor ``rc`` of their centred cross products) is large."""
+    if len(names) < 2 or not cond > COND_WARN:
+        return
+    rs = rc / np.sqrt((rc * rc).sum(axis=0))
+    corr = rs.T @ rs
+    np.fill_diagonal(corr, 0.0)
+    a, b = np.unravel_index(np.argmax(np.abs(corr)), corr.shape)
+    warnings.warn(f"predictors are nearly collinear (condition number {cond:.3g}; most "
+                  f"correlated pair {names[a]!r} and {names[b]!r}, r = {corr[a, b]:.6f}): "
+                  "estimates are unstable", DyadpermWarning, stacklevel=3)
 
 
 def standardise(prep: Prepared) -> tuple[np.ndarray, np.ndarray]:

@@ -70,15 +70,16 @@ def _p_text(p: float) -> str:
 def null_histogram(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
     """Histogram of one tested term's permuted statistics, the observed value marked.
 
-    The observed statistic is a solid line; its mirror image -observed a dashed one, since
-    the two-sided p-value counts relabellings beyond either.
+    The observed statistic (the one the p-value compares with, ``res.observed``) is a
+    solid line; its mirror image -observed a dashed one, since the two-sided p-value counts
+    relabellings beyond either. A term with no finite observed statistic shows the null
+    alone.
     """
     i = int(res.tested_index()[column])
     term = res.terms[i]
     null = np.asarray(res.null[:, column], dtype=np.float64)
     null = null[np.isfinite(null)]
-    obs = float(np.asarray(res.stat)[i]) if np.isfinite(np.asarray(res.stat)[i]) \
-        else float(res._estimates()[i])
+    obs = float(np.asarray(res.observed)[column])
     fig = _figure()
     ax = fig.add_subplot()
     _style(ax)
@@ -87,6 +88,14 @@ def null_histogram(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
         bins = int(np.clip(np.sqrt(null.size), 20, 60))
         ax.hist(null, bins=bins, color=HIST_FACE, edgecolor="#555555", linewidth=0.4,
                 label=f"relabelled ({null.size:,})")
+    if not np.isfinite(obs):
+        ax.set_xlabel(f"{name} (no unit)", fontsize=FONT)
+        ax.set_ylabel("relabellings (count)", fontsize=FONT)
+        ax.set_title(f"{term}: null distribution of the {name}\nno p-value: the observed "
+                     "statistic could not be computed", fontsize=FONT + 1)
+        if null.size:
+            _legend(fig, ax)
+        return _png(fig)
     ax.axvline(obs, color="black", linewidth=2.0, label=f"observed {obs:.3g}")
     if obs != 0:
         ax.axvline(-obs, color="black", linewidth=1.2, linestyle=(0, (4, 3)),
@@ -108,9 +117,8 @@ def null_histogram(res: Any, column: int, *, alpha: float = 0.05) -> bytes:
 def running_p(res: Any, column: int, points: int = 400) -> tuple[np.ndarray, ...]:
     """(l, p_l, low_l, high_l) at up to ``points`` log-spaced l: the p-value after the first
     l relabellings, (b_l + 1) / (l + 1), with its Clopper-Pearson interval."""
-    i = int(res.tested_index()[column])
     null = np.asarray(res.null[:, column], dtype=np.float64)
-    b = np.cumsum(exceedances(null[:, None], np.asarray(res.stat)[i:i + 1])[:, 0])
+    b = np.cumsum(exceedances(null[:, None], np.asarray(res.observed)[column:column + 1])[:, 0])
     m = null.shape[0]
     ls = np.unique(np.geomspace(1, m, num=min(points, m)).astype(np.int64))
     bl = b[ls - 1]

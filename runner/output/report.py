@@ -87,7 +87,7 @@ def plot_images(res: Any, *, alpha: float | None = None) -> list[tuple[str, str,
         stem = f"{col + 1:02d}_{_safe(res.terms[i])}"
         out.append((f"{stem}_null.png", f"{res.terms[i]}: null distribution and the observed "
                     "statistic", plots.null_histogram(res, col, alpha=a)))
-        if not res.exact:
+        if not res.exact and np.isfinite(res.p[i]):
             out.append((f"{stem}_convergence.png", f"{res.terms[i]}: p-value as "
                         "relabellings accumulate, with its 95% Clopper-Pearson band",
                         plots.convergence(res, col, alpha=a)))

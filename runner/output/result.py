@@ -199,8 +199,8 @@ def term_rows(res: _Common) -> tuple[tuple[str, ...], list[list]]:
     """The per-term table: its columns and one row of values per term.
 
     Values are as stored (numpy floats, NaN where a value does not apply), with ``""``
-    for the exceedance and failure counts of an untested term and for an empty stop
-    verdict. The CSV report writes these rows (empty cells for ``""`` and non-finite
+    for the exceedance and failure counts of an untested term, for the exceedance count of
+    a term without an observed statistic (no p-value), and for an empty stop verdict. The CSV report writes these rows (empty cells for ``""`` and non-finite
     numbers); ``to_frame`` holds them with NaN for those cells.
     """
     tested = list(res.tested_index())
@@ -213,7 +213,7 @@ def term_rows(res: _Common) -> tuple[tuple[str, ...], list[list]]:
         row = [term, est[i], res.se[i], res.stat[i], res.p[i], res.p_se[i],
                res.p_interval[i][0], res.p_interval[i][1], res.p_adjusted[i],
                res.p_greater[i], res.p_less[i],
-               "" if col is None else int(res.exceed[col]),
+               "" if col is None or not np.isfinite(res.observed[col]) else int(res.exceed[col]),
                "" if col is None else int(res.failed[col]), res.stop_at[i], verdict]
         row += ci_cells(res, i)
         if layers:

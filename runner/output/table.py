@@ -67,6 +67,9 @@ def _stop_lines(res: Any) -> list[str]:
                  "(not every term was done earlier)"]
     for i in res.tested_index():
         term, at = res.terms[i], res.stop_at[i]
+        if not np.isfinite(res.p[i]):
+            lines.append(f"  {term}: no observed statistic, not waited for (see the note)")
+            continue
         if rule == "besag-clifford":
             h = res.stop["exceedances"]
             what = (f"{h}th exceedance after {int(at):,} relabellings: p = {h}/{int(at):,} "

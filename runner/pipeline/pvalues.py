@@ -6,6 +6,10 @@ enumeration (all relabellings, the identity among them): p = b / m. Ties within 
 relative ``TIE_TOLERANCE`` count as at least as extreme. A permuted fit that failed
 (NaN statistic: singular design) counts as at least as extreme (conservative).
 
+A term whose observed statistic is not finite (its fit on the observed data failed in the
+kernels, or is infinite) has nothing to compare the null with: every p-value of it, its
+standard error and interval are NaN, never the smallest attainable p (``has_statistic``).
+
 Monte Carlo standard error sqrt(p (1 - p) / (m + 1)) and the Clopper–Pearson interval
 for b + 1 successes in m + 1 trials (Clopper & Pearson 1934, Biometrika 26:404–413).
 """
@@ -32,15 +36,35 @@ class PValues:
     failed: np.ndarray  # NaN statistics per term
 
 
+def has_statistic(observed: np.ndarray) -> np.ndarray:
+    """(k,) bool: the terms whose observed statistic is finite, the ones that get p-values."""
+    return np.isfinite(np.asarray(observed, dtype=np.float64))
+
+
 def count_extreme(null: np.ndarray, observed: np.ndarray) -> tuple[np.ndarray, ...]:
-    """Counts (two-sided, greater, less, failed) per column of ``null`` (m, k)."""
-    tol = TIE_TOLERANCE * np.abs(observed)
+    """Counts (two-sided, greater, less, failed) per column of ``null`` (m, k).
+
+    Relabelling i counts for term j when |T_ij| >= |T_obs,j| - TIE_TOLERANCE |T_obs,j|
+    (and alike one-sided), or when T_ij is NaN (a failed permuted fit). A term with no
+    finite observed statistic counts 0 (its p-values are NaN: ``pvalues``).
+    """
+    observed = np.asarray(observed, dtype=np.float64)
+    ok = has_statistic(observed)
+    obs = np.where(ok, observed, 0.0)
+    tol = TIE_TOLERANCE * np.abs(obs)
     bad = np.isnan(null)
     with np.errstate(invalid="ignore"):
-        two = (np.abs(null) >= np.abs(observed) - tol) | bad
-        greater = (null >= observed - tol) | bad
-        less = (null <= observed + tol) | bad
+        two = ((np.abs(null) >= np.abs(obs) - tol) | bad) & ok
+        greater = ((null >= obs - tol) | bad) & ok
+        less = ((null <= obs + tol) | bad) & ok
     return two.sum(axis=0), greater.sum(axis=0), less.sum(axis=0), bad.sum(axis=0)
+
+
+def mc_standard_error(p: np.ndarray, m: int) -> np.ndarray:
+    """Monte Carlo standard error sqrt(p (1 - p) / (m + 1)) of a p-value from m random
+    relabellings (p = (b + 1) / (m + 1) counts m + 1 outcomes)."""
+    p = np.asarray(p, dtype=np.float64)
+    return np.sqrt(p * (1 - p) / (m + 1))
 
 
 def clopper_pearson(successes: np.ndarray, trials: np.ndarray | int,
@@ -65,6 +89,10 @@ def pvalues(null: np.ndarray, observed: np.ndarray, *, exact: bool) -> PValues:
         interval = np.stack([p, p], axis=-1)
     else:
         p, pg, pl = (two + 1) / (m + 1), (greater + 1) / (m + 1), (less + 1) / (m + 1)
-        se = np.sqrt(p * (1 - p) / (m + 1))
+        se = mc_standard_error(p, m)
         interval = clopper_pearson(two + 1, m + 1)
+    none = ~has_statistic(observed)
+    if none.any():
+        p, pg, pl, se = (np.where(none, np.nan, a) for a in (p, pg, pl, se))
+        interval = np.where(none[:, None], np.nan, interval)
     return PValues(p, pg, pl, se, interval, two, failed)

@@ -176,9 +176,14 @@ def run(plan: Any, opts: RunOptions):
 
 
 def check_agreement(kernel: np.ndarray, expected: np.ndarray, summary: dict) -> None:
-    """Warn, naming the term, when the kernels' observed statistic is not the route's own."""
+    """Warn, naming the term, when the kernels' observed statistic is not the route's own.
+
+    A term whose kernel statistic is not finite is left to ``missing_statistic_note``: it
+    has no p-value at all, rather than one to treat with caution.
+    """
     with np.errstate(invalid="ignore"):
         gap = np.abs(kernel - expected) / np.maximum(1.0, np.abs(expected))
+    gap = np.where(np.isfinite(kernel), gap, 0.0)
     if np.any(~(gap <= AGREEMENT)):
         j = int(np.nanargmax(np.where(np.isnan(gap), np.inf, gap)))
         name = summary["tested"][j]
@@ -187,6 +192,20 @@ def check_agreement(kernel: np.ndarray, expected: np.ndarray, summary: dict) -> 
                       f"{expected[j]:.10g} from the fit but {kernel[j]:.10g} through the "
                       "permutation kernels (near-collinear predictors); treat its p-value "
                       "with caution", DyadpermWarning, stacklevel=4)
+
+
+def missing_statistic_note(summary: dict, kernel: np.ndarray) -> tuple[str, ...]:
+    """The note under the table for tested terms whose observed statistic is not finite."""
+    bad = [(name, float(v)) for name, v in zip(summary["tested"], np.asarray(kernel))
+           if not np.isfinite(v)]
+    if not bad:
+        return ()
+    label = statistic_label(summary["model"], summary["statistic"])
+    which = ", ".join(f"{name!r} ({v})" for name, v in bad)
+    return (f"no p-value for {which}: its observed {label} through the permutation kernels "
+            "is not finite (its fit on the observed data failed there, or is exact), so "
+            "there is nothing to compare the relabellings with; the adjusted p-values of "
+            "the other terms are over the terms that have a statistic",)
 
 
 def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk_size: int,
@@ -199,8 +218,9 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
     """
     k = len(summary["tested"])
     rows, null = null, null[:, :k]
-    st = assess(np.asarray(null), np.asarray(observed["kernel_stat"], dtype=np.float64),
-                exact=exact, stop=summary.get("stop"), planned=planned)
+    kernel = np.asarray(observed["kernel_stat"], dtype=np.float64)
+    st = assess(np.asarray(null), kernel, exact=exact, stop=summary.get("stop"),
+                planned=planned)
     pv = st.pv
     tested = dict(p_adjusted=st.p_adjusted, stop_at=st.stop_at, stop_verdict=st.verdict)
     common = dict(
@@ -212,10 +232,10 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
         statistic=statistic_label(summary["model"], summary["statistic"]),
         seed=seed, directed=bool(summary["directed"]), two_mode=bool(summary["two_mode"]),
         response=summary["response"], exceed=pv.exceed, failed=pv.failed,
-        chunk_size=int(chunk_size), notes=tuple(summary.get("notes", ())) + st.notes,
+        chunk_size=int(chunk_size),
+        notes=tuple(summary.get("notes", ())) + st.notes + missing_statistic_note(summary, kernel),
         alpha=st.rule.alpha, stop=st.rule.to_dict(), stopped_by=st.stopped_by,
-        planned=st.planned, workers=workers,
-        observed=np.asarray(observed["kernel_stat"], dtype=np.float64))
+        planned=st.planned, workers=workers, observed=kernel)
     if summary["kind"] == "correlation":
         return CorrelationResult(p=pv.p, p_greater=pv.p_greater, p_less=pv.p_less,
                                  p_se=pv.p_se, p_interval=pv.p_interval,

@@ -18,7 +18,8 @@ one an infinite run would give is at most ``risk`` for every true p. A term is d
 S_n >= U_n (p > alpha) or S_n <= L_n (p <= alpha); its p-value is (S_tau + 1) / (tau + 1)
 at that point.
 
-The run stops at the first chunk boundary where every tested term is done.
+The run stops at the first chunk boundary where every tested term is done. A term whose
+observed statistic is not finite has no p-value (``pvalues``) and is never waited for.
 :func:`assess` gives a run's p-values under its rule, with the familywise adjustment of
 ``dyadperm.pipeline.adjustment``.
 """
@@ -38,7 +39,8 @@ from ..errors import RunFileError
 from ..settings import StopRule
 from .adjustment import maxt_adjusted
 from .engine import iter_chunks, row_width
-from .pvalues import INTERVAL_LEVEL, TIE_TOLERANCE, PValues, clopper_pearson, pvalues
+from .pvalues import (INTERVAL_LEVEL, TIE_TOLERANCE, PValues, clopper_pearson, has_statistic,
+                      pvalues)
 
 #: Gandy's spending sequence eps_n = eps * n / (n + k) with k = 1000 [memory: the paper's
 #: suggested default; any nondecreasing eps_n -> eps below eps keeps the bound].
@@ -52,14 +54,17 @@ def exceedances(null: np.ndarray, observed: np.ndarray) -> np.ndarray:
     """(m, k) bool: relabelling i at least as extreme as the observed statistic of term j.
 
     Two-sided, |T_pi| >= |T_obs| with ties within a relative ``TIE_TOLERANCE``, and a
-    failed (NaN) permuted statistic counts as extreme: the rule of ``pvalues``.
+    failed (NaN) permuted statistic counts as extreme: the rule of ``pvalues``. A term
+    with no finite observed statistic has none.
     """
     obs = np.asarray(observed, dtype=np.float64)
     # a row holds the statistics first, then any extra numbers of the route
     null = np.asarray(null, dtype=np.float64)[:, :obs.shape[0]]
+    ok = has_statistic(obs)
+    obs = np.where(ok, obs, 0.0)
     tol = TIE_TOLERANCE * np.abs(obs)
     with np.errstate(invalid="ignore"):
-        return (np.abs(null) >= np.abs(obs) - tol) | np.isnan(null)
+        return ((np.abs(null) >= np.abs(obs) - tol) | np.isnan(null)) & ok
 
 
 class GandyBoundaries:
@@ -139,7 +144,8 @@ class Sequential:
 
     Feed it chunks as they finish (any order); it advances over chunks only once every
     earlier chunk is in. ``stop_rows`` is None until every tested term is done; then it
-    is the first chunk boundary at or after the last term's stopping point.
+    is the first chunk boundary at or after the last term's stopping point (at least one
+    chunk). Terms with no finite observed statistic (``skip``) are never waited for.
     """
 
     def __init__(self, rule: StopRule, observed: np.ndarray, *, chunk_size: int,
@@ -154,16 +160,18 @@ class Sequential:
         self.tau = np.zeros(k, dtype=np.int64)      # stopping point of each term (0: not yet)
         self.at_tau = np.zeros(k, dtype=np.int64)   # S_tau
         self.side = np.zeros(k, dtype=np.int8)      # gandy: +1 above alpha, -1 below
+        self.skip = ~has_statistic(self.observed)   # no statistic: nothing to decide
         self._pending: dict[int, np.ndarray] = {}
         self._next = 0
         self._stored: tuple[np.ndarray, np.ndarray] | None = None
 
     @property
     def stop_rows(self) -> int | None:
-        if not self.tau.size or not (self.tau > 0).all():
+        if not self.tau.size or not ((self.tau > 0) | self.skip).all():
             return None
         cs = self.chunk_size
-        return min(self.total, -(-int(self.tau.max()) // cs) * cs)
+        rows = min(self.total, max(1, -(-int(self.tau.max()) // cs)) * cs)
+        return rows if self.rows >= rows else None  # (only when no term is waited for)
 
     def advance(self, x: np.ndarray) -> None:
         """Take the exceedance indicators (rows, k) of the next rows in permutation order."""
@@ -179,7 +187,7 @@ class Sequential:
             u, lo = gandy_boundaries(self.rule.alpha, self.rule.risk).arrays(self.rows + 1, rows)
             up = s >= u[:, None]
             down = s <= lo[:, None]
-        hit = (up | down) & (self.tau == 0)[None, :]
+        hit = (up | down) & ((self.tau == 0) & ~self.skip)[None, :]
         for j in np.flatnonzero(hit.any(axis=0)):
             i = int(np.argmax(hit[:, j]))
             self.tau[j] = n[i]
@@ -363,7 +371,7 @@ def assess(null: np.ndarray, observed: np.ndarray, *, exact: bool, stop: Any = N
                             for t, s in zip(seq.tau, seq.side))
         stop_at[hit] = tau
         pv = replace(pv, p=p, p_se=se, p_interval=interval)
-        if rows < planned and hit.all():
+        if rows < planned and (hit | seq.skip).all():
             stopped_by = rule.rule
     adjusted = np.maximum(maxt_adjusted(null, observed, exact=exact), pv.p)
     return Assessment(pv, adjusted, stop_at, verdict, rule, stopped_by, planned, tuple(notes))

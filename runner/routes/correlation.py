@@ -23,7 +23,7 @@ from scipy.stats import rankdata
 from ..errors import InputError
 from ..inputs import design as _design
 from ..inputs.blocks import Blocks
-from ..inputs.design import Prepared, standardise
+from ..inputs.design import Prepared, iter_dyad_rows, standardise
 from ..inputs.dyadic import network_name
 from ..settings import check_correlation
 from .linear import GramStatistics, Pass, _identity_gram, _stack
@@ -44,6 +44,11 @@ def build_correlation_statistics(prep: Prepared, *, method: str, storage: str = 
     if method == "spearman":
         prep = _ranked(prep)
     mean, sd = standardise(prep)
+    both = prep.n_dyads if prep.complete else sum(
+        int((~np.isnan(block).any(axis=1)).sum()) for block in iter_dyad_rows(prep, prep.matrices))
+    if both < 3:
+        raise InputError(f"too few dyads for a correlation: {both} dyads where both "
+                         f"{prep.response_name!r} and {prep.names[0]!r} are observed")
     for layer, name in ((0, prep.names[0]), (1, prep.response_name)):
         if not sd[layer] > 0:
             raise InputError(f"{name!r} has no variation over the dyad set")

@@ -29,7 +29,9 @@ from scipy.stats import rankdata
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
-from ..inputs.design import Prepared, fold_rows, iter_dyad_rows, standardise
+from ..inputs.design import (Prepared, check_design, check_response, dyads_phrase, fold_rows,
+                             iter_dyad_rows, standardise)
+from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram
 from ..kernels.stats import correlation_stats, fill_gram, regression_stats
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
@@ -165,21 +167,43 @@ def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
     return np.linalg.solve(gram[np.ix_(idx, idx)], gram[idx, 1 + target])
 
 
+def fit_pivot(prep: Prepared, storage: str = "float64") -> float:
+    """The relative pivot this route's fits resolve (``design.fit_pivot``): ``QR_PIVOT`` when
+    the kernels read an orthonormal float64 basis of the predictors (complete data), else
+    ``FIT_PIVOT`` (standardised layers in Gram matrices: missing data, or float32 layers)."""
+    return _design.fit_pivot(prep.complete, storage=storage)
+
+
 def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
                      overwrite: bool = False) -> GramStatistics:
     """Layers, invariant Gram blocks and transforms of a regression scheme.
 
     ``overwrite``: the layer stacks may be the inputs themselves, standardised in place
-    (see ``owned_base``); ``prep.matrices`` then no longer hold the data.
+    (see ``owned_base``); ``prep.matrices`` then no longer hold the data. The design (and
+    the response) must pass the one rule of ``design.check_design`` with ``fit_pivot``:
+    an InputError says which predictors break it, before any layer is changed.
     """
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
+    _check_spread(prep, sd)
     if prep.complete:
         passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite)]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
     return GramStatistics(tuple(passes), prep.k, False, statistic == "t", prep.col_start,
                           prep.col_stop, prep.n_dyads)
+
+
+def _check_spread(prep: Prepared, sd: np.ndarray) -> None:
+    """Every layer must vary over the dyads it is standardised on (else the standardised
+    layer would be 0 / 0): the constant case of the one rule, named."""
+    where = ("over the dyad set" if prep.complete else "over the complete dyads (where the "
+             "response and every predictor are observed)")
+    for c, name in enumerate(prep.names):
+        if not sd[c] > 0.0:
+            raise InputError(f"predictor {name!r} is constant {where}")
+    if not sd[prep.k] > 0.0:
+        raise InputError(f"response {prep.response_name!r} has no variation {where}")
 
 
 def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
@@ -205,14 +229,15 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     """
     k = prep.k
     xs = list(range(k))
+    pivot = fit_pivot(prep, storage)
     if scheme == "y":
         rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
-        S = _orthonormalise(fix, prep)
+        S = _orthonormalise(fix, prep, pivot)
         rel_idx, fix_idx = [0], xs
     else:
         rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
-        S = _orthonormalise(fix, prep)
+        S = _orthonormalise(fix, prep, pivot)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
     d = 1 + R + Q
@@ -250,20 +275,32 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
                 transforms, np.arange(k, dtype=np.int64), scale)
 
 
-def _orthonormalise(stack: np.ndarray, prep: Prepared) -> np.ndarray:
+def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float) -> np.ndarray:
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
     with (old layers) = (new layers) @ S. Two passes of a streaming QR (the second
-    restores the orthogonality the first loses to rounding on ill-conditioned layers)."""
+    restores the orthogonality the first loses to rounding on ill-conditioned layers).
+
+    The layers are the standardised predictors (then the response): centred, so the
+    first pass's R is a factor of their centred cross products, and the design (and the
+    response's residual on it) must pass the one rule at ``pivot`` before it is inverted.
+    """
     n_layers = stack.shape[2]
     S = np.eye(n_layers)
     step = max(1, (1 << 20) // max(stack.shape[1], 1))
-    for _ in range(2):
+    for first in (True, False):
         r = np.zeros((0, n_layers))
         for i0 in range(0, stack.shape[0], step):
             block = np.asarray(stack[i0:i0 + step][prep.mask[i0:i0 + step]], dtype=np.float64)
             r = fold_rows(r, block)
-        if r.shape[0] < n_layers or not np.all(np.abs(np.diag(r)) > 0):
-            raise InputError("the predictors are perfectly collinear over the dyad set")
+        if r.shape[0] < n_layers:
+            raise InputError(f"too few dyads for the model: {r.shape[0]} dyads for "
+                             f"{n_layers} layers")
+        if first:
+            k = prep.k
+            check_design(r[:k, :k], prep.names, pivot=pivot)
+            if n_layers > k:
+                check_response(float(r[k, k] ** 2), float((r[:, k] ** 2).sum()),
+                               prep.response_name)
         rinv = np.linalg.solve(np.triu(r), np.eye(n_layers))
         for i0 in range(0, stack.shape[0], step):
             stack[i0:i0 + step] = np.asarray(stack[i0:i0 + step], dtype=np.float64) @ rinv
@@ -281,6 +318,7 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
     ylayer = k
     xs = list(range(k))
     gobs = _gram_observed(prep, mean, sd)
+    _check_gram(gobs, prep)
     if scheme == "y":
         rel = _stack(prep, [ylayer], mean, sd, storage, overwrite)
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
@@ -325,6 +363,26 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
                            None, transforms, np.asarray(terms, np.int64),
                            np.ascontiguousarray(scale)))
     return passes
+
+
+def _check_gram(gobs: np.ndarray, prep: Prepared) -> None:
+    """The one rule on the Gram of [1, standardised layers] over the observed complete
+    dyads (what the masked passes solve with): the predictors' factor from the eigen
+    decomposition of their centred cross products, then the response's residual."""
+    k = prep.k
+    n_obs = gobs[0, 0]
+    if not n_obs > k + 1:
+        raise InputError(f"too few dyads for the model: {int(n_obs)} complete dyads for "
+                         f"{k + 1} terms")
+    g1 = gobs[0, 1:]
+    cross = gobs[1:, 1:] - np.outer(g1, g1) / n_obs  # centred cross products of x's and y
+    w, V = np.linalg.eigh(cross[:k, :k])
+    factor = np.sqrt(np.clip(w, 0.0, None))[:, None] * V.T
+    where = dyads_phrase(prep, int(n_obs))
+    check_design(factor, prep.names, pivot=FIT_PIVOT, where=where)
+    coef = np.linalg.solve(cross[:k, :k], cross[:k, k])
+    check_response(float(cross[k, k] - cross[:k, k] @ coef), float(cross[k, k]),
+                   prep.response_name, where=where)
 
 
 def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
@@ -409,7 +467,7 @@ def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str =
     statistics (``build_statistics``) for the pipeline."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    fit = _design.observed_fit(prep)
+    fit = _design.observed_fit(prep, pivot=fit_pivot(prep, storage))
     # statistics that overwrite the inputs need their fingerprints first
     fingerprints = input_fingerprints(prep) if overwrite_inputs else None
     stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,

@@ -104,6 +104,7 @@ import numpy as np
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..kernels.gather import gather_cross
+from ..kernels.options import FIT_PIVOT
 from ..settings import LOGISTIC_SCHEMES as SCHEMES  # noqa: F401  (re-exported)
 from ..settings import LOGISTIC_STATISTICS as STATISTICS  # noqa: F401  (re-exported)
 from ..settings import check_regression
@@ -525,7 +526,9 @@ def plan(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
     check_regression(model="logistic", scheme=scheme, statistic=statistic, storage=storage)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     check_binary(prep)
-    _design.observed_fit(prep)  # the shared checks: too few dyads, collinear, no variation
+    # the shared checks (too few dyads, constant or collinear predictors) with the pivot of
+    # fits from Gram matrices: the Newton steps solve with X'WX (kernels.options)
+    _design.observed_fit(prep, pivot=FIT_PIVOT, response=False)
     dd = dyad_data(prep)
     fit = observed_fit(prep, dd)
     stats = build_plan(prep, dd, fit, scheme=scheme, statistic=statistic)

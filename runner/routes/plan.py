@@ -7,8 +7,11 @@ run files, resume, growth, shards, stop rules, p-values). A plan holds:
 
 - ``statistics(row_perms, col_perms)``: the (B, k) statistics of B relabellings, through
   the route's kernels. The observed statistic is the identity relabelling through the same
-  call. A statistic that cannot be computed for a relabelling (a permuted fit that fails)
-  is NaN: the per-permutation failure flag, which the p-values count as at least as extreme.
+  call. A statistic that cannot be computed for a relabelling (a permuted fit that breaks
+  the fit rule of ``kernels.options``, or fails to converge) is NaN: the per-permutation
+  failure flag, which the p-values count as at least as extreme. A route refuses a design
+  that breaks the rule on the observed data before it builds a plan; an observed statistic
+  that is nevertheless not finite leaves its term without p-values (``pipeline.pvalues``).
 - ``blocks``: the relabelling structure (groups, two-mode rows and columns).
 - ``chunk_size``: the route's default permutations per chunk, sized from its work per
   relabelling so one chunk is a fraction of a second of kernel time.

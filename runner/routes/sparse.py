@@ -42,8 +42,10 @@ The observed fit (coefficients, standard errors, t, R squared) is solved from th
 closed-form Gram by the normal equations (a Cholesky factor of the standardised
 predictors' cross products), not by the QR of the dense path. The normal equations lose
 digits as the square of the condition number: a condition number of the standardised
-predictors above 1e6 gives a warning, as on the dense path, and a predictor whose relative
-pivot is below ``NORMAL_PIVOT`` (1e-7) counts as collinear (an error).
+predictors above 1e6 gives a warning, as on the dense path, and the design must pass the
+one rule of every route (``dyadperm.inputs.design.check_design``) with the relative pivot of
+fits from Gram matrices, ``kernels.options.FIT_PIVOT`` (1e-5): the observed fit and the
+kernels' fits of every relabelling then read the design the same way.
 
 Spearman correlation: the ranks of a mostly-zero network have a closed form (all zero
 dyads share one average rank), so the response and sparse predictors keep their sparsity;
@@ -75,20 +77,17 @@ import numpy as np
 from scipy.stats import rankdata
 
 from ..errors import InputError
-from ..inputs.design import ObservedFit, _standardised_condition
+from ..inputs.design import ObservedFit, check_design, check_response, warn_condition
 from ..inputs.dyadic import network_name
 from ..inputs.sparse import (DENSIFY_LIMIT, KIND_CODES, Edges, SparseNetwork,  # noqa: F401
                              SparsePrepared, Term, is_sparse, prepare_sparse, takes)
+from ..kernels.options import FIT_PIVOT
 from ..kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
                               sparse_cross)
 from ..kernels.stats import correlation_stats, fill_gram, regression_stats
 from ..settings import check_correlation, check_regression
 from .plan import Plan, chunk_size_for, fingerprint, groups_fingerprint
 
-# Relative pivot below which a predictor counts as collinear on this path. The normal
-# equations square the condition number, so pivots far below sqrt(machine epsilon) cannot be
-# resolved (the dense path's QR goes down to design.COLLINEAR_PIVOT).
-NORMAL_PIVOT = 1e-7
 # Edge-term products per chunk the default chunk size aims at (about a second of work).
 CHUNK_EDGE_WORK = 2e8
 NOTE = ("sparse path: {edges:,} response edges relabelled per permutation; fixed products "
@@ -323,30 +322,20 @@ def _response_sd(name: str, N: int, y_sum: float, y_sq: float) -> tuple[float, f
     return mean, float(np.sqrt(var))
 
 
-def _check_collinear(prep: SparsePrepared, mom: Moments) -> np.ndarray:
-    """Lower Cholesky factor of X~'X~; error when a predictor is constant or collinear.
+def _check_collinear(prep: SparsePrepared, mom: Moments) -> tuple[float, np.ndarray]:
+    """The one rule of every route (``design.check_design``) on the closed-form cross
+    products; returns the condition number of the standardised predictors and the factor.
 
-    The pivot test is the dense path's (the residual norm of x_j on the intercept and the
-    earlier predictors, relative to the norm of x_j), with the larger ``NORMAL_PIVOT``:
-    below it the normal equations have no correct digit left.
+    The factor F'F = X~'X~ comes from the eigen decomposition of the centred cross products
+    (which never fails, so a singular design is named, not a failed factorisation); the
+    norms before centring from the predictors' means.
     """
-    k = prep.k
     C = mom.cross
-    N = prep.n_dyads
+    w, V = np.linalg.eigh(C)
+    factor = np.sqrt(np.clip(w, 0.0, None))[:, None] * V.T
     user_mean = mom.mean + np.array([t.shift for t in prep.terms])
-    L = np.zeros((k, k))
-    for j in range(k):
-        s = C[j, j] - (L[j, :j] ** 2).sum()
-        norm = np.sqrt(max(C[j, j], 0.0) + N * user_mean[j] ** 2)
-        if not (s > 0.0) or not (np.sqrt(s) >= NORMAL_PIVOT * norm):
-            name = prep.names[j]
-            others = ", ".join(prep.names[:j]) or "the intercept"
-            raise InputError(f"predictor {name!r} is constant or perfectly collinear with "
-                             f"{others} over the dyad set")
-        L[j, j] = np.sqrt(s)
-        for r in range(j + 1, k):
-            L[r, j] = (C[r, j] - (L[r, :j] * L[j, :j]).sum()) / L[j, j]
-    return L
+    raw = np.sqrt(np.clip(np.diag(C), 0.0, None) + prep.n_dyads * user_mean ** 2)
+    return check_design(factor, prep.names, pivot=FIT_PIVOT, raw_norms=raw), factor
 
 
 def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statistic: str,
@@ -403,7 +392,7 @@ def observed_fit_sparse(prep: SparsePrepared, mom: Moments, plan: SparsePlan, y_
     N = prep.n_dyads
     if N <= p:
         raise InputError(f"too few dyads for the model: {N} complete dyads for {p} terms")
-    L = _check_collinear(prep, mom)
+    cond, factor = _check_collinear(prep, mom)
     sx = np.sqrt(np.diag(mom.cross) / N)
     ident = np.arange(prep.n, dtype=np.int64)[None, :]
     c = plan.cross(ident)[0] * plan.inv_scale
@@ -411,6 +400,7 @@ def observed_fit_sparse(prep: SparsePrepared, mom: Moments, plan: SparsePlan, y_
     Ginv = np.linalg.inv(G)
     beta = Ginv @ c
     rss_std = max(float(N - c @ beta), 0.0)
+    check_response(rss_std, float(N), prep.response_name)
     slopes = beta * y_sd / sx
     user_mean = mom.mean + np.array([t.shift for t in prep.terms])
     coef = np.concatenate([[y_mean - slopes @ user_mean], slopes])
@@ -421,12 +411,7 @@ def observed_fit_sparse(prep: SparsePrepared, mom: Moments, plan: SparsePlan, y_
                                            np.diag(xinv)]))
     with np.errstate(divide="ignore", invalid="ignore"):
         t = coef / se
-    # R factor of [1, X] for the shared condition-number check (lower block: chol(X~'X~)')
-    rx = np.zeros((p, p))
-    rx[0, 0] = np.sqrt(N)
-    rx[0, 1:] = np.sqrt(N) * user_mean
-    rx[1:, 1:] = L.T
-    cond = _standardised_condition(rx, k, prep.names)
+    warn_condition(factor, cond, prep.names)
     return ObservedFit(coef, se, t, 1.0 - rss_std / N, N, rss, cond)
 
 
