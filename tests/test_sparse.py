@@ -36,6 +36,7 @@ import statsmodels.api as sm
 
 import dyadperm as dp
 from dyadperm.routes import sparse as dsp_
+from dyadperm.routes import sparse_products as products
 from dyadperm.inputs.dyadic import NodeDerived
 from dyadperm.kernels.sparse import gap_gap_sum, row_lookup
 
@@ -121,7 +122,7 @@ def test_row_lookup_matches_dense_array(rng, directed):
     preds = {"x": sp.csr_array(X), "x2": sp.csr_array(sparse_predictor(rng, n, 0.2,
                                                                        directed=directed))}
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed)
-    nptr, nidx, nval = dsp_._row_tables(prep.terms, n, not directed)
+    nptr, nidx, nval = products._row_tables(prep.terms, n, not directed)
     # source: the dense arrays themselves, at every off-diagonal dyad
     for s, M in enumerate([X, preds["x2"].toarray()]):
         for i in range(n):
@@ -146,9 +147,9 @@ def test_sparse_cross_matches_numpy_twin(rng, n, directed):
     if directed:
         preds.update(snd=dp.sender(attr_b), rcv=dp.receiver(attr_a.astype(float)))
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed)
-    mom = dsp_.fixed_products(prep)
-    _, ysd = dsp_._response_sd("y", prep.n_dyads, mom.y_sum, mom.y_sq)
-    plan = dsp_.build_sparse_plan(prep, mom, ysd, statistic="t")
+    mom = products.fixed_products(prep)
+    _, ysd = products._response_sd("y", prep.n_dyads, mom.y_sum, mom.y_sq)
+    plan = products.build_sparse_plan(prep, mom, ysd, statistic="t")
     perms = np.stack([rng.permutation(n) for _ in range(5)] + [np.arange(n)])
     got = plan.cross(perms)
     rows, cols = dyad_index(n, directed)
@@ -185,7 +186,7 @@ def test_fixed_products_match_dense_arrays(rng, directed, groups):
     Y = sparse_response(rng, n, 0.2, directed=directed)
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed, groups=g,
                                dyads=groups)
-    mom = dsp_.fixed_products(prep)
+    mom = products.fixed_products(prep)
     # source: numpy sums over the dense arrays of NodeDerived.dense, on the dyad set
     mask = ~np.eye(n, dtype=bool) if directed else np.triu(np.ones((n, n), dtype=bool), 1)
     if groups == "within":

@@ -29,6 +29,7 @@ import dyadperm as dp
 from dyadperm.inputs import design
 from dyadperm.routes import linear as schemes
 from dyadperm.routes import sparse as sparse_path
+from dyadperm.routes import sparse_products as products
 from dyadperm.inputs.dyadic import NodeDerived, Reverse
 from dyadperm.pipeline.engine import Draws, run_all
 from dyadperm.pipeline.permutations import draw, enumerate_exact
@@ -162,7 +163,7 @@ def test_observed_statistic_is_the_full_model_fit(rng, directed):
     ols = sm.OLS(Y[mask], sm.add_constant(np.column_stack([M[mask] for M in dense.values()])))
     fit = ols.fit()
     ident = np.arange(n, dtype=np.int64)[None, :]
-    mom = sparse_path.fixed_products(prep)
+    mom = products.fixed_products(prep)
     for scheme in SCHEMES:
         t = build_sparse_scheme_plan(prep, scheme=scheme, statistic="t", moments=mom)
         coef = build_sparse_scheme_plan(prep, scheme=scheme, statistic="coef", moments=mom)

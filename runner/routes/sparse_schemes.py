@@ -2,9 +2,9 @@
 O(edges + n log n).
 
 The dense engine reads every scheme off the Gram matrix of v = [1, relabelled layers,
-fixed layers] through a linear map per tested term (``schemes``). With complete data over
-a dyad set D that every relabelling maps onto itself, everything in that Gram is
-invariant except the relabelled-by-fixed block
+fixed layers] through a linear map per tested term (``routes.linear``). With complete
+data over a dyad set D that every relabelling maps onto itself, everything in that Gram
+is invariant except the relabelled-by-fixed block
 
     C[a, c] = sum over D of x_a[pi(i), pi(j)] * x_c[i, j].
 
@@ -14,7 +14,7 @@ Econ. Stat. 1:292–298) relabel the response and the predictors (fixed: the pre
 Their residuals relabel as the same linear combinations of relabelled layers, so C is all
 a relabelling needs; the sparse path has no missing values, so one pass serves every
 tested term. The standardised invariant Gram comes from the closed forms of
-``sparse.fixed_products``; the transforms are those of ``schemes._masked_passes``
+``sparse_products.fixed_products``; the transforms are those of ``linear._masked_passes``
 (dsp: the residual of x_j on [1, other x] from the observed Gram; Freedman–Lane: the
 reduced-model residual of y), in one pass.
 
@@ -50,15 +50,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import InputError
+from ..inputs.sparse import Edges, SparsePrepared
 from ..kernels.sparse_pairs import (BACKWARD, FORWARD, GAP, NETWORK, PAIR_SUM, RECEIVER, SAME,
                                    SENDER, edge_pair_sums, gap_gap_sums, gap_same_sums,
                                    node_pair_sums, same_same_sums)
-from ..errors import InputError
 from ..kernels.stats import fill_gram, regression_stats
 from ..settings import check_regression
 from .linear import _transform
-from .sparse import (Edges, Moments, SparsePrepared, _check_collinear, _response_sd,
-                     fixed_products)
+from .sparse_products import Moments, _check_collinear, _response_sd, fixed_products
 
 SEPARABLE = (SENDER, RECEIVER, PAIR_SUM)
 # Row tables hold int32 column indices and positions (kernels.sparse_pairs.edge_pair_sums).
@@ -595,7 +595,7 @@ def prepared_layers(prep: SparsePrepared, mom: Moments) -> tuple[list[PairLayer]
 
 @dataclass(frozen=True, eq=False)
 class SparseSchemePlan:
-    """dsp or Freedman–Lane on the sparse path, duck-typed like ``schemes.Plan``.
+    """dsp or Freedman–Lane on the sparse path, the kernel side of a ``routes.plan.Plan``.
 
     Fields the engine reads: ``k`` (tested terms, the predictors in order), ``n_dyads``,
     ``statistics(row_perms, col_perms) -> (B, k)``. The rest: the pair sums of the
@@ -639,7 +639,7 @@ class SparseSchemePlan:
 
 def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
     """Coefficients [g0, g_on...] of layer ``target`` on [1, layers ``on``] (as in
-    ``schemes._regress_on``: layer l sits at row/column 1 + l of ``gram``)."""
+    ``linear._regress_on``: layer l sits at row/column 1 + l of ``gram``)."""
     idx = [0] + [1 + c for c in on]
     return np.linalg.solve(gram[np.ix_(idx, idx)], gram[idx, 1 + target])
 
@@ -649,9 +649,9 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     """The plan of scheme ``dsp`` or ``freedman-lane`` (statistic ``t`` or ``coef``) for a
     one-mode sparse problem: memory O(edges + n), nothing of size n x n.
 
-    ``moments``: ``sparse.fixed_products(prep)`` when the caller has it already. Raises
+    ``moments``: ``sparse_products.fixed_products(prep)`` when the caller has it already. Raises
     InputError when the response has no variation or a predictor is constant or collinear
-    (the sparse path's rule, ``sparse._check_collinear``).
+    (the sparse path's rule, ``sparse_products._check_collinear``).
     """
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage="float64")
     if scheme not in ("dsp", "freedman-lane"):
