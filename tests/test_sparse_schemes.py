@@ -75,8 +75,9 @@ def edges_of(M, directed, name):
     return dp.SparseNetwork(r, c, M[r, c], M.shape[0], directed=directed or None, name=name)
 
 
-def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
-    """A sparse response, every kind of derived predictor and a sparse one; their dense twins."""
+def inputs(rng, n, *, directed, groups=None, kinds="all"):
+    """A sparse response, every kind of derived predictor and a sparse one; their dense
+    twins; groups (or None)."""
     labels = tuple(str(i) for i in range(n))
     Y = sparse_response(rng, n, 0.06, directed=directed)
     preds = {"same_region": dp.same(rng.integers(0, 5, n)),
@@ -90,9 +91,15 @@ def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
     if kinds != "all":
         preds = {k: v for k, v in preds.items() if k in kinds}
     g = rng.integers(0, 3, n) if groups else None
+    dense = {k: dense_of(v, labels, Y) for k, v in preds.items()}
+    return Y, preds, dense, g
+
+
+def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
+    """The prepared sparse problem of ``inputs``, the dense one, and the dense arrays."""
+    Y, preds, dense, g = inputs(rng, n, directed=directed, groups=groups, kinds=kinds)
     prep = sparse_path.prepare_sparse(sp.csr_array(Y), preds, directed=directed, groups=g,
                                       dyads=dyads)
-    dense = {k: dense_of(v, labels, Y) for k, v in preds.items()}
     dprep = design.prepare(Y, dense, directed=directed, groups=g, dyads=dyads)
     return prep, dprep, Y, dense
 
@@ -151,6 +158,34 @@ def test_statistics_match_dense_engine_n2000(rng, case):
             plan = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic)
             ref = schemes.build_statistics(dprep, scheme=scheme, statistic=statistic)
             assert close(plan.statistics(rows, rows), ref.statistics(rows, rows))
+
+
+@pytest.mark.parametrize("case", ["directed", "undirected", "groups-within-undirected"])
+def test_route_matches_dense_route_same_seed(rng, case):
+    """dp.regress on edge lists (the sparse route) against dp.regress on the dense twins:
+    the same relabellings (same seed), statistics to 1e-10, identical exceedance counts and
+    p-values; the observed fit against statsmodels OLS on the vectorised dyads."""
+    opts = CASES[case]
+    Y, preds, dense, groups = inputs(rng, 120, directed=opts["directed"],
+                                     groups=opts.get("groups"))
+    net = edges_of(Y, opts["directed"], "ties")
+    sparse_preds = {k: (edges_of(dense[k], opts["directed"], k) if k == "contacts" else v)
+                    for k, v in preds.items()}
+    for scheme in SCHEMES:
+        for statistic in ("t", "coef"):
+            kw = dict(scheme=scheme, statistic=statistic, permutations=150, seed=20240611,
+                      groups=groups, dyads=opts.get("dyads"))
+            res = dp.regress(net, sparse_preds, **kw)
+            ref = dp.regress(Y, dense, directed=opts["directed"], **kw)
+            assert res.notes[0].startswith(f"sparse path: {scheme}") and not ref.notes
+            assert res.terms == ref.terms and res.n_dyads == ref.n_dyads
+            null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
+            assert close(null_s, null_d), (scheme, statistic)
+            np.testing.assert_array_equal(res.exceed, ref.exceed)
+            np.testing.assert_array_equal(res.p, ref.p)
+            np.testing.assert_allclose(res.stat, ref.stat, rtol=FIT_RTOL, atol=1e-12)
+            np.testing.assert_allclose(res.se, ref.se, rtol=FIT_RTOL)
+            assert res.r2 == pytest.approx(ref.r2, rel=FIT_RTOL)
 
 
 # --- observed fit -----------------------------------------------------------------------------

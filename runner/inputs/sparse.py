@@ -18,6 +18,7 @@ import scipy.sparse as sp
 
 from ..errors import InputError
 from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER  # noqa: F401
+from . import memory
 from .blocks import Blocks
 from .design import _group_order, _reorder, decide_directed, decide_dyads, name_predictors, \
     node_groups
@@ -27,8 +28,9 @@ from .optional import is_frame, is_series, loaded_pandas
 
 KIND_CODES = {"same": SAME, "gap": GAP, "sender": SENDER, "receiver": RECEIVER,
               "pair_sum": PAIR_SUM}
-# Dense layers of a scipy.sparse input above this many bytes are never built: schemes that
-# need them (dsp, freedman-lane) are refused instead.
+# A scipy.sparse response with scheme dsp or freedman-lane whose dense layers fit in this
+# many bytes is densified and runs on the dense path (as before the sparse path had those
+# schemes); above it, it stays sparse.
 DENSIFY_LIMIT = 2 * 1024 ** 3
 
 
@@ -104,9 +106,11 @@ class SparseNetwork:
         bad = np.flatnonzero(~np.isfinite(w))
         if bad.size:
             e = int(bad[0])
+            per_layer = memory.gib(8 * n * n)
             raise InputError(f"{what}: edge {e} ({labels[rows[e]]!r}, {labels[cols[e]]!r}) has "
                              f"value {w[e]}; the sparse path takes no missing or infinite "
-                             "values (give dense arrays with NaN for missing dyads)")
+                             "values (give dense arrays with NaN for missing dyads: "
+                             f"{per_layer} per network of {n:,} nodes)")
         rows = rows.astype(np.int64)
         cols = cols.astype(np.int64)
         keys = rows * max(n, 1) + cols
@@ -303,10 +307,13 @@ def _fits_sparse(obj: Any) -> bool:
 def takes(y: Any, predictors: Any, *, scheme: str = "y") -> bool:
     """Whether :func:`dyadperm.regress` / ``correlate`` should run on the sparse path.
 
-    True when the response is sparse and every predictor is sparse or derived, unless a
-    small scipy.sparse input asks for a scheme that needs dense residual matrices (it is
-    densified on the dense path, as before). A :class:`SparseNetwork` response with a dense
-    predictor is an error (it has no dense form to fall back on).
+    True when the response is sparse and every predictor is sparse or derived from node
+    attributes, for every linear scheme. One exception keeps earlier results: a small
+    scipy.sparse response (dense layers within ``DENSIFY_LIMIT``) with scheme dsp or
+    freedman-lane is densified and runs on the dense path, as before the sparse path had
+    those schemes (the two paths agree to about 1e-13, not bit for bit; a
+    :class:`SparseNetwork` always takes the sparse path). A :class:`SparseNetwork` response
+    with a dense predictor is an error (it has no dense form to fall back on).
     """
     if not is_sparse(y):
         return False
@@ -319,14 +326,44 @@ def takes(y: Any, predictors: Any, *, scheme: str = "y") -> bool:
             if isinstance(y, SparseNetwork):
                 raise InputError(f"predictor {name!r} is a {type(obj).__name__}: with a "
                                  "SparseNetwork response every predictor must be sparse or "
-                                 "derived from node attributes (or densify the response "
-                                 "with .toarray())")
+                                 "derived from node attributes; "
+                                 + _dense_advice(y.shape, len(items)))
             return False
     if scheme != "y" and sp.issparse(y):
         n = y.shape[0] * y.shape[1]
         if 8 * n * (len(items) + 2) <= DENSIFY_LIMIT:
             return False
     return True
+
+
+def _dense_advice(shape: tuple[int, int], k: int) -> str:
+    """What the dense route would need for ``k`` predictors, for refusals."""
+    n, m = shape
+    need = memory.dense_route_bytes(n, m, k)
+    avail = memory.available_bytes()
+    have = "" if avail is None else f" ({memory.gib(avail)} available)"
+    return (f"the dense route would need {memory.gib(need)} of memory for {n:,} x {m:,} "
+            f"dyads{have}; densify every network (.toarray()) if it fits")
+
+
+def refuse_edges(y: Any, predictors: Any, *, reason: str) -> None:
+    """InputError when a SparseNetwork reaches a route that has no sparse form.
+
+    ``reason`` says why the dense route runs (the model, a dense response); the message
+    names the network and what the dense route would need.
+    """
+    try:
+        items = _predictor_objects(predictors)
+    except InputError:
+        return  # the route reports it in its own words
+    named = [("response", network_name(y) or "response", y)] + [
+        ("predictor", name, obj.network if isinstance(obj, Reverse) else obj)
+        for name, obj in items]
+    for role, name, obj in named:
+        if isinstance(obj, SparseNetwork):
+            shape = getattr(y, "shape", obj.shape)
+            raise InputError(f"{role} {name!r} is a SparseNetwork (edge list), but {reason}; "
+                             + _dense_advice(tuple(shape), len(items)))
 
 
 # --- preparation --------------------------------------------------------------------------
@@ -430,7 +467,8 @@ def prepare_sparse(y: Any, predictors: Any, *, directed: bool | None = None, gro
             if vec.dtype.kind == "f" and np.isnan(vec).any():
                 node = labels[int(np.flatnonzero(np.isnan(vec))[0])]
                 raise InputError(f"{name}: node {node!r} has no attribute value (NaN); the "
-                                 "sparse path takes no missing values")
+                                 "sparse path takes no missing values; "
+                                 + _dense_advice((n, n), len(items)))
             raw.append((name, obj.kind, vec))
         elif isinstance(obj, Reverse):
             net = resp if obj.network is None else _as_network(obj.network, name, labels)

@@ -52,17 +52,19 @@ would need the ranks of all n^2 dyad values and are refused.
 
 Schemes
 -------
-Only scheme ``"y"`` (and QAP correlation) runs on this path. Double semi-partialling
-(Dekker, Krackhardt & Snijders 2007) relabels the residual of a predictor on the other
-terms, e = x_j - Z gamma, and Freedman & Lane (1983) relabel the residual of the response
-on the reduced model, r = y - Z gamma. Those residual matrices are dense even when y and
-x are sparse (every dyad gets -Z gamma), and their relabelled cross products with the
-other layers are sums over all N dyads, not over E edges; with derived predictors the
-relabelled design itself is dense. For them pass dense arrays (``network.toarray()``) on a
-network that fits in memory, or use scheme ``"y"``. A small scipy.sparse input with those
-schemes is densified and runs on the dense path as before; a :class:`SparseNetwork`, or
-a scipy.sparse input whose dense layers would exceed ``DENSIFY_LIMIT`` bytes, is refused
-with that advice.
+Every linear scheme runs on this path. Double semi-partialling (Dekker, Krackhardt &
+Snijders 2007) relabels the residual of a predictor on the other terms, and Freedman &
+Lane (1983) the residual of the response on the reduced model; those residual matrices
+are dense even when y and x are sparse, but they relabel as the same linear combinations
+of relabelled layers, so every relabelling needs only the sums of relabelled layers times
+fixed layers, each an edge pass or a closed form (``routes.sparse_schemes``,
+``kernels.sparse_pairs``). One-mode scheme y keeps the plan above
+(``sparse_products.SparsePlan``).
+
+Which inputs take this path is decided by ``inputs.sparse.takes``: a :class:`SparseNetwork`
+response always; a scipy.sparse response for scheme y, and for dsp and freedman-lane when
+its dense layers would pass ``DENSIFY_LIMIT`` (smaller ones run on the dense path, as they
+did before this path had those schemes: the two agree to about 1e-13, not bit for bit).
 """
 
 from __future__ import annotations
@@ -82,11 +84,15 @@ from ..settings import check_correlation, check_regression
 from .plan import Plan, chunk_size_for, fingerprint, groups_fingerprint
 from .sparse_products import (_check_collinear, _response_sd, build_sparse_plan,
                               fixed_products, observed_fit_sparse)
+from .sparse_schemes import build_sparse_scheme_plan
 
 # Edge-term products per chunk the default chunk size aims at (about a second of work).
 CHUNK_EDGE_WORK = 2e8
 NOTE = ("sparse path: {edges:,} response edges relabelled per permutation; fixed products "
         "by closed forms; observed fit by the normal equations; no n x n array built")
+NOTE_SCHEME = ("sparse path: {scheme} relabels {what} by sums over {edges:,} edges and "
+               "closed forms over the {nodes:,} nodes; observed fit by the normal equations; "
+               "no n x n array built")
 
 
 def sparse_identity(prep: SparsePrepared, settings: dict) -> dict:
@@ -114,39 +120,55 @@ def chunk_size(prep: SparsePrepared) -> int:
     return chunk_size_for(prep.y.size * (prep.k + 1) + prep.n, budget=CHUNK_EDGE_WORK, least=1)
 
 
-def _summary(prep: SparsePrepared, *, kind, model, scheme, statistic, method, terms) -> dict:
+def _summary(prep: SparsePrepared, *, kind, model, scheme, statistic, method, terms,
+             note: str) -> dict:
     return dict(kind=kind, model=model, scheme=scheme, statistic=statistic, method=method,
                 terms=list(terms), tested=list(prep.names), response=prep.response_name,
                 n_nodes=prep.n, n_dyads=prep.n_dyads, directed=prep.directed, two_mode=False,
-                notes=[NOTE.format(edges=prep.y.size)])
+                notes=[note])
+
+
+def _scheme_note(prep: SparsePrepared, scheme: str) -> str:
+    """The result's note on how a dsp or Freedman–Lane plan computes its statistics."""
+    edges = prep.y.size + sum(t.edges.size for t in prep.terms if t.kind == NETWORK)
+    what = "the predictors" if scheme == "dsp" else "the response and the predictors"
+    return NOTE_SCHEME.format(scheme=scheme, what=what, edges=edges, nodes=prep.n)
 
 
 def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
          storage: str = "float64", directed: bool | None = None, groups: Any = None,
          dyads: str | None = None) -> Plan:
-    """The sparse linear route (module docstring). ``storage`` has no effect here (no dyad
-    layer is stored)."""
+    """The sparse linear route (module docstring), every scheme. ``storage`` has no effect
+    here (no dyad layer is stored)."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
-    if scheme != "y":
-        raise InputError(f"scheme {scheme!r} relabels dense residual matrices (every dyad "
-                         "holds a residual), which a sparse response cannot avoid: use "
-                         "scheme='y' on sparse input, or pass dense arrays (.toarray()) for "
-                         "a network that fits in memory")
     prep = prepare_sparse(y, predictors, directed=directed, groups=groups, dyads=dyads)
     mom = fixed_products(prep)
     y_mean, y_sd = _response_sd(prep.response_name, prep.n_dyads, mom.y_sum, mom.y_sq)
     _check_collinear(prep, mom)
-    stats = build_sparse_plan(prep, mom, y_sd, statistic=statistic)
-    fit = observed_fit_sparse(prep, mom, *stats.observed_products(), y_mean, y_sd)
+    if scheme == "y":
+        stats = build_sparse_plan(prep, mom, y_sd, statistic=statistic)
+        gram_xx, xy = stats.observed_products()
+        chunk = chunk_size(prep)
+        note = NOTE.format(edges=prep.y.size)
+    else:
+        stats = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic, moments=mom)
+        gram_xx, xy = stats.gram_xx, stats.xy
+        chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
+        note = _scheme_note(prep, scheme)
+    fit = observed_fit_sparse(prep, mom, gram_xx, xy, y_mean, y_sd)
     info = _summary(prep, kind="regression", model="linear", scheme=scheme,
-                    statistic=statistic, method=None, terms=("intercept",) + prep.names)
+                    statistic=statistic, method=None, terms=("intercept",) + prep.names,
+                    note=note)
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups),
                     route="sparse")
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
-    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk_size(prep), fit=fit_arrays,
-                summary=info, identity=sparse_identity(prep, settings))
+    # dsp and Freedman–Lane: the kernels' identity relabelling is the full model's fit
+    # (Frisch–Waugh–Lovell), from the same products as the fit
+    expected = None if scheme == "y" else fit_arrays["stat"][1:]
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk, fit=fit_arrays,
+                summary=info, identity=sparse_identity(prep, settings), expected=expected)
 
 
 def _rank_edges(ed: Edges, N: int) -> Edges:
@@ -212,7 +234,8 @@ def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = 
     with np.errstate(divide="ignore", invalid="ignore"):
         se = np.sqrt((1 - r ** 2) / (N - 2))
     info = _summary(prep, kind="correlation", model="correlation", scheme="y",
-                    statistic="r", method=method, terms=prep.names)
+                    statistic="r", method=method, terms=prep.names,
+                    note=NOTE.format(edges=prep.y.size))
     settings = dict(kind="correlation", model="correlation", scheme="y", statistic="r",
                     method=method, storage=storage, dyads=dyads,
                     groups=groups_fingerprint(groups), route="sparse")

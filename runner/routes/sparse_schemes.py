@@ -311,6 +311,18 @@ class PairSums:
     gg_const: np.ndarray
     halve_pos: np.ndarray  # pairs summed over ordered dyads, halved when undirected
 
+    def work(self) -> float:
+        """Work per relabelling, in edge visits: every edge of each reader's list, a sweep
+        over the source nodes per network segment, and n (n log n for ``gap`` x ``gap``)
+        per sum over nodes and closed form. Sizes chunks (``routes.plan.chunk_size_for``)."""
+        n, m = self.dyads.n, self.dyads.m
+        edges = self.lrow[:, -1] - self.lrow[:, 0]
+        total = float(edges[self.readers[:, 0]].sum()) if self.readers.size else 0.0
+        total += n * (self.segs.shape[0] + self.ss_pos.size + self.gs_pos.size)
+        total += n * self.node_pos_r.size + m * self.node_pos_c.size
+        total += (n + m) * np.log2(max(n + m, 2)) * self.gg_pos.size
+        return total
+
     def sums(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """(B, R, F) centred relabelled-by-fixed sums over the dyad set."""
         dy = self.dyads
