@@ -10,8 +10,10 @@ of 100,000 nodes would need 80 GB per layer.
 Method
 ------
 The dyad set D is every off-diagonal pair (directed) or every pair i < j (undirected),
-restricted to pairs inside a group when ``groups`` is given with ``dyads="within"``. There
-are no missing values on this path (a NaN edge value or attribute is an error).
+restricted to pairs inside a group when ``groups`` is given with ``dyads="within"``; for
+two-mode data (a :class:`SparseNetwork` with column labels, a rectangular scipy.sparse
+matrix) every cell of n x m, rows and columns relabelled independently. There are no
+missing values on this path (a NaN edge value or attribute is an error).
 
 Y-permutation (Krackhardt 1988, Social Networks 10:359–381) relabels the response:
 y'[i, j] = y[pi(i), pi(j)]. With predictors centred over D (x~ = x - mean), the only
@@ -58,8 +60,9 @@ Lane (1983) the residual of the response on the reduced model; those residual ma
 are dense even when y and x are sparse, but they relabel as the same linear combinations
 of relabelled layers, so every relabelling needs only the sums of relabelled layers times
 fixed layers, each an edge pass or a closed form (``routes.sparse_schemes``,
-``kernels.sparse_pairs``). One-mode scheme y keeps the plan above
-(``sparse_products.SparsePlan``).
+``kernels.sparse_pairs``). One-mode scheme y and correlation keep the plan above
+(``sparse_products.SparsePlan``); two-mode data take every statistic, and their fixed
+products, from the pair sums.
 
 Which inputs take this path is decided by ``inputs.sparse.takes``: a :class:`SparseNetwork`
 response always; a scipy.sparse response for scheme y, and for dsp and freedman-lane when
@@ -83,16 +86,15 @@ from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SENDER
 from ..settings import check_correlation, check_regression
 from .plan import Plan, chunk_size_for, fingerprint, groups_fingerprint
 from .sparse_products import (_check_collinear, _response_sd, build_sparse_plan,
-                              fixed_products, observed_fit_sparse)
-from .sparse_schemes import build_sparse_scheme_plan
+                              observed_fit_sparse)
+from .sparse_schemes import build_sparse_correlation_plan, build_sparse_scheme_plan, moments_of
 
 # Edge-term products per chunk the default chunk size aims at (about a second of work).
 CHUNK_EDGE_WORK = 2e8
 NOTE = ("sparse path: {edges:,} response edges relabelled per permutation; fixed products "
         "by closed forms; observed fit by the normal equations; no n x n array built")
 NOTE_SCHEME = ("sparse path: {scheme} relabels {what} by sums over {edges:,} edges and "
-               "closed forms over the {nodes:,} nodes; observed fit by the normal equations; "
-               "no n x n array built")
+               "closed forms over the {nodes:,} nodes{fit}; no n x n array built")
 
 
 def sparse_identity(prep: SparsePrepared, settings: dict) -> dict:
@@ -105,8 +107,16 @@ def sparse_identity(prep: SparsePrepared, settings: dict) -> dict:
     ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
     ident[f"fingerprint:{prep.response_name}"] = _edges_fingerprint(prep.y)
     for t in prep.terms:
-        ident[f"fingerprint:{t.name}"] = (_edges_fingerprint(t.edges) if t.kind == NETWORK
-                                          else f"{t.kind}:" + fingerprint(t.attr))
+        if t.kind == NETWORK:
+            ident[f"fingerprint:{t.name}"] = _edges_fingerprint(t.edges)
+        elif prep.two_mode:
+            both = [a for a in (t.attr, t.col_attr) if a is not None]
+            ident[f"fingerprint:{t.name}"] = f"{t.kind}:" + fingerprint(np.concatenate(both))
+        else:
+            ident[f"fingerprint:{t.name}"] = f"{t.kind}:" + fingerprint(t.attr)
+    if prep.two_mode:
+        ident["n_cols"] = prep.m
+        ident["relabelling column blocks"] = json.dumps(prep.blocks.col_blocks)
     return ident
 
 
@@ -124,15 +134,16 @@ def _summary(prep: SparsePrepared, *, kind, model, scheme, statistic, method, te
              note: str) -> dict:
     return dict(kind=kind, model=model, scheme=scheme, statistic=statistic, method=method,
                 terms=list(terms), tested=list(prep.names), response=prep.response_name,
-                n_nodes=prep.n, n_dyads=prep.n_dyads, directed=prep.directed, two_mode=False,
-                notes=[note])
+                n_nodes=prep.n + prep.m if prep.two_mode else prep.n, n_dyads=prep.n_dyads,
+                directed=prep.directed, two_mode=prep.two_mode, notes=[note])
 
 
-def _scheme_note(prep: SparsePrepared, scheme: str) -> str:
-    """The result's note on how a dsp or Freedman–Lane plan computes its statistics."""
+def _scheme_note(prep: SparsePrepared, scheme: str, what: str) -> str:
+    """The result's note on how a plan of pair sums computes its statistics."""
     edges = prep.y.size + sum(t.edges.size for t in prep.terms if t.kind == NETWORK)
-    what = "the predictors" if scheme == "dsp" else "the response and the predictors"
-    return NOTE_SCHEME.format(scheme=scheme, what=what, edges=edges, nodes=prep.n)
+    nodes = prep.n + prep.m if prep.two_mode else prep.n
+    fit = "" if scheme == "the correlation" else "; observed fit by the normal equations"
+    return NOTE_SCHEME.format(scheme=scheme, what=what, edges=edges, nodes=nodes, fit=fit)
 
 
 def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
@@ -142,10 +153,10 @@ def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
     here (no dyad layer is stored)."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     prep = prepare_sparse(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    mom = fixed_products(prep)
+    mom = moments_of(prep)
     y_mean, y_sd = _response_sd(prep.response_name, prep.n_dyads, mom.y_sum, mom.y_sq)
     _check_collinear(prep, mom)
-    if scheme == "y":
+    if scheme == "y" and not prep.two_mode:
         stats = build_sparse_plan(prep, mom, y_sd, statistic=statistic)
         gram_xx, xy = stats.observed_products()
         chunk = chunk_size(prep)
@@ -154,7 +165,8 @@ def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
         stats = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic, moments=mom)
         gram_xx, xy = stats.gram_xx, stats.xy
         chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
-        note = _scheme_note(prep, scheme)
+        note = _scheme_note(prep, scheme, {"y": "the response", "dsp": "the predictors"}.get(
+            scheme, "the response and the predictors"))
     fit = observed_fit_sparse(prep, mom, gram_xx, xy, y_mean, y_sd)
     info = _summary(prep, kind="regression", model="linear", scheme=scheme,
                     statistic=statistic, method=None, terms=("intercept",) + prep.names,
@@ -192,14 +204,23 @@ def _rank_attribute(t: Term, prep: SparsePrepared) -> Term:
     Node i's value fills (size of its range - 1) dyads; a value's rank among all N dyad
     values is the number of dyads with smaller values plus (its own dyads + 1) / 2.
     """
-    mult = np.empty(prep.n)
-    for s, e in prep.ranges:
-        mult[s:e] = e - s - 1
-    vals, inv = np.unique(t.attr, return_inverse=True)
+    if prep.two_mode:  # a row's value fills its m cells, a column's its n cells
+        attr = t.attr if t.kind == SENDER else t.col_attr
+        mult = np.full(attr.shape[0], float(prep.m if t.kind == SENDER else prep.n))
+    else:
+        attr = t.attr
+        mult = np.empty(prep.n)
+        for s, e in prep.ranges:
+            mult[s:e] = e - s - 1
+    vals, inv = np.unique(attr, return_inverse=True)
     per_value = np.bincount(inv, mult, vals.size)
     below = np.concatenate([[0.0], np.cumsum(per_value)[:-1]])
     rank = (below + (per_value + 1) / 2.0)[inv]
-    return Term(t.name, t.kind, rank - rank.mean(), 0.0, None)
+    rank = rank - rank.mean()
+    if prep.two_mode:
+        return Term(t.name, t.kind, rank if t.kind == SENDER else None, 0.0, None,
+                    None if t.kind == SENDER else rank)
+    return Term(t.name, t.kind, rank, 0.0, None)
 
 
 def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = "float64",
@@ -224,21 +245,27 @@ def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = 
                              "need every one of its n x n dyad values; use method='pearson' "
                              "or dense arrays")
         prep = replace(prep, y=_rank_edges(prep.y, N), terms=(t,))
-    mom = fixed_products(prep)
+    mom = moments_of(prep)
     _, a_sd = _response_sd(prep.response_name, N, mom.y_sum, mom.y_sq)
     if not mom.cross[0, 0] > 0.0:
         raise InputError(f"{prep.names[0]!r} has no variation over the dyad set")
-    stats = build_sparse_plan(prep, mom, a_sd, statistic="t", correlation=True)
-    ident = np.arange(prep.n, dtype=np.int64)[None, :]
-    r = stats.statistics(ident, ident)[0]
+    if prep.two_mode:
+        stats = build_sparse_correlation_plan(prep, mom)
+        chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
+        note = _scheme_note(prep, "the correlation", "the second network")
+    else:
+        stats = build_sparse_plan(prep, mom, a_sd, statistic="t", correlation=True)
+        chunk = chunk_size(prep)
+        note = NOTE.format(edges=prep.y.size)
+    r = stats.statistics(np.arange(prep.n, dtype=np.int64)[None, :],
+                         np.arange(prep.m, dtype=np.int64)[None, :])[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         se = np.sqrt((1 - r ** 2) / (N - 2))
     info = _summary(prep, kind="correlation", model="correlation", scheme="y",
-                    statistic="r", method=method, terms=prep.names,
-                    note=NOTE.format(edges=prep.y.size))
+                    statistic="r", method=method, terms=prep.names, note=note)
     settings = dict(kind="correlation", model="correlation", scheme="y", statistic="r",
                     method=method, storage=storage, dyads=dyads,
                     groups=groups_fingerprint(groups), route="sparse")
-    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk_size(prep),
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk,
                 fit=dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan])), summary=info,
                 identity=sparse_identity(prep, settings))
