@@ -55,12 +55,14 @@ class StudySummary:
                  f"nodes: {self.n_nodes}   dyads: {self.n_dyads:,} ({mode})   complete in "
                  f"every network: {self.complete_dyads:,}"] + list(self.route) + [""]
         w = max(10, max(len(n.name) for n in self.networks) + 2)
-        lines.append(f"{'network':<{w}}{'role':<11}{'observed':>10}{'missing':>9}{'density':>9}"
-                     f"{'min':>11}{'max':>11}{'mean':>11}  symmetric")
+        ow = max(10, max(len(f"{n.observed:,}") for n in self.networks) + 2)
+        lines.append(f"{'network':<{w}}{'role':<11}{'observed':>{ow}}{'missing':>9}"
+                     f"{'density':>9}{'min':>11}{'max':>11}{'mean':>11}  symmetric")
         for n in self.networks:
             dens = n.nonzero / n.observed if n.observed else float("nan")
-            lines.append(f"{n.name:<{w}}{n.role:<11}{n.observed:>10,}{n.missing:>9,}{dens:>9.3f}"
-                         f"{n.minimum:>11.4g}{n.maximum:>11.4g}{n.mean:>11.4g}  "
+            lines.append(f"{n.name:<{w}}{n.role:<11}{n.observed:>{ow},}{n.missing:>9,}"
+                         + (f"{dens:>9.3f}" if not 0 < dens < 1e-3 else f"{dens:>9.1e}")
+                         + f"{n.minimum:>11.4g}{n.maximum:>11.4g}{n.mean:>11.4g}  "
                          f"{'yes' if n.symmetric else 'no'}")
         preds = [n.name for n in self.networks if n.role == "predictor"]
         if len(preds) > 1 and self.correlations.size:
