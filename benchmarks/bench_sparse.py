@@ -33,6 +33,7 @@ import numpy as np
 
 import dyadperm as dp
 from dyadperm.routes import sparse as sparse_path
+from dyadperm.routes import sparse_products as products
 from dyadperm.pipeline.engine import Draws, run_all
 from dyadperm.pipeline.permutations import draw
 
@@ -93,7 +94,7 @@ def naive_numpy(prep, plan, perms) -> float:
         inv[p] = np.arange(p.size)
         i, j = inv[src], inv[dst]
         for c, term in enumerate(prep.terms):
-            x = sparse_path.eval_derived(term, i, j)
+            x = products.eval_derived(term, i, j)
             (w * (x - plan.center[c])).sum()
     return (time.perf_counter() - t) / len(perms)
 
@@ -131,11 +132,11 @@ def main() -> None:
 
     t = time.perf_counter()
     prep = sparse_path.prepare_sparse(net, preds)
-    mom = sparse_path.fixed_products(prep)
-    y_mean, y_sd = sparse_path._response_sd(prep.response_name, prep.n_dyads, mom.y_sum,
+    mom = products.fixed_products(prep)
+    y_mean, y_sd = products._response_sd(prep.response_name, prep.n_dyads, mom.y_sum,
                                             mom.y_sq)
-    plan = sparse_path.build_sparse_plan(prep, mom, y_sd, statistic="t")
-    fit = sparse_path.observed_fit_sparse(prep, mom, plan, y_mean, y_sd)
+    plan = products.build_sparse_plan(prep, mom, y_sd, statistic="t")
+    fit = products.observed_fit_sparse(prep, mom, *plan.observed_products(), y_mean, y_sd)
     t_setup = time.perf_counter() - t
 
     chunk = sparse_path.chunk_size(prep)

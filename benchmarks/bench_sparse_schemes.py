@@ -43,6 +43,7 @@ import numpy as np
 
 import dyadperm as dp
 from dyadperm.routes import sparse as sparse_path
+from dyadperm.routes import sparse_products as products
 from dyadperm.pipeline.engine import Draws, run_all
 from dyadperm.kernels.sparse import NETWORK
 from dyadperm.pipeline.permutations import draw
@@ -126,12 +127,12 @@ def cpu_seconds() -> float:
 def setup(net, preds, scheme):
     """Everything before the relabellings: (prep, plan, observed t)."""
     prep = sparse_path.prepare_sparse(net, preds)
-    mom = sparse_path.fixed_products(prep)
-    y_mean, y_sd = sparse_path._response_sd(prep.response_name, prep.n_dyads, mom.y_sum,
+    mom = products.fixed_products(prep)
+    y_mean, y_sd = products._response_sd(prep.response_name, prep.n_dyads, mom.y_sum,
                                             mom.y_sq)
-    sparse_path._check_collinear(prep, mom)
-    yplan = sparse_path.build_sparse_plan(prep, mom, y_sd, statistic="t")
-    fit = sparse_path.observed_fit_sparse(prep, mom, yplan, y_mean, y_sd)
+    products._check_collinear(prep, mom)
+    yplan = products.build_sparse_plan(prep, mom, y_sd, statistic="t")
+    fit = products.observed_fit_sparse(prep, mom, *yplan.observed_products(), y_mean, y_sd)
     if scheme == "y":
         return prep, yplan, fit
     del yplan
@@ -194,14 +195,14 @@ def naive_cross(prep, layers, rel, fix, perm, inv) -> np.ndarray:
             moved = replace(term, attr=term.attr[perm])
         for f, c in enumerate(fix):
             other, mean_c = layers[c]
-            out[r, f] = sparse_path._cross_sum(prep, moved, other) - N * mean_a * mean_c
+            out[r, f] = products._cross_sum(prep, moved, other) - N * mean_a * mean_c
     return out
 
 
 def naive(scheme: str, reps: int) -> dict:
     net, preds = make_forum(N_NODES, N_EDGES, SEED)
     prep = sparse_path.prepare_sparse(net, preds)
-    mom = sparse_path.fixed_products(prep)
+    mom = products.fixed_products(prep)
     plan = build_sparse_scheme_plan(prep, scheme=scheme, statistic="t", moments=mom)
     y_term = sparse_path.Term("y", NETWORK, None, 0.0, prep.y)
     layers = [(t, mom.mean[c]) for c, t in enumerate(prep.terms)]

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import Any, Callable
 
+from .inputs.sparse import refuse_edges as _refuse_edges
 from .inputs.sparse import takes as _sparse_takes
 from .output.result import CorrelationResult, LayerCorrelationResult, RegressionResult
 from .pipeline.run import open_result, run
@@ -114,12 +115,15 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     level = check_ci(ci)
     where = dict(directed=directed, groups=groups, dyads=dyads)
     if model == "logistic":  # binary response: Newton refits or score statistics
+        _refuse_edges(y, predictors, reason="model='logistic' runs on dense arrays only")
         plan = _logistic.plan(y, predictors, scheme=scheme, statistic=statistic,
                               storage=storage, **where)
     elif _sparse_takes(y, predictors, scheme=scheme):  # sparse response, sparse/derived x
         plan = _sparse.plan(y, predictors, scheme=scheme, statistic=statistic,
                             storage=storage, **where)
     else:
+        _refuse_edges(y, predictors, reason="the response is not sparse, so the dense "
+                      "route runs")
         plan = _linear.plan(y, predictors, scheme=scheme, statistic=statistic,
                             storage=storage, overwrite_inputs=overwrite_inputs, ci=level,
                             **where)
@@ -153,9 +157,15 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
                        scheduler=scheduler, shard=shard, stop=stop, provenance=provenance)
     where = dict(method=method, storage=storage, directed=directed, groups=groups, dyads=dyads)
     if b is None:  # several networks: the matrix of pairwise correlations
+        nets = list(a.values()) if isinstance(a, dict) else list(a)
+        if nets:
+            _refuse_edges(nets[0], nets[1:], reason="the layer correlation matrix runs on "
+                          "dense arrays only")
         plan = _correlation.layers_plan(a, **where)
     elif _sparse_takes(a, b):  # sparse first network, sparse or derived second
         plan = _sparse.correlation_plan(a, b, **where)
     else:
+        _refuse_edges(a, [b], reason="the first network is not sparse, so the dense route "
+                      "runs")
         plan = _correlation.plan(a, b, overwrite_inputs=overwrite_inputs, **where)
     return run(plan, opts)

@@ -71,6 +71,14 @@ relabellings, three schemes) on the demo study (90 farms, 8,010 dyads, four term
 results do not depend on ``jobs``: replicate r of term j draws everything from
 ``SeedSequence(seed, spawn_key=(j, r))`` (its residual relabelling, then its tests'
 relabellings, drawn at once); :func:`simulated_response` gives any replicate back.
+
+Studies on the sparse route (networks kept as edge lists) are refused, in one line with
+the memory the dense route would need: a simulated response, fitted values plus
+relabelled residuals, holds a value at every dyad, so it is an n x n array whatever the
+data; at the sizes that send a study to the sparse route (dense layers above 1 GiB) that
+is many such arrays per replicate. Calibrate a smaller network of the same design instead.
+Dense inputs are checked against the memory available before any work, as every dense
+route is (``inputs.memory``).
 """
 
 from __future__ import annotations
@@ -88,6 +96,8 @@ from scipy.stats import t as t_dist
 from .errors import InputError
 from .inputs import design as _design
 from .inputs.blocks import Blocks
+from .inputs.memory import check_dense_route, gib
+from .inputs.sparse import refuse_edges
 from .output.result import _plain
 from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
@@ -493,6 +503,12 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     schemes, R, M = opts["schemes"], opts["replicates"], opts["permutations"]
     alpha, effect = opts["alpha"], opts["effect"]
     entropy = entropy_of(opts["seed"])
+    refuse_edges(y, predictors, reason="calibrate simulates responses that hold a value at "
+                 "every dyad, on the dense route")
+    # inputs, three reduced-model arrays per term, and per replicate a simulated response
+    # and the schemes' layer stacks
+    check_dense_route(y, predictors, route="calibrate", layers_per_term=4 + len(schemes),
+                      groups=groups)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     # the same input checks as a run (the one rule of a fittable design, no variation)
     _design.observed_fit(prep, pivot=fit_pivot(prep))
@@ -611,6 +627,14 @@ def calibrate_study(study: Any, *, replicates: int = 200, permutations: int = 19
     one-predictor regression, whose relabelling p-values are the same (methods.md).
     """
     t = study.spec["test"]
+    route = getattr(study, "route", None)
+    if route is not None and route.sparse:
+        have = "" if route.available is None else f", {gib(route.available)} available"
+        raise InputError(f"{study.path.name}: calibrate does not run on the sparse route: its "
+                         "simulated responses (fitted values plus relabelled residuals) hold "
+                         "a value at every dyad, so they need the dense route, which would "
+                         f"need {gib(route.dense_bytes)} of memory here{have}; calibrate a "
+                         "smaller network of the same design")
     if jobs is None:
         jobs = -1 if t["jobs"] is None else t["jobs"]
     notes = []

@@ -1,10 +1,10 @@
 """Every run feature on every route: the pipeline owns them, so they must all work alike.
 
-Routes: dense linear (y, dsp, freedman-lane), sparse linear, logistic (y and dsp, with the
-Wald z and the score statistic), correlation (Pearson, Spearman; dense and sparse) and the
-layer correlation matrix. Features: stop rules (Besag-Clifford, Gandy), a run file, resume
-after a kill (chunks in flight lost), growth, shards and merge, the Dask backend, two
-workers, threads vs processes, exact enumeration.
+Routes: dense linear (y, dsp, freedman-lane), sparse linear (the same three), logistic (y
+and dsp, with the Wald z and the score statistic), correlation (Pearson, Spearman; dense and
+sparse) and the layer correlation matrix. Features: stop rules (Besag-Clifford, Gandy), a
+run file, resume after a kill (chunks in flight lost), growth, shards and merge, the Dask
+backend, two workers, threads vs processes, exact enumeration.
 
 The reference of every working cell is one uninterrupted single-worker run with the same
 seed (design.md: results are bit-identical for any jobs, backend, chunk completion order,
@@ -54,16 +54,19 @@ def _logistic(scheme, statistic):
                                    model="logistic", scheme=scheme, statistic=statistic, **kw)
 
 
-def _sparse(**kw):
-    return dp.regress(dp.SparseNetwork.from_scipy(D["ys"]),
-                      {"xs": D["xs"], "near": dp.gap(D["battr"])}, scheme="y", **kw)
+def _sparse(scheme="y"):
+    return lambda **kw: dp.regress(dp.SparseNetwork.from_scipy(D["ys"]),
+                                   {"xs": D["xs"], "near": dp.gap(D["battr"])}, scheme=scheme,
+                                   **kw)
 
 
 ROUTES = {
     "dense-y": _dense("y"),
     "dense-dsp": _dense("dsp"),
     "dense-freedman-lane": _dense("freedman-lane"),
-    "sparse-y": _sparse,
+    "sparse-y": _sparse("y"),
+    "sparse-dsp": _sparse("dsp"),
+    "sparse-freedman-lane": _sparse("freedman-lane"),
     "logistic-y-z": _logistic("y", "t"),
     "logistic-y-score": _logistic("y", "score"),
     "logistic-dsp-z": _logistic("dsp", "t"),
@@ -192,6 +195,10 @@ EXACT_ROUTES = {
     "sparse-y": lambda **kw: dp.regress(
         dp.SparseNetwork.from_scipy(sp.csr_array(np.round(np.abs(D["y"][:6, :6]), 1))),
         {"near": dp.gap(D["battr"][:6])}, scheme="y", **kw),
+    "sparse-freedman-lane": lambda **kw: dp.regress(
+        dp.SparseNetwork.from_scipy(sp.csr_array(np.round(np.abs(D["y"][:6, :6]), 1))),
+        {"near": dp.gap(D["battr"][:6]), "kin": dp.same(D["cat"][:6])},
+        scheme="freedman-lane", **kw),
     "logistic-dsp-score": lambda **kw: dp.regress(
         D["yb"][:6, :6], {"x1": D["x1"][:6, :6]}, model="logistic", scheme="dsp",
         statistic="score", **kw),

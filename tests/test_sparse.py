@@ -35,7 +35,9 @@ import scipy.stats as st
 import statsmodels.api as sm
 
 import dyadperm as dp
-from dyadperm.routes import sparse as dsp_
+from dyadperm.inputs import memory
+from dyadperm.inputs import sparse as dsp_
+from dyadperm.routes import sparse_products as products
 from dyadperm.inputs.dyadic import NodeDerived
 from dyadperm.kernels.sparse import gap_gap_sum, row_lookup
 
@@ -121,7 +123,7 @@ def test_row_lookup_matches_dense_array(rng, directed):
     preds = {"x": sp.csr_array(X), "x2": sp.csr_array(sparse_predictor(rng, n, 0.2,
                                                                        directed=directed))}
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed)
-    nptr, nidx, nval = dsp_._row_tables(prep.terms, n, not directed)
+    nptr, nidx, nval = products._row_tables(prep.terms, n, not directed)
     # source: the dense arrays themselves, at every off-diagonal dyad
     for s, M in enumerate([X, preds["x2"].toarray()]):
         for i in range(n):
@@ -146,9 +148,9 @@ def test_sparse_cross_matches_numpy_twin(rng, n, directed):
     if directed:
         preds.update(snd=dp.sender(attr_b), rcv=dp.receiver(attr_a.astype(float)))
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed)
-    mom = dsp_.fixed_products(prep)
-    _, ysd = dsp_._response_sd("y", prep.n_dyads, mom.y_sum, mom.y_sq)
-    plan = dsp_.build_sparse_plan(prep, mom, ysd, statistic="t")
+    mom = products.fixed_products(prep)
+    _, ysd = products._response_sd("y", prep.n_dyads, mom.y_sum, mom.y_sq)
+    plan = products.build_sparse_plan(prep, mom, ysd, statistic="t")
     perms = np.stack([rng.permutation(n) for _ in range(5)] + [np.arange(n)])
     got = plan.cross(perms)
     rows, cols = dyad_index(n, directed)
@@ -185,7 +187,7 @@ def test_fixed_products_match_dense_arrays(rng, directed, groups):
     Y = sparse_response(rng, n, 0.2, directed=directed)
     prep = dsp_.prepare_sparse(sp.csr_array(Y), preds, directed=directed, groups=g,
                                dyads=groups)
-    mom = dsp_.fixed_products(prep)
+    mom = products.fixed_products(prep)
     # source: numpy sums over the dense arrays of NodeDerived.dense, on the dyad set
     mask = ~np.eye(n, dtype=bool) if directed else np.triu(np.ones((n, n), dtype=bool), 1)
     if groups == "within":
@@ -404,11 +406,44 @@ def test_reverse_of_a_sparse_network_is_its_transpose(rng):
 
 
 def test_small_scipy_input_with_dsp_still_runs_dense(rng):
+    """A small scipy.sparse response with dsp or freedman-lane keeps the dense path it took
+    before the sparse path had those schemes (its results, bit for bit); a SparseNetwork,
+    or a scipy.sparse response too large to densify, takes the sparse path."""
     n = 20
     Y = sparse_response(rng, n, 0.2, directed=True)
-    res = dp.regress(sp.csr_array(Y), {"s": dp.same(rng.integers(0, 2, n))}, scheme="dsp",
-                     permutations=20, seed=1)
-    assert res.scheme == "dsp" and not res.notes
+    s = dp.same(rng.integers(0, 2, n))
+    for scheme in ("dsp", "freedman-lane"):
+        res = dp.regress(sp.csr_array(Y), {"s": s}, scheme=scheme, permutations=20, seed=1)
+        assert res.scheme == scheme and not res.notes
+        res = dp.regress(SparseNet(Y, True), {"s": s}, scheme=scheme, permutations=20, seed=1)
+        assert res.notes[0].startswith(f"sparse path: {scheme} relabels")
+    big = sp.coo_array((np.ones(2), ([0, 5], [1, 0])), shape=(20_000, 20_000))
+    assert 8 * 20_000 ** 2 * 3 > dsp_.DENSIFY_LIMIT
+    res = dp.regress(big, {"s": dp.same(np.arange(20_000) % 2)}, scheme="dsp",
+                     permutations=10, seed=1)
+    assert res.notes[0].startswith("sparse path: dsp relabels the predictors")
+
+
+def test_refusals_name_the_network_and_the_dense_memory(rng, monkeypatch):
+    """What the sparse path cannot take is refused before any work, in one line naming the
+    network and what the dense route would need (a fake small 'available memory')."""
+    monkeypatch.setattr(memory, "available_bytes", lambda: 5 * 1024 ** 2)
+    n = 12
+    Y = sparse_response(rng, n, 0.3, directed=True)
+    net = SparseNet(Y, True)
+    gaps = rng.normal(size=n)
+    gaps[3] = np.nan
+    # n = 12, one predictor: 2 built arrays, 2 layers and the masks, 35 bytes per dyad
+    with pytest.raises(dp.InputError, match=r"node '3' has no attribute value \(NaN\); the "
+                       r"sparse path takes no missing values; the dense route would need "
+                       r"5 KiB of memory for 12 x 12 dyads \(5.0 MiB available\)"):
+        dp.regress(net, {"g": dp.gap(gaps)}, scheme="dsp", permutations=10)
+    with pytest.raises(dp.InputError, match=r"has value nan; .* 74.5 GiB per network of "
+                                            r"100,000 nodes"):
+        dp.SparseNetwork([0], [1], [np.nan], 100_000)
+    with pytest.raises(dp.InputError, match=r"predictor 'd' is a ndarray: .* the dense route "
+                                            r"would need 5 KiB"):
+        dp.regress(net, {"d": Y}, scheme="dsp", permutations=10)
 
 
 def test_errors_name_the_rule(rng):
@@ -416,13 +451,6 @@ def test_errors_name_the_rule(rng):
     Y = sparse_response(rng, n, 0.3, directed=True)
     net = SparseNet(Y, True)
     s = dp.same(rng.integers(0, 2, n))
-    with pytest.raises(dp.InputError, match="scheme 'dsp' relabels dense residual matrices"):
-        dp.regress(net, {"s": s}, scheme="dsp", permutations=10)
-    with pytest.raises(dp.InputError, match="scheme 'freedman-lane' relabels dense residual"):
-        dp.regress(net, {"s": s}, scheme="freedman-lane", permutations=10)
-    big = sp.coo_array((np.ones(1), ([0], [1])), shape=(20_000, 20_000))
-    with pytest.raises(dp.InputError, match="use scheme='y' on sparse input"):
-        dp.regress(big, {"s": dp.same(np.arange(20_000) % 2)}, scheme="dsp", permutations=10)
     with pytest.raises(dp.InputError, match=r"edge 0 \('0', '1'\) has value nan"):
         dp.SparseNetwork([0], [1], [np.nan], 3)
     with pytest.raises(dp.InputError, match=r"the dyad \('0', '1'\) is given more than once"):
@@ -431,6 +459,12 @@ def test_errors_name_the_rule(rng):
         dp.SparseNetwork([0], [5], None, 3)
     with pytest.raises(dp.InputError, match="predictor 'd' is a ndarray: with a SparseNetwork"):
         dp.regress(net, {"d": Y}, scheme="y", permutations=10)
+    with pytest.raises(dp.InputError, match="response 'ties' is a SparseNetwork .edge list., "
+                                            "but model='logistic' runs on dense arrays only"):
+        dp.regress(net, {"s": s}, model="logistic", permutations=10)
+    with pytest.raises(dp.InputError, match="predictor 'x' is a SparseNetwork .edge list., but "
+                                            "the response is not sparse"):
+        dp.regress(Y, {"x": net}, permutations=10)
     with pytest.raises(dp.InputError, match="method='spearman': 'b' is a gap predictor"):
         dp.correlate(net, dp.gap(rng.normal(size=n)), method="spearman", permutations=10)
     with pytest.raises(dp.InputError, match="directed=False but 'ties' is not symmetric"):
@@ -445,9 +479,6 @@ def test_errors_name_the_rule(rng):
     with pytest.raises(dp.InputError, match="response 'ties' has no variation"):
         dp.regress(dp.SparseNetwork([], [], None, n, name="ties"), {"s": s}, scheme="y",
                    permutations=10)
-    with pytest.raises(dp.InputError, match="the sparse path takes one-mode"):
-        dp.regress(sp.csr_array(np.ones((4, 5))), {"s": dp.sender(np.arange(4.0))},
-                   scheme="y", permutations=10)
 
 
 def test_near_collinear_predictors_are_refused_by_the_one_rule(rng):

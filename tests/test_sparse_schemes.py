@@ -29,6 +29,7 @@ import dyadperm as dp
 from dyadperm.inputs import design
 from dyadperm.routes import linear as schemes
 from dyadperm.routes import sparse as sparse_path
+from dyadperm.routes import sparse_products as products
 from dyadperm.inputs.dyadic import NodeDerived, Reverse
 from dyadperm.pipeline.engine import Draws, run_all
 from dyadperm.pipeline.permutations import draw, enumerate_exact
@@ -74,8 +75,9 @@ def edges_of(M, directed, name):
     return dp.SparseNetwork(r, c, M[r, c], M.shape[0], directed=directed or None, name=name)
 
 
-def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
-    """A sparse response, every kind of derived predictor and a sparse one; their dense twins."""
+def inputs(rng, n, *, directed, groups=None, kinds="all"):
+    """A sparse response, every kind of derived predictor and a sparse one; their dense
+    twins; groups (or None)."""
     labels = tuple(str(i) for i in range(n))
     Y = sparse_response(rng, n, 0.06, directed=directed)
     preds = {"same_region": dp.same(rng.integers(0, 5, n)),
@@ -89,9 +91,15 @@ def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
     if kinds != "all":
         preds = {k: v for k, v in preds.items() if k in kinds}
     g = rng.integers(0, 3, n) if groups else None
+    dense = {k: dense_of(v, labels, Y) for k, v in preds.items()}
+    return Y, preds, dense, g
+
+
+def problem(rng, n, *, directed, groups=None, dyads=None, kinds="all"):
+    """The prepared sparse problem of ``inputs``, the dense one, and the dense arrays."""
+    Y, preds, dense, g = inputs(rng, n, directed=directed, groups=groups, kinds=kinds)
     prep = sparse_path.prepare_sparse(sp.csr_array(Y), preds, directed=directed, groups=g,
                                       dyads=dyads)
-    dense = {k: dense_of(v, labels, Y) for k, v in preds.items()}
     dprep = design.prepare(Y, dense, directed=directed, groups=g, dyads=dyads)
     return prep, dprep, Y, dense
 
@@ -152,6 +160,34 @@ def test_statistics_match_dense_engine_n2000(rng, case):
             assert close(plan.statistics(rows, rows), ref.statistics(rows, rows))
 
 
+@pytest.mark.parametrize("case", ["directed", "undirected", "groups-within-undirected"])
+def test_route_matches_dense_route_same_seed(rng, case):
+    """dp.regress on edge lists (the sparse route) against dp.regress on the dense twins:
+    the same relabellings (same seed), statistics to 1e-10, identical exceedance counts and
+    p-values; the observed fit against statsmodels OLS on the vectorised dyads."""
+    opts = CASES[case]
+    Y, preds, dense, groups = inputs(rng, 120, directed=opts["directed"],
+                                     groups=opts.get("groups"))
+    net = edges_of(Y, opts["directed"], "ties")
+    sparse_preds = {k: (edges_of(dense[k], opts["directed"], k) if k == "contacts" else v)
+                    for k, v in preds.items()}
+    for scheme in SCHEMES:
+        for statistic in ("t", "coef"):
+            kw = dict(scheme=scheme, statistic=statistic, permutations=150, seed=20240611,
+                      groups=groups, dyads=opts.get("dyads"))
+            res = dp.regress(net, sparse_preds, **kw)
+            ref = dp.regress(Y, dense, directed=opts["directed"], **kw)
+            assert res.notes[0].startswith(f"sparse path: {scheme}") and not ref.notes
+            assert res.terms == ref.terms and res.n_dyads == ref.n_dyads
+            null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
+            assert close(null_s, null_d), (scheme, statistic)
+            np.testing.assert_array_equal(res.exceed, ref.exceed)
+            np.testing.assert_array_equal(res.p, ref.p)
+            np.testing.assert_allclose(res.stat, ref.stat, rtol=FIT_RTOL, atol=1e-12)
+            np.testing.assert_allclose(res.se, ref.se, rtol=FIT_RTOL)
+            assert res.r2 == pytest.approx(ref.r2, rel=FIT_RTOL)
+
+
 # --- observed fit -----------------------------------------------------------------------------
 @pytest.mark.parametrize("directed", [True, False])
 def test_observed_statistic_is_the_full_model_fit(rng, directed):
@@ -162,7 +198,7 @@ def test_observed_statistic_is_the_full_model_fit(rng, directed):
     ols = sm.OLS(Y[mask], sm.add_constant(np.column_stack([M[mask] for M in dense.values()])))
     fit = ols.fit()
     ident = np.arange(n, dtype=np.int64)[None, :]
-    mom = sparse_path.fixed_products(prep)
+    mom = products.fixed_products(prep)
     for scheme in SCHEMES:
         t = build_sparse_scheme_plan(prep, scheme=scheme, statistic="t", moments=mom)
         coef = build_sparse_scheme_plan(prep, scheme=scheme, statistic="coef", moments=mom)
@@ -202,6 +238,23 @@ def test_exact_enumeration_matches_brute_force_n6(rng, scheme, directed):
         np.testing.assert_allclose(null, null_ref, rtol=EXACT_RTOL, atol=1e-12)
         for a, b in zip(counts(obs, null), counts(obs_ref, null_ref)):
             np.testing.assert_array_equal(a, b)
+
+
+def test_scheme_y_by_pair_sums_matches_the_y_kernel(rng):
+    """Scheme y through the pair sums (what two-mode data use) against the one-mode y plan
+    of the route (``sparse_products.SparsePlan``, its own kernel) and the dense engine."""
+    for case in ("directed", "undirected"):
+        prep, dprep, _, _ = problem(rng, 90, **CASES[case])
+        mom = products.fixed_products(prep)
+        _, y_sd = products._response_sd("y", prep.n_dyads, mom.y_sum, mom.y_sq)
+        rows, _ = draw(prep.blocks, 3, 0, 25)
+        for statistic in ("t", "coef"):
+            plan = build_sparse_scheme_plan(prep, scheme="y", statistic=statistic)
+            kernel = products.build_sparse_plan(prep, mom, y_sd, statistic=statistic)
+            dense = schemes.build_statistics(dprep, scheme="y", statistic=statistic)
+            got = plan.statistics(rows, rows)
+            assert close(got, kernel.statistics(rows, rows))
+            assert close(got, dense.statistics(rows, rows))
 
 
 # --- invariance and memory --------------------------------------------------------------------
@@ -247,8 +300,6 @@ def test_errors_name_the_rule(rng):
     Y = sparse_response(rng, n, 0.3, directed=True)
     s = dp.same(rng.integers(0, 2, n))
     prep = sparse_path.prepare_sparse(edges_of(Y, True, "ties"), {"s": s})
-    with pytest.raises(ValueError, match="takes dsp or freedman-lane; got 'y'"):
-        build_sparse_scheme_plan(prep, scheme="y", statistic="t")
     with pytest.raises(dp.InputError, match="scheme must be one of y, dsp, freedman-lane"):
         build_sparse_scheme_plan(prep, scheme="permute-x", statistic="t")
     with pytest.raises(dp.InputError, match="statistic must be one of t, coef"):

@@ -1,8 +1,10 @@
 """What a study's inputs look like: the summary ``dyadperm check`` prints.
 
 Nodes, dyads, density, missing values, symmetry per network, and the correlations and
-condition number of the predictors over the dyad set (collinearity). A design that the
-run would refuse (the one rule of ``design.check_design``) is named in a note.
+condition number of the predictors over the dyad set (collinearity); which route the study
+takes (sparse or dense), the schemes it can use there, and the memory the dense route would
+need. A design that the run would refuse (the one rule of ``design.check_design``) is named
+in a note.
 """
 
 from __future__ import annotations
@@ -13,9 +15,10 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from . import memory
 from .design import (check_design, dyads_phrase, fit_pivot, fold_rows, iter_dyad_rows, prepare,
                      standardised_condition)
-from .sparse import SparseNetwork
+from .sparse import NETWORK, SparseNetwork, prepare_sparse
 from .study_file import read_study
 
 # Share of missing dyad values above which a network is flagged.
@@ -47,19 +50,22 @@ class StudySummary:
     correlations: np.ndarray
     condition: float
     notes: tuple[str, ...]
+    route: tuple[str, ...] = ()
 
     def text(self) -> str:
         mode = "two-mode" if self.two_mode else ("directed" if self.directed else "undirected")
         lines = [f"study: {self.title}",
                  f"nodes: {self.n_nodes}   dyads: {self.n_dyads:,} ({mode})   complete in "
-                 f"every network: {self.complete_dyads:,}", ""]
+                 f"every network: {self.complete_dyads:,}"] + list(self.route) + [""]
         w = max(10, max(len(n.name) for n in self.networks) + 2)
-        lines.append(f"{'network':<{w}}{'role':<11}{'observed':>10}{'missing':>9}{'density':>9}"
-                     f"{'min':>11}{'max':>11}{'mean':>11}  symmetric")
+        ow = max(10, max(len(f"{n.observed:,}") for n in self.networks) + 2)
+        lines.append(f"{'network':<{w}}{'role':<11}{'observed':>{ow}}{'missing':>9}"
+                     f"{'density':>9}{'min':>11}{'max':>11}{'mean':>11}  symmetric")
         for n in self.networks:
             dens = n.nonzero / n.observed if n.observed else float("nan")
-            lines.append(f"{n.name:<{w}}{n.role:<11}{n.observed:>10,}{n.missing:>9,}{dens:>9.3f}"
-                         f"{n.minimum:>11.4g}{n.maximum:>11.4g}{n.mean:>11.4g}  "
+            lines.append(f"{n.name:<{w}}{n.role:<11}{n.observed:>{ow},}{n.missing:>9,}"
+                         + (f"{dens:>9.3f}" if not 0 < dens < 1e-3 else f"{dens:>9.1e}")
+                         + f"{n.minimum:>11.4g}{n.maximum:>11.4g}{n.mean:>11.4g}  "
                          f"{'yes' if n.symmetric else 'no'}")
         preds = [n.name for n in self.networks if n.role == "predictor"]
         if len(preds) > 1 and self.correlations.size:
@@ -79,6 +85,7 @@ def describe_study(path: str | Path) -> StudySummary:
     st = read_study(path)
     if isinstance(st.response, SparseNetwork):
         return _describe_sparse(st)
+    route = route_lines(st)
     prep = prepare(st.response, st.predictors, directed=st.spec["study"]["directed"],
                    groups=st.groups, dyads=st.spec["test"]["dyads"])
     names = prep.names + (prep.response_name,)
@@ -131,7 +138,7 @@ def describe_study(path: str | Path) -> StudySummary:
     shape = (f"{prep.mask.shape[0]} x {prep.mask.shape[1]}" if prep.two_mode
              else f"{prep.mask.shape[0]}")
     return StudySummary(st.title, shape, prep.directed, prep.two_mode, prep.n_dyads, complete,
-                        tuple(nets), pc, cond, tuple(notes))
+                        tuple(nets), pc, cond, tuple(notes), route)
 
 
 def _symmetric_input(mat: np.ndarray, prep) -> bool:
@@ -143,25 +150,52 @@ def _symmetric_input(mat: np.ndarray, prep) -> bool:
     return bool(np.array_equal(a, a.T))
 
 
+def route_lines(st) -> tuple[str, ...]:
+    """Which route the study takes, the schemes it can use there, and the memory the dense
+    route would need (``StudyInputs.route``)."""
+    test = st.spec["test"]
+    route = st.route
+    if test["kind"] == "correlation":
+        can = f"a {test['method']} correlation"
+    elif test["model"] == "logistic":
+        can = "schemes y and dsp (logistic model)"
+    else:
+        can = "schemes y, dsp and freedman-lane (linear model)"
+    need = memory.gib(route.dense_bytes)
+    have = "" if route.available is None else f"; {memory.gib(route.available)} available"
+    if route.sparse:
+        return (f"route: sparse (edge lists and node attributes, no n x n array): {can}; the "
+                f"dense route would need {need} of memory{have}",)
+    lines = [f"route: dense (n x n arrays, {need} of memory{have}): {can}"]
+    if route.blocker is not None:
+        lines.append(f"  not the sparse route: {route.blocker}")
+    return tuple(lines)
+
+
 def _describe_sparse(st) -> StudySummary:
-    """Summary of a study kept as edge lists (the sparse path): no n x n array is built."""
-    n = len(st.node_ids)
-    directed = st.spec["study"]["directed"]
+    """Summary of a study kept as edge lists (the sparse path): no n x n array is built.
+
+    The inputs are put on the dyad set as the sparse route does (``prepare_sparse``:
+    directedness, groups, two-mode), so what is printed is what a run uses.
+    """
+    test = st.spec["test"]
+    prep = prepare_sparse(st.response, st.predictors, directed=st.spec["study"]["directed"],
+                          groups=st.groups, dyads=test["dyads"])
+    N = prep.n_dyads
     nets = []
-    for role, name, net in [("response", st.response.name or "response", st.response)] + [
-            ("predictor", nm, p) for nm, p in st.predictors.items() if isinstance(p, SparseNetwork)]:
-        rows, cols = np.asarray(net.rows), np.asarray(net.cols)
-        w = np.ones(rows.size) if net.weights is None else np.asarray(net.weights, dtype=float)
-        w = w[rows != cols]
-        dyads = n * (n - 1) if directed is not False else n * (n - 1) // 2
-        nonzero = int(np.count_nonzero(w))
-        nets.append(NetworkSummary(name, role, dyads, 0, nonzero, float(min(w.min(initial=0), 0)),
-                                   float(max(w.max(initial=0), 0)), float(w.sum() / dyads),
-                                   directed is False))
-    derived = [nm for nm, p in st.predictors.items() if not isinstance(p, SparseNetwork)]
+    edges = [("response", prep.response_name, prep.y)] + [
+        ("predictor", t.name, t.edges) for t in prep.terms if t.kind == NETWORK]
+    for role, name, ed in edges:
+        w = ed.w
+        zeros = ed.size < N  # dyads off the edge list hold 0
+        lo = float(min(w.min(initial=np.inf), 0.0 if zeros else np.inf))
+        hi = float(max(w.max(initial=-np.inf), 0.0 if zeros else -np.inf))
+        nets.append(NetworkSummary(name, role, N, 0, int(np.count_nonzero(w)), lo, hi,
+                                   float(w.sum() / N), not prep.directed and not prep.two_mode))
+    derived = [t.name for t in prep.terms if t.kind != NETWORK]
     notes = list(st.notes) + [
-        "kept as edge lists: the engine's sparse path runs this study (scheme y or "
-        "correlation); predictors derived from node attributes: " + (", ".join(derived) or "none")]
-    return StudySummary(st.title, str(n), directed is not False, False, nets[0].observed,
-                        nets[0].observed, tuple(nets), np.zeros((0, 0)), float("nan"),
-                        tuple(notes))
+        "kept as edge lists: the engine's sparse path runs this study; predictors derived "
+        "from node attributes: " + (", ".join(derived) or "none")]
+    shape = f"{prep.n} x {prep.m}" if prep.two_mode else str(prep.n)
+    return StudySummary(st.title, shape, prep.directed, prep.two_mode, N, N, tuple(nets),
+                        np.zeros((0, 0)), float("nan"), tuple(notes), route_lines(st))

@@ -61,6 +61,7 @@ column table for ``receiver``, and both tables (a column of the same name) for `
 from __future__ import annotations
 
 import tomllib
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -69,12 +70,14 @@ import numpy as np
 from ..errors import InputError
 from ..settings import DEFAULT_EXCEEDANCES, DEFAULT_RISK, STOP_RULES
 from .dyadic import Dyadic, NodeDerived, Reverse, gap, pair_sum, receiver, reverse, same, sender
+from . import memory
 from .sparse import SparseNetwork
 from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
     read_node_table, split_h5_path
 from .labels import sorted_labels
 
-# Dense layers larger than this (bytes) send an all-edge-list study to the sparse path.
+# Dense layers larger than this (bytes) send a study the sparse route can take there; a
+# network file larger than this is read lazily (its values once the route is decided).
 SPARSE_ABOVE = 1 << 30
 
 __all__ = ["StudyInputs", "read_study"]
@@ -386,6 +389,27 @@ def _file_stem(file: str) -> str:
 
 # --------------------------------------------------------------------------- Study
 
+@dataclass(frozen=True)
+class Route:
+    """Which route a study takes and why (``_Loader.route``; ``dyadperm check`` prints it).
+
+    sparse : bool
+        The networks are kept as edge lists (the sparse route).
+    dense_bytes : int
+        Memory the dense route would need (``inputs.memory``: the networks built as n x m
+        arrays, the layer stack, the masks).
+    available : int or None
+        Memory available when the study was read (None: unknown).
+    blocker : str or None
+        Why the sparse route cannot take the study (None: it can).
+    """
+
+    sparse: bool
+    dense_bytes: int
+    available: int | None
+    blocker: str | None
+
+
 class StudyInputs:
     """A validated study: its inputs read and placed on one node order (``dyadperm.Study``
     adds ``run``).
@@ -420,6 +444,9 @@ class StudyInputs:
         The networks were loaded as the layers of the engine's stack (``.npy``/HDF5 files
         of a linear regression or a Pearson correlation): a run standardises them in place,
         so the data are held once; a later run reads the network files again.
+    route : Route or None
+        Which route the study takes (sparse or dense), why the sparse route cannot take it
+        (if so) and the memory the dense route would need.
     """
 
     def __init__(self, *, path: Path, text: str, spec: dict, node_ids: tuple[str, ...],
@@ -427,7 +454,8 @@ class StudyInputs:
                  col_node_table: NodeTable | None, response: Dyadic,
                  predictors: dict[str, Dyadic | NodeDerived | Reverse],
                  groups: np.ndarray | None, notes: list[str], output: Path | None,
-                 layers_in_place: bool = False, reload: Any = None) -> None:
+                 layers_in_place: bool = False, reload: Any = None,
+                 route: Route | None = None) -> None:
         self.path = path
         self.text = text
         self.spec = spec
@@ -445,6 +473,7 @@ class StudyInputs:
         self.layers_in_place = layers_in_place
         self._spent = False
         self._reload = reload
+        self.route = route
 
     def _fresh(self) -> None:
         """Read the network files again when a run has standardised the layers in place."""
@@ -562,14 +591,18 @@ class _Loader:
                     for group, file in entry["file"].items()}
                 continue
             where = self.resolve(section, "file", entry["file"])
+            # a large .npy/HDF5 file is read lazily, so the route can be decided (and a
+            # study too large for the dense route refused) before its values are loaded
             raws[entry["name"]] = (read_network(where, fmt=entry["format"],
                                                 missing=entry["missing"],
-                                                lazy=layout is not None), entry["file"])
+                                                lazy=layout is not None or _large(where)),
+                                   entry["file"])
         rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()] + [
             r for parts in grouped.values() for r, _ in parts.values()])
 
         networks: dict[str, Any] = {}
-        sparse = self.sparse_route(raws, rows, cols)
+        route = self.route(entries, raws, grouped, rows, cols, nodes, col_nodes, layout)
+        sparse = route.sparse
         slots = {} if sparse or layout is None else self.layer_slots(layout, rows, cols)
         block_ids = None
         if slots and test["groups"] is None:
@@ -580,7 +613,7 @@ class _Loader:
                 block_ids, (rows, cols) = (rows, cols), ordered
         for name, (raw, file) in raws.items():
             if sparse:
-                networks[name] = self.sparse_network(name, raw, file, rows)
+                networks[name] = self.sparse_network(name, raw, file, rows, cols)
                 continue
             values, notes = align(raw, rows, cols, directed=sd["directed"], source=file,
                                   row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"],
@@ -612,7 +645,8 @@ class _Loader:
                      response=networks[self.spec["response"]["name"]], predictors=predictors,
                      groups=groups, notes=self.notes, output=output,
                      layers_in_place=bool(slots),
-                     reload=lambda: _Loader(self.path, self.check, self.spec, self.cls).load(text))
+                     reload=lambda: _Loader(self.path, self.check, self.spec, self.cls).load(text),
+                     route=route)
 
     def layer_layout(self, entries: list) -> list[list[str]] | None:
         """Network names per layer array when the study can load into the engine's layers.
@@ -692,41 +726,116 @@ class _Loader:
             full[np.ix_(members, members)] = values
         return Dyadic(full, rows, None, sd["directed"], None, name)
 
-    def sparse_route(self, raws: dict, rows: tuple[str, ...], cols) -> bool:
-        """Whether to keep edge lists as edges (the sparse engine path) instead of n x n.
+    def route(self, entries: list, raws: dict, grouped: dict, rows: tuple[str, ...], cols,
+              nodes: NodeTable | None, col_nodes: NodeTable | None, layout) -> Route:
+        """Which route the study takes: keep its edge lists as edges (sparse) or build n x m
+        arrays (dense). Decided before any network is placed on the node order.
 
-        Yes when the study is one-mode, every network file is a complete edge list (no
-        missing values), the test runs on the sparse path (a correlation, or a linear
-        regression under scheme y, without groups), and the dense layers would take more
-        than ``SPARSE_ABOVE`` bytes. Smaller studies stay dense: same numbers, and run
-        files, stopping rules and every scheme work there.
+        Sparse when the sparse route can take the study (``sparse_blocker``) and the dense
+        layers would take more than ``SPARSE_ABOVE`` bytes, or would not fit in the memory
+        available. Smaller studies stay dense (the same numbers to about 1e-13, and every
+        route and feature works there). A study that only the dense route can take and
+        whose arrays do not fit in memory is refused here, in one line naming what keeps it
+        off the sparse route and the memory the dense route would need.
         """
         test = self.spec["test"]
-        if cols is not None or test["groups"] is not None or not raws:
-            return False
-        if test["kind"] == "regression" and (test["model"] != "linear" or test["scheme"] != "y"):
-            return False
-        if not all(raw.is_edges and not np.isnan(raw.weights).any() for raw, _ in raws.values()):
-            return False
-        layers = 1 + len(self.spec["predictor"])
-        return 8.0 * len(rows) ** 2 * layers > SPARSE_ABOVE
+        k = len(self.spec["predictor"])
+        n = len(rows)
+        m = n if cols is None else len(cols)
+        built = (0 if layout is not None else len(raws)) + len(grouped) + sum(
+            1 for p in self.spec["predictor"] if "file" not in p)
+        if test["groups"] is not None:
+            built += k + 1  # reordered copies
+        per_term = 3 if test["kind"] == "regression" and test["model"] == "logistic" else 1
+        need = memory.dense_bytes(n, m, arrays=built, layers=per_term * (k + 1))
+        blocker = self.sparse_blocker(entries, raws, grouped, nodes, col_nodes)
+        fits, avail = memory.fits(need)
+        if blocker is None and (8.0 * n * m * (k + 1) > SPARSE_ABOVE or not fits):
+            return Route(True, need, avail, None)
+        if not fits:
+            size = f"{n:,} nodes" if cols is None else f"{n:,} x {m:,} nodes"
+            raise InputError(f"{self.check.shown}: {blocker}; the dense route would need "
+                             f"{memory.gib(need)} of memory for {size} ({k + 1} networks as "
+                             f"n x n arrays), more than the {memory.gib(avail)} available")
+        return Route(False, need, avail, blocker)
 
-    def sparse_network(self, name: str, raw: RawNetwork, file: str, rows: tuple[str, ...]):
-        """A SparseNetwork from an edge list, labels placed on the node order."""
+    def sparse_blocker(self, entries: list, raws: dict, grouped: dict,
+                       nodes: NodeTable | None, col_nodes: NodeTable | None) -> str | None:
+        """What keeps the study off the sparse route (the first thing found), or None.
 
-        pos = {lab: i for i, lab in enumerate(rows)}
-        idx = []
-        for labels in (raw.sources, raw.targets):
-            out = np.empty(len(labels), dtype=np.int64)
-            for e, lab in enumerate(labels):
-                if lab not in pos:
-                    raise InputError(f"{file} line {int(raw.lines[e])}: unknown node label "
-                                     f"{str(lab)!r}" + (f" (not in {self.spec['study']['nodes']})"
-                                                   if self.spec["study"]["nodes"] else ""))
-                out[e] = pos[lab]
-            idx.append(out)
-        return SparseNetwork(idx[0], idx[1], np.asarray(raw.weights, dtype=np.float64), rows,
-                             self.spec["study"]["directed"], name)
+        The sparse route takes a linear regression (any scheme) or a correlation whose
+        network files are all complete edge lists (one file per network) and whose
+        derived predictors have a value for every node; one-mode or two-mode, with or
+        without groups.
+        """
+        test = self.spec["test"]
+        if test["kind"] == "regression" and test["model"] != "linear":
+            return f'model = "{test["model"]}" runs on dense arrays only'
+        for section, entry in entries:
+            name = entry["name"]
+            if name in grouped:
+                return (f"{section} {name!r} is given as one file per group, which the "
+                        "sparse route does not read")
+            if name in raws:
+                raw, file = raws[name]
+                if not raw.is_edges:
+                    return (f"{section} {name!r} ({file}) is a dense matrix file; the sparse "
+                            "route takes edge lists and derived predictors")
+                gaps = np.flatnonzero(np.isnan(raw.weights))
+                if gaps.size:
+                    return (f"{section} {name!r} ({file}) has a missing value at line "
+                            f"{int(raw.lines[gaps[0]])}; the sparse route takes complete "
+                            "edge lists")
+                continue
+            kind = next((key for key in _DERIVED if key in entry), None)
+            if kind is None:
+                continue
+            if test["kind"] == "correlation" and test["method"] == "spearman" \
+                    and kind in ("gap", "pair_sum"):
+                return (f"{section} {name!r}: Spearman ranks of a {kind} predictor need "
+                        "every one of its n x n dyad values")
+            tables = [(nodes, kind != "receiver" or not self.spec["study"]["two_mode"]),
+                      (col_nodes, kind != "sender")]
+            for table, used in tables:
+                if not used or table is None or entry[kind] not in table.columns:
+                    continue
+                values = table.columns[entry[kind]]
+                empty = np.isnan(values) if values.dtype.kind == "f" else values == ""
+                if empty.any():
+                    line = table.lines[int(np.flatnonzero(empty)[0])]
+                    return (f"{section} {name!r}: {table.path.name} column {entry[kind]!r} "
+                            f"has no value at line {line}; the sparse route takes no "
+                            "missing values")
+        return None
+
+    def sparse_network(self, name: str, raw: RawNetwork, file: str, rows: tuple[str, ...],
+                       cols: tuple[str, ...] | None) -> SparseNetwork:
+        """A SparseNetwork from an edge list, labels placed on the node order (two-mode:
+        sources on the row nodes, targets on the column nodes)."""
+        sd = self.spec["study"]
+        row_from = f" (not in {sd['nodes']})" if sd["nodes"] else ""
+        col_from = f" (not in {sd['col_nodes']})" if sd["col_nodes"] else ""
+        i = _label_positions(raw, raw.sources, rows, file, row_from)
+        j = _label_positions(raw, raw.targets, rows if cols is None else cols, file,
+                             row_from if cols is None else col_from)
+        lines = raw.lines
+        if cols is None:
+            loop = i == j
+            if loop.any():
+                self.notes.append(f"{file}: {int(loop.sum())} self-loop(s) ignored (line "
+                                  + ", ".join(str(x) for x in lines[loop][:5].tolist())
+                                  + (", ..." if loop.sum() > 5 else "") + ")")
+        m = len(rows if cols is None else cols)
+        key = i * max(m, 1) + j
+        order = np.argsort(key, kind="stable")
+        dup = np.flatnonzero(key[order][1:] == key[order][:-1])
+        if dup.size:
+            a, b = order[dup[0]], order[dup[0] + 1]
+            raise InputError(f"{file}: duplicate edge {str(raw.sources[a])!r} -> "
+                             f"{str(raw.targets[a])!r} at lines {lines[a]} and {lines[b]} "
+                             "(aggregate repeated ties before reading)")
+        return SparseNetwork(i, j, np.asarray(raw.weights, dtype=np.float64), rows,
+                             sd["directed"], name, cols)
 
     def node_ids(self, nodes: NodeTable | None, col_nodes: NodeTable | None,
                  raws: list[RawNetwork]) -> tuple[tuple[str, ...], tuple[str, ...] | None]:
@@ -808,3 +917,29 @@ def _is_number(cell: str) -> bool:
     except ValueError:
         return False
     return True
+
+
+def _large(where: Any) -> bool:
+    """Whether a network file is large enough to be read lazily (``SPARSE_ABOVE`` bytes)."""
+    h5 = split_h5_path(str(where))
+    try:
+        return Path(h5[0] if h5 is not None else where).stat().st_size > SPARSE_ABOVE
+    except OSError:
+        return False
+
+
+def _label_positions(raw: RawNetwork, labels: np.ndarray, ids: tuple[str, ...], file: str,
+                     where: str) -> np.ndarray:
+    """Positions in ``ids`` of an edge list's labels (vectorised: sorted ids and a binary
+    search); an unknown label names its file line."""
+    ids_arr = np.asarray(ids, dtype=str)
+    order = np.argsort(ids_arr, kind="stable")
+    sorted_ids = ids_arr[order]
+    labels = np.asarray(labels, dtype=str)
+    at = np.minimum(np.searchsorted(sorted_ids, labels), max(len(ids) - 1, 0))
+    known = sorted_ids[at] == labels if len(ids) else np.zeros(labels.shape, dtype=bool)
+    if not known.all():
+        e = int(np.flatnonzero(~known)[0])
+        raise InputError(f"{file} line {int(raw.lines[e])}: unknown node label "
+                         f"{str(labels[e])!r}{where}")
+    return order[at].astype(np.int64)

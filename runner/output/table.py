@@ -214,9 +214,12 @@ def matrix_lines(res: Any, *, alpha: float) -> list[str]:
 def _num(x: float, width: int, digits: int = 4) -> str:
     if x is None or not np.isfinite(x):
         return "-".rjust(width)
-    if x != 0 and (abs(x) >= 1e5 or abs(x) < 1e-3):
-        return f"{x:.{digits - 1}e}".rjust(width)
-    return f"{x:.{digits}f}".rjust(width)
+    sci = x != 0 and (abs(x) >= 1e5 or abs(x) < 1e-3)
+    text = f"{x:.{digits - 1}e}" if sci else f"{x:.{digits}f}"
+    while len(text) >= width and digits > 0:  # fewer digits: keep a space before the column
+        digits -= 1
+        text = f"{x:.{max(digits - 1, 0)}e}" if sci else f"{x:.{digits}f}"
+    return text.rjust(width)
 
 
 def _pval(x: float, width: int) -> str:

@@ -25,8 +25,9 @@ from ..inputs import design as _design
 from ..inputs.blocks import Blocks
 from ..inputs.design import Prepared, iter_dyad_rows, standardise
 from ..inputs.dyadic import network_name
+from ..inputs.memory import check_dense_route
 from ..settings import check_correlation
-from .linear import GramStatistics, Pass, _identity_gram, _stack
+from .linear import STORAGE, GramStatistics, Pass, _identity_gram, _stack
 from .plan import (Plan, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
                    summary)
 
@@ -201,6 +202,9 @@ def plan(a: Any, b: Any, *, method: str = "pearson", storage: str = "float64",
          overwrite_inputs: bool = False) -> Plan:
     """The dense correlation route: network ``b`` relabelled against ``a``."""
     check_correlation(method=method, storage=storage)
+    check_dense_route(a, [b], route="correlation", groups=groups,
+                      extra_layers=2 if method == "spearman" else 0,
+                      itemsize=np.dtype(STORAGE[storage]).itemsize, in_place=overwrite_inputs)
     bname = network_name(b) or "b"
     prep = _design.prepare(a, {bname: b}, directed=directed, groups=groups, dyads=dyads,
                            response_name=network_name(a) or "a")
@@ -235,6 +239,9 @@ def layers_plan(networks: Any, *, method: str = "pearson", storage: str = "float
     """
     check_correlation(method=method, storage=storage)
     items = _layer_items(networks)
+    check_dense_route(items[0][1], [v for _, v in items[1:]], route="correlation",
+                      groups=groups, extra_layers=len(items) if method == "spearman" else 0,
+                      itemsize=np.dtype(STORAGE[storage]).itemsize)
     names = [n for n, _ in items]
     prep = _design.prepare(items[0][1], {n: v for n, v in items[1:]}, directed=directed,
                            groups=groups, dyads=dyads, response_name=names[0])

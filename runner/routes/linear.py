@@ -29,6 +29,7 @@ from scipy.stats import rankdata
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
+from ..inputs import memory as _memory
 from ..inputs.design import (Prepared, check_design, check_response, dyads_phrase, fold_rows,
                              iter_dyad_rows, standardise)
 from ..kernels.options import FIT_PIVOT
@@ -460,12 +461,21 @@ def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np
                                  f"{float(ref)!r}")
     return out
 
+def check_memory(y: Any, predictors: Any, *, storage: str, groups: Any, in_place: bool) -> None:
+    """Refuse before any work a problem whose inputs, layer stack (one layer per network,
+    in ``storage``) and masks would not fit in the memory available (``inputs.memory``)."""
+    _memory.check_dense_route(y, predictors, route="linear", groups=groups,
+                              itemsize=np.dtype(STORAGE[storage]).itemsize,
+                              in_place=bool(in_place))
+
+
 def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str = "float64",
          directed: bool | None = None, groups: Any = None, dyads: str | None = None,
          overwrite_inputs: bool = False, ci: float | None = None) -> Plan:
     """The dense linear route: prepared inputs, the QR fit for the table, and the scheme's
     statistics (``build_statistics``) for the pipeline."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
+    check_memory(y, predictors, storage=storage, groups=groups, in_place=overwrite_inputs)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep, pivot=fit_pivot(prep, storage))
     # statistics that overwrite the inputs need their fingerprints first

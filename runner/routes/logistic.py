@@ -103,6 +103,7 @@ import numpy as np
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
+from ..inputs.memory import check_dense_route
 from ..kernels.gather import gather_cross
 from ..kernels.options import FIT_PIVOT
 from ..settings import LOGISTIC_SCHEMES as SCHEMES  # noqa: F401  (re-exported)
@@ -524,6 +525,8 @@ def plan(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
     not tested).
     """
     check_regression(model="logistic", scheme=scheme, statistic=statistic, storage=storage)
+    # dyad table, design and residual layers: about three n x m arrays per network
+    check_dense_route(y, predictors, route="logistic", layers_per_term=3, groups=groups)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     check_binary(prep)
     # the shared checks (too few dyads, constant or collinear predictors) with the pivot of

@@ -10,8 +10,10 @@ of 100,000 nodes would need 80 GB per layer.
 Method
 ------
 The dyad set D is every off-diagonal pair (directed) or every pair i < j (undirected),
-restricted to pairs inside a group when ``groups`` is given with ``dyads="within"``. There
-are no missing values on this path (a NaN edge value or attribute is an error).
+restricted to pairs inside a group when ``groups`` is given with ``dyads="within"``; for
+two-mode data (a :class:`SparseNetwork` with column labels, a rectangular scipy.sparse
+matrix) every cell of n x m, rows and columns relabelled independently. There are no
+missing values on this path (a NaN edge value or attribute is an error).
 
 Y-permutation (Krackhardt 1988, Social Networks 10:359–381) relabels the response:
 y'[i, j] = y[pi(i), pi(j)]. With predictors centred over D (x~ = x - mean), the only
@@ -54,365 +56,47 @@ would need the ranks of all n^2 dyad values and are refused.
 
 Schemes
 -------
-Only scheme ``"y"`` (and QAP correlation) runs on this path. Double semi-partialling
-(Dekker, Krackhardt & Snijders 2007) relabels the residual of a predictor on the other
-terms, e = x_j - Z gamma, and Freedman & Lane (1983) relabel the residual of the response
-on the reduced model, r = y - Z gamma. Those residual matrices are dense even when y and
-x are sparse (every dyad gets -Z gamma), and their relabelled cross products with the
-other layers are sums over all N dyads, not over E edges; with derived predictors the
-relabelled design itself is dense. For them pass dense arrays (``network.toarray()``) on a
-network that fits in memory, or use scheme ``"y"``. A small scipy.sparse input with those
-schemes is densified and runs on the dense path as before; a :class:`SparseNetwork`, or
-a scipy.sparse input whose dense layers would exceed ``DENSIFY_LIMIT`` bytes, is refused
-with that advice.
+Every linear scheme runs on this path. Double semi-partialling (Dekker, Krackhardt &
+Snijders 2007) relabels the residual of a predictor on the other terms, and Freedman &
+Lane (1983) the residual of the response on the reduced model; those residual matrices
+are dense even when y and x are sparse, but they relabel as the same linear combinations
+of relabelled layers, so every relabelling needs only the sums of relabelled layers times
+fixed layers, each an edge pass or a closed form (``routes.sparse_schemes``,
+``kernels.sparse_pairs``). One-mode scheme y and correlation keep the plan above
+(``sparse_products.SparsePlan``); two-mode data take every statistic, and their fixed
+products, from the pair sums.
+
+Which inputs take this path is decided by ``inputs.sparse.takes``: a :class:`SparseNetwork`
+response always; a scipy.sparse response for scheme y, and for dsp and freedman-lane when
+its dense layers would pass ``DENSIFY_LIMIT`` (smaller ones run on the dense path, as they
+did before this path had those schemes: the two agree to about 1e-13, not bit for bit).
 """
 
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, replace
-from typing import Any, Sequence
+from dataclasses import replace
+from typing import Any
 
 import numpy as np
 from scipy.stats import rankdata
 
 from ..errors import InputError
-from ..inputs.design import ObservedFit, check_design, check_response, warn_condition
 from ..inputs.dyadic import network_name
-from ..inputs.sparse import (DENSIFY_LIMIT, KIND_CODES, Edges, SparseNetwork,  # noqa: F401
-                             SparsePrepared, Term, is_sparse, prepare_sparse, takes)
-from ..kernels.options import FIT_PIVOT
-from ..kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
-                              sparse_cross)
-from ..kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..inputs.sparse import Edges, SparsePrepared, Term, prepare_sparse
+from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SENDER
 from ..settings import check_correlation, check_regression
 from .plan import Plan, chunk_size_for, fingerprint, groups_fingerprint
+from .sparse_products import (_check_collinear, _response_sd, build_sparse_plan,
+                              observed_fit_sparse)
+from .sparse_schemes import build_sparse_correlation_plan, build_sparse_scheme_plan, moments_of
 
 # Edge-term products per chunk the default chunk size aims at (about a second of work).
 CHUNK_EDGE_WORK = 2e8
 NOTE = ("sparse path: {edges:,} response edges relabelled per permutation; fixed products "
         "by closed forms; observed fit by the normal equations; no n x n array built")
-
-
-
-
-# --- closed forms over the dyad set ----------------------------------------------------------
-def _form(term: Term | None, s: int, e: int):
-    """A derived predictor on nodes s..e-1 as ('sep', [(f, g)...]), ('same', codes) or
-    ('gap', a); x(i, j) = sum of f(i) g(j) for 'sep'. ``None`` is the constant 1."""
-    one = np.ones(e - s)
-    if term is None:
-        return ("sep", [(one, one)])
-    a = term.attr[s:e]
-    if term.kind == SAME:
-        return ("same", a.astype(np.int64))
-    if term.kind == GAP:
-        return ("gap", a)
-    if term.kind == SENDER:
-        return ("sep", [(a, one)])
-    if term.kind == RECEIVER:
-        return ("sep", [(one, a)])
-    return ("sep", [(a, one), (one, a)])  # pair_sum
-
-
-def _gap_weighted(a: np.ndarray, g: np.ndarray) -> np.ndarray:
-    """h_i = sum_j |a_i - a_j| g_j, by sorting a and prefix sums (ties contribute 0)."""
-    n = a.shape[0]
-    o = np.argsort(a, kind="stable")
-    a_s, g_s = a[o], g[o]
-    pg = np.concatenate([[0.0], np.cumsum(g_s)])
-    pag = np.concatenate([[0.0], np.cumsum(a_s * g_s)])
-    r = np.arange(n)
-    below_g, above_g = pg[r], pg[n] - pg[r + 1]
-    below_ag, above_ag = pag[r], pag[n] - pag[r + 1]
-    h = np.empty(n)
-    # sum_{j below} (a_i - a_j) g_j + sum_{j above} (a_j - a_i) g_j
-    h[o] = a_s * (below_g - above_g) - (below_ag - above_ag)
-    return h
-
-
-def _gap_within(a: np.ndarray, codes: np.ndarray) -> float:
-    """sum over ordered pairs i != j with equal codes of |a_i - a_j|."""
-    o = np.lexsort((a, codes))
-    a_s, c_s = a[o], codes[o]
-    starts = np.concatenate([[0], np.flatnonzero(np.diff(c_s)) + 1])
-    first = np.repeat(starts, np.diff(np.concatenate([starts, [a_s.shape[0]]])))
-    csum = np.concatenate([[0.0], np.cumsum(a_s)])
-    idx = np.arange(a_s.shape[0])
-    before = idx - first  # nodes of the same group earlier in sorted order
-    # sum over earlier j in the group of (a_i - a_j)
-    return 2.0 * float((a_s * before - (csum[idx] - csum[first])).sum())
-
-
-def _pair_total(p, q) -> float:
-    """sum over ordered pairs i != j of p(i, j) q(i, j) for two forms of ``_form``."""
-    rank = {"same": 0, "gap": 1, "sep": 2}
-    if rank[p[0]] > rank[q[0]]:
-        p, q = q, p
-    kp, kq = p[0], q[0]
-    if kp == "sep":
-        # sum_{i != j} f1 g1 f2 g2 = (sum f1 f2)(sum g1 g2) - sum f1 f2 g1 g2
-        return float(sum((f1 * f2).sum() * (g1 * g2).sum() - (f1 * f2 * g1 * g2).sum()
-                         for f1, g1 in p[1] for f2, g2 in q[1]))
-    if kp == "same" and kq == "sep":
-        c = p[1]
-        size = int(c.max()) + 1 if c.size else 0
-        # sum_groups (sum f)(sum g) - sum_i f_i g_i
-        return float(sum((np.bincount(c, f, size) * np.bincount(c, g, size)).sum()
-                         - (f * g).sum() for f, g in q[1]))
-    if kp == "same" and kq == "same":
-        c1, c2 = p[1], q[1]
-        joint = c1 * (int(c2.max()) + 1 if c2.size else 1) + c2
-        cnt = np.unique(joint, return_counts=True)[1].astype(np.float64)
-        return float((cnt * cnt).sum() - c1.shape[0])  # sum over joint groups c (c - 1)
-    if kp == "same" and kq == "gap":
-        return _gap_within(q[1], p[1])
-    if kp == "gap" and kq == "sep":
-        return float(sum((f * _gap_weighted(p[1], g)).sum() for f, g in q[1]))
-    return 2.0 * float(gap_gap_sum(p[1], q[1]))  # gap x gap
-
-
-def eval_derived(term: Term, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-    """Values of a derived predictor (internal units) at dyads (i, j)."""
-    a = term.attr
-    if term.kind == SAME:
-        return (a[i] == a[j]).astype(np.float64)
-    if term.kind == GAP:
-        return np.abs(a[i] - a[j])
-    if term.kind == SENDER:
-        return a[i].copy()
-    if term.kind == RECEIVER:
-        return a[j].copy()
-    return a[i] + a[j]
-
-
-def _edge_keys(ed: Edges, n: int) -> np.ndarray:
-    return ed.src * n + ed.dst
-
-
-def _cross_sum(prep: SparsePrepared, s: Term | None, t: Term | None) -> float:
-    """sum over D of s * t (None: the constant 1), by closed forms or sums over edges."""
-    nets = [u for u in (s, t) if u is not None and u.kind == NETWORK]
-    if len(nets) == 2:
-        ka, kb = _edge_keys(s.edges, prep.n), _edge_keys(t.edges, prep.n)
-        _, ia, ib = np.intersect1d(ka, kb, assume_unique=True, return_indices=True)
-        return float((s.edges.w[ia] * t.edges.w[ib]).sum())
-    if len(nets) == 1:
-        net = nets[0]
-        other = t if net is s else s
-        if other is None:
-            return float(net.edges.w.sum())
-        return float((net.edges.w * eval_derived(other, net.edges.src, net.edges.dst)).sum())
-    total = sum(_pair_total(_form(s, a, b), _form(t, a, b)) for a, b in prep.ranges)
-    return total if prep.directed else total / 2.0  # symmetric: each pair i < j counted twice
-
-
-@dataclass(frozen=True)
-class Moments:
-    """Means over D (internal units), centred cross products X~'X~ and y's sums."""
-
-    mean: np.ndarray  # (k,)
-    cross: np.ndarray  # (k, k)
-    y_sum: float
-    y_sq: float
-
-
-def fixed_products(prep: SparsePrepared, y: Edges | None = None) -> Moments:
-    """Everything in the Gram matrix that no relabelling changes."""
-    y = prep.y if y is None else y
-    k = prep.k
-    N = prep.n_dyads
-    mean = np.array([_cross_sum(prep, t, None) for t in prep.terms]) / N
-    cross = np.empty((k, k))
-    for c in range(k):
-        for d in range(c + 1):
-            # centred: sum (x_c - m_c)(x_d - m_d) = sum x_c x_d - N m_c m_d
-            v = _cross_sum(prep, prep.terms[c], prep.terms[d]) - N * mean[c] * mean[d]
-            cross[c, d] = cross[d, c] = v
-    return Moments(mean, cross, float(y.w.sum()), float((y.w * y.w).sum()))
-
-
-# --- the plan the engine runs ---------------------------------------------------------------
-def _row_tables(terms: Sequence[Term], n: int, undirected: bool):
-    """The network predictors by rows: (nptr (S, n + 1), nidx, nval), see kernels.sparse."""
-    nets = [t for t in terms if t.kind == NETWORK]
-    nptr = np.zeros((max(len(nets), 1), n + 1), dtype=np.int64)
-    idx, val = [], []
-    offset = 0
-    for s, t in enumerate(nets):
-        i, j, w = t.edges.src, t.edges.dst, t.edges.w
-        if undirected:  # both orientations, so a row holds every neighbour
-            i, j, w = np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([w, w])
-        o = np.lexsort((j, i))
-        nptr[s, 1:] = offset + np.cumsum(np.bincount(i, minlength=n))
-        nptr[s, 0] = offset
-        idx.append(j[o])
-        val.append(w[o])
-        offset += i.shape[0]
-    nidx = np.concatenate(idx) if idx else np.zeros(1, dtype=np.int64)
-    nval = np.concatenate(val) if val else np.zeros(1)
-    return nptr, np.ascontiguousarray(nidx, dtype=np.int64), np.ascontiguousarray(nval)
-
-
-@dataclass(frozen=True, eq=False)
-class SparsePlan:
-    """Duck-typed like ``schemes.Plan`` for the engine: ``statistics`` and ``k``."""
-
-    edges: Edges
-    strength: np.ndarray  # (n, 2) sums of edge values by source node and by target node
-    n_edge_cols: int  # attribute columns of same/gap (first in ``attr``)
-    kinds: np.ndarray
-    cols: np.ndarray
-    center: np.ndarray
-    slots: np.ndarray
-    attr: np.ndarray
-    nptr: np.ndarray
-    nidx: np.ndarray
-    nval: np.ndarray
-    invert: bool
-    inv_scale: np.ndarray  # (k,) 1 / (sd_y sd_x_c): raw centred cross -> standardised
-    gram0: np.ndarray  # (d, d) standardised Gram without the relabelled-by-fixed block
-    transforms: np.ndarray
-    scale: np.ndarray  # (k,) 1 for t; sd_y / sd_x_c takes a coefficient to user units
-    use_t: bool
-    correlation: bool
-    k: int
-    n_dyads: int
-
-    def cross(self, perms: np.ndarray) -> np.ndarray:
-        """Centred cross products (B, k) of the relabelled network with each predictor."""
-        out = np.empty((perms.shape[0], self.kinds.shape[0]))
-        sparse_cross(self.edges.src, self.edges.dst, self.edges.w, self.strength, perms,
-                     self.kinds, self.cols, self.center, self.slots, self.attr, self.nptr,
-                     self.nidx, self.nval, out, self.invert, self.n_edge_cols)
-        return out
-
-    def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
-        """Statistics (B, k) of the relabellings (one-mode: ``col_perms`` is ``row_perms``)."""
-        n_perm = row_perms.shape[0]
-        cross = self.cross(row_perms) * self.inv_scale
-        d = self.gram0.shape[0]
-        gram = np.empty((n_perm, d, d))
-        fill_gram(cross.reshape(n_perm, 1, -1), self.gram0, gram)
-        if self.correlation:
-            r = np.empty(n_perm)
-            correlation_stats(gram, r)
-            return r[:, None]
-        out = np.empty((n_perm, self.k))
-        regression_stats(gram, self.transforms, self.scale, self.use_t, out)
-        return out
-
-
-def y_transforms(k: int) -> np.ndarray:
-    """The y-scheme map of ``schemes.build_plan``: v = [1, y, x_1..x_k] -> for term j the
-    columns [1, other x's, x_j, y]."""
-    transforms = np.zeros((k, k + 2, k + 2))
-    for j in range(k):
-        cols = [0] + [2 + c for c in range(k) if c != j] + [2 + j, 1]
-        for col, row in enumerate(cols):
-            transforms[j, row, col] = 1.0
-    return transforms
-
-
-def _response_sd(name: str, N: int, y_sum: float, y_sq: float) -> tuple[float, float]:
-    mean = y_sum / N
-    var = y_sq / N - mean * mean
-    if not var > 0.0:
-        raise InputError(f"response {name!r} has no variation over the dyad set")
-    return mean, float(np.sqrt(var))
-
-
-def _check_collinear(prep: SparsePrepared, mom: Moments) -> tuple[float, np.ndarray]:
-    """The one rule of every route (``design.check_design``) on the closed-form cross
-    products; returns the condition number of the standardised predictors and the factor.
-
-    The factor F'F = X~'X~ comes from the eigen decomposition of the centred cross products
-    (which never fails, so a singular design is named, not a failed factorisation); the
-    norms before centring from the predictors' means.
-    """
-    C = mom.cross
-    w, V = np.linalg.eigh(C)
-    factor = np.sqrt(np.clip(w, 0.0, None))[:, None] * V.T
-    user_mean = mom.mean + np.array([t.shift for t in prep.terms])
-    raw = np.sqrt(np.clip(np.diag(C), 0.0, None) + prep.n_dyads * user_mean ** 2)
-    return check_design(factor, prep.names, pivot=FIT_PIVOT, raw_norms=raw), factor
-
-
-def build_sparse_plan(prep: SparsePrepared, mom: Moments, y_sd: float, *, statistic: str,
-                      correlation: bool = False, edges: Edges | None = None) -> SparsePlan:
-    """Kernel inputs, standardised invariant Gram and transforms of the sparse path."""
-    k = prep.k
-    N = float(prep.n_dyads)
-    sx = np.sqrt(np.diag(mom.cross) / N)
-    derived = [t for t in prep.terms if t.kind != NETWORK]
-    attr = np.zeros((prep.n, max(len(derived), 1)))
-    kinds = np.empty(k, dtype=np.int64)
-    cols = np.zeros(k, dtype=np.int64)
-    slots = np.zeros(k, dtype=np.int64)
-    slot = 0
-    # same/gap columns first: the kernel copies them relabelled for its edge loop
-    on_edges = [c for c, t in enumerate(prep.terms) if t.kind in (SAME, GAP)]
-    on_nodes = [c for c, t in enumerate(prep.terms) if t.kind in (SENDER, RECEIVER, PAIR_SUM)]
-    for col, c in enumerate(on_edges + on_nodes):
-        attr[:, col] = prep.terms[c].attr
-        cols[c] = col
-    for c, t in enumerate(prep.terms):
-        kinds[c] = t.kind
-        if t.kind == NETWORK:
-            slots[c] = slot
-            slot += 1
-    nptr, nidx, nval = _row_tables(prep.terms, prep.n, not prep.directed)
-    d = k + 2
-    gram0 = np.zeros((d, d))
-    gram0[0, 0] = N
-    gram0[1, 1] = N  # sum of the standardised response's squares
-    gram0[2:, 2:] = mom.cross / np.outer(sx, sx)
-    edges = prep.y if edges is None else edges
-    strength = np.stack([np.bincount(edges.src, edges.w, prep.n),
-                         np.bincount(edges.dst, edges.w, prep.n)], axis=1)
-    return SparsePlan(
-        edges=edges, strength=strength, n_edge_cols=len(on_edges), kinds=kinds, cols=cols,
-        center=np.ascontiguousarray(mom.mean), slots=slots, attr=attr, nptr=nptr, nidx=nidx,
-        nval=nval, invert=not correlation,
-        inv_scale=1.0 / (y_sd * sx), gram0=gram0, transforms=y_transforms(k),
-        scale=np.ones(k) if statistic == "t" else y_sd / sx, use_t=statistic == "t",
-        correlation=correlation, k=k, n_dyads=prep.n_dyads)
-
-
-def observed_fit_sparse(prep: SparsePrepared, mom: Moments, plan: SparsePlan, y_mean: float,
-                        y_sd: float) -> ObservedFit:
-    """Least-squares fit on the dyad set from the closed-form Gram (normal equations).
-
-    In standardised units (G = X~'X~ / (sd sd'), c = X~'y~ / (sd_y sd)) the slopes are
-    G^-1 c; RSS = sd_y^2 (N - c'G^-1 c); Var(b) = sigma^2 (X~'X~)^-1; the intercept is
-    mean(y) - sum_j b_j mean(x_j), with variance sigma^2 (1/N + m'(X~'X~)^-1 m).
-    """
-    k = prep.k
-    p = k + 1
-    N = prep.n_dyads
-    if N <= p:
-        raise InputError(f"too few dyads for the model: {N} complete dyads for {p} terms")
-    cond, factor = _check_collinear(prep, mom)
-    sx = np.sqrt(np.diag(mom.cross) / N)
-    ident = np.arange(prep.n, dtype=np.int64)[None, :]
-    c = plan.cross(ident)[0] * plan.inv_scale
-    G = plan.gram0[2:, 2:]
-    Ginv = np.linalg.inv(G)
-    beta = Ginv @ c
-    rss_std = max(float(N - c @ beta), 0.0)
-    check_response(rss_std, float(N), prep.response_name)
-    slopes = beta * y_sd / sx
-    user_mean = mom.mean + np.array([t.shift for t in prep.terms])
-    coef = np.concatenate([[y_mean - slopes @ user_mean], slopes])
-    rss = rss_std * y_sd * y_sd
-    sigma2 = rss / (N - p)
-    xinv = Ginv / np.outer(sx, sx)  # (X~'X~)^-1
-    se = np.sqrt(sigma2 * np.concatenate([[1.0 / N + user_mean @ xinv @ user_mean],
-                                           np.diag(xinv)]))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t = coef / se
-    warn_condition(factor, cond, prep.names)
-    return ObservedFit(coef, se, t, 1.0 - rss_std / N, N, rss, cond)
+NOTE_SCHEME = ("sparse path: {scheme} relabels {what} by sums over {edges:,} edges and "
+               "closed forms over the {nodes:,} nodes{fit}; no n x n array built")
 
 
 def sparse_identity(prep: SparsePrepared, settings: dict) -> dict:
@@ -425,8 +109,16 @@ def sparse_identity(prep: SparsePrepared, settings: dict) -> dict:
     ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
     ident[f"fingerprint:{prep.response_name}"] = _edges_fingerprint(prep.y)
     for t in prep.terms:
-        ident[f"fingerprint:{t.name}"] = (_edges_fingerprint(t.edges) if t.kind == NETWORK
-                                          else f"{t.kind}:" + fingerprint(t.attr))
+        if t.kind == NETWORK:
+            ident[f"fingerprint:{t.name}"] = _edges_fingerprint(t.edges)
+        elif prep.two_mode:
+            both = [a for a in (t.attr, t.col_attr) if a is not None]
+            ident[f"fingerprint:{t.name}"] = f"{t.kind}:" + fingerprint(np.concatenate(both))
+        else:
+            ident[f"fingerprint:{t.name}"] = f"{t.kind}:" + fingerprint(t.attr)
+    if prep.two_mode:
+        ident["n_cols"] = prep.m
+        ident["relabelling column blocks"] = json.dumps(prep.blocks.col_blocks)
     return ident
 
 
@@ -440,42 +132,57 @@ def chunk_size(prep: SparsePrepared) -> int:
     return chunk_size_for(prep.y.size * (prep.k + 1) + prep.n, budget=CHUNK_EDGE_WORK, least=1)
 
 
-def _summary(prep: SparsePrepared, *, kind, model, scheme, statistic, method, terms) -> dict:
+def _summary(prep: SparsePrepared, *, kind, model, scheme, statistic, method, terms,
+             note: str) -> dict:
     return dict(kind=kind, model=model, scheme=scheme, statistic=statistic, method=method,
                 terms=list(terms), tested=list(prep.names), response=prep.response_name,
-                n_nodes=prep.n, n_dyads=prep.n_dyads, directed=prep.directed, two_mode=False,
-                notes=[NOTE.format(edges=prep.y.size)])
+                n_nodes=prep.n + prep.m if prep.two_mode else prep.n, n_dyads=prep.n_dyads,
+                directed=prep.directed, two_mode=prep.two_mode, notes=[note])
+
+
+def _scheme_note(prep: SparsePrepared, scheme: str, what: str) -> str:
+    """The result's note on how a plan of pair sums computes its statistics."""
+    edges = prep.y.size + sum(t.edges.size for t in prep.terms if t.kind == NETWORK)
+    nodes = prep.n + prep.m if prep.two_mode else prep.n
+    fit = "" if scheme == "the correlation" else "; observed fit by the normal equations"
+    return NOTE_SCHEME.format(scheme=scheme, what=what, edges=edges, nodes=nodes, fit=fit)
 
 
 def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
          storage: str = "float64", directed: bool | None = None, groups: Any = None,
          dyads: str | None = None) -> Plan:
-    """The sparse linear route (module docstring). ``storage`` has no effect here (no dyad
-    layer is stored)."""
+    """The sparse linear route (module docstring), every scheme. ``storage`` has no effect
+    here (no dyad layer is stored)."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
-    if scheme != "y":
-        raise InputError(f"scheme {scheme!r} relabels dense residual matrices (every dyad "
-                         "holds a residual), which a sparse response cannot avoid: use "
-                         "scheme='y' on sparse input, or pass dense arrays (.toarray()) for "
-                         "a network that fits in memory")
     prep = prepare_sparse(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    mom = fixed_products(prep)
+    mom = moments_of(prep)
     y_mean, y_sd = _response_sd(prep.response_name, prep.n_dyads, mom.y_sum, mom.y_sq)
     _check_collinear(prep, mom)
-    stats = build_sparse_plan(prep, mom, y_sd, statistic=statistic)
-    fit = observed_fit_sparse(prep, mom, stats, y_mean, y_sd)
+    if scheme == "y" and not prep.two_mode:
+        stats = build_sparse_plan(prep, mom, y_sd, statistic=statistic)
+        gram_xx, xy = stats.observed_products()
+        chunk = chunk_size(prep)
+        note = NOTE.format(edges=prep.y.size)
+    else:
+        stats = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic, moments=mom)
+        gram_xx, xy = stats.gram_xx, stats.xy
+        chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
+        note = _scheme_note(prep, scheme, {"y": "the response", "dsp": "the predictors"}.get(
+            scheme, "the response and the predictors"))
+    fit = observed_fit_sparse(prep, mom, gram_xx, xy, y_mean, y_sd)
     info = _summary(prep, kind="regression", model="linear", scheme=scheme,
-                    statistic=statistic, method=None, terms=("intercept",) + prep.names)
+                    statistic=statistic, method=None, terms=("intercept",) + prep.names,
+                    note=note)
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups),
                     route="sparse")
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
-    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk_size(prep), fit=fit_arrays,
-                summary=info, identity=sparse_identity(prep, settings))
-
-
-
+    # dsp and Freedman–Lane: the kernels' identity relabelling is the full model's fit
+    # (Frisch–Waugh–Lovell), from the same products as the fit
+    expected = None if scheme == "y" else fit_arrays["stat"][1:]
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk, fit=fit_arrays,
+                summary=info, identity=sparse_identity(prep, settings), expected=expected)
 
 
 def _rank_edges(ed: Edges, N: int) -> Edges:
@@ -499,14 +206,23 @@ def _rank_attribute(t: Term, prep: SparsePrepared) -> Term:
     Node i's value fills (size of its range - 1) dyads; a value's rank among all N dyad
     values is the number of dyads with smaller values plus (its own dyads + 1) / 2.
     """
-    mult = np.empty(prep.n)
-    for s, e in prep.ranges:
-        mult[s:e] = e - s - 1
-    vals, inv = np.unique(t.attr, return_inverse=True)
+    if prep.two_mode:  # a row's value fills its m cells, a column's its n cells
+        attr = t.attr if t.kind == SENDER else t.col_attr
+        mult = np.full(attr.shape[0], float(prep.m if t.kind == SENDER else prep.n))
+    else:
+        attr = t.attr
+        mult = np.empty(prep.n)
+        for s, e in prep.ranges:
+            mult[s:e] = e - s - 1
+    vals, inv = np.unique(attr, return_inverse=True)
     per_value = np.bincount(inv, mult, vals.size)
     below = np.concatenate([[0.0], np.cumsum(per_value)[:-1]])
     rank = (below + (per_value + 1) / 2.0)[inv]
-    return Term(t.name, t.kind, rank - rank.mean(), 0.0, None)
+    rank = rank - rank.mean()
+    if prep.two_mode:
+        return Term(t.name, t.kind, rank if t.kind == SENDER else None, 0.0, None,
+                    None if t.kind == SENDER else rank)
+    return Term(t.name, t.kind, rank, 0.0, None)
 
 
 def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = "float64",
@@ -531,20 +247,27 @@ def correlation_plan(a: Any, b: Any, *, method: str = "pearson", storage: str = 
                              "need every one of its n x n dyad values; use method='pearson' "
                              "or dense arrays")
         prep = replace(prep, y=_rank_edges(prep.y, N), terms=(t,))
-    mom = fixed_products(prep)
+    mom = moments_of(prep)
     _, a_sd = _response_sd(prep.response_name, N, mom.y_sum, mom.y_sq)
     if not mom.cross[0, 0] > 0.0:
         raise InputError(f"{prep.names[0]!r} has no variation over the dyad set")
-    stats = build_sparse_plan(prep, mom, a_sd, statistic="t", correlation=True)
-    ident = np.arange(prep.n, dtype=np.int64)[None, :]
-    r = stats.statistics(ident, ident)[0]
+    if prep.two_mode:
+        stats = build_sparse_correlation_plan(prep, mom)
+        chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
+        note = _scheme_note(prep, "the correlation", "the second network")
+    else:
+        stats = build_sparse_plan(prep, mom, a_sd, statistic="t", correlation=True)
+        chunk = chunk_size(prep)
+        note = NOTE.format(edges=prep.y.size)
+    r = stats.statistics(np.arange(prep.n, dtype=np.int64)[None, :],
+                         np.arange(prep.m, dtype=np.int64)[None, :])[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         se = np.sqrt((1 - r ** 2) / (N - 2))
     info = _summary(prep, kind="correlation", model="correlation", scheme="y",
-                    statistic="r", method=method, terms=prep.names)
+                    statistic="r", method=method, terms=prep.names, note=note)
     settings = dict(kind="correlation", model="correlation", scheme="y", statistic="r",
                     method=method, storage=storage, dyads=dyads,
                     groups=groups_fingerprint(groups), route="sparse")
-    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk_size(prep),
+    return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk,
                 fit=dict(coef=r, se=se, stat=r, fit=np.array([np.nan, np.nan])), summary=info,
                 identity=sparse_identity(prep, settings))

@@ -2,9 +2,9 @@
 O(edges + n log n).
 
 The dense engine reads every scheme off the Gram matrix of v = [1, relabelled layers,
-fixed layers] through a linear map per tested term (``schemes``). With complete data over
-a dyad set D that every relabelling maps onto itself, everything in that Gram is
-invariant except the relabelled-by-fixed block
+fixed layers] through a linear map per tested term (``routes.linear``). With complete
+data over a dyad set D that every relabelling maps onto itself, everything in that Gram
+is invariant except the relabelled-by-fixed block
 
     C[a, c] = sum over D of x_a[pi(i), pi(j)] * x_c[i, j].
 
@@ -14,7 +14,7 @@ Econ. Stat. 1:292–298) relabel the response and the predictors (fixed: the pre
 Their residuals relabel as the same linear combinations of relabelled layers, so C is all
 a relabelling needs; the sparse path has no missing values, so one pass serves every
 tested term. The standardised invariant Gram comes from the closed forms of
-``sparse.fixed_products``; the transforms are those of ``schemes._masked_passes``
+``sparse_products.fixed_products``; the transforms are those of ``linear._masked_passes``
 (dsp: the residual of x_j on [1, other x] from the observed Gram; Freedman–Lane: the
 reduced-model residual of y), in one pass.
 
@@ -39,26 +39,29 @@ The diagonal never enters (one-mode sums run over i != j); undirected sums are h
 symmetric ordered sums (sums over the stored edges i < j are taken as they are).
 
 Two-mode data (rows and columns relabelled independently, derived layers
-x(i, j) = f(a_i, b_j)) are covered by ``PairDyads`` and ``build_pair_sums``; the sparse
-route itself takes one-mode networks only (``SparsePrepared``), so
-``build_sparse_scheme_plan`` is one-mode.
+x(i, j) = f(a_i, b_j): ``sender`` reads the row nodes' attribute, ``receiver`` the column
+nodes', ``same``/``gap``/``pair_sum`` both) are covered by ``PairDyads`` and
+``build_pair_sums``. For them the route takes every statistic from here: the fixed
+products (``pair_moments``: the pair sums of the predictors at the identity), schemes y,
+dsp and Freedman–Lane (``build_sparse_scheme_plan``) and QAP correlation
+(``build_sparse_correlation_plan``).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
+from ..errors import InputError
+from ..inputs.sparse import Edges, SparsePrepared
 from ..kernels.sparse_pairs import (BACKWARD, FORWARD, GAP, NETWORK, PAIR_SUM, RECEIVER, SAME,
                                    SENDER, edge_pair_sums, gap_gap_sums, gap_same_sums,
                                    node_pair_sums, same_same_sums)
-from ..errors import InputError
-from ..kernels.stats import fill_gram, regression_stats
+from ..kernels.stats import correlation_stats, fill_gram, regression_stats
 from ..settings import check_regression
 from .linear import _transform
-from .sparse import (Edges, Moments, SparsePrepared, _check_collinear, _response_sd,
-                     fixed_products)
+from .sparse_products import Moments, _check_collinear, _response_sd, fixed_products
 
 SEPARABLE = (SENDER, RECEIVER, PAIR_SUM)
 # Row tables hold int32 column indices and positions (kernels.sparse_pairs.edge_pair_sums).
@@ -310,6 +313,18 @@ class PairSums:
     gg_pos: np.ndarray
     gg_const: np.ndarray
     halve_pos: np.ndarray  # pairs summed over ordered dyads, halved when undirected
+
+    def work(self) -> float:
+        """Work per relabelling, in edge visits: every edge of each reader's list, a sweep
+        over the source nodes per network segment, and n (n log n for ``gap`` x ``gap``)
+        per sum over nodes and closed form. Sizes chunks (``routes.plan.chunk_size_for``)."""
+        n, m = self.dyads.n, self.dyads.m
+        edges = self.lrow[:, -1] - self.lrow[:, 0]
+        total = float(edges[self.readers[:, 0]].sum()) if self.readers.size else 0.0
+        total += n * (self.segs.shape[0] + self.ss_pos.size + self.gs_pos.size)
+        total += n * self.node_pos_r.size + m * self.node_pos_c.size
+        total += (n + m) * np.log2(max(n + m, 2)) * self.gg_pos.size
+        return total
 
     def sums(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """(B, R, F) centred relabelled-by-fixed sums over the dyad set."""
@@ -581,21 +596,56 @@ def prepared_layers(prep: SparsePrepared, mom: Moments) -> tuple[list[PairLayer]
         mean = float(mom.mean[c])
         if t.kind == NETWORK:
             layers.append(PairLayer(NETWORK, None, None, t.edges, mean))
-        elif t.kind == SAME:
-            codes = t.attr.astype(np.int64)
-            layers.append(PairLayer(SAME, codes, codes, None, mean))
+            continue
+        row, col = (t.attr, t.col_attr) if prep.two_mode else (t.attr, t.attr)
+        if t.kind == SAME:
+            layers.append(PairLayer(SAME, row.astype(np.int64), col.astype(np.int64), None,
+                                    mean))
         else:
-            row = None if t.kind == RECEIVER else t.attr
-            col = None if t.kind == SENDER else t.attr
-            layers.append(PairLayer(t.kind, row, col, None, mean))
+            layers.append(PairLayer(t.kind, None if t.kind == RECEIVER else row,
+                                    None if t.kind == SENDER else col, None, mean))
     layers.append(PairLayer(NETWORK, None, None, prep.y, mom.y_sum / prep.n_dyads))
-    dyads = PairDyads(prep.n, prep.n, tuple(prep.ranges), True, prep.directed)
+    if prep.two_mode:
+        dyads = PairDyads(prep.n, prep.m, ((0, prep.n),), False, True)
+    else:
+        dyads = PairDyads(prep.n, prep.n, tuple(prep.ranges), True, prep.directed)
     return layers, dyads
+
+
+def _identity(prep: SparsePrepared) -> tuple[np.ndarray, np.ndarray]:
+    """The identity relabelling of rows and of columns, as one-permutation batches."""
+    return (np.arange(prep.n, dtype=np.int64)[None, :],
+            np.arange(prep.m, dtype=np.int64)[None, :])
+
+
+def pair_moments(prep: SparsePrepared) -> Moments:
+    """The fixed products (``sparse_products.Moments``) from the pair sums: each layer's
+    mean from its row sums over the dyad set (``node_sums``), the centred cross products
+    X~'X~ as the relabelled-by-fixed sums of the predictors at the identity.
+
+    This is how two-mode problems get them (``sparse_products.fixed_products`` holds the
+    one-mode closed forms); it works for one-mode problems too.
+    """
+    k = prep.k
+    y_sum, y_sq = float(prep.y.w.sum()), float((prep.y.w * prep.y.w).sum())
+    layers, dyads = prepared_layers(prep, Moments(np.zeros(k), np.zeros((k, k)), y_sum, y_sq))
+    mean = np.array([node_sums(lay, dyads)[0].sum() / dyads.n_ordered
+                     for lay in layers[:k]])
+    layers = [replace(lay, mean=float(mu)) for lay, mu in zip(layers, mean)] + layers[k:]
+    xs = list(range(k))
+    sums = build_pair_sums(layers, xs, xs, dyads).sums(*_identity(prep))[0]
+    return Moments(mean, 0.5 * (sums + sums.T), y_sum, y_sq)
+
+
+def moments_of(prep: SparsePrepared) -> Moments:
+    """The fixed products of a sparse problem: one-mode closed forms
+    (``sparse_products.fixed_products``), two-mode pair sums (``pair_moments``)."""
+    return pair_moments(prep) if prep.two_mode else fixed_products(prep)
 
 
 @dataclass(frozen=True, eq=False)
 class SparseSchemePlan:
-    """dsp or Freedman–Lane on the sparse path, duck-typed like ``schemes.Plan``.
+    """dsp or Freedman–Lane on the sparse path, the kernel side of a ``routes.plan.Plan``.
 
     Fields the engine reads: ``k`` (tested terms, the predictors in order), ``n_dyads``,
     ``statistics(row_perms, col_perms) -> (B, k)``. The rest: the pair sums of the
@@ -620,6 +670,7 @@ class SparseSchemePlan:
     use_t: bool
     gram_xx: np.ndarray
     xy: np.ndarray
+    correlation: bool = False
 
     def cross(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """Standardised relabelled-by-fixed products (B, R, F)."""
@@ -632,6 +683,10 @@ class SparseSchemePlan:
         d = self.gram0.shape[0]
         gram = np.empty((n_perm, d, d))
         fill_gram(cross, self.gram0, gram)
+        if self.correlation:
+            r = np.empty(n_perm)
+            correlation_stats(gram, r)
+            return r[:, None]
         out = np.empty((n_perm, self.k))
         regression_stats(gram, self.transforms, self.scale, self.use_t, out)
         return out
@@ -639,25 +694,24 @@ class SparseSchemePlan:
 
 def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
     """Coefficients [g0, g_on...] of layer ``target`` on [1, layers ``on``] (as in
-    ``schemes._regress_on``: layer l sits at row/column 1 + l of ``gram``)."""
+    ``linear._regress_on``: layer l sits at row/column 1 + l of ``gram``)."""
     idx = [0] + [1 + c for c in on]
     return np.linalg.solve(gram[np.ix_(idx, idx)], gram[idx, 1 + target])
 
 
 def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: str,
                              moments: Moments | None = None) -> SparseSchemePlan:
-    """The plan of scheme ``dsp`` or ``freedman-lane`` (statistic ``t`` or ``coef``) for a
-    one-mode sparse problem: memory O(edges + n), nothing of size n x n.
+    """The plan of a scheme (statistic ``t`` or ``coef``) by pair sums: memory
+    O(edges + nodes), nothing of size n x m. One-mode or two-mode.
 
-    ``moments``: ``sparse.fixed_products(prep)`` when the caller has it already. Raises
-    InputError when the response has no variation or a predictor is constant or collinear
-    (the sparse path's rule, ``sparse._check_collinear``).
+    ``dsp`` and ``freedman-lane``; ``y`` too (the response relabelled, the predictors
+    fixed), which the route uses for two-mode data (one-mode scheme y has its own kernel,
+    ``sparse_products.SparsePlan``). ``moments``: ``moments_of(prep)`` when the caller has
+    it already. Raises InputError when the response has no variation or a predictor is
+    constant or collinear (the sparse path's rule, ``sparse_products._check_collinear``).
     """
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage="float64")
-    if scheme not in ("dsp", "freedman-lane"):
-        raise ValueError(f"build_sparse_scheme_plan takes dsp or freedman-lane; got {scheme!r} "
-                         "(scheme y: sparse.build_sparse_plan)")
-    mom = fixed_products(prep) if moments is None else moments
+    mom = moments_of(prep) if moments is None else moments
     k = prep.k
     N = prep.n_dyads
     _, y_sd = _response_sd(prep.response_name, N, mom.y_sum, mom.y_sq)
@@ -666,19 +720,19 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     sd = np.concatenate([np.sqrt(np.diag(mom.cross) / N), [y_sd]])
     xs = list(range(k))
     ylayer = k
-    rel, fix = (xs, xs + [ylayer]) if scheme == "dsp" else (xs + [ylayer], xs)
+    rel, fix = {"dsp": (xs, xs + [ylayer]), "freedman-lane": (xs + [ylayer], xs),
+                "y": ([ylayer], xs)}[scheme]
     pairs = build_pair_sums(layers, rel, fix, dyads,
                             look_up="relabelled" if scheme == "dsp" else "fixed")
     inv_scale = 1.0 / np.outer(sd[rel], sd[fix])
 
     # observed Gram of [1, x_1..x_k, y] in standardised units (layer l at 1 + l)
-    ident = np.arange(prep.n, dtype=np.int64)[None, :]
-    c0 = pairs.sums(ident, ident)[0] * inv_scale
+    c0 = pairs.sums(*_identity(prep))[0] * inv_scale
     gram_xx = mom.cross / np.outer(sd[:k], sd[:k])
     if scheme == "dsp":
         xy = c0[:, k].copy()  # x_j relabelled by the identity, y fixed
     else:
-        xy = c0[k, :].copy()  # y relabelled by the identity, x_j fixed
+        xy = c0[rel.index(ylayer), :].copy()  # y relabelled by the identity, x_j fixed
     gobs = np.zeros((k + 2, k + 2))
     gobs[0, 0] = N
     gobs[1:k + 1, 1:k + 1] = gram_xx
@@ -699,7 +753,9 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     for j in xs:
         others = [c for c in xs if c != j]
         cols = [{0: 1.0}] + [{fpos[c]: 1.0} for c in others]
-        if scheme == "dsp":
+        if scheme == "y":
+            cols += [{fpos[j]: 1.0}, {rpos[ylayer]: 1.0}]
+        elif scheme == "dsp":
             # e_pi = x_j,pi - g0 - sum_c g_c x_c,pi: x_j's residual on [1, others], relabelled
             g = _regress_on(gobs, j, others)
             e = {rpos[j]: 1.0, 0: -g[0]}
@@ -719,3 +775,20 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     return SparseSchemePlan(scheme, statistic, k, N, tuple(rel), tuple(fix), pairs,
                             np.ascontiguousarray(inv_scale), gram0, transforms,
                             np.ascontiguousarray(scale), statistic == "t", gram_xx, xy)
+
+
+def build_sparse_correlation_plan(prep: SparsePrepared, mom: Moments) -> SparseSchemePlan:
+    """QAP correlation by pair sums (what two-mode data use): the predictor, network
+    ``b``, relabelled against the fixed response ``a``, as on the dense path; statistic r
+    (``kernels.stats.correlation_stats`` on the Gram of v = [1, b relabelled, a])."""
+    N = prep.n_dyads
+    _, a_sd = _response_sd(prep.response_name, N, mom.y_sum, mom.y_sq)
+    layers, dyads = prepared_layers(prep, mom)
+    pairs = build_pair_sums(layers, [0], [1], dyads, look_up="relabelled")
+    sd_b = float(np.sqrt(mom.cross[0, 0] / N))
+    gram0 = np.diag([float(N)] * 3)  # centred, standardised layers
+    inv_scale = np.full((1, 1), 1.0 / (sd_b * a_sd))
+    xy = pairs.sums(*_identity(prep))[0, 0] * inv_scale[0]
+    return SparseSchemePlan("y", "r", 1, N, (0,), (1,), pairs, inv_scale, gram0,
+                            np.zeros((1, 3, 1)), np.ones(1), True,
+                            np.full((1, 1), float(N)), xy, correlation=True)
