@@ -1,38 +1,82 @@
 """Logistic regression by Newton's method (IRLS) over dyad vectors, and per-relabelling drivers.
 
-A logistic fit reads a design ``X`` (N, P) of dyad values, a subset ``cols`` of its columns,
-a 0/1 response ``y`` (N,) and a row filter ``valid`` (N,): the dyads of the fit. Newton's
-method for the canonical (logit) link is iteratively reweighted least squares
-(McCullagh & Nelder 1989, Generalized Linear Models, 2nd ed., section 2.5 [memory]):
+A logistic fit reads the design columns ``cols`` of ``[XT; ext]`` (``XT`` (P, N) holds one
+column of dyad values per row; column index P means the vector ``ext`` (N,), the drivers'
+relabelled column), the sums ``xy`` = X'y of the 0/1 response over the fit's dyads, and a
+row filter ``valid`` (N,): the dyads of the fit. Newton's method for the canonical (logit)
+link is iteratively reweighted least squares (McCullagh & Nelder 1989, Generalized Linear
+Models, 2nd ed., section 2.5 [memory]):
 
     eta = X b,  mu = 1 / (1 + exp(-eta)),  w = mu (1 - mu)
-    g = X'(y - mu),  H = X'WX,  b <- b + H^-1 g.
+    g = X'y - X'mu,  H = X'WX,  b <- b + s H^-1 g.
 
-A step that raises the deviance 2 sum[log(1 + e^eta) - y eta] is halved (common practice).
-The fit has converged when the next Newton step would move no coefficient by more than
-``tol`` * (1 + |b_c|); under separation (Albert & Anderson 1984, Biometrika 71:1-10) the
-coefficients diverge, the steps stay near a constant size and the fit is reported as
-failed, never as converged. Each Newton step costs one pass over the dyads (the
-deviance, gradient and information at the new coefficients), plus one per halving.
+The response enters only through X'y (the canonical link's sufficient statistic), so a pass
+over the dyads reads the design alone: X'mu and X'WX at the current coefficients.
 
-The drivers loop over the relabellings of one chunk: they gather the relabelled layer into
-a preallocated dyad vector (``value = layer[row_perm[rows[d]], col_perm[cols[d]]]``; no
-n x n array is built), refit or take a score statistic, and write one row of statistics
-per relabelling. Every relabelling starts from the same warm start, so a statistic depends
-only on its relabelling, never on the chunk it was computed in.
+Rounding. A pass sums in three levels: 16 vector lanes within a block of ``BLOCK`` dyads,
+blocks into a super-block, super-blocks into the total. The rounding error of a sum is then
+a few hundred units in the last place of the sum of the absolute terms, whatever N (a
+plain running sum over 10^8 dyads can lose 10^8 units); the order is fixed by the dyad
+order, so a fit's bits depend only on its inputs.
+
+Step acceptance without the deviance. Along a Newton direction d, the deviance
+phi(s) = D(b + s d) has phi'(0) = -2 lam2 (lam2 = d'g, the squared Newton decrement) and
+phi''(0) = 2 lam2, and since |d log w / d eta| = |1 - 2 mu| <= 1, every weight changes by a
+factor within exp(+-|x_d'd| s): phi''(u) <= exp(u M) phi''(0) with M >= max_d |x_d'd|
+(the self-concordance property of the logistic loss; Bach 2010, Electron. J. Statist.
+4:384-414 [memory]). Integrating twice,
+
+    phi(s) - phi(0) <= -2 lam2 s (1 - s h(s M)),   h(u) = (e^u - 1 - u) / u^2,
+
+so a step with s h(s M) < 1 lowers the deviance: it is accepted without evaluating the
+deviance (every step near the optimum, where M is tiny). A longer step is accepted after
+its pass when the curvature there proves a decrease: phi''(u) >= exp(-(s - u) M) phi''(s)
+gives phi(0) - phi(s) >= -phi'(s) + phi''(s) k(s M) with k(u) = (u - 1 + e^-u) / u^2;
+otherwise it is halved. No test compares two deviances, whose difference near the optimum
+is below their rounding at 10^6 dyads and more (what made the previous rule halve a good
+step thirty times and give up). M is bounded by sum_c |d_c| xmax_c, xmax_c = max |x_c|
+over the fit's dyads.
+
+Convergence: the next Newton step moves no dyad's linear predictor by more than ``tol``
+(M <= tol, a criterion free of the predictors' units and of N); that step is taken without
+another pass, and the Wald covariance is H^-1 where it started (every weight within a
+factor exp(+-tol) of the estimate's). Under separation (Albert & Anderson 1984, Biometrika
+71:1-10) the coefficients diverge and the fit fails (no convergence in ``max_iter`` steps,
+or an information matrix that underflows to singular); it is never reported as converged.
+
+The drivers loop over the relabellings of one chunk: they gather the relabelled layer
+(``value = layer[row_perm[rows[d]], col_perm[cols[d]]]``; no n x n array is built) while
+summing what the fit needs (X'y_pi, or the relabelled column and its sums), refit or take a
+score statistic, and write one row of statistics per relabelling, and the number of passes
+over the dyads it took. Every relabelling starts from the same warm start, so a statistic
+depends only on its relabelling, never on the chunk it was computed in.
 """
 
 import numpy as np
-from numba import njit
+from numba import config, njit, types
+from numba.core import cgutils
+from numba.extending import intrinsic
 
 from .gather import prefetch
 from .options import KERNEL_OPTIONS
 
-# Return codes of ``irls_logistic`` (a converged fit returns its iteration count >= 1).
-FAIL_ITERATIONS = -1  # no convergence in max_iter steps (divergence: separation)
+# Return codes of the fits (a converged fit returns its Newton step count >= 1).
+FAIL_ITERATIONS = -1  # no convergence in max_iter steps (diverging coefficients: separation?)
 FAIL_SINGULAR = -2  # the weighted information X'WX is singular
-FAIL_STEP = -3  # no step length lowers the deviance
+FAIL_STEP = -3  # no acceptable step (non-finite sums)
 FAIL_DYADS = -4  # no more valid dyads than coefficients
+FAIL_SATURATED = -5  # at the apparent optimum some fitted probability is 0 or 1 to double
+#                      precision (complete separation, or a dyad's likelihood lost to rounding)
+
+# Diagnostics of a fit, written to ``info``: passes over the dyads, the last Newton step's
+# bound on the largest change of a linear predictor (M), the design column (position in
+# ``cols``) whose coefficient moved the linear predictors most in that step, and the Newton
+# steps taken.
+INFO_PASSES = 0
+INFO_MOVE = 1
+INFO_TERM = 2
+INFO_STEPS = 3
+INFO_SIZE = 4
 
 # Permutations that share one pass over the fixed rows in ``score_rows``.
 SCORE_BLOCK = 8
@@ -41,63 +85,269 @@ CACHE_LINE = 64
 
 # A Cholesky pivot this small relative to its diagonal entry marks a singular information.
 SINGULAR_PIVOT = 1e-12
-# Halvings of a Newton step tried while the deviance rises.
+# |linear predictor| beyond which a fitted probability is 0 or 1 to double precision
+# (exp(-36) < 2^-51): a "converged" fit with such a dyad has lost that dyad's residual to
+# rounding, as a separated fit does when its coefficients have diverged far enough
+# (Albert & Anderson 1984); it is reported as FAIL_SATURATED, not as converged.
+ETA_SATURATED = 36.0
+# Halvings of a Newton step tried before giving up (a step of length 2^-30 with M below
+# about 10^9 is always certified, so only non-finite sums exhaust them).
 MAX_HALVINGS = 30
-# A rise of the deviance below this relative size is rounding, not a worse fit.
-DEVIANCE_SLACK = 1e-12
+
+# Dyads per block of a pass (a multiple of 2 * LANES), lanes of the vector accumulators,
+# and blocks per super-block: the three levels of every sum over the dyads.
+BLOCK = 256
+LANES = 8
+SUPER = 256
+
+# exp(x) for x <= 0 (Cody & Waite 1980 range reduction [memory]): x = k ln2 + r with
+# |r| <= ln2 / 2, ln2 split in a high part exact in 32 bits and the rest; exp(r) by its
+# Taylor polynomial of degree 13 (truncation below 4e-18 relative); 2^k built in the
+# exponent bits. Below EXP_FLOOR the result is exp(EXP_FLOOR), about 3e-308: a fitted
+# probability of 0 to double precision either way.
+LN2_HI = 6.93147180369123816490e-01
+LN2_LO = 1.90821492927058770002e-10
+INV_LN2 = 1.44269504088896338700e+00
+EXP_FLOOR = -708.0
+
+
+# --- vector dot product of one block -------------------------------------------------------
+def _vdot_python(a, b, n):
+    """Pure-Python twin of ``vdot`` (kernels run as Python code with numba's JIT off)."""
+    acc = np.zeros(2 * LANES)
+    for i in range(0, n, 2 * LANES):
+        for t in range(2 * LANES):
+            acc[t] += a[i + t] * b[i + t]
+    v = acc[:LANES] + acc[LANES:]
+    while v.shape[0] > 1:
+        h = v.shape[0] // 2
+        v = v[:h] + v[h:]
+    return float(v[0])
+
+
+def _vdot_codegen(context, builder, signature, args):
+    """LLVM IR: two <LANES x double> accumulators over a[i] b[i], i < n (n a multiple of
+    2 * LANES): lanes i mod 2 LANES < LANES in the first, the others in the second, one
+    fused multiply-add per term; then the two added lane by lane and the lanes halved
+    pairwise ((0..3) + (4..7), then (0, 1) + (2, 3), then 0 + 1)."""
+    from llvmlite import ir
+    av, bv, nv = args
+    ap = context.make_array(signature.args[0])(context, builder, av).data
+    bp = context.make_array(signature.args[1])(context, builder, bv).data
+    i32, i64, dbl = ir.IntType(32), ir.IntType(64), ir.DoubleType()
+    vec = ir.VectorType(dbl, LANES)
+    fma = cgutils.get_or_insert_function(
+        builder.module, ir.FunctionType(vec, [vec, vec, vec]), f"llvm.fma.v{LANES}f64")
+    zero = ir.Constant(vec, [0.0] * LANES)
+    entry = builder.block
+    head = builder.append_basic_block("vdot.head")
+    body = builder.append_basic_block("vdot.body")
+    done = builder.append_basic_block("vdot.done")
+    builder.branch(head)
+    builder.position_at_end(head)
+    i = builder.phi(i64)
+    i.add_incoming(ir.Constant(i64, 0), entry)
+    s0 = builder.phi(vec)
+    s0.add_incoming(zero, entry)
+    s1 = builder.phi(vec)
+    s1.add_incoming(zero, entry)
+    builder.cbranch(builder.icmp_signed("<", i, nv), body, done)
+    builder.position_at_end(body)
+
+    def load(ptr, at):
+        return builder.load(builder.bitcast(builder.gep(ptr, [at]), vec.as_pointer()), align=8)
+
+    i2 = builder.add(i, ir.Constant(i64, LANES))
+    n0 = builder.call(fma, [load(ap, i), load(bp, i), s0])
+    n1 = builder.call(fma, [load(ap, i2), load(bp, i2), s1])
+    i.add_incoming(builder.add(i, ir.Constant(i64, 2 * LANES)), body)
+    s0.add_incoming(n0, body)
+    s1.add_incoming(n1, body)
+    builder.branch(head)
+    builder.position_at_end(done)
+    v = builder.fadd(s0, s1)
+    width = LANES
+    while width > 1:
+        h = width // 2
+        lo = builder.shuffle_vector(v, v, ir.Constant(ir.VectorType(i32, h), list(range(h))))
+        hi = builder.shuffle_vector(v, v, ir.Constant(ir.VectorType(i32, h),
+                                                      list(range(h, width))))
+        v = builder.fadd(lo, hi)
+        width = h
+    return builder.extract_element(v, ir.Constant(i32, 0))
+
+
+if config.DISABLE_JIT:
+    def vdot(a, b, n):
+        """Pure-Python twin of the vector dot product."""
+        return _vdot_python(a, b, n)
+else:
+    @intrinsic
+    def vdot(typingctx, a, b, n):
+        """sum_{i < n} a[i] b[i] for 1-D float64 arrays, n a multiple of 2 * LANES, in
+        vector lanes (see ``_vdot_codegen``); the order is fixed, so are the bits."""
+        if not all(isinstance(x, types.Array) and x.ndim == 1 and x.layout == "C"
+                   and x.dtype == types.float64 for x in (a, b)):
+            return None
+        return types.float64(a, b, types.intp), _vdot_codegen
+
+
+# --- one pass over the dyads ---------------------------------------------------------------
+@njit(**KERNEL_OPTIONS)
+def _h_bound(u):
+    """h(u) = (e^u - 1 - u) / u^2 (u >= 0): the deviance bound's curvature factor."""
+    if u < 1e-4:
+        return 0.5 + u / 6.0 + u * u / 24.0
+    return (np.expm1(u) - u) / (u * u)
 
 
 @njit(**KERNEL_OPTIONS)
-def _logit_parts(eta):
-    """(mu, w, log(1 + e^eta)) of a linear predictor, without overflow.
+def _k_bound(u):
+    """k(u) = (u - 1 + e^-u) / u^2 (u >= 0): the backward bound's curvature factor."""
+    if u < 1e-4:
+        return 0.5 - u / 6.0 + u * u / 24.0
+    return (u + np.expm1(-u)) / (u * u)
 
-    With t = exp(-|eta|) in (0, 1]: log(1 + e^eta) = max(eta, 0) + log(1 + t). ``log(1 + t)``
-    rather than ``log1p(t)`` (a third of the cost): its absolute error, about 1e-16 per
-    dyad, is far below what the deviance is used for (the step-halving test).
+
+@njit(**KERNEL_OPTIONS)
+def _column(XT, ext, cc):
+    """Design column ``cc``: row cc of XT, or ``ext`` when cc = XT.shape[0]."""
+    return XT[cc] if cc < XT.shape[0] else ext
+
+
+@njit(**KERNEL_OPTIONS)
+def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
+    """One pass over the dyads: f = X'mu and H = X'WX at ``beta``, over the valid dyads.
+
+    Parameters
+    ----------
+    XT : float64 (P, N)
+        Design columns, one per row; finite everywhere (0 where a dyad is not valid).
+    ext : float64 (N,) or (0,)
+        Column P of the design (finite).
+    cols : int64 (qa,)
+        Design columns in the sums; the first ``q`` carry the coefficients ``beta`` (q,),
+        the others (columns added for a score statistic) have coefficient 0.
+    valid : bool (N,)
+        Dyads of the fit (read only when ``all_valid`` is False).
+    blk : float64 workspace (2 qa + 3, BLOCK); kb : int64 workspace (BLOCK,);
+    acc : float64 workspace (qa + 1, qa)
+    H : float64 (qa, qa); f : float64 (qa,)
+        Written.
+
+    Returns max |eta| over the valid dyads.
+
+    Per block: x columns copied (zero past N), eta = X b, t = exp(-|eta|),
+    mu = 1 / (1 + t) or t / (1 + t) by the sign of eta, w = t / (1 + t)^2 (0 off the valid
+    dyads), then the block's sums by ``vdot``.
     """
-    t = np.exp(-abs(eta))
-    one_t = 1.0 + t
-    inv = 1.0 / one_t
-    mu = inv if eta >= 0.0 else t * inv
-    # w = mu (1 - mu) = t / (1 + t)^2
-    return mu, t * inv * inv, max(eta, 0.0) + np.log(one_t)
-
-
-@njit(**KERNEL_OPTIONS)
-def _newton_pass(X, cols, y, valid, beta, xrow, H, g):
-    """Deviance at ``beta``; writes H = X'WX and g = X'(y - mu) over the valid rows."""
-    q = cols.shape[0]
-    for r in range(q):
-        g[r] = 0.0
-        for c in range(q):
+    qa = cols.shape[0]
+    n = valid.shape[0]
+    xb = blk[0:qa]
+    wxb = blk[qa:2 * qa]
+    eta = blk[2 * qa]
+    mu = blk[2 * qa + 1]
+    t = blk[2 * qa + 2]
+    kbf = kb.view(np.float64)
+    for r in range(qa + 1):
+        for c in range(qa):
+            acc[r, c] = 0.0
+    for r in range(qa):
+        f[r] = 0.0
+        for c in range(qa):
             H[r, c] = 0.0
-    dev = 0.0
-    for d in range(X.shape[0]):
-        if not valid[d]:
-            continue
-        eta = 0.0
-        for c in range(q):
-            xrow[c] = X[d, cols[c]]
-            eta += xrow[c] * beta[c]
-        mu, w, log1pe = _logit_parts(eta)
-        # deviance of a 0/1 response: 2 [log(1 + e^eta) - y eta]
-        dev += 2.0 * (log1pe - y[d] * eta)
-        res = y[d] - mu
-        for r in range(q):
-            g[r] += xrow[r] * res  # g = X'(y - mu)
-            wx = w * xrow[r]
+    n_blocks = 0
+    top = 0.0
+    for d0 in range(0, n, BLOCK):
+        nb = min(BLOCK, n - d0)
+        for c in range(qa):
+            src = _column(XT, ext, cols[c])[d0:d0 + nb]
+            xc = xb[c]
+            if c == 0:
+                bc = beta[0]
+                for i in range(nb):
+                    v = src[i]
+                    xc[i] = v
+                    eta[i] = v * bc  # eta = X b
+            elif c < q:
+                bc = beta[c]
+                for i in range(nb):
+                    v = src[i]
+                    xc[i] = v
+                    eta[i] += v * bc
+            else:
+                for i in range(nb):
+                    xc[i] = src[i]
+            for i in range(nb, BLOCK):
+                xc[i] = 0.0
+        for i in range(nb, BLOCK):
+            eta[i] = 0.0
+        for i in range(BLOCK):
+            # t = exp(-|eta|) = 2^k exp(r)
+            x = max(-abs(eta[i]), EXP_FLOOR)
+            kf = np.floor(x * INV_LN2 + 0.5)
+            r = x - kf * LN2_HI - kf * LN2_LO
+            pp = 1.0 / 6227020800.0
+            pp = pp * r + 1.0 / 479001600.0
+            pp = pp * r + 1.0 / 39916800.0
+            pp = pp * r + 1.0 / 3628800.0
+            pp = pp * r + 1.0 / 362880.0
+            pp = pp * r + 1.0 / 40320.0
+            pp = pp * r + 1.0 / 5040.0
+            pp = pp * r + 1.0 / 720.0
+            pp = pp * r + 1.0 / 120.0
+            pp = pp * r + 1.0 / 24.0
+            pp = pp * r + 1.0 / 6.0
+            pp = pp * r + 0.5
+            pp = pp * r + 1.0
+            pp = pp * r + 1.0
+            t[i] = pp
+            kb[i] = (np.int64(kf) + 1023) << 52
+        for i in range(BLOCK):
+            tt = t[i] * kbf[i]
+            inv = 1.0 / (1.0 + tt)
+            mu[i] = inv if eta[i] >= 0.0 else tt * inv
+            t[i] = tt * inv * inv  # w = mu (1 - mu) = t / (1 + t)^2
+        if not all_valid:
+            vb = valid[d0:d0 + nb]
+            for i in range(nb):
+                if not vb[i]:
+                    mu[i] = 0.0
+                    t[i] = 0.0
+                    eta[i] = 0.0
+        for i in range(nb, BLOCK):
+            mu[i] = 0.0
+            t[i] = 0.0
+        for i in range(BLOCK):
+            top = max(top, abs(eta[i]))
+        for r in range(qa):
+            xr = xb[r]
+            wx = wxb[r]
+            for i in range(BLOCK):
+                wx[i] = t[i] * xr[i]
+        for r in range(qa):
+            acc[qa, r] += vdot(xb[r], mu, BLOCK)  # f = X'mu
             for c in range(r + 1):
-                H[r, c] += wx * xrow[c]  # H = X'WX
-    for r in range(q):
-        for c in range(r + 1, q):
+                acc[r, c] += vdot(wxb[r], xb[c], BLOCK)  # H = X'WX
+        n_blocks += 1
+        if n_blocks == SUPER or d0 + BLOCK >= n:
+            for r in range(qa):
+                f[r] += acc[qa, r]
+                acc[qa, r] = 0.0
+                for c in range(r + 1):
+                    H[r, c] += acc[r, c]
+                    acc[r, c] = 0.0
+            n_blocks = 0
+    for r in range(qa):
+        for c in range(r + 1, qa):
             H[r, c] = H[c, r]
-    return dev
+    return top
 
 
+# --- dense linear algebra on the leading q x q block ---------------------------------------
 @njit(**KERNEL_OPTIONS)
-def _cholesky(H, L):
-    """Lower Cholesky factor L of H (q, q); False when a pivot is not clearly positive."""
-    q = H.shape[0]
+def _cholesky(H, L, q):
+    """Lower Cholesky factor L of H[:q, :q]; False when a pivot is not clearly positive."""
     for c in range(q):
         s = H[c, c]
         for e in range(c):
@@ -114,9 +364,8 @@ def _cholesky(H, L):
 
 
 @njit(**KERNEL_OPTIONS)
-def _cholesky_solve(L, b, out):
-    """out = (L L')^-1 b."""
-    q = L.shape[0]
+def _cholesky_solve(L, b, out, q):
+    """out[:q] = (L L')^-1 b[:q] (L: the leading q x q block)."""
     for r in range(q):
         s = b[r]
         for e in range(r):
@@ -130,149 +379,227 @@ def _cholesky_solve(L, b, out):
 
 
 @njit(**KERNEL_OPTIONS)
-def _cholesky_inverse(L, col, out):
-    """out = (L L')^-1, column by column (``col`` is a q-vector of scratch)."""
-    q = L.shape[0]
+def _cholesky_inverse(L, col, out, q):
+    """out[:q, :q] = (L L')^-1, column by column (``col`` is a q-vector of scratch)."""
     for c in range(q):
         for r in range(q):
             col[r] = 1.0 if r == c else 0.0
-        _cholesky_solve(L, col, col)
+        _cholesky_solve(L, col, col, q)
         for r in range(q):
             out[r, c] = col[r]
 
 
+# --- Newton's method -------------------------------------------------------------------------
+def fit_workspace(qa):
+    """Shapes of the workspaces of ``newton_fit`` for qa design columns:
+    blk (2 qa + 3, BLOCK), kb (BLOCK,) int64, acc (qa + 1, qa), state (3 qa + 7, qa)."""
+    return (2 * qa + 3, BLOCK), (BLOCK,), (qa + 1, qa), (3 * qa + 7, qa)
+
+
 @njit(**KERNEL_OPTIONS)
-def irls_logistic(X, cols, y, valid, beta0, work, beta_out, cov_out, max_iter, tol):
-    """Maximum-likelihood logistic regression by Newton's method (IRLS).
+def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc, state,
+               beta_out, cov_out, info, max_iter, tol):
+    """Maximum-likelihood logistic regression by Newton's method (module docstring).
 
     Parameters
     ----------
-    X : float64 (N, P)
-        Dyad values of the candidate design columns.
-    cols : int64 (q,)
-        Columns of ``X`` in the model, in coefficient order.
-    y : float64 (N,)
-        0/1 response (read only where ``valid``).
-    valid : bool (N,)
-        The dyads of this fit.
+    XT, ext, cols, q, valid, all_valid : as in ``newton_pass``; the model has the first
+        ``q`` columns of ``cols``; any further ones are summed at every pass (for a score
+        statistic, ``score_from_state``).
+    xy : float64 (q,)
+        X'y of the model's columns over the valid dyads.
+    xmax : float64 (q,)
+        max |x_c| over the valid dyads (an upper bound will do).
     beta0 : float64 (q,)
         Starting coefficients (warm start).
-    work : float64 (2q + 5, q)
-        Workspace, overwritten.
+    blk, kb, acc, state : workspaces (``fit_workspace``), overwritten. On return ``state``
+        holds, for the last coefficients b evaluated: H = X'WX (rows 0..qa-1), X'mu (row
+        3 qa + 2) and the Newton step d from b (row 3 qa + 5); L, the Cholesky factor of
+        H[:q, :q], in rows 2 qa .. 3 qa - 1.
     beta_out : float64 (q,)
-        Written: the estimate (when converged).
+        Written: the estimate b + d (when converged).
     cov_out : float64 (q, q)
-        Written: (X'WX)^-1 at the estimate, the Wald covariance (when converged).
+        Written: H[:q, :q]^-1, the Wald covariance (when converged).
+    info : float64 (INFO_SIZE,)
+        Written: passes over the dyads, the last step's M, the column that moved most,
+        Newton steps taken (``INFO_*``).
     max_iter : int
         Newton steps allowed.
     tol : float
-        Converged when the next Newton step has every |step_c| <= tol * (1 + |b_c|); that
-        last step is taken without another pass over the dyads.
+        Converged when the next step moves no linear predictor by more than tol
+        (sum_c |d_c| xmax_c <= tol); that step is taken without another pass.
 
     Returns
     -------
     int
-        Newton steps taken (>= 1, the last tiny one included) when converged, else a
-        negative FAIL_* code.
+        Newton steps taken (>= 1, the last one included) when converged, else a negative
+        FAIL_* code (FAIL_SATURATED: converged in appearance only, with some linear
+        predictor beyond ETA_SATURATED).
     """
-    q = cols.shape[0]
-    H = work[0:q]
-    L = work[q:2 * q]
-    beta = work[2 * q]
-    trial = work[2 * q + 1]
-    g = work[2 * q + 2]
-    step = work[2 * q + 3]
-    xrow = work[2 * q + 4]
-    n_valid = 0
-    for d in range(X.shape[0]):
-        if valid[d]:
-            n_valid += 1
+    qa = cols.shape[0]
+    H = state[0:qa]
+    Ht = state[qa:2 * qa]
+    L = state[2 * qa:3 * qa]
+    beta = state[3 * qa]
+    trial = state[3 * qa + 1]
+    f = state[3 * qa + 2]
+    ft = state[3 * qa + 3]
+    g = state[3 * qa + 4]
+    d = state[3 * qa + 5]
+    tmp = state[3 * qa + 6]
+    info[INFO_PASSES] = 0.0
+    info[INFO_MOVE] = np.nan
+    info[INFO_TERM] = -1.0
+    info[INFO_STEPS] = 0.0
+    n_valid = valid.shape[0]
+    if not all_valid:
+        n_valid = 0
+        for i in range(valid.shape[0]):
+            if valid[i]:
+                n_valid += 1
     if n_valid <= q:
         return FAIL_DYADS
     for c in range(q):
         beta[c] = beta0[c]
-    dev = _newton_pass(X, cols, y, valid, beta, xrow, H, g)
+    eta_max = newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f)
+    passes = 1
     for it in range(1, max_iter + 1):
-        if not _cholesky(H, L):
-            return FAIL_SINGULAR
-        # Newton step: step = H^-1 g
-        _cholesky_solve(L, g, step)
-        small = True
+        info[INFO_PASSES] = passes
+        info[INFO_STEPS] = it - 1
+        finite = True
         for c in range(q):
-            if abs(step[c]) > tol * (1.0 + abs(beta[c])):
-                small = False
-        if small:
-            # converged: take the last, tiny step without another pass over the dyads;
-            # the Wald covariance is H^-1 at the coefficients the step started from (it
-            # moves by a relative amount of the order of ``tol``)
-            _cholesky_inverse(L, xrow, cov_out)
+            g[c] = xy[c] - f[c]  # g = X'(y - mu)
+            if not np.isfinite(g[c]):
+                finite = False
+        if not finite:
+            return FAIL_STEP
+        if not _cholesky(H, L, q):
+            return FAIL_SINGULAR
+        _cholesky_solve(L, g, d, q)  # Newton step d = H^-1 g
+        lam2 = 0.0
+        move = 0.0
+        top = 0.0
+        for c in range(q):
+            lam2 += d[c] * g[c]
+            mc = abs(d[c]) * xmax[c]
+            move += mc  # M >= max_d |x_d'd|
+            if mc > top:
+                top = mc
+                info[INFO_TERM] = c
+        info[INFO_MOVE] = move
+        if move <= tol:
+            info[INFO_STEPS] = it
+            if eta_max > ETA_SATURATED:
+                return FAIL_SATURATED
+            _cholesky_inverse(L, tmp, cov_out, q)
             for c in range(q):
-                beta_out[c] = beta[c] + step[c]
+                beta_out[c] = beta[c] + d[c]
             return it
-        scale = 1.0
+        s = 1.0
         accepted = False
         for _ in range(MAX_HALVINGS + 1):
+            sm = s * move
+            certified = s * _h_bound(sm) < 1.0  # the deviance falls (module docstring)
             for c in range(q):
-                trial[c] = beta[c] + scale * step[c]
-            dev_new = _newton_pass(X, cols, y, valid, trial, xrow, H, g)
-            if dev_new <= dev + DEVIANCE_SLACK * (abs(dev) + 1.0):
+                trial[c] = beta[c] + s * d[c]
+            eta_t = newton_pass(XT, ext, cols, q, valid, all_valid, trial, blk, kb, acc, Ht, ft)
+            passes += 1
+            if not certified:
+                # D = s d: a decrease is proven when D'H_t D k(sM) + D'g_t > 0
+                dhd = 0.0
+                dg = 0.0
+                for r in range(q):
+                    dg += d[r] * (xy[r] - ft[r])
+                    hr = 0.0
+                    for c in range(q):
+                        hr += Ht[r, c] * d[c]
+                    dhd += d[r] * hr
+                certified = s * dhd * _k_bound(sm) + dg > 0.0
+            if certified:
                 accepted = True
                 break
-            scale *= 0.5
+            s *= 0.5
+        info[INFO_PASSES] = passes
         if not accepted:
             return FAIL_STEP
+        info[INFO_STEPS] = it
+        eta_max = eta_t
         for c in range(q):
             beta[c] = trial[c]
-        dev = dev_new
+        for r in range(qa):
+            f[r] = ft[r]
+            for c in range(qa):
+                H[r, c] = Ht[r, c]
+    info[INFO_PASSES] = passes
     return FAIL_ITERATIONS
 
 
 @njit(**KERNEL_OPTIONS)
-def score_logistic(X, zcols, xcol, y, valid, gamma, cinv, work):
-    """Signed score statistic of column ``xcol`` added to a fitted reduced model.
+def score_from_state(state, q, qa, xy_x):
+    """Signed score statistic of design column q (position in ``cols``) after a converged
+    ``newton_fit`` of the first q columns (Rao 1948, Proc. Camb. Philos. Soc. 44:50-57).
 
-    With the reduced fit mu = expit(Z gamma), W = diag(mu (1 - mu)) over the valid rows
-    (Rao 1948, Proc. Camb. Philos. Soc. 44:50-57):
-    U = x'(y - mu), I = x'Wx - (Z'Wx)' (Z'WZ)^-1 (Z'Wx), statistic U / sqrt(I).
-
-    Parameters
-    ----------
-    X : float64 (N, P); zcols : int64 (q,) reduced-model columns; xcol : int the tested
-        column; y : float64 (N,); valid : bool (N,)
-    gamma : float64 (q,)
-        Reduced-model estimate.
-    cinv : float64 (q, q)
-        (Z'WZ)^-1 at ``gamma``.
-    work : float64 (2, q)
-        Workspace, overwritten.
-
-    Returns
-    -------
-    float
-        U / sqrt(I); NaN when I is not clearly positive (x in the span of Z).
+    With H = X'WX, X'mu and the last step d at the coefficients b the fit evaluated last
+    (the estimate is b + d): U = x'y - x'mu - H_xZ d (x'(y - mu) at b + d to first order),
+    I = H_xx - H_xZ H_ZZ^-1 H_Zx; statistic U / sqrt(I), NaN when I is not clearly
+    positive (x in the span of Z). ``xy_x`` = x'y over the fit's dyads.
     """
-    q = zcols.shape[0]
-    a = work[0]
-    zrow = work[1]
+    H = state[0:qa]
+    L = state[2 * qa:3 * qa]
+    f = state[3 * qa + 2]
+    d = state[3 * qa + 5]
+    a = state[3 * qa + 1]  # scratch (the trial row)
+    tmp = state[3 * qa + 6]
+    u = xy_x - f[q]
     for c in range(q):
-        a[c] = 0.0
-    u = 0.0
-    qx = 0.0
-    for d in range(X.shape[0]):
-        if not valid[d]:
-            continue
-        eta = 0.0
-        for c in range(q):
-            zrow[c] = X[d, zcols[c]]
-            eta += zrow[c] * gamma[c]
-        mu, w, _ = _logit_parts(eta)
-        x = X[d, xcol]
-        u += x * (y[d] - mu)
-        wx = w * x
-        qx += wx * x
-        for c in range(q):
-            a[c] += wx * zrow[c]
-    return _signed_score(u, qx, a, cinv)
+        u -= H[q, c] * d[c]
+        a[c] = H[q, c]
+    _cholesky_solve(L, a, tmp, q)
+    quad = 0.0
+    for c in range(q):
+        quad += a[c] * tmp[c]
+    info = H[q, q] - quad
+    if not (info > SINGULAR_PIVOT * H[q, q]) or not (info > 0.0):
+        return np.nan
+    return u / np.sqrt(info)
+
+
+@njit(**KERNEL_OPTIONS)
+def irls_logistic(XT, ext, cols, xy, valid, xmax, beta0, beta_out, cov_out, info, max_iter,
+                  tol):
+    """One logistic fit of the columns ``cols`` (all valid dyads given by ``valid``): the
+    workspaces of ``newton_fit`` allocated here. Returns its status."""
+    q = cols.shape[0]
+    blk = np.empty((2 * q + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((q + 1, q))
+    state = np.empty((3 * q + 7, q))
+    return newton_fit(XT, ext, cols, q, xy, valid, False, xmax, beta0, blk, kb, acc, state,
+                      beta_out, cov_out, info, max_iter, tol)
+
+
+@njit(**KERNEL_OPTIONS)
+def score_logistic(XT, ext, zcols, xcol, xy, valid, xmax, gamma0, info, max_iter, tol):
+    """Fit y ~ Z (columns ``zcols``) from ``gamma0`` and return the signed score statistic
+    of column ``xcol`` (``score_from_state``), NaN when the reduced fit fails. ``xy`` (q + 1,)
+    holds Z'y then x'y; ``xmax`` (q,) bounds |z_c|."""
+    q = zcols.shape[0]
+    qa = q + 1
+    cols = np.empty(qa, dtype=np.int64)
+    for c in range(q):
+        cols[c] = zcols[c]
+    cols[q] = xcol
+    blk = np.empty((2 * qa + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((qa + 1, qa))
+    state = np.empty((3 * qa + 7, qa))
+    gamma = np.empty(q)
+    cinv = np.empty((q, q))
+    status = newton_fit(XT, ext, cols, q, xy, valid, False, xmax, gamma0, blk, kb, acc, state,
+                        gamma, cinv, info, max_iter, tol)
+    if status < 0:
+        return np.nan
+    return score_from_state(state, q, qa, xy[q])
 
 
 @njit(**KERNEL_OPTIONS)
@@ -291,9 +618,42 @@ def _signed_score(u, qx, a, cinv):
     return u / np.sqrt(info)
 
 
+# --- drivers: one chunk of relabellings -----------------------------------------------------
 @njit(**KERNEL_OPTIONS)
-def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, onestep, out, max_iter,
-            tol, use_z):
+def _flush(part, total):
+    """total += part; part = 0 (the block level of a driver's sums)."""
+    for c in range(part.shape[0]):
+        total[c] += part[c]
+        part[c] = 0.0
+
+
+@njit(**KERNEL_OPTIONS)
+def _gather_response(layer, rows, cols, rp, cp, XT, fixed_ok, valid, part, s):
+    """valid[d] = fixed_ok[d] and y_pi[d] finite, and s = X'y_pi over the valid dyads, with
+    y_pi[d] = layer[rp[rows[d]], cp[cols[d]]]; True when every dyad is valid."""
+    p, n_dyads = XT.shape
+    for c in range(p):
+        part[c] = 0.0
+        s[c] = 0.0
+    complete = True
+    for d in range(n_dyads):
+        v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
+        ok = fixed_ok[d] and not np.isnan(v)
+        valid[d] = ok
+        if ok:
+            for c in range(p):
+                part[c] += XT[c, d] * v  # s = X'y_pi
+        else:
+            complete = False
+        if (d + 1) % BLOCK == 0:
+            _flush(part, s)
+    _flush(part, s)
+    return complete
+
+
+@njit(**KERNEL_OPTIONS)
+def refit_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, beta0, onestep, out,
+            passes, max_iter, tol, use_z):
     """Y-permutation refits: relabel the response, refit the full model.
 
     Parameters
@@ -304,10 +664,12 @@ def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, onestep
         The dyad set: dyad d is (rows[d], cols[d]).
     row_perms : int64 (B, n); col_perms : int64 (B, m)
         The relabellings.
-    X : float64 (N, p)
-        Fixed design [1, x_1 .. x_k] on the dyads.
+    XT : float64 (p, N)
+        Fixed design [1, x_1 .. x_k] on the dyads, one column per row (0 where missing).
     fixed_ok : bool (N,)
-        Dyads where every column of ``X`` is finite.
+        Dyads where every column of the design is observed.
+    xmax : float64 (p,)
+        max |x_c| over the dyads of ``fixed_ok``.
     beta0 : float64 (p,)
         Warm start: the fit of the intercept alone, (logit(mean y), 0, ..).
     onestep : float64 (p, p + 1), or (0, p + 1) when some dyad is missing
@@ -317,35 +679,36 @@ def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, onestep
         is where the refit starts.
     out : float64 (B, p - 1)
         Written: Wald z (``use_z``) or coefficient of each predictor; NaN for a failed fit.
-    max_iter, tol : see ``irls_logistic``.
+    passes : int64 (B,)
+        Written: passes over the dyads of each relabelling (the gather and the fit's).
+    max_iter, tol : see ``newton_fit``.
     """
-    n_dyads, p = X.shape
+    p, n_dyads = XT.shape
     first_step = onestep.shape[0] == p
     design = np.arange(p)
-    ybuf = np.empty(n_dyads)
+    ext = np.empty(0)
     valid = np.empty(n_dyads, dtype=np.bool_)
-    work = np.empty((2 * p + 5, p))
+    blk = np.empty((2 * p + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((p + 1, p))
+    state = np.empty((3 * p + 7, p))
+    info = np.empty(INFO_SIZE)
     beta = np.empty(p)
     cov = np.empty((p, p))
-    suff = np.empty(p)
+    part = np.empty(p)
+    s = np.empty(p)
     start = np.empty(p)
     for b in range(row_perms.shape[0]):
-        rp = row_perms[b]
-        cp = col_perms[b]
-        suff[:] = 0.0
-        for d in range(n_dyads):
-            v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
-            ybuf[d] = v
-            valid[d] = fixed_ok[d] and not np.isnan(v)
-            if first_step:
-                for c in range(p):
-                    suff[c] += X[d, c] * v  # X'y_pi
+        complete = _gather_response(layer, rows, cols, row_perms[b], col_perms[b], XT,
+                                    fixed_ok, valid, part, s)
         for c in range(p):
             start[c] = beta0[c]
             if first_step:
                 for e in range(p):
-                    start[c] += onestep[c, e] * (suff[e] - onestep[e, p])
-        status = irls_logistic(X, design, ybuf, valid, start, work, beta, cov, max_iter, tol)
+                    start[c] += onestep[c, e] * (s[e] - onestep[e, p])
+        status = newton_fit(XT, ext, design, p, s, valid, complete, xmax, start, blk, kb, acc,
+                            state, beta, cov, info, max_iter, tol)
+        passes[b] = 1 + int(info[INFO_PASSES])
         for j in range(1, p):
             if status < 0:
                 out[b, j - 1] = np.nan
@@ -356,8 +719,51 @@ def refit_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, beta0, onestep
 
 
 @njit(**KERNEL_OPTIONS)
-def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, beta0, reduced,
-              cinv, out, max_iter, tol, use_z):
+def _gather_residual(resid, a, rows, cols, rp, cp, XT, y, ok_a, zc, reduced, valid, ebuf,
+                     part, tot):
+    """Relabelled residual e_pi of term a into ``ebuf`` (0 where not valid), ``valid`` =
+    ``ok_a`` and e_pi finite; in ``tot``: [Z'y (q), e_pi'y] over the valid dyads (``zc``
+    the q columns of Z in XT), then, when ``reduced`` has rows (complete data, see
+    ``refit_dsp``), [U, Q, S_0 .. S_(q-1)] of the free first Newton step. ``part`` is
+    scratch of tot's size. Returns (every dyad valid, max |e_pi|)."""
+    n_dyads = rows.shape[0]
+    q = zc.shape[0]
+    n_terms = reduced.shape[0] // 2
+    first_step = n_terms > 0
+    for c in range(tot.shape[0]):
+        part[c] = 0.0
+        tot[c] = 0.0
+    complete = True
+    emax = 0.0
+    for d in range(n_dyads):
+        v = resid[rp[rows[d]], cp[cols[d]], a]  # e_pi[d] = E[pi(i), pi(j)]
+        ok = ok_a[d] and not np.isnan(v)
+        valid[d] = ok
+        if ok:
+            yd = y[d]
+            part[q] += v * yd  # e_pi'y
+            for c in range(q):
+                part[c] += XT[zc[c], d] * yd  # Z'y
+            emax = max(emax, abs(v))
+            if first_step:
+                part[q + 1] += v * reduced[a, d]  # U = e_pi'(y - mu)
+                wv = reduced[n_terms + a, d] * v
+                part[q + 2] += wv * v  # Q = sum w e_pi^2
+                for c in range(q):
+                    part[q + 3 + c] += wv * XT[zc[c], d]  # S = Z'W e_pi
+        else:
+            complete = False
+            v = 0.0
+        ebuf[d] = v
+        if (d + 1) % BLOCK == 0:
+            _flush(part, tot)
+    _flush(part, tot)
+    return complete, emax
+
+
+@njit(**KERNEL_OPTIONS)
+def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, xmax, beta0,
+              reduced, cinv, out, passes, max_iter, tol, use_z):
     """DSP refits (Potter 2005): relabel the focal predictor's residual, refit.
 
     Parameters
@@ -365,156 +771,199 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, design, b
     resid : float64 (n, m, K)
         Residual matrix of each tested predictor on the other terms (NaN: missing).
     rows, cols, row_perms, col_perms : as in ``refit_y``.
-    X : float64 (N, p)
-        Fixed design [1, x_1 .. x_k]; the relabelled residual becomes column p.
+    XT : float64 (P, N)
+        Fixed design [1, x_1 .. x_k], one column per row (0 where missing); the relabelled
+        residual is design column P.
     y : float64 (N,)
         The response.
     fixed_ok : bool (K, N)
-        Dyads where y and the other terms of tested term a are finite.
+        Dyads where y and the other terms of tested term a are observed.
     design : int64 (K, p)
-        Columns of term a's fit: the other terms Z_a, then p (the relabelled residual).
+        Columns of term a's fit: the other terms Z_a, then P (the relabelled residual).
+    xmax : float64 (P,)
+        max |x_c| of each fixed column over its observed dyads.
     beta0 : float64 (K, p)
         Warm start of each term's fit: its observed reduced fit, and 0 for the residual.
-    reduced : float64 (N, 2K), or (0, 2K) when some dyad is missing
-        y - mu_a and w_a = mu_a (1 - mu_a) of each observed reduced fit. At ``beta0`` the
-        gradient is (0, U) and the information [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu),
-        S = Z'W e_pi, Q = sum w e_pi^2 (summed while e_pi is gathered), so the first Newton
-        step is free: d_e = U / (Q - S'(Z'WZ)^-1 S), d_z = -(Z'WZ)^-1 S d_e.
+    reduced : float64 (2K, N), or (0, N) when some dyad is missing
+        y - mu_a (rows 0..K-1) and w_a = mu_a (1 - mu_a) (rows K..2K-1) of each observed
+        reduced fit. At ``beta0`` the gradient is (0, U) and the information
+        [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu), S = Z'W e_pi, Q = sum w e_pi^2 (summed
+        while e_pi is gathered), so the first Newton step costs no pass of its own:
+        d_e = U / (Q - S'(Z'WZ)^-1 S), d_z = -(Z'WZ)^-1 S d_e.
     cinv : float64 (K, p - 1, p - 1)
         (Z_a'W_a Z_a)^-1 of each observed reduced fit (used with ``reduced``).
     out : float64 (B, K)
         Written: Wald z (``use_z``) or coefficient of the relabelled residual; NaN for a
         failed fit.
+    passes : int64 (B,)
+        Written: passes over the dyads of each relabelling, summed over the terms.
     """
-    n_dyads, p = X.shape
+    n_fixed, n_dyads = XT.shape
     n_terms = resid.shape[2]
+    p = design.shape[1]
     q = p - 1
-    first_step = reduced.shape[0] == n_dyads
-    xbuf = np.empty((n_dyads, p + 1))
-    for d in range(n_dyads):
-        for c in range(p):
-            xbuf[d, c] = X[d, c]
+    first_step = reduced.shape[0] == 2 * n_terms
+    ebuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
-    work = np.empty((2 * p + 5, p))
+    blk = np.empty((2 * p + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((p + 1, p))
+    state = np.empty((3 * p + 7, p))
+    info = np.empty(INFO_SIZE)
     beta = np.empty(p)
     cov = np.empty((p, p))
-    sums = np.empty(q)
+    n_sums = p + q + 2 if first_step else p
+    part = np.empty(n_sums)
+    sums = np.empty(n_sums)  # [Z'y, e_pi'y, U, Q, S_0 .. S_(q-1)]
+    xm = np.empty(p)
     start = np.empty(p)
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
+        passes[b] = 0
         for a in range(n_terms):
-            u = 0.0
-            qq = 0.0
-            sums[:] = 0.0
-            for d in range(n_dyads):
-                v = resid[rp[rows[d]], cp[cols[d]], a]  # e_pi[d] = E[pi(i), pi(j)]
-                xbuf[d, p] = v
-                valid[d] = fixed_ok[a, d] and not np.isnan(v)
-                if first_step:
-                    u += v * reduced[d, a]  # U = e_pi'(y - mu)
-                    wv = reduced[d, n_terms + a] * v
-                    qq += wv * v  # Q = sum w e_pi^2
-                    for c in range(q):
-                        sums[c] += wv * X[d, design[a, c]]  # S = Z'W e_pi
+            zc = design[a, :q]
+            complete, emax = _gather_residual(resid, a, rows, cols, rp, cp, XT, y,
+                                              fixed_ok[a], zc, reduced, valid, ebuf, part,
+                                              sums)
+            for c in range(q):
+                xm[c] = xmax[zc[c]]
+            xm[q] = emax
             for c in range(p):
                 start[c] = beta0[a, c]
             if first_step:
-                info = qq
+                u, qq = sums[p], sums[p + 1]
+                info_e = qq
                 for r in range(q):
                     for c in range(q):
-                        info -= sums[r] * cinv[a, r, c] * sums[c]
-                if info > 0.0:
-                    step_e = u / info
+                        info_e -= sums[p + 2 + r] * cinv[a, r, c] * sums[p + 2 + c]
+                if info_e > 0.0:
+                    step_e = u / info_e
                     start[q] += step_e
                     for r in range(q):
                         for c in range(q):
-                            start[r] -= cinv[a, r, c] * sums[c] * step_e
-            status = irls_logistic(xbuf, design[a], y, valid, start, work, beta, cov,
-                                   max_iter, tol)
+                            start[r] -= cinv[a, r, c] * sums[p + 2 + c] * step_e
+            status = newton_fit(XT, ebuf, design[a], p, sums, valid, complete, xm, start,
+                                blk, kb, acc, state, beta, cov, info, max_iter, tol)
+            passes[b] += 1 + int(info[INFO_PASSES])
             if status < 0:
                 out[b, a] = np.nan
             elif use_z:
-                out[b, a] = beta[p - 1] / np.sqrt(cov[p - 1, p - 1])
+                out[b, a] = beta[q] / np.sqrt(cov[q, q])
             else:
-                out[b, a] = beta[p - 1]
+                out[b, a] = beta[q]
 
 
 @njit(**KERNEL_OPTIONS)
-def score_dsp_refit(resid, rows, cols, row_perms, col_perms, X, y, fixed_ok, zcols, gamma0,
-                    out, max_iter, tol):
+def score_dsp_refit(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, zcols, xmax,
+                    gamma0, out, passes, max_iter, tol):
     """DSP score statistics with missing dyads: the reduced model is refitted on each
-    relabelling's dyad set (where y, Z_a and e_pi are finite), then scored.
+    relabelling's dyad set (where y, Z_a and e_pi are observed), then scored.
 
-    Parameters as in ``refit_dsp``; ``zcols`` (K, p - 1) the reduced-model columns,
-    ``gamma0`` (K, p - 1) their warm start; ``out`` (B, K) written (NaN: failed fit).
+    Parameters as in ``refit_dsp``; ``zcols`` (K, q) the reduced-model columns of XT,
+    ``gamma0`` (K, q) their warm start; ``out`` (B, K) written (NaN: failed fit);
+    ``passes`` (B,) written. The score is taken from the reduced fit's last pass, which
+    sums the relabelled column too (``score_from_state``).
     """
-    n_dyads, p = X.shape
+    n_fixed, n_dyads = XT.shape
     n_terms = resid.shape[2]
-    q = p - 1
-    xbuf = np.empty((n_dyads, p + 1))
-    for d in range(n_dyads):
-        for c in range(p):
-            xbuf[d, c] = X[d, c]
+    q = zcols.shape[1]
+    qa = q + 1
+    ebuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
-    work = np.empty((2 * q + 5, q))
+    blk = np.empty((2 * qa + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((qa + 1, qa))
+    state = np.empty((3 * qa + 7, qa))
+    info = np.empty(INFO_SIZE)
     gamma = np.empty(q)
     cinv = np.empty((q, q))
+    part = np.empty(qa)
+    xy = np.empty(qa)
+    xm = np.empty(q)
+    cols_a = np.empty(qa, dtype=np.int64)
+    no_reduced = np.empty((0, n_dyads))
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
+        passes[b] = 0
         for a in range(n_terms):
-            for d in range(n_dyads):
-                v = resid[rp[rows[d]], cp[cols[d]], a]
-                xbuf[d, p] = v
-                valid[d] = fixed_ok[a, d] and not np.isnan(v)
-            status = irls_logistic(xbuf, zcols[a], y, valid, gamma0[a], work, gamma, cinv,
-                                   max_iter, tol)
-            if status < 0:
-                out[b, a] = np.nan
-            else:
-                out[b, a] = score_logistic(xbuf, zcols[a], p, y, valid, gamma, cinv, work)
+            zc = zcols[a]
+            complete, _ = _gather_residual(resid, a, rows, cols, rp, cp, XT, y, fixed_ok[a],
+                                           zc, no_reduced, valid, ebuf, part, xy)
+            for c in range(q):
+                cols_a[c] = zc[c]
+                xm[c] = xmax[zc[c]]
+            cols_a[q] = n_fixed
+            status = newton_fit(XT, ebuf, cols_a, q, xy, valid, complete, xm, gamma0[a], blk,
+                                kb, acc, state, gamma, cinv, info, max_iter, tol)
+            passes[b] += 1 + int(info[INFO_PASSES])
+            out[b, a] = np.nan if status < 0 else score_from_state(state, q, qa, xy[q])
 
 
 @njit(**KERNEL_OPTIONS)
-def score_y(layer, rows, cols, row_perms, col_perms, X, fixed_ok, zcols, gamma0, out,
-            max_iter, tol):
+def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, gamma0,
+            onestep, out, passes, max_iter, tol):
     """Y-permutation score statistics: the reduced model of term a (y_pi on Z_a) is
-    refitted on each relabelling (warm-started at ``gamma0[a]``), then scored.
+    refitted on each relabelling, then scored (from the fit's last pass, which sums
+    term a's column too: ``score_from_state``).
 
     Parameters
     ----------
-    layer, rows, cols, row_perms, col_perms, X, fixed_ok : as in ``refit_y``.
-    zcols : int64 (K, p - 1)
+    layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax : as in ``refit_y``.
+    zcols : int64 (K, q)
         Columns of term a's reduced model; term a's own column is a + 1.
-    gamma0 : float64 (K, p - 1)
-        Warm starts (the observed reduced fits).
+    gamma0 : float64 (K, q)
+        Warm starts: the fit of the intercept alone with ``onestep``, else the observed
+        reduced fits.
+    onestep : float64 (K, q, q + 1), or (0, q, q + 1) when some dyad is missing
+        [(w0 Z_a'Z_a)^-1 | mean(y) Z_a'1] of each term: the free first Newton step from
+        the intercept-only fit (as in ``refit_y``).
     out : float64 (B, K)
         Written: the signed score statistics (NaN: failed reduced fit).
-    max_iter, tol : see ``irls_logistic``.
+    passes : int64 (B,)
+        Written: passes over the dyads of each relabelling.
     """
-    n_dyads, p = X.shape
+    p, n_dyads = XT.shape
     n_terms = zcols.shape[0]
-    q = p - 1
-    ybuf = np.empty(n_dyads)
+    q = zcols.shape[1]
+    qa = q + 1
+    first_step = onestep.shape[0] == n_terms
+    ext = np.empty(0)
     valid = np.empty(n_dyads, dtype=np.bool_)
-    work = np.empty((2 * q + 5, q))
+    blk = np.empty((2 * qa + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((qa + 1, qa))
+    state = np.empty((3 * qa + 7, qa))
+    info = np.empty(INFO_SIZE)
     gamma = np.empty(q)
     cinv = np.empty((q, q))
+    part = np.empty(p)
+    s = np.empty(p)
+    xy = np.empty(qa)
+    xm = np.empty(q)
+    start = np.empty(q)
+    cols_a = np.empty(qa, dtype=np.int64)
     for b in range(row_perms.shape[0]):
-        rp = row_perms[b]
-        cp = col_perms[b]
-        for d in range(n_dyads):
-            v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
-            ybuf[d] = v
-            valid[d] = fixed_ok[d] and not np.isnan(v)
+        complete = _gather_response(layer, rows, cols, row_perms[b], col_perms[b], XT,
+                                    fixed_ok, valid, part, s)
+        passes[b] = 1
         for a in range(n_terms):
-            status = irls_logistic(X, zcols[a], ybuf, valid, gamma0[a], work, gamma, cinv,
-                                   max_iter, tol)
-            if status < 0:
-                out[b, a] = np.nan
-            else:
-                out[b, a] = score_logistic(X, zcols[a], a + 1, ybuf, valid, gamma, cinv, work)
+            for c in range(q):
+                cols_a[c] = zcols[a, c]
+                xy[c] = s[zcols[a, c]]
+                xm[c] = xmax[zcols[a, c]]
+            cols_a[q] = a + 1
+            xy[q] = s[a + 1]
+            for c in range(q):
+                start[c] = gamma0[a, c]
+                if first_step:
+                    for e in range(q):
+                        start[c] += onestep[a, c, e] * (xy[e] - onestep[a, e, q])
+            status = newton_fit(XT, ext, cols_a, q, xy, valid, complete, xm, start, blk, kb,
+                                acc, state, gamma, cinv, info, max_iter, tol)
+            passes[b] += int(info[INFO_PASSES])
+            out[b, a] = np.nan if status < 0 else score_from_state(state, q, qa, xy[q])
 
 
 @njit(**KERNEL_OPTIONS)

@@ -108,17 +108,23 @@ from . import store as _store
 from .engine import CHUNK_WORK, MAX_CHUNK
 from .errors import DyadpermWarning, InputError, NumericalError
 from .kernels.gather import gather_cross
-from .kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
-                           score_from_sums, score_logistic, score_rows, score_y)
+from .kernels.irls import (ETA_SATURATED, FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED,
+                           FAIL_SINGULAR, INFO_MOVE, INFO_PASSES, INFO_SIZE, INFO_STEPS,
+                           INFO_TERM, SCORE_BLOCK, irls_logistic, refit_dsp, refit_y,
+                           score_dsp_refit, score_from_sums, score_logistic, score_rows, score_y)
 
 SCHEMES = ("y", "dsp")
 STATISTICS = ("t", "coef", "score")
 # Newton steps allowed per fit; a converging fit from a warm start needs under ten.
 MAX_ITER = 50
-# Converged when no coefficient (standardised predictors) moves more than TOL * (1 + |b|).
-TOL = 1e-8
-# Newton steps assumed per refit when sizing chunks.
-STEPS_GUESS = 6
+# Converged when the next Newton step changes no dyad's linear predictor by more than TOL
+# (kernels.irls: the step is then taken, and the Wald covariance is within a relative TOL
+# of the estimate's). TOL for the refits of relabellings; TOL_OBSERVED for the observed
+# fits the result reports.
+TOL = 1e-7
+TOL_OBSERVED = 1e-10
+# Passes over the dyads assumed per refit when sizing chunks.
+STEPS_GUESS = 3
 # A separating direction found by the linear programme must leave no dyad on the wrong
 # side by more than this (relative to its largest margin).
 SEPARATION_SLACK = 1e-9
@@ -210,16 +216,47 @@ class LogisticFit:
     iterations: int
 
 
+@dataclass(frozen=True)
+class KernelFit:
+    """One fit through ``kernels.irls``: status (Newton steps, or a negative FAIL_* code),
+    estimate and Wald covariance (standardised predictors; NaN when failed), and the
+    diagnostics: passes over the dyads, Newton steps, the last step's largest change of a
+    linear predictor (bound) and the position in ``cols`` of the column that moved most."""
+
+    status: int
+    beta: np.ndarray
+    cov: np.ndarray
+    passes: int
+    steps: int
+    move: float
+    term: int
+
+
+def design_columns(X: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
+    """(q, N) C-ordered columns of X (all, or ``cols``) with NaN replaced by 0: the
+    kernels' layout (a dyad outside a fit is excluded by its ``valid`` flag)."""
+    Xc = X if cols is None else X[:, cols]
+    return np.ascontiguousarray(np.nan_to_num(Xc, nan=0.0).T)
+
+
 def fit_logistic(X: np.ndarray, cols: np.ndarray, y: np.ndarray, valid: np.ndarray,
-                 beta0: np.ndarray) -> tuple[int, np.ndarray, np.ndarray]:
-    """One fit through the kernel: (status, estimate, covariance)."""
+                 beta0: np.ndarray, *, tol: float = TOL_OBSERVED) -> KernelFit:
+    """One fit of y on the columns ``cols`` of X (N, P) over the ``valid`` dyads."""
+    cols = np.asarray(cols, dtype=np.int64)
     q = cols.shape[0]
-    beta = np.empty(q)
-    cov = np.empty((q, q))
-    status = irls_logistic(X, np.ascontiguousarray(cols, dtype=np.int64), y, valid,
-                           np.ascontiguousarray(beta0, dtype=np.float64),
-                           np.empty((2 * q + 5, q)), beta, cov, MAX_ITER, TOL)
-    return int(status), beta, cov
+    XT = design_columns(X, cols)
+    valid = np.ascontiguousarray(valid, dtype=bool)
+    yv = np.where(valid, np.nan_to_num(y, nan=0.0), 0.0)
+    xy = (XT * yv).sum(axis=1)  # X'y over the valid dyads (numpy's pairwise sums)
+    xmax = np.abs(XT[:, valid]).max(axis=1) if valid.any() else np.zeros(q)
+    beta = np.full(q, np.nan)
+    cov = np.full((q, q), np.nan)
+    info = np.zeros(INFO_SIZE)
+    status = irls_logistic(XT, np.empty(0), np.arange(q, dtype=np.int64), xy, valid, xmax,
+                           np.ascontiguousarray(beta0, dtype=np.float64), beta, cov, info,
+                           MAX_ITER, tol)
+    return KernelFit(int(status), beta, cov, int(info[INFO_PASSES]), int(info[INFO_STEPS]),
+                     float(info[INFO_MOVE]), int(info[INFO_TERM]))
 
 
 def _null_start(y: np.ndarray, valid: np.ndarray, q: int) -> np.ndarray:
@@ -239,9 +276,11 @@ def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
     if ybar in (0.0, 1.0):
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set "
                          f"(every value is {int(ybar)})")
-    status, beta, cov = fit_logistic(dd.X, np.arange(p), dd.y, valid, _null_start(dd.y, valid, p))
-    if status < 0:
-        raise NumericalError(_failure_message(prep, dd, status))
+    cols = np.arange(p)
+    res = fit_logistic(dd.X, cols, dd.y, valid, _null_start(dd.y, valid, p))
+    if res.status < 0:
+        raise NumericalError(_failure_message(prep, dd, res, cols))
+    beta, cov = res.beta, res.cov
     # back to the user's units: b_c = beta_c / sd_c, b_0 = beta_0 - sum beta_c mean_c / sd_c
     A = np.zeros((p, p))
     A[0, 0] = 1.0
@@ -251,43 +290,74 @@ def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
     se = np.sqrt(np.diag(A @ cov @ A.T))
     eta = dd.X[valid] @ beta
     deviance = float(2.0 * np.sum(np.logaddexp(0.0, eta) - dd.y[valid] * eta))
-    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, status)
+    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, res.status)
 
 
-def _failure_message(prep: _design.Prepared, dd: DyadData, status: int) -> str:
-    names = separating_predictors(dd.X[dd.complete], dd.y[dd.complete], prep.names)
+def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols: np.ndarray,
+                     dropped: int | None = None) -> str:
+    """Why the fit of the design columns ``cols`` failed (``dropped``: the term left out of
+    a reduced model). Separation is named only when the linear programme of
+    ``separating_predictors`` finds it; any other failure is a failed convergence, with the
+    last Newton step's size and the term that moved most."""
+    names = ("intercept",) + tuple(prep.names)
     resp = prep.response_name
-    if names:
-        who = f"predictor {names[0]!r}" + (
-            f" together with {', '.join(repr(n) for n in names[1:])}" if len(names) > 1 else "")
-        return (f"logistic fit of {resp!r}: the 0s and 1s are separated by {who}, so the "
-                f"coefficients have no finite maximum-likelihood value (Albert & Anderson "
-                f"1984); use Firth's penalised likelihood (Firth 1993; Heinze & Schemper 2002) "
-                f"or drop or merge categories of {names[0]!r}")
-    return (f"logistic fit of {resp!r} did not converge (kernel code {status}) in "
-            f"{MAX_ITER} Newton steps, although no predictor separates the 0s from the 1s; "
-            "check for nearly collinear predictors")
+    fit = (f"logistic fit of {resp!r}" if dropped is None else
+           f"logistic fit of {resp!r} without {prep.names[dropped]!r} (the reduced model of "
+           "its test)")
+    advice = "" if dropped is None else "use statistic='t', or "
+    valid = dd.complete
+    sep = separating_predictors(dd.X[valid][:, cols[1:]], dd.y[valid],
+                                [names[c] for c in cols[1:]], intercept=dd.X[valid][:, 0])
+    if sep:
+        who = f"predictor {sep[0]!r}" + (
+            f" together with {', '.join(repr(n) for n in sep[1:])}" if len(sep) > 1 else "")
+        return (f"{fit}: the 0s and 1s are separated by {who}, so the coefficients have no "
+                f"finite maximum-likelihood value (Albert & Anderson 1984); {advice}use "
+                f"Firth's penalised likelihood (Firth 1993; Heinze & Schemper 2002) or drop "
+                f"or merge categories of {sep[0]!r}")
+    if res.status == FAIL_DYADS:
+        return f"{fit}: no more complete dyads than coefficients"
+    term = names[cols[res.term]] if res.term >= 0 else "?"
+    last = (f"last step: linear predictors moved by up to {res.move:.3g}, most through "
+            f"{term!r}")
+    if res.status == FAIL_SINGULAR:
+        why = "the weighted information X'WX became singular"
+    elif res.status == FAIL_ITERATIONS:
+        why = "the step limit was reached"
+    elif res.status == FAIL_SATURATED:
+        why = (f"the fitted probabilities of some dyads reached 0 or 1 (linear predictor "
+               f"beyond +-{ETA_SATURATED:g})")
+    else:
+        why = "the sums over the dyads are not finite"
+    return (f"{fit} did not converge after {res.steps} Newton steps ({why}; {last}), "
+            "although no combination of the predictors separates the 0s from the 1s; check "
+            "for nearly collinear predictors or predictors of very different scales")
 
 
-def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str]) -> list[str]:
+def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str], *,
+                          intercept: np.ndarray | None = None) -> list[str]:
     """Predictors that separate the 0s from the 1s (Albert & Anderson 1984), or [].
 
-    ``X`` (N, p) holds [1, standardised predictors] on the complete dyads. First a single
-    predictor with the intercept: it separates when every x among the 0s is <= every x
-    among the 1s, or the reverse. Otherwise the linear programme of the module docstring;
-    a separating direction b is confirmed by its margins, and the predictors carrying it
-    are named, largest weight first.
+    ``X`` (N, k) holds the predictors (any scaling) on the fit's dyads, with an intercept.
+    First a single predictor with the intercept: it separates when every x among the 0s is
+    <= every x among the 1s, or the reverse. Otherwise the linear programme of the module
+    docstring over [1, X]; a separating direction b is confirmed by its margins, and the
+    predictors carrying it are named, largest weight first. Identical rows of s_d x_d
+    enter the programme once, weighted by their count (the same optimum: at 10^6 dyads of
+    binary and category predictors the programme shrinks to a few hundred rows).
     """
     from scipy.optimize import linprog
 
     ones = y == 1.0
     for c, name in enumerate(names):
-        x = X[:, c + 1]
+        x = X[:, c]
         if x[~ones].max() <= x[ones].min() or x[ones].max() <= x[~ones].min():
             return [name]
-    A = np.where(ones, 1.0, -1.0)[:, None] * X
-    res = linprog(-A.sum(axis=0), A_ub=-A, b_ub=np.zeros(A.shape[0]),
-                  bounds=[(-1.0, 1.0)] * X.shape[1], method="highs")
+    one = np.ones(X.shape[0]) if intercept is None else intercept
+    A = np.where(ones, 1.0, -1.0)[:, None] * np.column_stack([one, X])
+    A, count = np.unique(A, axis=0, return_counts=True)
+    res = linprog(-(count[:, None] * A).sum(axis=0), A_ub=-A, b_ub=np.zeros(A.shape[0]),
+                  bounds=[(-1.0, 1.0)] * A.shape[1], method="highs")
     if res.status != 0:
         return []
     margins = A @ res.x
@@ -327,29 +397,37 @@ class LogisticPlan:
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """Statistics (B, k) of the relabellings given as row/column permutations."""
+        return self.statistics_and_passes(row_perms, col_perms)[0]
+
+    def statistics_and_passes(self, row_perms: np.ndarray, col_perms: np.ndarray
+                              ) -> tuple[np.ndarray, np.ndarray]:
+        """Statistics (B, k) and the passes over the dyads each relabelling took (B,)."""
         a = self.arrays
-        out = np.empty((row_perms.shape[0], self.k))
+        n_perm = row_perms.shape[0]
+        out = np.empty((n_perm, self.k))
+        passes = np.ones(n_perm, dtype=np.int64)
         rp = np.ascontiguousarray(row_perms, dtype=np.int64)
         cp = rp if col_perms is row_perms else np.ascontiguousarray(col_perms, dtype=np.int64)
         if self.kind in ("score-y-products", "score-dsp-products"):
-            self._products(rp, cp, out)
-            return out
-        common = (a["rows"], a["cols"], rp, cp, a["X"])
+            self._products(rp, cp, out)  # one row-wise pass over the relabelled layers
+            return out, passes
+        common = (a["rows"], a["cols"], rp, cp, a["XT"])
         if self.kind == "refit-y":
-            refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], a["onestep"], out,
-                    MAX_ITER, TOL, self.use_z)
+            refit_y(a["layer"], *common, a["fixed_ok"], a["xmax"], a["beta0"], a["onestep"],
+                    out, passes, MAX_ITER, TOL, self.use_z)
         elif self.kind == "refit-dsp":
-            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"],
-                      a["reduced"], a["cinv"], out, MAX_ITER, TOL, self.use_z)
+            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["xmax"],
+                      a["beta0"], a["reduced"], a["cinv"], out, passes, MAX_ITER, TOL,
+                      self.use_z)
         elif self.kind == "score-dsp-refit":
-            score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["gamma0"],
-                            out, MAX_ITER, TOL)
+            score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["xmax"],
+                            a["gamma0"], out, passes, MAX_ITER, TOL)
         else:
-            score_y(a["layer"], *common, a["fixed_ok"], a["zcols"], a["gamma0"], out, MAX_ITER,
-                    TOL)
+            score_y(a["layer"], *common, a["fixed_ok"], a["xmax"], a["zcols"], a["gamma0"],
+                    a["onestep"], out, passes, MAX_ITER, TOL)
         if not self.use_z:
             out *= self.scale
-        return out
+        return out, passes
 
     def _products(self, rp: np.ndarray, cp: np.ndarray, out: np.ndarray) -> None:
         a = self.arrays
@@ -381,20 +459,16 @@ def _reduced_columns(k: int) -> np.ndarray:
 
 
 def _reduced_fits(prep, dd: DyadData, zcols: np.ndarray, valid: np.ndarray):
-    """Observed reduced fits (estimate, (Z'WZ)^-1) of every term over ``valid``."""
+    """Observed reduced fits (estimate, (Z'WZ)^-1) of every term over ``valid``;
+    NumericalError (``_failure_message``) when one fails."""
     k, q = zcols.shape
     gam = np.empty((k, q))
     cinv = np.empty((k, q, q))
     for j in range(k):
-        status, g, c = fit_logistic(dd.X, zcols[j], dd.y, valid, _null_start(dd.y, valid, q))
-        if status < 0:
-            others = [prep.names[i] for i in range(k) if i != j] or ["the intercept"]
-            raise NumericalError(f"logistic fit of {prep.response_name!r} without "
-                                 f"{prep.names[j]!r} (the reduced model of its test) did not "
-                                 f"converge: the 0s and 1s are separated by "
-                                 f"{', '.join(map(repr, others))}; use statistic='t' or "
-                                 "Firth's penalised likelihood (Firth 1993)")
-        gam[j], cinv[j] = g, c
+        res = fit_logistic(dd.X, zcols[j], dd.y, valid, _null_start(dd.y, valid, q))
+        if res.status < 0:
+            raise NumericalError(_failure_message(prep, dd, res, zcols[j], dropped=j))
+        gam[j], cinv[j] = res.beta, res.cov
     return gam, cinv
 
 
@@ -435,9 +509,11 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     p = k + 1
     N = dd.rows.shape[0]
     X = np.ascontiguousarray(dd.X)
+    XT = design_columns(X)  # (p, N), 0 where missing
+    xmax = np.nan_to_num(np.nanmax(np.abs(X), axis=0))
     fixed_x = ~np.isnan(X).any(axis=1)
     zcols = _reduced_columns(k)
-    common = dict(rows=dd.rows, cols=dd.cols, X=X)
+    common = dict(rows=dd.rows, cols=dd.cols, XT=XT, xmax=xmax)
     use_z = statistic != "coef"
     scale = 1.0 / dd.sd
     refit_work = STEPS_GUESS * N * p * p
@@ -446,15 +522,16 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     def plan(kind, arrays, work, z=use_z):
         return LogisticPlan(kind, arrays, k, prep.n_dyads, z, scale, float(work), **ranges)
 
+    ybar = float(dd.y[dd.complete].mean())
+    w0 = ybar * (1.0 - ybar)
     if scheme == "y":
         layer = np.ascontiguousarray(prep.matrices[k])
         if statistic != "score":
             beta0 = _null_start(dd.y, dd.complete, p)
             onestep = np.zeros((0, p + 1))
             if prep.complete:  # the first Newton step from beta0 needs only X'y_pi
-                ybar = float(dd.y.mean())
                 onestep = np.empty((p, p + 1))
-                onestep[:, :p] = np.linalg.inv(ybar * (1.0 - ybar) * (X.T @ X))
+                onestep[:, :p] = np.linalg.inv(w0 * (X.T @ X))
                 onestep[:, p] = ybar * X.sum(axis=0)
             arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
             return plan("refit-y", arrays, refit_work)
@@ -469,27 +546,38 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
                           fix=_layer(prep, dd, x)[:, :, None], fix_idx=np.zeros(1, np.int64),
                           offset=mu * x.sum(), info=info)
             return plan("score-y-products", arrays, N, True)
-        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gam)
+        onestep = np.zeros((0, k, k + 1))
+        gamma0 = gam
+        if prep.complete:  # each reduced refit starts at the intercept-only fit + a free step
+            gamma0 = np.array([_null_start(dd.y, dd.complete, k) for _ in range(k)])
+            onestep = np.empty((k, k, k + 1))
+            for j in range(k):
+                Z = X[:, zcols[j]]
+                onestep[j, :, :k] = np.linalg.inv(w0 * (Z.T @ Z))
+                onestep[j, :, k] = ybar * Z.sum(axis=0)
+        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gamma0,
+                      onestep=onestep)
         return plan("score-y", arrays, k * refit_work, True)
 
     E = _residual_layers(prep, dd)
     gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+    y = np.ascontiguousarray(dd.y)
     if statistic != "score":
         fixed_ok = _fixed_ok(dd, X, zcols)
         design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
         beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
-        reduced = np.zeros((0, 2 * k))
+        reduced = np.zeros((0, N))
         if prep.complete:  # the first Newton step from beta0 needs only sums over e_pi
-            reduced = np.empty((N, 2 * k))
+            reduced = np.empty((2 * k, N))
             for j in range(k):
                 mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
-                reduced[:, j] = dd.y - mu
-                reduced[:, k + j] = mu * (1.0 - mu)
-        arrays = dict(common, layer=E, y=dd.y, fixed_ok=fixed_ok, design=design, beta0=beta0,
+                reduced[j] = dd.y - mu
+                reduced[k + j] = mu * (1.0 - mu)
+        arrays = dict(common, layer=E, y=y, fixed_ok=fixed_ok, design=design, beta0=beta0,
                       reduced=reduced, cinv=cinv)
         return plan("refit-dsp", arrays, k * refit_work)
     if not prep.complete:
-        arrays = dict(common, layer=E, y=dd.y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,
+        arrays = dict(common, layer=E, y=y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,
                       gamma0=gam)
         return plan("score-dsp-refit", arrays, k * refit_work, True)
     # complete data: the reduced fit of each term is fixed; per relabelling only the sums
@@ -522,9 +610,17 @@ def observed_score(dd: DyadData, prep: _design.Prepared) -> np.ndarray:
     zcols = _reduced_columns(k)
     gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
     out = np.empty(k)
+    valid = np.ascontiguousarray(dd.complete)
+    yv = np.where(valid, np.nan_to_num(dd.y), 0.0)
+    info = np.zeros(INFO_SIZE)
     for j in range(k):
-        out[j] = score_logistic(dd.X, zcols[j], j + 1, dd.y, dd.complete, gam[j], cinv[j],
-                                np.empty((2, k)))
+        cols = np.append(zcols[j], j + 1)
+        XT = design_columns(dd.X, cols)
+        xy = (XT * yv).sum(axis=1)
+        xmax = np.abs(XT[:k, valid]).max(axis=1)
+        # the reduced fit again from its estimate: one Newton step, then the score
+        out[j] = score_logistic(XT, np.empty(0), np.arange(k, dtype=np.int64), k, xy, valid,
+                                xmax, gam[j], info, MAX_ITER, TOL_OBSERVED)
     return out
 
 
