@@ -417,7 +417,8 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         3 qa + 2) and the Newton step d from b (row 3 qa + 5); L, the Cholesky factor of
         H[:q, :q], in rows 2 qa .. 3 qa - 1.
     beta_out : float64 (q,)
-        Written: the estimate b + d (when converged).
+        Written: the estimate b + d (when converged), else the last coefficients (for a
+        separation test: under separation they point along the separating direction).
     cov_out : float64 (q, q)
         Written: H[:q, :q]^-1, the Wald covariance (when converged).
     info : float64 (INFO_SIZE,)
@@ -466,6 +467,8 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
     for it in range(1, max_iter + 1):
         info[INFO_PASSES] = passes
         info[INFO_STEPS] = it - 1
+        for c in range(q):
+            beta_out[c] = beta[c]  # the last coefficients, should the fit fail
         finite = True
         for c in range(q):
             g[c] = xy[c] - f[c]  # g = X'(y - mu)
@@ -476,11 +479,9 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         if not _cholesky(H, L, q):
             return FAIL_SINGULAR
         _cholesky_solve(L, g, d, q)  # Newton step d = H^-1 g
-        lam2 = 0.0
         move = 0.0
         top = 0.0
         for c in range(q):
-            lam2 += d[c] * g[c]
             mc = abs(d[c]) * xmax[c]
             move += mc  # M >= max_d |x_d'd|
             if mc > top:
@@ -489,11 +490,11 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         info[INFO_MOVE] = move
         if move <= tol:
             info[INFO_STEPS] = it
+            for c in range(q):
+                beta_out[c] = beta[c] + d[c]
             if eta_max > ETA_SATURATED:
                 return FAIL_SATURATED
             _cholesky_inverse(L, tmp, cov_out, q)
-            for c in range(q):
-                beta_out[c] = beta[c] + d[c]
             return it
         s = 1.0
         accepted = False

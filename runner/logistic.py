@@ -130,6 +130,12 @@ STEPS_GUESS = 3
 SEPARATION_SLACK = 1e-9
 # Weight (of the largest) above which a predictor is named as part of a separating direction.
 SEPARATION_SHARE = 1e-3
+# The separation test's linear programme runs on a subset of about this many dyads, grown
+# by the dyads a candidate direction leaves on the wrong side, for at most
+# SEPARATION_ROUNDS rounds; an optimum below SEPARATION_ZERO times the largest |a_d| is 0.
+SEPARATION_SAMPLE = 20_000
+SEPARATION_ROUNDS = 30
+SEPARATION_ZERO = 1e-9
 
 
 # --- checks ---------------------------------------------------------------------------------
@@ -306,8 +312,10 @@ def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols:
            "its test)")
     advice = "" if dropped is None else "use statistic='t', or "
     valid = dd.complete
-    sep = separating_predictors(dd.X[valid][:, cols[1:]], dd.y[valid],
-                                [names[c] for c in cols[1:]], intercept=dd.X[valid][:, 0])
+    Xv = dd.X[valid][:, cols]
+    eta = Xv @ res.beta if np.all(np.isfinite(res.beta)) else None
+    sep = separating_predictors(Xv[:, 1:], dd.y[valid], [names[c] for c in cols[1:]],
+                                intercept=Xv[:, 0], eta=eta)
     if sep:
         who = f"predictor {sep[0]!r}" + (
             f" together with {', '.join(repr(n) for n in sep[1:])}" if len(sep) > 1 else "")
@@ -335,16 +343,25 @@ def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols:
 
 
 def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str], *,
-                          intercept: np.ndarray | None = None) -> list[str]:
+                          intercept: np.ndarray | None = None,
+                          eta: np.ndarray | None = None) -> list[str]:
     """Predictors that separate the 0s from the 1s (Albert & Anderson 1984), or [].
 
-    ``X`` (N, k) holds the predictors (any scaling) on the fit's dyads, with an intercept.
-    First a single predictor with the intercept: it separates when every x among the 0s is
-    <= every x among the 1s, or the reverse. Otherwise the linear programme of the module
-    docstring over [1, X]; a separating direction b is confirmed by its margins, and the
-    predictors carrying it are named, largest weight first. Identical rows of s_d x_d
-    enter the programme once, weighted by their count (the same optimum: at 10^6 dyads of
-    binary and category predictors the programme shrinks to a few hundred rows).
+    ``X`` (N, k) holds the predictors on the fit's dyads (an intercept is added). First a
+    single predictor with the intercept: it separates when every x among the 0s is <= every
+    x among the 1s, or the reverse. Otherwise the linear programme of the module docstring
+    over the rows a_d = s_d [1, x_d], by cutting planes so that 10^6 dyads cost little:
+
+    - on a subset S of the dyads (a systematic sample, the dyads with the largest |eta| of
+      the failed fit ``eta`` — the ones a separation drives to 0 or 1 — and each
+      predictor's extremes in each class; identical rows once, weighted by their count);
+    - an optimum of 0 on S proves overlap there: some lambda > 0 has A_S'lambda = 0
+      (Gordan's alternative), so if A_S has full column rank no b != 0 has A b >= 0 on all
+      the dyads, and the data are not separated;
+    - a positive optimum gives a direction b; if every dyad has a_d'b >= 0 (up to
+      SEPARATION_SLACK of the largest margin) the data are separated along b, and the
+      predictors carrying it are named, largest weight first; otherwise the most violated
+      dyads join S and the programme runs again.
     """
     from scipy.optimize import linprog
 
@@ -353,22 +370,40 @@ def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str], *,
         x = X[:, c]
         if x[~ones].max() <= x[ones].min() or x[ones].max() <= x[~ones].min():
             return [name]
-    one = np.ones(X.shape[0]) if intercept is None else intercept
+    n_dyads = X.shape[0]
+    one = np.ones(n_dyads) if intercept is None else intercept
     A = np.where(ones, 1.0, -1.0)[:, None] * np.column_stack([one, X])
-    A, count = np.unique(A, axis=0, return_counts=True)
-    res = linprog(-(count[:, None] * A).sum(axis=0), A_ub=-A, b_ub=np.zeros(A.shape[0]),
-                  bounds=[(-1.0, 1.0)] * A.shape[1], method="highs")
-    if res.status != 0:
-        return []
-    margins = A @ res.x
-    top = margins.max()
-    if not top > 0.0 or margins.min() < -SEPARATION_SLACK * top:
-        return []
-    w = np.abs(res.x[1:])
-    if not w.max() > 0.0:
-        return []
-    order = np.argsort(-w, kind="stable")
-    return [names[c] for c in order if w[c] > SEPARATION_SHARE * w.max()]
+    pick = [np.arange(0, n_dyads, max(1, n_dyads // SEPARATION_SAMPLE))]
+    if eta is not None:
+        pick.append(np.argsort(-np.abs(eta), kind="stable")[:SEPARATION_SAMPLE // 10])
+    for cls in (ones, ~ones):
+        at = np.flatnonzero(cls)
+        for c in range(X.shape[1]):
+            pick += [at[[np.argmin(X[at, c]), np.argmax(X[at, c])]]]
+    S = np.unique(np.concatenate(pick))
+    for _ in range(SEPARATION_ROUNDS):
+        rows, count = np.unique(A[S], axis=0, return_counts=True)
+        res = linprog(-(count[:, None] * rows).sum(axis=0), A_ub=-rows,
+                      b_ub=np.zeros(rows.shape[0]), bounds=[(-1.0, 1.0)] * A.shape[1],
+                      method="highs")
+        if res.status != 0:
+            return []
+        top = (rows @ res.x).max()
+        if not top > SEPARATION_ZERO * np.abs(rows).max():
+            if np.linalg.matrix_rank(rows) == A.shape[1]:
+                return []  # overlap on a full-rank subset: not separated
+            S = np.union1d(S, np.arange(1, n_dyads, max(1, n_dyads // SEPARATION_SAMPLE)))
+            continue
+        margins = A @ res.x
+        if margins.min() >= -SEPARATION_SLACK * top:
+            w = np.abs(res.x[1:])
+            if not w.max() > 0.0:
+                return []
+            order = np.argsort(-w, kind="stable")
+            return [names[c] for c in order if w[c] > SEPARATION_SHARE * w.max()]
+        worst = np.argsort(margins, kind="stable")[:SEPARATION_SAMPLE // 10]
+        S = np.union1d(S, worst[margins[worst] < 0.0])
+    return []
 
 
 # --- the plan -------------------------------------------------------------------------------
