@@ -198,6 +198,8 @@ def _h_bound(u):
     """h(u) = (e^u - 1 - u) / u^2 (u >= 0): the deviance bound's curvature factor."""
     if u < 1e-4:
         return 0.5 + u / 6.0 + u * u / 24.0
+    if u > 700.0:  # past exp's range: no step that long is certified
+        return np.inf
     return (np.expm1(u) - u) / (u * u)
 
 
@@ -965,6 +967,462 @@ def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, 
                                 acc, state, gamma, cinv, info, max_iter, tol)
             passes[b] += int(info[INFO_PASSES])
             out[b, a] = np.nan if status < 0 else score_from_state(state, q, qa, xy[q])
+
+
+# --- scheme y with complete data: the fits from moments of the design -----------------------
+# With every dyad observed, a Y-permutation fit depends on the relabelled response only
+# through S = X'y_pi (the canonical link's sufficient statistic); everything else is a
+# function of the coefficients over the fixed design. Expanding the logistic function
+# about the intercept b_0, with u_d = x~_d'b~ (x~ the k predictors, b~ their coefficients),
+#
+#     sum_d x_d sigma(b_0 + u_d) = sum_j a_j(b_0) sum_d x_d u_d^j,
+#     sum_d x_d x_d' w(b_0 + u_d) = sum_j (j + 1) a_(j+1)(b_0) sum_d x_d x_d' u_d^j,
+#
+# a_j(eta) = sigma^(j)(eta) / j!, and sum_d x_d u_d^j is a contraction of the moments
+# m_alpha = sum_d prod_c x~_dc^alpha_c of the design with b~: X'mu and X'WX cost a few
+# thousand multiply-adds per Newton step instead of a pass over the dyads. sigma has poles
+# at i pi (2m + 1), residue 1 (sigma - 1/2 = sum_m 2z / (z^2 + pi^2 (2m + 1)^2)), so
+# |a_j(eta)| <= 2 sum_m rho_m^-(j+1), rho_m = |eta + i pi (2m + 1)|, and truncating the
+# series after degree D leaves, per dyad, at most
+#
+#     tail_mu = 2 sum_m (U / rho_m)^(D+1) / (rho_m (1 - U / rho_m)),
+#     tail_w  = 2 sum_m (U / rho_m)^(D+1) ((D + 2) - (D + 1) U / rho_m) / (rho_m^2 (1 - U / rho_m)^2),
+#
+# with U = sum_c |b~_c| xmax_c >= max_d |u_d|. Every evaluation checks that both are below
+# SERIES_REL w(b_0) (the rounding of mu in a pass); if not, that relabelling is refitted by
+# passes over the dyads (``newton_fit``), so a statistic never depends on a truncation.
+
+# Poles of sigma summed in the tail bound (the rest adds less than 1e-30 when U < 100).
+SERIES_POLES = 64
+# Truncation allowed per dyad, relative to w(b_0).
+SERIES_REL = 2.0 ** -52
+# Dyads per block in ``series_moments``.
+SERIES_BLOCK = 32
+# Return code of ``series_fit``: a truncation bound failed; refit by passes over the dyads.
+SERIES_FALLBACK = -6
+
+
+def monomial_tables(k, degree):
+    """Monomials of k variables of degree <= ``degree`` in graded order (degree, then
+    lexicographic in the exponents, first variable highest), as arrays for the kernels:
+
+    expo (n, k) exponents; deg (n,); parent (n,) and pvar (n,): monomial a is monomial
+    parent[a] times variable pvar[a] (its first variable with a positive exponent; -1 for
+    the constant); mult (n,) the multinomial coefficient |a|! / prod a_c!; up1 (n, k)
+    position of a + e_c and up2 (n, k (k + 1) / 2) of a + e_c + e_c' (c <= c'), or -1
+    past ``degree``.
+    """
+    import itertools
+    import math
+
+    expo = []
+    for dg in range(degree + 1):
+        level = [a for a in itertools.product(range(dg, -1, -1), repeat=k) if sum(a) == dg]
+        expo.extend(sorted(level, reverse=True))
+    index = {a: i for i, a in enumerate(expo)}
+    n = len(expo)
+    deg = np.array([sum(a) for a in expo], dtype=np.int64)
+    parent = np.full(n, -1, dtype=np.int64)
+    pvar = np.full(n, -1, dtype=np.int64)
+    mult = np.empty(n)
+    up1 = np.full((n, k), -1, dtype=np.int64)
+    up2 = np.full((n, k * (k + 1) // 2), -1, dtype=np.int64)
+    for i, a in enumerate(expo):
+        mult[i] = math.factorial(sum(a)) / math.prod(math.factorial(e) for e in a)
+        if i:
+            c = next(c for c in range(k) if a[c] > 0)
+            parent[i] = index[a[:c] + (a[c] - 1,) + a[c + 1:]]
+            pvar[i] = c
+        t = 0
+        for c in range(k):
+            b = a[:c] + (a[c] + 1,) + a[c + 1:]
+            up1[i, c] = index.get(b, -1)
+            for c2 in range(c, k):
+                b2 = b[:c2] + (b[c2] + 1,) + b[c2 + 1:]
+                up2[i, t] = index.get(b2, -1)
+                t += 1
+    return dict(expo=np.array(expo, dtype=np.int64).reshape(n, k), deg=deg, parent=parent,
+                pvar=pvar, mult=mult, up1=up1, up2=up2)
+
+
+@njit(**KERNEL_OPTIONS)
+def series_moments(XT, parent, pvar, out):
+    """Moments of the predictors: out[a] = sum_d prod_c x_dc^expo[a, c] over the dyads.
+
+    Parameters
+    ----------
+    XT : float64 (k + 1, N)
+        The design, intercept first (row 0 is not read); rows 1..k the predictors.
+    parent, pvar : int64 (n,)
+        ``monomial_tables``: monomial a = monomial parent[a] * x_(pvar[a]).
+    out : float64 (n,)
+        Written. Sums in three levels as in ``newton_pass`` (lanes of a block of
+        SERIES_BLOCK dyads, super-blocks, the total).
+    """
+    n_mono = parent.shape[0]
+    n = XT.shape[1]
+    vals = np.empty((n_mono, SERIES_BLOCK))
+    ones = np.ones(SERIES_BLOCK)
+    acc = np.zeros(n_mono)
+    for a in range(n_mono):
+        out[a] = 0.0
+    n_blocks = 0
+    for d0 in range(0, n, SERIES_BLOCK):
+        nb = min(SERIES_BLOCK, n - d0)
+        v0 = vals[0]
+        for i in range(SERIES_BLOCK):
+            v0[i] = 1.0 if i < nb else 0.0
+        for a in range(1, n_mono):
+            src = vals[parent[a]]
+            dst = vals[a]
+            x = XT[1 + pvar[a], d0:d0 + nb]
+            for i in range(nb):
+                dst[i] = src[i] * x[i]  # x^a = x^parent * x_c
+            for i in range(nb, SERIES_BLOCK):
+                dst[i] = 0.0
+        for a in range(n_mono):
+            acc[a] += vdot(vals[a], ones, SERIES_BLOCK)
+        n_blocks += 1
+        if n_blocks == SUPER or d0 + SERIES_BLOCK >= n:
+            for a in range(n_mono):
+                out[a] += acc[a]
+                acc[a] = 0.0
+            n_blocks = 0
+
+
+@njit(**KERNEL_OPTIONS)
+def logistic_taylor(eta, out):
+    """out[j] = sigma^(j)(eta) / j! for j < out.shape[0]: the Taylor coefficients of the
+    logistic function at eta.
+
+    For eta <= 0, with t = e^eta, sigma(eta + u) = E / (1 + E), E(u) = t e^u: the
+    coefficients of E are t / j!, and sigma (1 + E) = E gives
+    s_j = (t / j! - sum_(i=1..j) (t / i!) s_(j-i)) / (1 + t). For eta > 0,
+    sigma(eta + u) = 1 - sigma(-eta - u).
+    """
+    n = out.shape[0]
+    t = np.exp(-abs(eta))
+    fact = 1.0
+    for j in range(n):
+        if j > 0:
+            fact *= j
+        s = t / fact
+        ifact = 1.0
+        for i in range(1, j + 1):
+            ifact *= i
+            s -= (t / ifact) * out[j - i]
+        out[j] = s / (1.0 + t)
+    if eta > 0.0:
+        out[0] = 1.0 - out[0]
+        for j in range(1, n):
+            out[j] = -out[j] if j % 2 == 0 else out[j]
+
+
+@njit(**KERNEL_OPTIONS)
+def series_tail(eta, U, D):
+    """(tail_mu, tail_w): bounds on the truncation of the series after degree D, per dyad,
+    for |u_d| <= U (see the section comment); inf when U reaches the radius."""
+    tg = 0.0
+    th = 0.0
+    for m in range(SERIES_POLES):
+        im = np.pi * (2 * m + 1)
+        rho = np.sqrt(eta * eta + im * im)
+        r = U / rho
+        if r >= 1.0:
+            return np.inf, np.inf
+        rd = r ** (D + 1)
+        tg += 2.0 * rd / (rho * (1.0 - r))
+        th += 2.0 * rd * ((D + 2) - (D + 1) * r) / (rho * rho * (1.0 - r) * (1.0 - r))
+    return tg, th
+
+
+@njit(**KERNEL_OPTIONS)
+def series_sums(mom, deg, parent, pvar, mult, up1, up2, n_alpha, coef, b, pw, F, H):
+    """X'mu and X'WX at the coefficients b (p = k + 1, intercept first) from the moments.
+
+    With a_j = ``coef`` [sigma^(j)(b_0) / j!] and, for each monomial alpha of degree
+    j <= D (the first ``n_alpha`` of the tables), c_alpha = mult_alpha b~^alpha:
+    F_0 = sum a_j c_alpha m_alpha, F_c = sum a_j c_alpha m_(alpha + e_c),
+    H_00 = sum (j + 1) a_(j+1) c_alpha m_alpha, H_0c and H_cc' alike with
+    m_(alpha + e_c), m_(alpha + e_c + e_c'). ``pw`` (n_alpha,) scratch.
+    """
+    p = F.shape[0]
+    k = p - 1
+    for r in range(p):
+        F[r] = 0.0
+        for c in range(p):
+            H[r, c] = 0.0
+    for a in range(n_alpha):
+        if a == 0:
+            pw[0] = 1.0
+        else:
+            pw[a] = pw[parent[a]] * b[1 + pvar[a]]  # b~^alpha
+        j = deg[a]
+        base = mult[a] * pw[a]
+        wg = coef[j] * base
+        wh = (j + 1) * coef[j + 1] * base
+        m0 = mom[a]
+        F[0] += wg * m0
+        H[0, 0] += wh * m0
+        t = 0
+        for c in range(k):
+            m1 = mom[up1[a, c]]
+            F[1 + c] += wg * m1
+            H[0, 1 + c] += wh * m1
+            for c2 in range(c, k):
+                H[1 + c, 1 + c2] += wh * mom[up2[a, t]]
+                t += 1
+    for r in range(p):
+        for c in range(r):
+            H[r, c] = H[c, r]
+
+
+@njit(**KERNEL_OPTIONS)
+def _series_eval(mom, tables_deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, b, coef,
+                 pw, F, H):
+    """``series_sums`` at b after the tail check; False when the truncation bound fails."""
+    U = 0.0
+    for c in range(1, b.shape[0]):
+        U += abs(b[c]) * xmax[c]
+    eta = b[0]
+    if not np.isfinite(U) or not np.isfinite(eta):
+        return False
+    tg, th = series_tail(eta, U, D)
+    t = np.exp(-abs(eta))
+    w0 = t / ((1.0 + t) * (1.0 + t))
+    if not (tg <= SERIES_REL * w0) or not (th <= SERIES_REL * w0):
+        return False
+    logistic_taylor(eta, coef)
+    series_sums(mom, tables_deg, parent, pvar, mult, up1, up2, n_alpha, coef, b, pw, F, H)
+    return True
+
+
+def series_workspace(p):
+    """Shape of the ``state`` workspace of ``series_fit`` for p design columns."""
+    return (4 * p + 6, p)
+
+
+@njit(**KERNEL_OPTIONS)
+def series_fit(S, cols, mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, beta0,
+               coefs, pw, state, max_iter, tol):
+    """Newton's method for the model on the design columns ``cols`` (intercept first) of a
+    complete-data Y-permutation fit, X'mu and X'WX from the moments (``series_sums``).
+
+    Parameters
+    ----------
+    S : float64 (p,)
+        X'y_pi of all p design columns.
+    cols : int64 (q,)
+        The model's columns (0 first); the other coefficients are 0.
+    mom, deg, parent, pvar, mult, up1, up2 : ``series_moments`` and ``monomial_tables``
+        (degree D + 2); n_alpha monomials of degree <= D.
+    xmax : float64 (p,)
+        max |x_c| over the dyads.
+    beta0 : float64 (q,)
+        Start.
+    coefs : float64 (D + 2,); pw : float64 (n_alpha,); state : ``series_workspace(p)``
+        Workspaces. On return (converged) ``state`` holds H = X'WX (rows 0..p-1) and
+        F = X'mu (row 4p + 2) at the estimate (row 4p), and in rows 3p..4p-1 the Cholesky
+        factor of H[cols][:, cols].
+
+    The steps, their acceptance and convergence are those of ``newton_fit`` (module
+    docstring); the estimate is b + d, where X'mu and X'WX are evaluated once more (so
+    the Wald covariance and the score are exact there).
+
+    Returns the Newton steps (>= 1), SERIES_FALLBACK when a truncation bound failed (the
+    caller refits by passes), or a negative FAIL_* code.
+    """
+    p = S.shape[0]
+    q = cols.shape[0]
+    H = state[0:p]
+    Ht = state[p:2 * p]
+    Hq = state[2 * p:3 * p]
+    L = state[3 * p:4 * p]
+    b = state[4 * p]
+    trial = state[4 * p + 1]
+    F = state[4 * p + 2]
+    Ft = state[4 * p + 3]
+    g = state[4 * p + 4]
+    d = state[4 * p + 5]
+    for c in range(p):
+        b[c] = 0.0
+    for c in range(q):
+        b[cols[c]] = beta0[c]
+    if not _series_eval(mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, b, coefs,
+                        pw, F, H):
+        return SERIES_FALLBACK
+    for it in range(1, max_iter + 1):
+        for r in range(q):
+            g[r] = S[cols[r]] - F[cols[r]]  # g = X'(y - mu)
+            for c in range(q):
+                Hq[r, c] = H[cols[r], cols[c]]
+        if not _cholesky(Hq, L, q):
+            return FAIL_SINGULAR
+        _cholesky_solve(L, g, d, q)
+        move = 0.0
+        for c in range(q):
+            move += abs(d[c]) * xmax[cols[c]]
+        if move <= tol:
+            for c in range(q):
+                b[cols[c]] += d[c]
+            if not _series_eval(mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, b,
+                                coefs, pw, F, H):
+                return SERIES_FALLBACK
+            for r in range(q):
+                for c in range(q):
+                    Hq[r, c] = H[cols[r], cols[c]]
+            if not _cholesky(Hq, L, q):
+                return FAIL_SINGULAR
+            return it
+        s = 1.0
+        accepted = False
+        for _ in range(MAX_HALVINGS + 1):
+            sm = s * move
+            certified = s * _h_bound(sm) < 1.0
+            for c in range(p):
+                trial[c] = b[c]
+            for c in range(q):
+                trial[cols[c]] += s * d[c]
+            if not _series_eval(mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax,
+                                trial, coefs, pw, Ft, Ht):
+                return SERIES_FALLBACK
+            if not certified:
+                dhd = 0.0
+                dg = 0.0
+                for r in range(q):
+                    dg += d[r] * (S[cols[r]] - Ft[cols[r]])
+                    hr = 0.0
+                    for c in range(q):
+                        hr += Ht[cols[r], cols[c]] * d[c]
+                    dhd += d[r] * hr
+                certified = s * dhd * _k_bound(sm) + dg > 0.0
+            if certified:
+                accepted = True
+                break
+            s *= 0.5
+        if not accepted:
+            return FAIL_STEP
+        for r in range(p):
+            b[r] = trial[r]
+            F[r] = Ft[r]
+            for c in range(p):
+                H[r, c] = Ht[r, c]
+    return FAIL_ITERATIONS
+
+
+@njit(**KERNEL_OPTIONS)
+def series_y(S, XT, mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, beta0, onestep,
+             zcols, out, passes, max_iter, tol, use_z):
+    """Y-permutation statistics with complete data from X'y_pi (``series_fit``), with a
+    refit by passes over the dyads (``newton_fit``) for a relabelling whose series bound
+    fails.
+
+    Parameters
+    ----------
+    S : float64 (B, p)
+        X'y_pi of each relabelling (the linear engine's ``gather_cross``).
+    XT : float64 (p, N)
+        The design (for the refits by passes).
+    mom .. D : see ``series_fit``.
+    xmax : float64 (p,)
+        max |x_c| over the dyads.
+    beta0 : float64 (p,)
+        The fit of the intercept alone, (logit(mean y), 0, ..): every fit starts there
+        (reduced models at its first q entries).
+    onestep : float64 (1, p, p + 1) or, with ``zcols``, (K, q, q + 1)
+        The free first Newton step from beta0 of the refits by passes (as in ``refit_y``
+        and ``score_y``), of the full model or of each reduced model.
+    zcols : int64 (K, q), or (0, q) for the full model
+        Score statistics: columns of term a's reduced model (term a's column is a + 1).
+    out : float64 (B, p - 1) or (B, K)
+        Written: Wald z (``use_z``) or coefficients of the full model's predictors, or the
+        signed score statistics (Rao 1948) of the terms; NaN for a failed fit.
+    passes : int64 (B,)
+        Written: passes over the dyads (1, the gather, plus those of refits by passes).
+    """
+    n_perm, p = S.shape
+    n_dyads = XT.shape[1]
+    n_terms = zcols.shape[0]
+    score = n_terms > 0
+    q = zcols.shape[1] if score else p
+    qa = q + 1 if score else p
+    state = np.empty((4 * p + 6, p))
+    coefs = np.empty(D + 2)
+    pw = np.empty(n_alpha)
+    cov = np.empty((q, q))
+    tmp = np.empty(p)
+    vec = np.empty(p)
+    valid = np.ones(n_dyads, dtype=np.bool_)
+    ext = np.empty(0)
+    blk = np.empty((2 * qa + 3, BLOCK))
+    kb = np.empty(BLOCK, dtype=np.int64)
+    acc = np.empty((qa + 1, qa))
+    pstate = np.empty((3 * qa + 7, qa))
+    info = np.empty(INFO_SIZE)
+    beta = np.empty(q)
+    start = np.empty(q)
+    xy = np.empty(qa)
+    xm = np.empty(q)
+    cols = np.empty(qa, dtype=np.int64)
+    L = state[3 * p:4 * p]
+    H = state[0:p]
+    F = state[4 * p + 2]
+    est = state[4 * p]
+    for b in range(n_perm):
+        Sb = S[b]
+        passes[b] = 1
+        for a in range(max(n_terms, 1)):
+            for c in range(q):
+                cols[c] = zcols[a, c] if score else c
+            if score:
+                cols[q] = a + 1
+            status = series_fit(Sb, cols[:q], mom, deg, parent, pvar, mult, up1, up2,
+                                n_alpha, D, xmax, beta0[:q], coefs, pw, state, max_iter, tol)
+            if status == SERIES_FALLBACK:
+                # refit by passes over the dyads, from beta0 and its free first step
+                for c in range(qa):
+                    xy[c] = Sb[cols[c]]
+                for c in range(q):
+                    xm[c] = xmax[cols[c]]
+                    start[c] = beta0[c]
+                    for e in range(q):
+                        start[c] += onestep[a, c, e] * (xy[e] - onestep[a, e, q])
+                st = newton_fit(XT, ext, cols[:qa], q, xy, valid, True, xm, start, blk, kb,
+                                acc, pstate, beta, cov, info, max_iter, tol)
+                passes[b] += int(info[INFO_PASSES])
+                if score:
+                    out[b, a] = np.nan if st < 0 else score_from_state(pstate, q, qa, xy[q])
+                else:
+                    for j in range(1, p):
+                        out[b, j - 1] = (np.nan if st < 0 else
+                                         beta[j] / np.sqrt(cov[j, j]) if use_z else beta[j])
+                continue
+            if status < 0:
+                if score:
+                    out[b, a] = np.nan
+                else:
+                    for j in range(1, p):
+                        out[b, j - 1] = np.nan
+                continue
+            if score:
+                # U = x'(y - mu), I = x'Wx - x'WZ (Z'WZ)^-1 Z'Wx at the reduced estimate
+                x = a + 1
+                u = Sb[x] - F[x]
+                for c in range(q):
+                    vec[c] = H[x, cols[c]]
+                _cholesky_solve(L, vec, tmp, q)
+                quad = 0.0
+                for c in range(q):
+                    quad += vec[c] * tmp[c]
+                info_x = H[x, x] - quad
+                if not (info_x > SINGULAR_PIVOT * H[x, x]) or not (info_x > 0.0):
+                    out[b, a] = np.nan
+                else:
+                    out[b, a] = u / np.sqrt(info_x)
+            else:
+                _cholesky_inverse(L, tmp, cov, q)
+                for j in range(1, p):
+                    out[b, j - 1] = est[j] / np.sqrt(cov[j, j]) if use_z else est[j]
 
 
 @njit(**KERNEL_OPTIONS)

@@ -110,8 +110,9 @@ from .errors import DyadpermWarning, InputError, NumericalError
 from .kernels.gather import gather_cross
 from .kernels.irls import (ETA_SATURATED, FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED,
                            FAIL_SINGULAR, INFO_MOVE, INFO_PASSES, INFO_SIZE, INFO_STEPS,
-                           INFO_TERM, SCORE_BLOCK, irls_logistic, refit_dsp, refit_y,
-                           score_dsp_refit, score_from_sums, score_logistic, score_rows, score_y)
+                           INFO_TERM, SCORE_BLOCK, SERIES_REL, irls_logistic, monomial_tables,
+                           refit_dsp, refit_y, score_dsp_refit, score_from_sums, score_logistic,
+                           score_rows, score_y, series_moments, series_tail, series_y)
 
 SCHEMES = ("y", "dsp")
 STATISTICS = ("t", "coef", "score")
@@ -125,6 +126,12 @@ TOL = 1e-7
 TOL_OBSERVED = 1e-10
 # Passes over the dyads assumed per refit when sizing chunks.
 STEPS_GUESS = 3
+# Scheme y with complete data fits from moments of the design when a series of degree at
+# most SERIES_MAX_DEGREE, over at most SERIES_MAX_MONOMIALS moments, is exact out to
+# SERIES_SE standard errors on every slope (``_series_degree``).
+SERIES_SE = 8.0
+SERIES_MAX_DEGREE = 30
+SERIES_MAX_MONOMIALS = 6000
 # A separating direction found by the linear programme must leave no dyad on the wrong
 # side by more than this (relative to its largest margin).
 SEPARATION_SLACK = 1e-9
@@ -446,6 +453,17 @@ class LogisticPlan:
         if self.kind in ("score-y-products", "score-dsp-products"):
             self._products(rp, cp, out)  # one row-wise pass over the relabelled layers
             return out, passes
+        if self.kind == "series-y":
+            S = np.empty((n_perm, 1, a["XT"].shape[0]))
+            gather_cross(a["rel"], a["rel_idx"], a["fix"], a["fix_idx"], rp, cp,
+                         self.col_start, self.col_stop, S)  # X'y_pi
+            series_y(S[:, 0, :], a["XT"], a["mom"], a["deg"], a["parent"], a["pvar"],
+                     a["mult"], a["up1"], a["up2"], a["n_alpha"], a["degree"], a["xmax"],
+                     a["beta0"], a["onestep"], a["zcols"], out, passes, MAX_ITER, TOL,
+                     self.use_z)
+            if not self.use_z:
+                out *= self.scale
+            return out, passes
         common = (a["rows"], a["cols"], rp, cp, a["XT"])
         if self.kind == "refit-y":
             refit_y(a["layer"], *common, a["fixed_ok"], a["xmax"], a["beta0"], a["onestep"],
@@ -507,6 +525,27 @@ def _reduced_fits(prep, dd: DyadData, zcols: np.ndarray, valid: np.ndarray):
     return gam, cinv
 
 
+def _series_degree(X: np.ndarray, xmax: np.ndarray, eta0: float, w0: float) -> int | None:
+    """Degree of the moment series of scheme y (kernels.irls, section "scheme y with complete
+    data"), or None when the series would not pay.
+
+    Relabelled fits have slopes of a few standard errors of the intercept-only fit's
+    information w0 X'X; the series must be exact (its truncation below the rounding of a
+    pass) out to SERIES_SE of them on every predictor at once. None when that needs a
+    degree above SERIES_MAX_DEGREE or more than SERIES_MAX_MONOMIALS moments.
+    """
+    k = X.shape[1] - 1
+    se = np.sqrt(np.diag(np.linalg.inv(w0 * (X.T @ X))))
+    U = SERIES_SE * float(se[1:] @ xmax[1:])
+    for degree in range(2, SERIES_MAX_DEGREE + 1):
+        if math.comb(degree + 2 + k, k) > SERIES_MAX_MONOMIALS:
+            return None
+        tail_mu, tail_w = series_tail(eta0, U, degree)
+        if tail_mu <= SERIES_REL * w0 and tail_w <= SERIES_REL * w0:
+            return degree
+    return None
+
+
 def _residual_layers(prep, dd: DyadData) -> np.ndarray:
     """(n, m, k): each standardised predictor's residual on the other terms, as a matrix.
 
@@ -561,17 +600,11 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     w0 = ybar * (1.0 - ybar)
     if scheme == "y":
         layer = np.ascontiguousarray(prep.matrices[k])
-        if statistic != "score":
-            beta0 = _null_start(dd.y, dd.complete, p)
-            onestep = np.zeros((0, p + 1))
-            if prep.complete:  # the first Newton step from beta0 needs only X'y_pi
-                onestep = np.empty((p, p + 1))
-                onestep[:, :p] = np.linalg.inv(w0 * (X.T @ X))
-                onestep[:, p] = ybar * X.sum(axis=0)
-            arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
-            return plan("refit-y", arrays, refit_work)
-        gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
-        if prep.complete and k == 1:
+        beta0 = _null_start(dd.y, dd.complete, p)
+        score = statistic == "score"
+        if score:
+            gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+        if score and prep.complete and k == 1:
             # the intercept-only fit is invariant (sum y_pi = sum y): one product per
             # relabelling, x'y_pi
             mu = 1.0 / (1.0 + np.exp(-gam[0, 0]))
@@ -581,15 +614,45 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
                           fix=_layer(prep, dd, x)[:, :, None], fix_idx=np.zeros(1, np.int64),
                           offset=mu * x.sum(), info=info)
             return plan("score-y-products", arrays, N, True)
-        onestep = np.zeros((0, k, k + 1))
+        # the free first Newton step of a refit by passes from the intercept-only fit
+        # (every fitted probability mean(y) there): it needs only X'y_pi
+        if not score:
+            onestep = np.zeros((0, p + 1))
+            if prep.complete:
+                onestep = np.empty((p, p + 1))
+                onestep[:, :p] = np.linalg.inv(w0 * (X.T @ X))
+                onestep[:, p] = ybar * X.sum(axis=0)
+        else:
+            onestep = np.zeros((0, k, k + 1))
+            if prep.complete:
+                onestep = np.empty((k, k, k + 1))
+                for j in range(k):
+                    Z = X[:, zcols[j]]
+                    onestep[j, :, :k] = np.linalg.inv(w0 * (Z.T @ Z))
+                    onestep[j, :, k] = ybar * Z.sum(axis=0)
+        degree = _series_degree(X, xmax, beta0[0], w0) if prep.complete else None
+        if degree is not None:
+            # complete data: every fit from X'y_pi and the moments of the design
+            tables = monomial_tables(k, degree + 2)
+            mom = np.empty(tables["deg"].shape[0])
+            series_moments(XT, tables["parent"], tables["pvar"], mom)
+            fix = np.ascontiguousarray(np.stack([_layer(prep, dd, XT[c]) for c in range(p)],
+                                                axis=2))
+            arrays = dict(common, rel=np.nan_to_num(layer)[:, :, None],
+                          rel_idx=np.zeros(1, np.int64), fix=fix,
+                          fix_idx=np.arange(p, dtype=np.int64), mom=mom, degree=degree,
+                          n_alpha=int((tables["deg"] <= degree).sum()), beta0=beta0,
+                          onestep=onestep if score else onestep[None],
+                          zcols=zcols if score else np.zeros((0, k), np.int64),
+                          **{key: tables[key] for key in ("deg", "parent", "pvar", "mult",
+                                                          "up1", "up2")})
+            return plan("series-y", arrays, N * p, True if score else use_z)
+        if not score:
+            arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
+            return plan("refit-y", arrays, refit_work)
         gamma0 = gam
         if prep.complete:  # each reduced refit starts at the intercept-only fit + a free step
-            gamma0 = np.array([_null_start(dd.y, dd.complete, k) for _ in range(k)])
-            onestep = np.empty((k, k, k + 1))
-            for j in range(k):
-                Z = X[:, zcols[j]]
-                onestep[j, :, :k] = np.linalg.inv(w0 * (Z.T @ Z))
-                onestep[j, :, k] = ybar * Z.sum(axis=0)
+            gamma0 = np.array([beta0[:k] for _ in range(k)])
         arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gamma0,
                       onestep=onestep)
         return plan("score-y", arrays, k * refit_work, True)
