@@ -631,16 +631,18 @@ def _flush(part, total):
 
 
 @njit(**KERNEL_OPTIONS)
-def _gather_response(layer, rows, cols, rp, cp, XT, fixed_ok, valid, part, s):
+def _gather_response(layer, rows, cols, rp, cp, XT, fixed_ok, ybuf, valid, part, s):
     """valid[d] = fixed_ok[d] and y_pi[d] finite, and s = X'y_pi over the valid dyads, with
-    y_pi[d] = layer[rp[rows[d]], cp[cols[d]]]; True when every dyad is valid."""
+    y_pi[d] = layer[rp[rows[d]], cp[cols[d]]] (gathered into ``ybuf``); True when every
+    dyad is valid."""
     p, n_dyads = XT.shape
+    gather_rows(layer, rows, cols, rp, cp, ybuf)
     for c in range(p):
         part[c] = 0.0
         s[c] = 0.0
     complete = True
     for d in range(n_dyads):
-        v = layer[rp[rows[d]], cp[cols[d]]]  # y_pi[d] = Y[pi(i), pi(j)]
+        v = ybuf[d]  # y_pi[d] = Y[pi(i), pi(j)]
         ok = fixed_ok[d] and not np.isnan(v)
         valid[d] = ok
         if ok:
@@ -690,6 +692,7 @@ def refit_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, beta0, 
     first_step = onestep.shape[0] == p
     design = np.arange(p)
     ext = np.empty(0)
+    ybuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * p + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
@@ -703,7 +706,7 @@ def refit_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, beta0, 
     start = np.empty(p)
     for b in range(row_perms.shape[0]):
         complete = _gather_response(layer, rows, cols, row_perms[b], col_perms[b], XT,
-                                    fixed_ok, valid, part, s)
+                                    fixed_ok, ybuf, valid, part, s)
         for c in range(p):
             start[c] = beta0[c]
             if first_step:
@@ -722,24 +725,96 @@ def refit_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, beta0, 
 
 
 @njit(**KERNEL_OPTIONS)
-def _gather_residual(resid, a, rows, cols, rp, cp, XT, y, ok_a, zc, reduced, valid, ebuf,
-                     part, tot):
-    """Relabelled residual e_pi of term a into ``ebuf`` (0 where not valid), ``valid`` =
-    ``ok_a`` and e_pi finite; in ``tot``: [Z'y (q), e_pi'y] over the valid dyads (``zc``
-    the q columns of Z in XT), then, when ``reduced`` has rows (complete data, see
-    ``refit_dsp``), [U, Q, S_0 .. S_(q-1)] of the free first Newton step. ``part`` is
-    scratch of tot's size. Returns (every dyad valid, max |e_pi|)."""
+def gather_rows(layer, rows, cols, rp, cp, out):
+    """out[d] = layer[rp[rows[d]], cp[cols[d]]]: a relabelled layer on the dyads (``rows``
+    non-decreasing), row by row; while a row is gathered, the stored row the next one
+    reads is prefetched (the approach of ``kernels.gather``)."""
+    n_dyads = rows.shape[0]
+    m = layer.shape[1]
+    flat = layer.reshape(-1)
+    line = max(1, CACHE_LINE // layer.itemsize)
+    d = 0
+    while d < n_dyads:
+        i = rows[d]
+        end = d
+        while end < n_dyads and rows[end] == i:
+            end += 1
+        if end < n_dyads:
+            nxt = rp[rows[end]] * m
+            for t in range(0, m, line):
+                prefetch(flat, np.uint64(nxt + t))
+        src = layer[rp[i]]
+        cc = cols[d:end]
+        dst = out[d:end]
+        for e in range(end - d):
+            dst[e] = src[cp[cc[e]]]  # E_pi[i, j] = E[pi(i), pi(j)]
+        d = end
+
+
+@njit(**KERNEL_OPTIONS)
+def _block_dots(vecs, ebuf, y, r, w, XT, zc, buf, out):
+    """With e = ebuf (complete data): out = [e'y, e'r, sum w e^2, sum_c w e z_c (c < q)],
+    three-level sums (``vdot`` over blocks of BLOCK, super-blocks, total); ``vecs`` and
+    ``buf`` scratch ((3, BLOCK) and (q + 3,))."""
+    n = ebuf.shape[0]
+    q = zc.shape[0]
+    eb = vecs[0]
+    wv = vecs[1]
+    zb = vecs[2]
+    for c in range(q + 3):
+        out[c] = 0.0
+        buf[c] = 0.0
+    n_blocks = 0
+    for d0 in range(0, n, BLOCK):
+        nb = min(BLOCK, n - d0)
+        e_src = ebuf[d0:d0 + nb]
+        w_src = w[d0:d0 + nb]
+        for i in range(nb):
+            eb[i] = e_src[i]
+            wv[i] = w_src[i] * e_src[i]  # w e
+        for i in range(nb, BLOCK):
+            eb[i] = 0.0
+            wv[i] = 0.0
+        y_src = y[d0:d0 + nb]
+        for i in range(nb):
+            zb[i] = y_src[i]
+        for i in range(nb, BLOCK):
+            zb[i] = 0.0
+        buf[0] += vdot(eb, zb, BLOCK)  # e'y
+        r_src = r[d0:d0 + nb]
+        for i in range(nb):
+            zb[i] = r_src[i]
+        buf[1] += vdot(eb, zb, BLOCK)  # U = e'(y - mu)
+        buf[2] += vdot(wv, eb, BLOCK)  # Q = sum w e^2
+        for c in range(q):
+            z_src = XT[zc[c], d0:d0 + nb]
+            for i in range(nb):
+                zb[i] = z_src[i]
+            buf[3 + c] += vdot(wv, zb, BLOCK)  # S_c = sum w e z_c
+        n_blocks += 1
+        if n_blocks == SUPER or d0 + BLOCK >= n:
+            for c in range(q + 3):
+                out[c] += buf[c]
+                buf[c] = 0.0
+            n_blocks = 0
+
+
+@njit(**KERNEL_OPTIONS)
+def _gather_residual(resid, rows, cols, rp, cp, XT, y, ok_a, zc, valid, ebuf, part, tot):
+    """Relabelled residual e_pi (layer ``resid`` (n, m)) into ``ebuf`` (0 where not
+    valid), ``valid`` = ``ok_a`` and e_pi finite; in ``tot``: [Z'y (q), e_pi'y] over the
+    valid dyads (``zc`` the q columns of Z in XT). ``part`` is scratch of tot's size.
+    Returns (every dyad valid, max |e_pi|)."""
     n_dyads = rows.shape[0]
     q = zc.shape[0]
-    n_terms = reduced.shape[0] // 2
-    first_step = n_terms > 0
+    gather_rows(resid, rows, cols, rp, cp, ebuf)
     for c in range(tot.shape[0]):
         part[c] = 0.0
         tot[c] = 0.0
     complete = True
     emax = 0.0
     for d in range(n_dyads):
-        v = resid[rp[rows[d]], cp[cols[d]], a]  # e_pi[d] = E[pi(i), pi(j)]
+        v = ebuf[d]
         ok = ok_a[d] and not np.isnan(v)
         valid[d] = ok
         if ok:
@@ -748,16 +823,9 @@ def _gather_residual(resid, a, rows, cols, rp, cp, XT, y, ok_a, zc, reduced, val
             for c in range(q):
                 part[c] += XT[zc[c], d] * yd  # Z'y
             emax = max(emax, abs(v))
-            if first_step:
-                part[q + 1] += v * reduced[a, d]  # U = e_pi'(y - mu)
-                wv = reduced[n_terms + a, d] * v
-                part[q + 2] += wv * v  # Q = sum w e_pi^2
-                for c in range(q):
-                    part[q + 3 + c] += wv * XT[zc[c], d]  # S = Z'W e_pi
         else:
             complete = False
-            v = 0.0
-        ebuf[d] = v
+            ebuf[d] = 0.0
         if (d + 1) % BLOCK == 0:
             _flush(part, tot)
     _flush(part, tot)
@@ -765,13 +833,13 @@ def _gather_residual(resid, a, rows, cols, rp, cp, XT, y, ok_a, zc, reduced, val
 
 
 @njit(**KERNEL_OPTIONS)
-def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, xmax, beta0,
-              reduced, cinv, out, passes, max_iter, tol, use_z):
+def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, xmax, emax,
+              beta0, reduced, cinv, out, passes, max_iter, tol, use_z):
     """DSP refits (Potter 2005): relabel the focal predictor's residual, refit.
 
     Parameters
     ----------
-    resid : float64 (n, m, K)
+    resid : float64 (K, n, m)
         Residual matrix of each tested predictor on the other terms (NaN: missing).
     rows, cols, row_perms, col_perms : as in ``refit_y``.
     XT : float64 (P, N)
@@ -785,29 +853,33 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
         Columns of term a's fit: the other terms Z_a, then P (the relabelled residual).
     xmax : float64 (P,)
         max |x_c| of each fixed column over its observed dyads.
+    emax : float64 (K,)
+        max |e| of each residual matrix over the dyad set (complete data).
     beta0 : float64 (K, p)
         Warm start of each term's fit: its observed reduced fit, and 0 for the residual.
     reduced : float64 (2K, N), or (0, N) when some dyad is missing
         y - mu_a (rows 0..K-1) and w_a = mu_a (1 - mu_a) (rows K..2K-1) of each observed
-        reduced fit. At ``beta0`` the gradient is (0, U) and the information
-        [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu), S = Z'W e_pi, Q = sum w e_pi^2 (summed
-        while e_pi is gathered), so the first Newton step costs no pass of its own:
-        d_e = U / (Q - S'(Z'WZ)^-1 S), d_z = -(Z'WZ)^-1 S d_e.
+        reduced fit. With these (complete data) every dyad is valid, and at ``beta0`` the
+        gradient is (0, U) and the information [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu),
+        S = Z'W e_pi, Q = sum w e_pi^2, summed right after e_pi is gathered, so the first
+        Newton step needs no pass of its own: d_e = U / (Q - S'(Z'WZ)^-1 S),
+        d_z = -(Z'WZ)^-1 S d_e.
     cinv : float64 (K, p - 1, p - 1)
         (Z_a'W_a Z_a)^-1 of each observed reduced fit (used with ``reduced``).
     out : float64 (B, K)
         Written: Wald z (``use_z``) or coefficient of the relabelled residual; NaN for a
         failed fit.
     passes : int64 (B,)
-        Written: passes over the dyads of each relabelling, summed over the terms.
+        Written: passes over the dyads of each relabelling, summed over the terms (the
+        gather with its sums counts as one).
     """
     n_fixed, n_dyads = XT.shape
-    n_terms = resid.shape[2]
+    n_terms = resid.shape[0]
     p = design.shape[1]
     q = p - 1
-    first_step = reduced.shape[0] == 2 * n_terms
+    complete_data = reduced.shape[0] == 2 * n_terms
     ebuf = np.empty(n_dyads)
-    valid = np.empty(n_dyads, dtype=np.bool_)
+    valid = np.ones(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * p + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
     acc = np.empty((p + 1, p))
@@ -815,38 +887,56 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
     info = np.empty(INFO_SIZE)
     beta = np.empty(p)
     cov = np.empty((p, p))
-    n_sums = p + q + 2 if first_step else p
-    part = np.empty(n_sums)
-    sums = np.empty(n_sums)  # [Z'y, e_pi'y, U, Q, S_0 .. S_(q-1)]
+    part = np.empty(p)
+    xy = np.empty(p)
+    zy = np.zeros((n_terms, q))
     xm = np.empty(p)
     start = np.empty(p)
+    vecs = np.empty((3, BLOCK))
+    buf = np.empty(q + 3)
+    sums = np.empty(q + 3)  # [e'y, U, Q, S_0 .. S_(q-1)]
+    if complete_data:  # Z'y is the same for every relabelling
+        for a in range(n_terms):
+            for c in range(q):
+                col = XT[design[a, c]]
+                s = 0.0
+                for d in range(n_dyads):
+                    s += col[d] * y[d]
+                zy[a, c] = s
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
         passes[b] = 0
         for a in range(n_terms):
             zc = design[a, :q]
-            complete, emax = _gather_residual(resid, a, rows, cols, rp, cp, XT, y,
-                                              fixed_ok[a], zc, reduced, valid, ebuf, part,
-                                              sums)
             for c in range(q):
                 xm[c] = xmax[zc[c]]
-            xm[q] = emax
             for c in range(p):
                 start[c] = beta0[a, c]
-            if first_step:
-                u, qq = sums[p], sums[p + 1]
+            if complete_data:
+                gather_rows(resid[a], rows, cols, rp, cp, ebuf)
+                _block_dots(vecs, ebuf, y, reduced[a], reduced[n_terms + a], XT, zc, buf, sums)
+                complete = True
+                xm[q] = emax[a]
+                for c in range(q):
+                    xy[c] = zy[a, c]
+                xy[q] = sums[0]
+                u, qq = sums[1], sums[2]
                 info_e = qq
                 for r in range(q):
                     for c in range(q):
-                        info_e -= sums[p + 2 + r] * cinv[a, r, c] * sums[p + 2 + c]
+                        info_e -= sums[3 + r] * cinv[a, r, c] * sums[3 + c]
                 if info_e > 0.0:
                     step_e = u / info_e
                     start[q] += step_e
                     for r in range(q):
                         for c in range(q):
-                            start[r] -= cinv[a, r, c] * sums[p + 2 + c] * step_e
-            status = newton_fit(XT, ebuf, design[a], p, sums, valid, complete, xm, start,
+                            start[r] -= cinv[a, r, c] * sums[3 + c] * step_e
+            else:
+                complete, e_max = _gather_residual(resid[a], rows, cols, rp, cp, XT, y,
+                                                   fixed_ok[a], zc, valid, ebuf, part, xy)
+                xm[q] = e_max
+            status = newton_fit(XT, ebuf, design[a], p, xy, valid, complete, xm, start,
                                 blk, kb, acc, state, beta, cov, info, max_iter, tol)
             passes[b] += 1 + int(info[INFO_PASSES])
             if status < 0:
@@ -863,13 +953,13 @@ def score_dsp_refit(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, zc
     """DSP score statistics with missing dyads: the reduced model is refitted on each
     relabelling's dyad set (where y, Z_a and e_pi are observed), then scored.
 
-    Parameters as in ``refit_dsp``; ``zcols`` (K, q) the reduced-model columns of XT,
+    Parameters as in ``refit_dsp`` (``resid`` (K, n, m)); ``zcols`` (K, q) the reduced-model columns of XT,
     ``gamma0`` (K, q) their warm start; ``out`` (B, K) written (NaN: failed fit);
     ``passes`` (B,) written. The score is taken from the reduced fit's last pass, which
     sums the relabelled column too (``score_from_state``).
     """
     n_fixed, n_dyads = XT.shape
-    n_terms = resid.shape[2]
+    n_terms = resid.shape[0]
     q = zcols.shape[1]
     qa = q + 1
     ebuf = np.empty(n_dyads)
@@ -885,15 +975,14 @@ def score_dsp_refit(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, zc
     xy = np.empty(qa)
     xm = np.empty(q)
     cols_a = np.empty(qa, dtype=np.int64)
-    no_reduced = np.empty((0, n_dyads))
     for b in range(row_perms.shape[0]):
         rp = row_perms[b]
         cp = col_perms[b]
         passes[b] = 0
         for a in range(n_terms):
             zc = zcols[a]
-            complete, _ = _gather_residual(resid, a, rows, cols, rp, cp, XT, y, fixed_ok[a],
-                                           zc, no_reduced, valid, ebuf, part, xy)
+            complete, _ = _gather_residual(resid[a], rows, cols, rp, cp, XT, y, fixed_ok[a],
+                                           zc, valid, ebuf, part, xy)
             for c in range(q):
                 cols_a[c] = zc[c]
                 xm[c] = xmax[zc[c]]
@@ -933,6 +1022,7 @@ def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, 
     qa = q + 1
     first_step = onestep.shape[0] == n_terms
     ext = np.empty(0)
+    ybuf = np.empty(n_dyads)
     valid = np.empty(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * qa + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
@@ -949,7 +1039,7 @@ def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, 
     cols_a = np.empty(qa, dtype=np.int64)
     for b in range(row_perms.shape[0]):
         complete = _gather_response(layer, rows, cols, row_perms[b], col_perms[b], XT,
-                                    fixed_ok, valid, part, s)
+                                    fixed_ok, ybuf, valid, part, s)
         passes[b] = 1
         for a in range(n_terms):
             for c in range(q):

@@ -470,8 +470,8 @@ class LogisticPlan:
                     out, passes, MAX_ITER, TOL, self.use_z)
         elif self.kind == "refit-dsp":
             refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["xmax"],
-                      a["beta0"], a["reduced"], a["cinv"], out, passes, MAX_ITER, TOL,
-                      self.use_z)
+                      a["emax"], a["beta0"], a["reduced"], a["cinv"], out, passes, MAX_ITER,
+                      TOL, self.use_z)
         elif self.kind == "score-dsp-refit":
             score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["xmax"],
                             a["gamma0"], out, passes, MAX_ITER, TOL)
@@ -671,12 +671,14 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
                 mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
                 reduced[j] = dd.y - mu
                 reduced[k + j] = mu * (1.0 - mu)
-        arrays = dict(common, layer=E, y=y, fixed_ok=fixed_ok, design=design, beta0=beta0,
-                      reduced=reduced, cinv=cinv)
+        emax = np.array([np.abs(E[dd.rows, dd.cols, j]).max() for j in range(k)])
+        arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
+                      fixed_ok=fixed_ok, design=design, emax=np.nan_to_num(emax),
+                      beta0=beta0, reduced=reduced, cinv=cinv)
         return plan("refit-dsp", arrays, k * refit_work)
     if not prep.complete:
-        arrays = dict(common, layer=E, y=y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,
-                      gamma0=gam)
+        arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
+                      fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols, gamma0=gam)
         return plan("score-dsp-refit", arrays, k * refit_work, True)
     # complete data: the reduced fit of each term is fixed; per relabelling only the sums
     # U, Q, S of the module docstring (kernels.irls.score_rows)

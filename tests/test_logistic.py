@@ -720,11 +720,28 @@ def _driver_inputs(rng, n, m, k, two_mode, nan):
     cp = np.array([rng.permutation(m) for _ in range(B)], dtype=np.int64) if two_mode else rp
     return dict(rows=rows.astype(np.int64), cols=cols.astype(np.int64), X=X, y=y,
                 XT=np.ascontiguousarray(np.nan_to_num(X).T),
+                layer_ek=np.ascontiguousarray(layer_e.transpose(2, 0, 1)),
                 xmax=np.nan_to_num(np.nanmax(np.abs(X), axis=0)),
                 layer_y=layer_y, layer_e=layer_e, rp=rp, cp=cp, p=p, k=k, N=N)
 
 
 SIZES = [(3, 3, 1, False), (2, 3, 1, True), (7, 7, 2, False), (5, 6, 3, True)]
+
+
+@pytest.mark.parametrize("n,m,two_mode,directed", [(2, 2, False, True), (3, 3, False, False),
+                                                   (7, 7, False, True), (3, 5, True, True),
+                                                   (40, 40, False, True)])
+def test_gather_rows_matches_twin(rng, n, m, two_mode, directed):
+    rows, cols = dyad_index(n, m, directed=directed, two_mode=two_mode)
+    layer = rng.normal(size=(n, m))
+    layer[rng.random((n, m)) < 0.1] = np.nan
+    for _ in range(4):
+        rp = rng.permutation(n).astype(np.int64)
+        cp = rng.permutation(m).astype(np.int64) if two_mode else rp
+        out = np.empty(len(rows))
+        kn.gather_rows(layer, rows.astype(np.int64), cols.astype(np.int64), rp, cp, out)
+        # twin: the relabelled matrix by fancy indexing, read on the dyad set
+        np.testing.assert_array_equal(out, relabel(layer, rp, cp)[rows, cols])
 
 
 def _fit_twin(Xc, q, y, valid, beta0):
@@ -778,9 +795,10 @@ def test_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     for reduced in reduced_fits:
         out = np.empty((B, k))
         passes = np.zeros(B, np.int64)
-        kn.refit_dsp(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"], ok,
-                     design, d["xmax"], b0, reduced, cinv, out, passes, lg.MAX_ITER, lg.TOL,
-                     True)
+        emax = np.nan_to_num(np.nanmax(np.abs(d["layer_e"]), axis=(0, 1)))
+        kn.refit_dsp(d["layer_ek"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"],
+                     ok, design, d["xmax"], emax, b0, reduced, cinv, out, passes, lg.MAX_ITER,
+                     lg.TOL, True)
         for b in range(B):
             total = 0
             for a in range(k):
@@ -798,7 +816,9 @@ def test_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
                         step_e = (e @ r) / info
                         start[-1] += step_e
                         start[:-1] -= cinv[a] @ S * step_e
-                xmax = np.append(d["xmax"][zcols[a]], np.abs(np.nan_to_num(e[valid])).max())
+                # max |e| over the relabelled dyads, or (complete data) over the matrix
+                xmax = np.append(d["xmax"][zcols[a]], emax[a] if reduced.shape[0] else
+                                 np.abs(np.nan_to_num(e[valid])).max())
                 yv = np.where(valid, np.nan_to_num(d["y"]), 0.0)
                 Xz = np.nan_to_num(Xb)
                 st, beta, cov, n_pass, _ = newton_twin(Xz, p, Xz.T @ yv, valid, xmax, start)
@@ -885,7 +905,7 @@ def test_score_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     passes = np.zeros(B, np.int64)
     # dsp with a reduced refit per relabelling
     ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
-    kn.score_dsp_refit(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"],
+    kn.score_dsp_refit(d["layer_ek"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"],
                        ok, zcols, d["xmax"], gamma, out, passes, lg.MAX_ITER, lg.TOL)
     for b in range(B):
         total = 0
