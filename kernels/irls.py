@@ -224,7 +224,9 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
     Parameters
     ----------
     XT : float64 (P, N)
-        Design columns, one per row; finite everywhere (0 where a dyad is not valid).
+        Design columns, one per row; finite everywhere (0 where a dyad is not valid). Row 0
+        is the intercept, 1 on every dyad: it is not read (passes are bound by their reads
+        from memory at 10^6 dyads).
     ext : float64 (N,) or (0,)
         Column P of the design (finite).
     cols : int64 (qa,)
@@ -262,16 +264,20 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
     top = 0.0
     for d0 in range(0, n, BLOCK):
         nb = min(BLOCK, n - d0)
+        for i in range(BLOCK):
+            eta[i] = 0.0
         for c in range(qa):
-            src = _column(XT, ext, cols[c])[d0:d0 + nb]
             xc = xb[c]
-            if c == 0:
-                bc = beta[0]
+            if cols[c] == 0:  # the intercept: 1 on every dyad, not read
+                bc = beta[c] if c < q else 0.0
                 for i in range(nb):
-                    v = src[i]
-                    xc[i] = v
-                    eta[i] = v * bc  # eta = X b
-            elif c < q:
+                    xc[i] = 1.0
+                    eta[i] += bc  # eta = X b
+                for i in range(nb, BLOCK):
+                    xc[i] = 0.0
+                continue
+            src = _column(XT, ext, cols[c])[d0:d0 + nb]
+            if c < q:
                 bc = beta[c]
                 for i in range(nb):
                     v = src[i]
@@ -282,8 +288,6 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
                     xc[i] = src[i]
             for i in range(nb, BLOCK):
                 xc[i] = 0.0
-        for i in range(nb, BLOCK):
-            eta[i] = 0.0
         for i in range(BLOCK):
             # t = exp(-|eta|) = 2^k exp(r)
             x = max(-abs(eta[i]), EXP_FLOOR)
