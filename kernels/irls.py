@@ -79,7 +79,7 @@ INFO_STEPS = 3
 INFO_SIZE = 4
 
 # Permutations that share one pass over the fixed rows in ``score_rows``.
-SCORE_BLOCK = 8
+SCORE_BLOCK = 16
 # Bytes of one cache line, the unit of prefetching.
 CACHE_LINE = 64
 
@@ -218,7 +218,7 @@ def _column(XT, ext, cc):
 
 
 @njit(**KERNEL_OPTIONS)
-def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
+def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H, f):
     """One pass over the dyads: f = X'mu and H = X'WX at ``beta``, over the valid dyads.
 
     Parameters
@@ -234,12 +234,15 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
         the others (columns added for a score statistic) have coefficient 0.
     valid : bool (N,)
         Dyads of the fit (read only when ``all_valid`` is False).
+    track : bool
+        Whether to find max |eta| (a serial maximum over the dyads; not needed while a
+        bound on it is below ETA_SATURATED).
     blk : float64 workspace (2 qa + 3, BLOCK); kb : int64 workspace (BLOCK,);
     acc : float64 workspace (qa + 1, qa)
     H : float64 (qa, qa); f : float64 (qa,)
         Written.
 
-    Returns max |eta| over the valid dyads.
+    Returns max |eta| over the valid dyads (0 when not ``track``).
 
     Per block: x columns copied (zero past N), eta = X b, t = exp(-|eta|),
     mu = 1 / (1 + t) or t / (1 + t) by the sign of eta, w = t / (1 + t)^2 (0 off the valid
@@ -324,8 +327,9 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
         for i in range(nb, BLOCK):
             mu[i] = 0.0
             t[i] = 0.0
-        for i in range(BLOCK):
-            top = max(top, abs(eta[i]))
+        if track:
+            for i in range(BLOCK):
+                top = max(top, abs(eta[i]))
         for r in range(qa):
             xr = xb[r]
             wx = wxb[r]
@@ -348,6 +352,16 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
         for c in range(r + 1, qa):
             H[r, c] = H[c, r]
     return top
+
+
+@njit(**KERNEL_OPTIONS)
+def _eta_bound(beta, xmax, cols, q):
+    """Whether sum_c |beta_c| xmax_c (xmax 1 for the intercept), a bound on max |eta|,
+    exceeds ETA_SATURATED: only then must a pass find max |eta|."""
+    bound = 0.0
+    for c in range(q):
+        bound += abs(beta[c]) * (1.0 if cols[c] == 0 else xmax[c])
+    return not (bound <= ETA_SATURATED)
 
 
 # --- dense linear algebra on the leading q x q block ---------------------------------------
@@ -468,7 +482,8 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         return FAIL_DYADS
     for c in range(q):
         beta[c] = beta0[c]
-    eta_max = newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f)
+    eta_max = newton_pass(XT, ext, cols, q, valid, all_valid, _eta_bound(beta, xmax, cols, q),
+                          beta, blk, kb, acc, H, f)
     passes = 1
     for it in range(1, max_iter + 1):
         info[INFO_PASSES] = passes
@@ -509,7 +524,8 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
             certified = s * _h_bound(sm) < 1.0  # the deviance falls (module docstring)
             for c in range(q):
                 trial[c] = beta[c] + s * d[c]
-            eta_t = newton_pass(XT, ext, cols, q, valid, all_valid, trial, blk, kb, acc, Ht, ft)
+            eta_t = newton_pass(XT, ext, cols, q, valid, all_valid,
+                                _eta_bound(trial, xmax, cols, q), trial, blk, kb, acc, Ht, ft)
             passes += 1
             if not certified:
                 # D = s d: a decrease is proven when D'H_t D k(sM) + D'g_t > 0

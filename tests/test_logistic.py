@@ -631,8 +631,10 @@ def test_newton_pass_matches_twin(rng, N, qa, q):
             v = np.ones(N, bool) if all_valid else valid
             shapes = kn.fit_workspace(qa)
             H, f = np.empty((qa, qa)), np.empty(qa)
-            top = kn.newton_pass(XTu, ext, cols, q, v, all_valid, beta, np.empty(shapes[0]),
-                                 np.empty(shapes[1], np.int64), np.empty(shapes[2]), H, f)
+            work = (np.empty(shapes[0]), np.empty(shapes[1], np.int64), np.empty(shapes[2]))
+            top = kn.newton_pass(XTu, ext, cols, q, v, all_valid, True, beta, *work, H, f)
+            assert kn.newton_pass(XTu, ext, cols, q, v, all_valid, False, beta, *work, H,
+                                  f) == 0.0
             t_f, t_H, t_top = pass_twin(X, v, beta)
             np.testing.assert_allclose(f, t_f, rtol=TWIN_RTOL, atol=TWIN_ATOL)
             np.testing.assert_allclose(H, t_H, rtol=TWIN_RTOL, atol=TWIN_ATOL)
