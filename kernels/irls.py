@@ -65,8 +65,8 @@ FAIL_ITERATIONS = -1  # no convergence in max_iter steps (diverging coefficients
 FAIL_SINGULAR = -2  # the weighted information X'WX is singular
 FAIL_STEP = -3  # no acceptable step (non-finite sums)
 FAIL_DYADS = -4  # no more valid dyads than coefficients
-FAIL_SATURATED = -5  # at the apparent optimum some fitted probability is 0 or 1 to double
-#                      precision (complete separation, or a dyad's likelihood lost to rounding)
+FAIL_SATURATED = -5  # converged in appearance only: the information is below the gradient's
+#                      rounding (fitted probabilities at 0 or 1 under separation)
 
 # Diagnostics of a fit, written to ``info``: passes over the dyads, the last Newton step's
 # bound on the largest change of a linear predictor (M), the design column (position in
@@ -85,11 +85,16 @@ CACHE_LINE = 64
 
 # A Cholesky pivot this small relative to its diagonal entry marks a singular information.
 SINGULAR_PIVOT = 1e-12
-# |linear predictor| beyond which a fitted probability is 0 or 1 to double precision
-# (exp(-36) < 2^-51): a "converged" fit with such a dyad has lost that dyad's residual to
-# rounding, as a separated fit does when its coefficients have diverged far enough
-# (Albert & Anderson 1984); it is reported as FAIL_SATURATED, not as converged.
-ETA_SATURATED = 36.0
+# A converged fit must be determined by its data, not by rounding: the Newton step that a
+# gradient error of ROUNDING_ULPS units in the last place of n_valid terms of size xmax
+# would cause (H^-1 dg) must move no linear predictor by more than ROUNDING_MOVE. With an
+# ordinary information (about n w per coefficient) that move is near 1e-13 whatever n.
+# Along a separation (Albert & Anderson 1984) gradient and information both shrink like
+# exp(-|eta|), the Newton steps stay of size 1, and a fit can only look converged once the
+# gradient has vanished into its rounding, where that move exceeds 1: such a fit is
+# reported as FAIL_SATURATED.
+ROUNDING_ULPS = 16.0
+ROUNDING_MOVE = 1e-3
 # Halvings of a Newton step tried before giving up (a step of length 2^-30 with M below
 # about 10^9 is always certified, so only non-finite sums exhaust them).
 MAX_HALVINGS = 30
@@ -218,7 +223,7 @@ def _column(XT, ext, cc):
 
 
 @njit(**KERNEL_OPTIONS)
-def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H, f):
+def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
     """One pass over the dyads: f = X'mu and H = X'WX at ``beta``, over the valid dyads.
 
     Parameters
@@ -234,15 +239,10 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H
         the others (columns added for a score statistic) have coefficient 0.
     valid : bool (N,)
         Dyads of the fit (read only when ``all_valid`` is False).
-    track : bool
-        Whether to find max |eta| (a serial maximum over the dyads; not needed while a
-        bound on it is below ETA_SATURATED).
     blk : float64 workspace (2 qa + 3, BLOCK); kb : int64 workspace (BLOCK,);
     acc : float64 workspace (qa + 1, qa)
     H : float64 (qa, qa); f : float64 (qa,)
         Written.
-
-    Returns max |eta| over the valid dyads (0 when not ``track``).
 
     Per block: x columns copied (zero past N), eta = X b, t = exp(-|eta|),
     mu = 1 / (1 + t) or t / (1 + t) by the sign of eta, w = t / (1 + t)^2 (0 off the valid
@@ -264,7 +264,6 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H
         for c in range(qa):
             H[r, c] = 0.0
     n_blocks = 0
-    top = 0.0
     for d0 in range(0, n, BLOCK):
         nb = min(BLOCK, n - d0)
         for i in range(BLOCK):
@@ -323,13 +322,9 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H
                 if not vb[i]:
                     mu[i] = 0.0
                     t[i] = 0.0
-                    eta[i] = 0.0
         for i in range(nb, BLOCK):
             mu[i] = 0.0
             t[i] = 0.0
-        if track:
-            for i in range(BLOCK):
-                top = max(top, abs(eta[i]))
         for r in range(qa):
             xr = xb[r]
             wx = wxb[r]
@@ -351,17 +346,20 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, track, beta, blk, kb, acc, H
     for r in range(qa):
         for c in range(r + 1, qa):
             H[r, c] = H[c, r]
-    return top
 
 
 @njit(**KERNEL_OPTIONS)
-def _eta_bound(beta, xmax, cols, q):
-    """Whether sum_c |beta_c| xmax_c (xmax 1 for the intercept), a bound on max |eta|,
-    exceeds ETA_SATURATED: only then must a pass find max |eta|."""
-    bound = 0.0
+def _rounding_move(cov, xmax, q, n_valid):
+    """sum_c xmax_c |H^-1 dg|_c for a gradient error dg_e = ROUNDING_ULPS eps n_valid xmax_e:
+    how far the linear predictors may move from the rounding of the gradient's sums."""
+    eps = np.finfo(np.float64).eps
+    move = 0.0
     for c in range(q):
-        bound += abs(beta[c]) * (1.0 if cols[c] == 0 else xmax[c])
-    return not (bound <= ETA_SATURATED)
+        dc = 0.0
+        for e in range(q):
+            dc += abs(cov[c, e]) * ROUNDING_ULPS * eps * n_valid * xmax[e]
+        move += dc * xmax[c]
+    return move
 
 
 # --- dense linear algebra on the leading q x q block ---------------------------------------
@@ -454,8 +452,7 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
     -------
     int
         Newton steps taken (>= 1, the last one included) when converged, else a negative
-        FAIL_* code (FAIL_SATURATED: converged in appearance only, with some linear
-        predictor beyond ETA_SATURATED).
+        FAIL_* code (FAIL_SATURATED: converged in appearance only, see ROUNDING_ULPS).
     """
     qa = cols.shape[0]
     H = state[0:qa]
@@ -482,8 +479,7 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         return FAIL_DYADS
     for c in range(q):
         beta[c] = beta0[c]
-    eta_max = newton_pass(XT, ext, cols, q, valid, all_valid, _eta_bound(beta, xmax, cols, q),
-                          beta, blk, kb, acc, H, f)
+    newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f)
     passes = 1
     for it in range(1, max_iter + 1):
         info[INFO_PASSES] = passes
@@ -513,9 +509,9 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
             info[INFO_STEPS] = it
             for c in range(q):
                 beta_out[c] = beta[c] + d[c]
-            if eta_max > ETA_SATURATED:
-                return FAIL_SATURATED
             _cholesky_inverse(L, tmp, cov_out, q)
+            if not (_rounding_move(cov_out, xmax, q, n_valid) <= ROUNDING_MOVE):
+                return FAIL_SATURATED  # the gradient has vanished into its rounding
             return it
         s = 1.0
         accepted = False
@@ -524,8 +520,7 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
             certified = s * _h_bound(sm) < 1.0  # the deviance falls (module docstring)
             for c in range(q):
                 trial[c] = beta[c] + s * d[c]
-            eta_t = newton_pass(XT, ext, cols, q, valid, all_valid,
-                                _eta_bound(trial, xmax, cols, q), trial, blk, kb, acc, Ht, ft)
+            newton_pass(XT, ext, cols, q, valid, all_valid, trial, blk, kb, acc, Ht, ft)
             passes += 1
             if not certified:
                 # D = s d: a decrease is proven when D'H_t D k(sM) + D'g_t > 0
@@ -546,7 +541,6 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         if not accepted:
             return FAIL_STEP
         info[INFO_STEPS] = it
-        eta_max = eta_t
         for c in range(q):
             beta[c] = trial[c]
         for r in range(qa):
@@ -772,10 +766,12 @@ def gather_rows(layer, rows, cols, rp, cp, out):
 
 
 @njit(**KERNEL_OPTIONS)
-def _block_dots(vecs, ebuf, y, r, w, XT, zc, buf, out):
-    """With e = ebuf (complete data): out = [e'y, e'r, sum w e^2, sum_c w e z_c (c < q)],
-    three-level sums (``vdot`` over blocks of BLOCK, super-blocks, total); ``vecs`` and
-    ``buf`` scratch ((3, BLOCK) and (q + 3,))."""
+def _block_dots(vecs, ebuf, mu, ties, XT, zc, buf, out):
+    """With e = ebuf (complete data) and the reduced fit's probabilities ``mu``: out =
+    [e'y, e'(y - mu), sum w e^2, sum_c w e z_c (c < q)] with w = mu (1 - mu) and e'y the
+    sum of e over the dyads of ``ties`` (where y = 1). Three-level sums (``vdot`` over
+    blocks of BLOCK, super-blocks, total); ``vecs`` (3, BLOCK) and ``buf`` (q + 3,)
+    scratch. Reads e, mu and the non-constant columns of Z once."""
     n = ebuf.shape[0]
     q = zc.shape[0]
     eb = vecs[0]
@@ -784,32 +780,38 @@ def _block_dots(vecs, ebuf, y, r, w, XT, zc, buf, out):
     for c in range(q + 3):
         out[c] = 0.0
         buf[c] = 0.0
+    part = 0.0
+    n_ties = ties.shape[0]
+    for t0 in range(0, n_ties, BLOCK):
+        s = 0.0
+        for t in range(t0, min(t0 + BLOCK, n_ties)):
+            s += ebuf[ties[t]]
+        part += s
     n_blocks = 0
     for d0 in range(0, n, BLOCK):
         nb = min(BLOCK, n - d0)
         e_src = ebuf[d0:d0 + nb]
-        w_src = w[d0:d0 + nb]
+        m_src = mu[d0:d0 + nb]
         for i in range(nb):
-            eb[i] = e_src[i]
-            wv[i] = w_src[i] * e_src[i]  # w e
+            e = e_src[i]
+            m = m_src[i]
+            eb[i] = e
+            zb[i] = m
+            wv[i] = (m - m * m) * e  # w e, w = mu (1 - mu)
         for i in range(nb, BLOCK):
             eb[i] = 0.0
-            wv[i] = 0.0
-        y_src = y[d0:d0 + nb]
-        for i in range(nb):
-            zb[i] = y_src[i]
-        for i in range(nb, BLOCK):
             zb[i] = 0.0
-        buf[0] += vdot(eb, zb, BLOCK)  # e'y
-        r_src = r[d0:d0 + nb]
-        for i in range(nb):
-            zb[i] = r_src[i]
-        buf[1] += vdot(eb, zb, BLOCK)  # U = e'(y - mu)
+            wv[i] = 0.0
+        buf[1] -= vdot(eb, zb, BLOCK)  # U = e'y - e'mu
         buf[2] += vdot(wv, eb, BLOCK)  # Q = sum w e^2
         for c in range(q):
-            z_src = XT[zc[c], d0:d0 + nb]
-            for i in range(nb):
-                zb[i] = z_src[i]
+            if zc[c] == 0:  # the intercept
+                for i in range(BLOCK):
+                    zb[i] = 1.0
+            else:
+                z_src = XT[zc[c], d0:d0 + nb]
+                for i in range(nb):
+                    zb[i] = z_src[i]
             buf[3 + c] += vdot(wv, zb, BLOCK)  # S_c = sum w e z_c
         n_blocks += 1
         if n_blocks == SUPER or d0 + BLOCK >= n:
@@ -817,6 +819,8 @@ def _block_dots(vecs, ebuf, y, r, w, XT, zc, buf, out):
                 out[c] += buf[c]
                 buf[c] = 0.0
             n_blocks = 0
+    out[0] = part
+    out[1] += part
 
 
 @njit(**KERNEL_OPTIONS)
@@ -854,7 +858,7 @@ def _gather_residual(resid, rows, cols, rp, cp, XT, y, ok_a, zc, valid, ebuf, pa
 
 @njit(**KERNEL_OPTIONS)
 def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, xmax, emax,
-              beta0, reduced, cinv, out, passes, max_iter, tol, use_z):
+              beta0, mu0, ties, cinv, out, passes, max_iter, tol, use_z):
     """DSP refits (Potter 2005): relabel the focal predictor's residual, refit.
 
     Parameters
@@ -877,15 +881,17 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
         max |e| of each residual matrix over the dyad set (complete data).
     beta0 : float64 (K, p)
         Warm start of each term's fit: its observed reduced fit, and 0 for the residual.
-    reduced : float64 (2K, N), or (0, N) when some dyad is missing
-        y - mu_a (rows 0..K-1) and w_a = mu_a (1 - mu_a) (rows K..2K-1) of each observed
-        reduced fit. With these (complete data) every dyad is valid, and at ``beta0`` the
-        gradient is (0, U) and the information [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu),
-        S = Z'W e_pi, Q = sum w e_pi^2, summed right after e_pi is gathered, so the first
-        Newton step needs no pass of its own: d_e = U / (Q - S'(Z'WZ)^-1 S),
+    mu0 : float64 (K, N), or (0, N) when some dyad is missing
+        mu_a, the fitted probabilities of each observed reduced fit. With these (complete
+        data) every dyad is valid, and at ``beta0`` the gradient is (0, U) and the
+        information [[Z'WZ, S], [S', Q]] with U = e_pi'(y - mu), S = Z'W e_pi,
+        Q = sum w e_pi^2 (w = mu (1 - mu)), summed right after e_pi is gathered, so the
+        first Newton step needs no pass of its own: d_e = U / (Q - S'(Z'WZ)^-1 S),
         d_z = -(Z'WZ)^-1 S d_e.
+    ties : int64 (T,)
+        The dyads where y = 1 (complete data: e_pi'y is a sum over them).
     cinv : float64 (K, p - 1, p - 1)
-        (Z_a'W_a Z_a)^-1 of each observed reduced fit (used with ``reduced``).
+        (Z_a'W_a Z_a)^-1 of each observed reduced fit (used with ``mu0``).
     out : float64 (B, K)
         Written: Wald z (``use_z``) or coefficient of the relabelled residual; NaN for a
         failed fit.
@@ -897,7 +903,7 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
     n_terms = resid.shape[0]
     p = design.shape[1]
     q = p - 1
-    complete_data = reduced.shape[0] == 2 * n_terms
+    complete_data = mu0.shape[0] == n_terms
     ebuf = np.empty(n_dyads)
     valid = np.ones(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * p + 3, BLOCK))
@@ -935,7 +941,7 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
                 start[c] = beta0[a, c]
             if complete_data:
                 gather_rows(resid[a], rows, cols, rp, cp, ebuf)
-                _block_dots(vecs, ebuf, y, reduced[a], reduced[n_terms + a], XT, zc, buf, sums)
+                _block_dots(vecs, ebuf, mu0[a], ties, XT, zc, buf, sums)
                 complete = True
                 xm[q] = emax[a]
                 for c in range(q):

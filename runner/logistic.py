@@ -108,7 +108,7 @@ from . import store as _store
 from .engine import CHUNK_WORK, MAX_CHUNK
 from .errors import DyadpermWarning, InputError, NumericalError
 from .kernels.gather import gather_cross
-from .kernels.irls import (ETA_SATURATED, FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED,
+from .kernels.irls import (FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED,
                            FAIL_SINGULAR, INFO_MOVE, INFO_PASSES, INFO_SIZE, INFO_STEPS,
                            INFO_TERM, SCORE_BLOCK, SERIES_REL, irls_logistic, monomial_tables,
                            refit_dsp, refit_y, score_dsp_refit, score_from_sums, score_logistic,
@@ -340,8 +340,8 @@ def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols:
     elif res.status == FAIL_ITERATIONS:
         why = "the step limit was reached"
     elif res.status == FAIL_SATURATED:
-        why = (f"the fitted probabilities of some dyads reached 0 or 1 (linear predictor "
-               f"beyond +-{ETA_SATURATED:g})")
+        why = ("the information left is below the rounding of the gradient, as when fitted "
+               "probabilities reach 0 or 1")
     else:
         why = "the sums over the dyads are not finite"
     return (f"{fit} did not converge after {res.steps} Newton steps ({why}; {last}), "
@@ -470,8 +470,8 @@ class LogisticPlan:
                     out, passes, MAX_ITER, TOL, self.use_z)
         elif self.kind == "refit-dsp":
             refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["xmax"],
-                      a["emax"], a["beta0"], a["reduced"], a["cinv"], out, passes, MAX_ITER,
-                      TOL, self.use_z)
+                      a["emax"], a["beta0"], a["mu0"], a["ties"], a["cinv"], out, passes,
+                      MAX_ITER, TOL, self.use_z)
         elif self.kind == "score-dsp-refit":
             score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["xmax"],
                             a["gamma0"], out, passes, MAX_ITER, TOL)
@@ -664,17 +664,17 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
         fixed_ok = _fixed_ok(dd, X, zcols)
         design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
         beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
-        reduced = np.zeros((0, N))
+        mu0 = np.zeros((0, N))
+        ties = np.zeros(0, dtype=np.int64)
         if prep.complete:  # the first Newton step from beta0 needs only sums over e_pi
-            reduced = np.empty((2 * k, N))
+            mu0 = np.empty((k, N))
             for j in range(k):
-                mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
-                reduced[j] = dd.y - mu
-                reduced[k + j] = mu * (1.0 - mu)
+                mu0[j] = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
+            ties = np.flatnonzero(dd.y == 1.0).astype(np.int64)
         emax = np.array([np.abs(E[dd.rows, dd.cols, j]).max() for j in range(k)])
         arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
                       fixed_ok=fixed_ok, design=design, emax=np.nan_to_num(emax),
-                      beta0=beta0, reduced=reduced, cinv=cinv)
+                      beta0=beta0, mu0=mu0, ties=ties, cinv=cinv)
         return plan("refit-dsp", arrays, k * refit_work)
     if not prep.complete:
         arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
