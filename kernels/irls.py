@@ -197,6 +197,98 @@ else:
         return types.float64(a, b, types.intp), _vdot_codegen
 
 
+# Lanes of the running accumulators of ``vdot_acc``: four vectors of LANES.
+ACC_LANES = 4 * LANES
+
+
+def _vdot_acc_python(a, b, n, acc, at):
+    """Pure-Python twin of ``vdot_acc``."""
+    for i in range(0, n, ACC_LANES):
+        for t in range(ACC_LANES):
+            acc[at + t] += a[i + t] * b[i + t]
+
+
+def _vdot_acc_codegen(context, builder, signature, args):
+    """LLVM IR: acc[at + t] += sum_j a[j ACC_LANES + t] b[j ACC_LANES + t] for t <
+    ACC_LANES, j < n / ACC_LANES (n a multiple of ACC_LANES): four <LANES x double>
+    accumulators loaded from ``acc``, one fused multiply-add per term, stored back. No
+    horizontal sum per call: the lanes are summed when a super-block is flushed."""
+    from llvmlite import ir
+    av, bv, nv, accv, atv = args
+    ap = context.make_array(signature.args[0])(context, builder, av).data
+    bp = context.make_array(signature.args[1])(context, builder, bv).data
+    cp = context.make_array(signature.args[3])(context, builder, accv).data
+    i64, dbl = ir.IntType(64), ir.DoubleType()
+    vec = ir.VectorType(dbl, LANES)
+    fma = cgutils.get_or_insert_function(
+        builder.module, ir.FunctionType(vec, [vec, vec, vec]), f"llvm.fma.v{LANES}f64")
+
+    def vptr(ptr, at):
+        return builder.bitcast(builder.gep(ptr, [at]), vec.as_pointer())
+
+    starts = [builder.load(vptr(cp, builder.add(atv, ir.Constant(i64, LANES * u))), align=8)
+              for u in range(4)]
+    entry = builder.block
+    head = builder.append_basic_block("vdotacc.head")
+    body = builder.append_basic_block("vdotacc.body")
+    done = builder.append_basic_block("vdotacc.done")
+    builder.branch(head)
+    builder.position_at_end(head)
+    i = builder.phi(i64)
+    i.add_incoming(ir.Constant(i64, 0), entry)
+    sums = []
+    for u in range(4):
+        ph = builder.phi(vec)
+        ph.add_incoming(starts[u], entry)
+        sums.append(ph)
+    builder.cbranch(builder.icmp_signed("<", i, nv), body, done)
+    builder.position_at_end(body)
+    new = []
+    for u in range(4):
+        at = builder.add(i, ir.Constant(i64, LANES * u))
+        new.append(builder.call(fma, [builder.load(vptr(ap, at), align=8),
+                                      builder.load(vptr(bp, at), align=8), sums[u]]))
+    i.add_incoming(builder.add(i, ir.Constant(i64, ACC_LANES)), body)
+    for u in range(4):
+        sums[u].add_incoming(new[u], body)
+    builder.branch(head)
+    builder.position_at_end(done)
+    for u in range(4):
+        builder.store(sums[u], vptr(cp, builder.add(atv, ir.Constant(i64, LANES * u))),
+                      align=8)
+    return context.get_dummy_value()
+
+
+if config.DISABLE_JIT:
+    def vdot_acc(a, b, n, acc, at):
+        """Pure-Python twin of the lane-accumulating dot product."""
+        _vdot_acc_python(a, b, n, acc, at)
+else:
+    @intrinsic
+    def vdot_acc(typingctx, a, b, n, acc, at):
+        """acc[at:at + ACC_LANES] += the lanes of a[i] b[i], i < n (n a multiple of
+        ACC_LANES; 1-D float64 C arrays): see ``_vdot_acc_codegen``."""
+        if not all(isinstance(x, types.Array) and x.ndim == 1 and x.layout == "C"
+                   and x.dtype == types.float64 for x in (a, b, acc)):
+            return None
+        return types.void(a, b, types.intp, acc, types.intp), _vdot_acc_codegen
+
+
+@njit(**KERNEL_OPTIONS)
+def _lane_sum(acc, at):
+    """Sum of acc[at:at + ACC_LANES] in a fixed pairwise order, and the lanes zeroed."""
+    width = ACC_LANES
+    while width > 1:
+        half = width // 2
+        for t in range(half):
+            acc[at + t] += acc[at + half + t]
+        width = half
+    total = acc[at]
+    for t in range(ACC_LANES):
+        acc[at + t] = 0.0
+    return total
+
+
 # --- one pass over the dyads ---------------------------------------------------------------
 @njit(**KERNEL_OPTIONS)
 def _h_bound(u):
@@ -240,7 +332,7 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
     valid : bool (N,)
         Dyads of the fit (read only when ``all_valid`` is False).
     blk : float64 workspace (2 qa + 3, BLOCK); kb : int64 workspace (BLOCK,);
-    acc : float64 workspace (qa + 1, qa)
+    acc : float64 workspace ((qa + 1) qa ACC_LANES,): the lanes of each sum
     H : float64 (qa, qa); f : float64 (qa,)
         Written.
 
@@ -256,9 +348,8 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
     mu = blk[2 * qa + 1]
     t = blk[2 * qa + 2]
     kbf = kb.view(np.float64)
-    for r in range(qa + 1):
-        for c in range(qa):
-            acc[r, c] = 0.0
+    for e in range(acc.shape[0]):
+        acc[e] = 0.0
     for r in range(qa):
         f[r] = 0.0
         for c in range(qa):
@@ -331,17 +422,15 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
             for i in range(BLOCK):
                 wx[i] = t[i] * xr[i]
         for r in range(qa):
-            acc[qa, r] += vdot(xb[r], mu, BLOCK)  # f = X'mu
+            vdot_acc(xb[r], mu, BLOCK, acc, (qa * qa + r) * ACC_LANES)  # f = X'mu
             for c in range(r + 1):
-                acc[r, c] += vdot(wxb[r], xb[c], BLOCK)  # H = X'WX
+                vdot_acc(wxb[r], xb[c], BLOCK, acc, (r * qa + c) * ACC_LANES)  # H = X'WX
         n_blocks += 1
         if n_blocks == SUPER or d0 + BLOCK >= n:
             for r in range(qa):
-                f[r] += acc[qa, r]
-                acc[qa, r] = 0.0
+                f[r] += _lane_sum(acc, (qa * qa + r) * ACC_LANES)
                 for c in range(r + 1):
-                    H[r, c] += acc[r, c]
-                    acc[r, c] = 0.0
+                    H[r, c] += _lane_sum(acc, (r * qa + c) * ACC_LANES)
             n_blocks = 0
     for r in range(qa):
         for c in range(r + 1, qa):
@@ -410,8 +499,9 @@ def _cholesky_inverse(L, col, out, q):
 # --- Newton's method -------------------------------------------------------------------------
 def fit_workspace(qa):
     """Shapes of the workspaces of ``newton_fit`` for qa design columns:
-    blk (2 qa + 3, BLOCK), kb (BLOCK,) int64, acc (qa + 1, qa), state (3 qa + 7, qa)."""
-    return (2 * qa + 3, BLOCK), (BLOCK,), (qa + 1, qa), (3 * qa + 7, qa)
+    blk (2 qa + 3, BLOCK), kb (BLOCK,) int64, acc ((qa + 1) qa ACC_LANES,),
+    state (3 qa + 7, qa)."""
+    return (2 * qa + 3, BLOCK), (BLOCK,), ((qa + 1) * qa * ACC_LANES,), (3 * qa + 7, qa)
 
 
 @njit(**KERNEL_OPTIONS)
@@ -589,7 +679,7 @@ def irls_logistic(XT, ext, cols, xy, valid, xmax, beta0, beta_out, cov_out, info
     q = cols.shape[0]
     blk = np.empty((2 * q + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((q + 1, q))
+    acc = np.empty((q + 1) * q * ACC_LANES)
     state = np.empty((3 * q + 7, q))
     return newton_fit(XT, ext, cols, q, xy, valid, False, xmax, beta0, blk, kb, acc, state,
                       beta_out, cov_out, info, max_iter, tol)
@@ -608,7 +698,7 @@ def score_logistic(XT, ext, zcols, xcol, xy, valid, xmax, gamma0, info, max_iter
     cols[q] = xcol
     blk = np.empty((2 * qa + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((qa + 1, qa))
+    acc = np.empty((qa + 1) * qa * ACC_LANES)
     state = np.empty((3 * qa + 7, qa))
     gamma = np.empty(q)
     cinv = np.empty((q, q))
@@ -710,7 +800,7 @@ def refit_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, beta0, 
     valid = np.empty(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * p + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((p + 1, p))
+    acc = np.empty((p + 1) * p * ACC_LANES)
     state = np.empty((3 * p + 7, p))
     info = np.empty(INFO_SIZE)
     beta = np.empty(p)
@@ -908,7 +998,7 @@ def refit_dsp(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, design, 
     valid = np.ones(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * p + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((p + 1, p))
+    acc = np.empty((p + 1) * p * ACC_LANES)
     state = np.empty((3 * p + 7, p))
     info = np.empty(INFO_SIZE)
     beta = np.empty(p)
@@ -992,7 +1082,7 @@ def score_dsp_refit(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, zc
     valid = np.empty(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * qa + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((qa + 1, qa))
+    acc = np.empty((qa + 1) * qa * ACC_LANES)
     state = np.empty((3 * qa + 7, qa))
     info = np.empty(INFO_SIZE)
     gamma = np.empty(q)
@@ -1052,7 +1142,7 @@ def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, 
     valid = np.empty(n_dyads, dtype=np.bool_)
     blk = np.empty((2 * qa + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((qa + 1, qa))
+    acc = np.empty((qa + 1) * qa * ACC_LANES)
     state = np.empty((3 * qa + 7, qa))
     info = np.empty(INFO_SIZE)
     gamma = np.empty(q)
@@ -1472,7 +1562,7 @@ def series_y(S, XT, mom, deg, parent, pvar, mult, up1, up2, n_alpha, D, xmax, be
     ext = np.empty(0)
     blk = np.empty((2 * qa + 3, BLOCK))
     kb = np.empty(BLOCK, dtype=np.int64)
-    acc = np.empty((qa + 1, qa))
+    acc = np.empty((qa + 1) * qa * ACC_LANES)
     pstate = np.empty((3 * qa + 7, qa))
     info = np.empty(INFO_SIZE)
     beta = np.empty(q)

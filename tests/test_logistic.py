@@ -612,6 +612,26 @@ def test_vdot_matches_numpy(rng):
     assert _vdot(a, a, 32) == _vdot(a[:32].copy(), a[:32].copy(), 32)  # only n entries
 
 
+@njit
+def _vdot_acc_sum(a, b, n, acc, at):
+    """kernels.irls.vdot_acc then the lane sum, from compiled code."""
+    kn.vdot_acc(a, b, n, acc, at)
+    return kn._lane_sum(acc, at)
+
+
+def test_vdot_acc_matches_numpy(rng):
+    L = kn.ACC_LANES
+    for n in (L, 2 * L, kn.BLOCK):
+        a, b = rng.normal(size=n), rng.normal(size=n)
+        acc = np.zeros(3 * L)
+        acc[L:2 * L] = rng.normal(size=L)  # lanes carried over from earlier blocks
+        carried = acc[L:2 * L].sum()
+        # source: numpy's dot product; the other lanes untouched, the summed ones zeroed
+        np.testing.assert_allclose(_vdot_acc_sum(a, b, n, acc, L), a @ b + carried,
+                                   rtol=1e-13, atol=1e-13)
+        assert not acc.any()
+
+
 @pytest.mark.parametrize("N", [1, 2, 3, 17, 255, 256, 257, 600])
 @pytest.mark.parametrize("qa,q", [(1, 1), (3, 2), (4, 4), (6, 5)])
 def test_newton_pass_matches_twin(rng, N, qa, q):
