@@ -15,17 +15,27 @@ b_j; ``statistic="score"`` the signed score statistic below. ``deviance`` in the
 -2 log L of the observed fit (a 0/1 response has a saturated log likelihood of 0); ``r2`` is
 NaN.
 
+Convergence (``kernels.irls``, module docstring): Newton steps are accepted by the
+self-concordance bound of the logistic loss, never by comparing two deviances (whose
+difference near the optimum is below their rounding at 10^6 dyads), and a fit has
+converged when the next step moves no dyad's linear predictor by more than ``TOL``
+(``TOL_OBSERVED`` for the fits the result reports); sums over the dyads run in three
+levels, so their rounding does not grow with N. A fit whose gradient has vanished into its
+rounding (fitted probabilities at 0 or 1) is not converged.
+
 Separation (Albert & Anderson 1984, Biometrika 71:1-10): when some combination of the
 predictors splits the 0s from the 1s, the likelihood has no maximum and Newton's
-coefficients diverge. The observed fit detects that (no convergence), names the
-predictor — first by the one-predictor check (max x among 0s <= min x among 1s, or the
-reverse), else by the linear programme "maximise sum_d s_d x_d'b subject to s_d x_d'b >= 0,
--1 <= b <= 1", s_d = 2 y_d - 1, whose optimum is positive exactly when the data are
-(quasi-)separated — and raises :class:`NumericalError` suggesting Firth's penalised
+coefficients diverge. A failed observed (or reduced) fit is referred to a test of its own:
+first the one-predictor check (max x among 0s <= min x among 1s, or the reverse), else the
+linear programme "maximise sum_d s_d x_d'b subject to s_d x_d'b >= 0, -1 <= b <= 1",
+s_d = 2 y_d - 1, whose optimum is positive exactly when the data are (quasi-)separated,
+solved by cutting planes (``separating_predictors``). Only when it holds is the fit called
+separated: :class:`NumericalError` names the predictors and suggests Firth's penalised
 likelihood (Firth 1993, Biometrika 80:27-38; Heinze & Schemper 2002, Stat. Med.
-21:2409-2419) or dropping or merging categories. A permuted fit that fails gives a NaN
-statistic, which the p-value counts as at least as extreme (conservative); the number of
-such fits is reported as ``failed``.
+21:2409-2419) or dropping or merging categories. Any other failure "did not converge after
+N Newton steps", with the reason, the last step's size and the term that moved most. A
+permuted fit that fails gives a NaN statistic, which the p-value counts as at least as
+extreme (conservative); the number of such fits is reported as ``failed``.
 
 Schemes
 -------
@@ -55,11 +65,23 @@ Per-relabelling refits start from the observed fits: for ``dsp`` from the observ
 fit of term j with 0 for e_pi (the expected value of its coefficient under relabelling);
 for ``y`` from the observed fit of the intercept alone, logit(mean y) and zero slopes (the
 expected fit of a relabelled response; starting from the observed slopes costs more Newton
-steps whenever the effects are large — see benchmarks/RESULTS.md). With complete data the
-first Newton step from there is free: at the start the fitted probabilities are the
-observed fit's, so the step needs only sums over the relabelled column gathered anyway
-(X'y_pi for ``y``; e_pi'(y - mu), Z'W e_pi and sum w e_pi^2 for ``dsp``, the pieces of the
-score statistic); the Newton iterations proper start from that one-step estimate.
+steps whenever the effects are large). With complete data the first Newton step from there
+is free: at the start the fitted probabilities are the observed fit's, so the step needs
+only sums over the relabelled column gathered anyway (X'y_pi for ``y``; e_pi'(y - mu),
+Z'W e_pi and sum w e_pi^2 for ``dsp``, the pieces of the score statistic); the Newton
+iterations proper start from that one-step estimate. A dsp refit then costs a gather of
+the relabelled residual and about two passes over the dyads.
+
+Scheme ``y`` with complete data needs no pass over the dyads at all beyond the gather of
+X'y_pi (the linear engine's ``gather_cross``): a fit of the canonical link depends on y_pi
+only through X'y_pi, and X'mu and X'WX at any coefficients near the intercept-only fit are
+series in the moments of the design, computed once (``kernels.irls``, section "scheme y
+with complete data"; ``_series_degree`` chooses the degree so the truncation is below the
+rounding of a pass out to SERIES_SE standard errors on every slope). Each evaluation checks
+its truncation bound; a relabelling beyond it (or the observed fit, far out when the
+effects are large) is refitted by passes over the dyads instead, so a statistic never
+rests on a truncated series. Refits and score statistics of scheme y then cost the linear
+y scheme's gather.
 
 Score statistic (``statistic="score"``)
 ---------------------------------------
@@ -85,9 +107,9 @@ Which quantities stay fixed under relabelling:
   every relabelling: the reduced fit is the observed one, I is fixed, and the statistic is
   (x'y_pi - x'mu) / sqrt(I) — one product per relabelling, taken by the linear engine's
   ``gather_cross``, the cost of the linear y scheme. Otherwise Z'y_pi changes and the
-  reduced model is refitted for each relabelling and each tested term (warm-started from
-  the observed reduced fit) — k reduced refits, dearer than one full refit: with two or
-  more predictors use ``dsp`` for the fast path.
+  reduced model of each tested term is refitted for each relabelling: from X'y_pi and the
+  moments of the design with complete data (above), else by passes over the dyads, the
+  score taken from the fit's last pass (which sums term j's column too).
 
 Its observed value equals the full model's score test of b_j (for ``dsp`` because
 Z'(y - mu) = 0 at the reduced fit, so e and x_j have the same U and I).
@@ -420,10 +442,14 @@ class LogisticPlan:
 
     ``kind`` names the route (module docstring): "refit-y", "refit-dsp", "score-y",
     "score-dsp-refit" run the Newton drivers of ``kernels.irls`` on dyad vectors;
-    "score-y-products" needs one dot product of the relabelled response with a fixed
-    layer (``kernels.gather.gather_cross``, the linear engine's kernel) and
-    "score-dsp-products" the sums of ``kernels.irls.score_rows``. ``arrays`` holds the
-    route's inputs; ``scale`` (k,) multiplies coefficients back into the user's units.
+    "series-y" (scheme y, complete data, refits or score statistics) gathers X'y_pi with
+    the linear engine's ``kernels.gather.gather_cross`` and fits from the moments of the
+    design (``kernels.irls.series_y``); "score-y-products" needs one dot product of the
+    relabelled response with a fixed layer (``gather_cross``) and "score-dsp-products" the
+    sums of ``kernels.irls.score_rows``. ``arrays`` holds the route's inputs; ``scale``
+    (k,) multiplies coefficients back into the user's units. ``statistics_and_passes``
+    also returns the passes over the dyads each relabelling took (a gather of a
+    relabelled layer counts as one).
     """
 
     kind: str

@@ -89,13 +89,13 @@ def check_against_statsmodels(n, density, seed, combos):
 
 
 def test_million_dyads_match_statsmodels():
-    # the reported case: n = 1000, density about 4%, every scheme and statistic
-    check_against_statsmodels(1000, 0.04, 5, [("y", "t"), ("dsp", "t"), ("dsp", "score"),
-                                               ("y", "score")])
+    # the reported case: n = 1000, density about 4%, the three settings that were refused
+    # (scheme y with statistic t is in the slow test below)
+    check_against_statsmodels(1000, 0.04, 5, [("dsp", "t"), ("dsp", "score"), ("y", "score")])
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("density", [0.01, 0.1, 0.3])
+@pytest.mark.parametrize("density", [0.01, 0.04, 0.1, 0.3])
 def test_million_dyads_match_statsmodels_densities(density):
     check_against_statsmodels(1000, density, 6, [("y", "t"), ("dsp", "t"), ("dsp", "score"),
                                                   ("y", "score")])
