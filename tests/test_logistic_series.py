@@ -226,3 +226,40 @@ def test_series_route_bits_independent_of_chunks(rng, monkeypatch):
         res = dp.regress(Y, preds, **other, **kw)
         # engine contract (design.md): bit-identical for any chunking and jobs
         np.testing.assert_array_equal(np.asarray(res.null), np.asarray(base.null))
+
+
+@pytest.mark.parametrize("shape", ["undirected", "groups-within", "two-mode"])
+@pytest.mark.parametrize("statistic", ["t", "score"])
+def test_series_route_on_data_shapes(rng, monkeypatch, shape, statistic):
+    # the gather of X'y_pi over the dyad set of each shape (the linear engine's ranges);
+    # a series degree is forced (the plan's choice needs larger networks), so relabellings
+    # within the series' reach use it and the others are refitted by passes
+    n, m = (60, 70) if shape == "two-mode" else (80, 80)
+    x1 = (rng.random((n, m)) < 0.2).astype(float)
+    x2 = rng.normal(size=(n, m))
+    kw = {}
+    if shape == "undirected":
+        x1, x2 = np.triu(x1, 1) + np.triu(x1, 1).T, np.triu(x2, 1) + np.triu(x2, 1).T
+    if shape == "groups-within":
+        kw = dict(groups=np.repeat([0, 1, 2, 3], 20), dyads="within")
+    Y = (rng.random((n, m)) < expit(-1.5 + 0.4 * x1)).astype(float)
+    if shape == "undirected":
+        Y = np.triu(Y, 1) + np.triu(Y, 1).T
+    preds = {"a": x1, "b": x2}
+    prep = prepare(Y, preds, **kw)
+    dd = lg.dyad_data(prep)
+    fit = lg.observed_fit(prep, dd)
+    monkeypatch.setattr(lg, "_series_degree", lambda *args: 24)
+    plan = lg.build_plan(prep, dd, fit, scheme="y", statistic=statistic)
+    assert plan.kind == "series-y"
+    rows = np.array([rng.permutation(n) for _ in range(30)])
+    cols = rows if shape != "two-mode" else np.array([rng.permutation(m) for _ in range(30)])
+    if shape == "groups-within":  # relabel within the groups
+        rows = np.array([np.concatenate([20 * g + rng.permutation(20) for g in range(4)])
+                         for _ in range(30)])
+        cols = rows
+    stats, passes = plan.statistics_and_passes(rows, cols)
+    assert np.sum(passes == 1) >= 10  # most relabellings within the series' reach
+    monkeypatch.setattr(lg, "_series_degree", lambda *args: None)
+    by_passes = lg.build_plan(prep, dd, fit, scheme="y", statistic=statistic)
+    np.testing.assert_allclose(stats, by_passes.statistics(rows, cols), rtol=ROUTE_RTOL)
