@@ -38,9 +38,11 @@ step thirty times and give up). M is bounded by sum_c |d_c| xmax_c, xmax_c = max
 over the fit's dyads.
 
 Convergence: the next Newton step moves no dyad's linear predictor by more than ``tol``
-(M <= tol, a criterion free of the predictors' units and of N); that step is taken without
-another pass, and the Wald covariance is H^-1 where it started (every weight within a
-factor exp(+-tol) of the estimate's). Under separation (Albert & Anderson 1984, Biometrika
+(M <= tol, a criterion free of the predictors' units and of N), or by no more than the
+rounding of the gradient's sums alone could make it move (``ROUNDING_ULPS``: an
+ill-conditioned fit stops at its rounding floor instead of running out of steps); that
+step is taken without another pass, and the Wald covariance is H^-1 where it started
+(every weight within a factor exp(+-M) of the estimate's). Under separation (Albert & Anderson 1984, Biometrika
 71:1-10) the coefficients diverge and the fit fails (no convergence in ``max_iter`` steps,
 or an information matrix that underflows to singular); it is never reported as converged.
 
@@ -65,8 +67,9 @@ FAIL_ITERATIONS = -1  # no convergence in max_iter steps (diverging coefficients
 FAIL_SINGULAR = -2  # the weighted information X'WX is singular
 FAIL_STEP = -3  # no acceptable step (non-finite sums)
 FAIL_DYADS = -4  # no more valid dyads than coefficients
-FAIL_SATURATED = -5  # converged in appearance only: the information is below the gradient's
-#                      rounding (fitted probabilities at 0 or 1 under separation)
+FAIL_ROUNDING = -5  # converged in appearance only: the data determine the estimate only up
+#                     to the rounding of the gradient (fitted probabilities at 0 or 1 under
+#                     separation, or nearly collinear predictors)
 
 # Diagnostics of a fit, written to ``info``: passes over the dyads, the last Newton step's
 # bound on the largest change of a linear predictor (M), the design column (position in
@@ -86,13 +89,14 @@ CACHE_LINE = 64
 # A Cholesky pivot this small relative to its diagonal entry marks a singular information.
 SINGULAR_PIVOT = 1e-12
 # A converged fit must be determined by its data, not by rounding: the Newton step that a
-# gradient error of ROUNDING_ULPS units in the last place of n_valid terms of size xmax
-# would cause (H^-1 dg) must move no linear predictor by more than ROUNDING_MOVE. With an
-# ordinary information (about n w per coefficient) that move is near 1e-13 whatever n.
+# gradient error of ROUNDING_ULPS units in the last place of sqrt(n_valid) terms of size
+# xmax (rounding errors adding up like a random walk) would cause (H^-1 dg) must move no
+# linear predictor by more than ROUNDING_MOVE. With an ordinary information (about n w per
+# coefficient) that move is near 1e-14 / sqrt(n).
 # Along a separation (Albert & Anderson 1984) gradient and information both shrink like
 # exp(-|eta|), the Newton steps stay of size 1, and a fit can only look converged once the
-# gradient has vanished into its rounding, where that move exceeds 1: such a fit is
-# reported as FAIL_SATURATED.
+# gradient has vanished into its rounding, where that move exceeds 1; nearly collinear
+# predictors inflate it too. Such a fit is reported as FAIL_ROUNDING.
 ROUNDING_ULPS = 16.0
 ROUNDING_MOVE = 1e-3
 # Halvings of a Newton step tried before giving up (a step of length 2^-30 with M below
@@ -439,14 +443,15 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
 
 @njit(**KERNEL_OPTIONS)
 def _rounding_move(cov, xmax, q, n_valid):
-    """sum_c xmax_c |H^-1 dg|_c for a gradient error dg_e = ROUNDING_ULPS eps n_valid xmax_e:
-    how far the linear predictors may move from the rounding of the gradient's sums."""
-    eps = np.finfo(np.float64).eps
+    """sum_c xmax_c sum_e |H^-1|_ce dg_e for a gradient error
+    dg_e = ROUNDING_ULPS eps sqrt(n_valid) xmax_e: how far the linear predictors may move
+    from the rounding of the gradient's sums (whose errors add up like a random walk)."""
+    scale = ROUNDING_ULPS * np.finfo(np.float64).eps * np.sqrt(n_valid)
     move = 0.0
     for c in range(q):
         dc = 0.0
         for e in range(q):
-            dc += abs(cov[c, e]) * ROUNDING_ULPS * eps * n_valid * xmax[e]
+            dc += abs(cov[c, e]) * scale * xmax[e]
         move += dc * xmax[c]
     return move
 
@@ -536,13 +541,14 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
         Newton steps allowed.
     tol : float
         Converged when the next step moves no linear predictor by more than tol
-        (sum_c |d_c| xmax_c <= tol); that step is taken without another pass.
+        (sum_c |d_c| xmax_c <= tol), or than the gradient's rounding could; that step is
+        taken without another pass.
 
     Returns
     -------
     int
         Newton steps taken (>= 1, the last one included) when converged, else a negative
-        FAIL_* code (FAIL_SATURATED: converged in appearance only, see ROUNDING_ULPS).
+        FAIL_* code (FAIL_ROUNDING: determined only up to rounding, see ROUNDING_ULPS).
     """
     qa = cols.shape[0]
     H = state[0:qa]
@@ -595,13 +601,14 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
                 top = mc
                 info[INFO_TERM] = c
         info[INFO_MOVE] = move
-        if move <= tol:
+        _cholesky_inverse(L, tmp, cov_out, q)
+        floor = _rounding_move(cov_out, xmax, q, n_valid)
+        if move <= tol or move <= floor:  # (a step the rounding alone can cause: done)
             info[INFO_STEPS] = it
             for c in range(q):
                 beta_out[c] = beta[c] + d[c]
-            _cholesky_inverse(L, tmp, cov_out, q)
-            if not (_rounding_move(cov_out, xmax, q, n_valid) <= ROUNDING_MOVE):
-                return FAIL_SATURATED  # the gradient has vanished into its rounding
+            if not (floor <= ROUNDING_MOVE):
+                return FAIL_ROUNDING  # the gradient has vanished into its rounding
             return it
         s = 1.0
         accepted = False

@@ -547,12 +547,13 @@ def newton_twin(Xc, q, xy, valid, xmax, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL)
             return kn.FAIL_SINGULAR, None, None, passes, None
         d = np.linalg.solve(H[:q, :q], g)
         move = np.abs(d) @ xmax
-        if move <= tol:
-            cov = np.linalg.inv(H[:q, :q])
-            # the move a gradient rounding of ROUNDING_ULPS ulps of n terms would cause
-            dg = kn.ROUNDING_ULPS * np.finfo(float).eps * valid.sum() * xmax
-            if not (xmax @ (np.abs(cov) @ dg) <= kn.ROUNDING_MOVE):
-                return kn.FAIL_SATURATED, None, None, passes, None
+        cov = np.linalg.inv(H[:q, :q])
+        # the move a gradient rounding of ROUNDING_ULPS ulps of sqrt(n) terms would cause
+        dg = kn.ROUNDING_ULPS * np.finfo(float).eps * np.sqrt(valid.sum()) * xmax
+        floor = xmax @ (np.abs(cov) @ dg)
+        if move <= tol or move <= floor:
+            if not (floor <= kn.ROUNDING_MOVE):
+                return kn.FAIL_ROUNDING, None, None, passes, None
             return 0, beta + d, cov, passes, (H, f, d)
         for h in range(kn.MAX_HALVINGS + 1):
             s = 0.5 ** h
@@ -699,7 +700,7 @@ def test_newton_fit_failure_codes(rng):
     xmax = np.abs(X).max(axis=0)
     # diverging coefficients: no convergence, an information that underflows to singular,
     # or fitted probabilities of 0 and 1 to double precision
-    failed = (kn.FAIL_ITERATIONS, kn.FAIL_SINGULAR, kn.FAIL_SATURATED)
+    failed = (kn.FAIL_ITERATIONS, kn.FAIL_SINGULAR, kn.FAIL_ROUNDING)
     assert run_fit(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
     assert newton_twin(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
     assert separated(X, y)  # source: the LP of Albert & Anderson (1984)

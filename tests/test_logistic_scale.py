@@ -133,14 +133,18 @@ def test_step_limit_is_not_called_separation(monkeypatch):
 
 # --- property: every fit statsmodels completes, the engine completes and agrees ------------
 def _random_design(data, n_dyads):
-    """X (N, 1 + k) of binary, category-match and continuous predictors and a 0/1 y."""
+    """X (N, 1 + k) of binary, category-match, continuous and nearly collinear predictors
+    and a 0/1 y."""
     seed = data.draw(st.integers(0, 2**32 - 1), label="seed")
     rng = np.random.default_rng(seed)
     k = data.draw(st.integers(1, 4), label="k")
     cols = [np.ones(n_dyads)]
     for _ in range(k):
-        kind = data.draw(st.sampled_from(["binary", "category", "continuous", "gap"]))
-        if kind == "binary":
+        kind = data.draw(st.sampled_from(["binary", "category", "continuous", "gap",
+                                          "near-copy"]))
+        if kind == "near-copy":  # nearly collinear with the previous column
+            x = cols[-1] + rng.normal(0, data.draw(st.floats(1e-4, 0.1)), n_dyads)
+        elif kind == "binary":
             x = (rng.random(n_dyads) < data.draw(st.floats(0.01, 0.5))).astype(float)
         elif kind == "category":
             g = data.draw(st.integers(2, 8))
