@@ -13,11 +13,12 @@ Models, 2nd ed., section 2.5 [memory]):
 The response enters only through X'y (the canonical link's sufficient statistic), so a pass
 over the dyads reads the design alone: X'mu and X'WX at the current coefficients.
 
-Rounding. A pass sums in three levels: 16 vector lanes within a block of ``BLOCK`` dyads,
-blocks into a super-block, super-blocks into the total. The rounding error of a sum is then
-a few hundred units in the last place of the sum of the absolute terms, whatever N (a
-plain running sum over 10^8 dyads can lose 10^8 units); the order is fixed by the dyad
-order, so a fit's bits depend only on its inputs.
+Rounding. A pass sums in three levels: each sum is kept in ACC_LANES vector lanes over the
+blocks of ``BLOCK`` dyads of a super-block (at most 2048 terms per lane), the lanes are
+added pairwise at the end of the super-block, and super-blocks into the total. The
+rounding error of a sum is then a few thousand units in the last place of the sum of the
+absolute terms at worst, whatever N (a plain running sum over 10^8 dyads can lose 10^8
+units); the order is fixed by the dyad order, so a fit's bits depend only on its inputs.
 
 Step acceptance without the deviance. Along a Newton direction d, the deviance
 phi(s) = D(b + s d) has phi'(0) = -2 lam2 (lam2 = d'g, the squared Newton decrement) and
@@ -42,9 +43,10 @@ Convergence: the next Newton step moves no dyad's linear predictor by more than 
 rounding of the gradient's sums alone could make it move (``ROUNDING_ULPS``: an
 ill-conditioned fit stops at its rounding floor instead of running out of steps); that
 step is taken without another pass, and the Wald covariance is H^-1 where it started
-(every weight within a factor exp(+-M) of the estimate's). Under separation (Albert & Anderson 1984, Biometrika
-71:1-10) the coefficients diverge and the fit fails (no convergence in ``max_iter`` steps,
-or an information matrix that underflows to singular); it is never reported as converged.
+(every weight within a factor exp(+-M) of the estimate's). Under separation (Albert &
+Anderson 1984, Biometrika 71:1-10) the coefficients diverge and the fit fails (no
+convergence in ``max_iter`` steps, an information matrix that underflows to singular, or a
+gradient vanished into its rounding: FAIL_ROUNDING); it is never reported as converged.
 
 The drivers loop over the relabellings of one chunk: they gather the relabelled layer
 (``value = layer[row_perm[rows[d]], col_perm[cols[d]]]``; no n x n array is built) while
@@ -103,8 +105,8 @@ ROUNDING_MOVE = 1e-3
 # about 10^9 is always certified, so only non-finite sums exhaust them).
 MAX_HALVINGS = 30
 
-# Dyads per block of a pass (a multiple of 2 * LANES), lanes of the vector accumulators,
-# and blocks per super-block: the three levels of every sum over the dyads.
+# Dyads per block of a pass (a multiple of ACC_LANES), lanes of a vector register, and
+# blocks per super-block: the levels of every sum over the dyads.
 BLOCK = 256
 LANES = 8
 SUPER = 256
@@ -1076,10 +1078,10 @@ def score_dsp_refit(resid, rows, cols, row_perms, col_perms, XT, y, fixed_ok, zc
     """DSP score statistics with missing dyads: the reduced model is refitted on each
     relabelling's dyad set (where y, Z_a and e_pi are observed), then scored.
 
-    Parameters as in ``refit_dsp`` (``resid`` (K, n, m)); ``zcols`` (K, q) the reduced-model columns of XT,
-    ``gamma0`` (K, q) their warm start; ``out`` (B, K) written (NaN: failed fit);
-    ``passes`` (B,) written. The score is taken from the reduced fit's last pass, which
-    sums the relabelled column too (``score_from_state``).
+    Parameters as in ``refit_dsp`` (``resid`` (K, n, m)); ``zcols`` (K, q) the
+    reduced-model columns of XT, ``gamma0`` (K, q) their warm start; ``out`` (B, K)
+    written (NaN: failed fit); ``passes`` (B,) written. The score is taken from the
+    reduced fit's last pass, which sums the relabelled column too (``score_from_state``).
     """
     n_fixed, n_dyads = XT.shape
     n_terms = resid.shape[0]
@@ -1199,7 +1201,8 @@ def score_y(layer, rows, cols, row_perms, col_perms, XT, fixed_ok, xmax, zcols, 
 # series after degree D leaves, per dyad, at most
 #
 #     tail_mu = 2 sum_m (U / rho_m)^(D+1) / (rho_m (1 - U / rho_m)),
-#     tail_w  = 2 sum_m (U / rho_m)^(D+1) ((D + 2) - (D + 1) U / rho_m) / (rho_m^2 (1 - U / rho_m)^2),
+#     tail_w  = 2 sum_m (U / rho_m)^(D+1) ((D + 2) - (D + 1) U / rho_m)
+#                       / (rho_m^2 (1 - U / rho_m)^2),
 #
 # with U = sum_c |b~_c| xmax_c >= max_d |u_d|. Every evaluation checks that both are below
 # SERIES_REL w(b_0) (the rounding of mu in a pass); if not, that relabelling is refitted by

@@ -276,10 +276,13 @@ def design_columns(X: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
 
 def fit_logistic(X: np.ndarray, cols: np.ndarray, y: np.ndarray, valid: np.ndarray,
                  beta0: np.ndarray, *, tol: float = TOL_OBSERVED) -> KernelFit:
-    """One fit of y on the columns ``cols`` of X (N, P) over the ``valid`` dyads."""
+    """One fit of y on the columns ``cols`` of X (N, P) over the ``valid`` dyads; column
+    cols[0] is the intercept (1 on every dyad: the kernels do not read it)."""
     cols = np.asarray(cols, dtype=np.int64)
     q = cols.shape[0]
     XT = design_columns(X, cols)
+    if not np.all(XT[0] == 1.0):
+        raise ValueError("fit_logistic: the first design column must be the intercept")
     valid = np.ascontiguousarray(valid, dtype=bool)
     yv = np.where(valid, np.nan_to_num(y, nan=0.0), 0.0)
     xy = (XT * yv).sum(axis=1)  # X'y over the valid dyads (numpy's pairwise sums)
