@@ -39,14 +39,15 @@ step thirty times and give up). M is bounded by sum_c |d_c| xmax_c, xmax_c = max
 over the fit's dyads.
 
 Convergence: the next Newton step moves no dyad's linear predictor by more than ``tol``
-(M <= tol, a criterion free of the predictors' units and of N), or by no more than the
-rounding of the gradient's sums alone could make it move (``ROUNDING_ULPS``: an
-ill-conditioned fit stops at its rounding floor instead of running out of steps); that
-step is taken without another pass, and the Wald covariance is H^-1 where it started
-(every weight within a factor exp(+-M) of the estimate's). Under separation (Albert &
-Anderson 1984, Biometrika 71:1-10) the coefficients diverge and the fit fails (no
-convergence in ``max_iter`` steps, an information matrix that underflows to singular, or a
-gradient vanished into its rounding: FAIL_ROUNDING); it is never reported as converged.
+(M <= tol, a criterion free of the predictors' units and of N), or no coefficient by more
+than DECREMENT_TOL standard errors (the Newton decrement); that step is taken without
+another pass, and the Wald covariance is H^-1 where it started (every weight within a
+factor exp(+-M) of the estimate's). Under separation (Albert & Anderson 1984, Biometrika
+71:1-10) the coefficients diverge and the fit fails: no convergence in ``max_iter`` steps,
+an information matrix that underflows to singular, or, when a small fit's gradient has
+vanished into its rounding and the step looks converged, the test of SATURATED_WEIGHT (the
+dyads that inform some combination of the coefficients all have fitted probabilities of 0
+or 1). A separated fit is never reported as converged.
 
 The drivers loop over the relabellings of one chunk: they gather the relabelled layer
 (``value = layer[row_perm[rows[d]], col_perm[cols[d]]]``; no n x n array is built) while
@@ -69,9 +70,9 @@ FAIL_ITERATIONS = -1  # no convergence in max_iter steps (diverging coefficients
 FAIL_SINGULAR = -2  # the weighted information X'WX is singular
 FAIL_STEP = -3  # no acceptable step (non-finite sums)
 FAIL_DYADS = -4  # no more valid dyads than coefficients
-FAIL_ROUNDING = -5  # converged in appearance only: the data determine the estimate only up
-#                     to the rounding of the gradient (fitted probabilities at 0 or 1 under
-#                     separation, or nearly collinear predictors)
+FAIL_SATURATED = -5  # converged in appearance only: the fitted probabilities of the dyads
+#                      that inform some combination of the coefficients are 0 or 1
+#                      (separation; see SATURATED_WEIGHT)
 
 # Diagnostics of a fit, written to ``info``: passes over the dyads, the last Newton step's
 # bound on the largest change of a linear predictor (M), the design column (position in
@@ -90,17 +91,23 @@ CACHE_LINE = 64
 
 # A Cholesky pivot this small relative to its diagonal entry marks a singular information.
 SINGULAR_PIVOT = 1e-12
-# A converged fit must be determined by its data, not by rounding: the Newton step that a
-# gradient error of ROUNDING_ULPS units in the last place of sqrt(n_valid) terms of size
-# xmax (rounding errors adding up like a random walk) would cause (H^-1 dg) must move no
-# linear predictor by more than ROUNDING_MOVE. With an ordinary information (about n w per
-# coefficient) that move is near 1e-14 / sqrt(n).
-# Along a separation (Albert & Anderson 1984) gradient and information both shrink like
-# exp(-|eta|), the Newton steps stay of size 1, and a fit can only look converged once the
-# gradient has vanished into its rounding, where that move exceeds 1; nearly collinear
-# predictors inflate it too. Such a fit is reported as FAIL_ROUNDING.
-ROUNDING_ULPS = 16.0
-ROUNDING_MOVE = 1e-3
+# A fit that looks converged with some |linear predictor| possibly beyond ETA_SUSPECT (by
+# the bound sum_c |b_c| xmax_c) takes one more pass for the unweighted information
+# G = X'X, and fails as FAIL_SATURATED when some combination v of its coefficients has
+# v'X'WX v < SATURATED_WEIGHT v'X'X v: a mean weight w = mu (1 - mu), over the dyads that
+# inform v, of a fitted probability within 1e-11 of 0 or 1. Along a separation (Albert &
+# Anderson 1984) gradient and information both shrink like exp(-|eta|), so the Newton
+# steps stay of size 1 and a fit can look converged only once the gradient has vanished
+# into its rounding, with weights near exp(-30) and below; ordinary fits, rare events and
+# nearly collinear predictors included, keep mean weights of 1e-6 and more.
+ETA_SUSPECT = 25.0
+SATURATED_WEIGHT = 1e-11
+# A fit has also converged when the Newton decrement sqrt(d'H d) is at most DECREMENT_TOL:
+# no coefficient moves by more than that many standard errors (|d_c| <= se_c sqrt(d'H d)).
+# With nearly collinear predictors M, a bound that ignores how the coefficients' moves
+# cancel in the linear predictors, can stall at the gradient's rounding while the
+# decrement is far below this.
+DECREMENT_TOL = 1e-9
 # Halvings of a Newton step tried before giving up (a step of length 2^-30 with M below
 # about 10^9 is always certified, so only non-finite sums exhaust them).
 MAX_HALVINGS = 30
@@ -444,18 +451,76 @@ def newton_pass(XT, ext, cols, q, valid, all_valid, beta, blk, kb, acc, H, f):
 
 
 @njit(**KERNEL_OPTIONS)
-def _rounding_move(cov, xmax, q, n_valid):
-    """sum_c xmax_c sum_e |H^-1|_ce dg_e for a gradient error
-    dg_e = ROUNDING_ULPS eps sqrt(n_valid) xmax_e: how far the linear predictors may move
-    from the rounding of the gradient's sums (whose errors add up like a random walk)."""
-    scale = ROUNDING_ULPS * np.finfo(np.float64).eps * np.sqrt(n_valid)
-    move = 0.0
-    for c in range(q):
-        dc = 0.0
-        for e in range(q):
-            dc += abs(cov[c, e]) * scale * xmax[e]
-        move += dc * xmax[c]
-    return move
+def gram_pass(XT, ext, cols, q, valid, all_valid, blk, acc, G):
+    """G = X'X over the valid dyads, the first q columns of ``cols`` (the unweighted
+    information; workspaces as in ``newton_pass``)."""
+    n = valid.shape[0]
+    xb = blk[0:q]
+    for e in range(acc.shape[0]):
+        acc[e] = 0.0
+    for r in range(q):
+        for c in range(q):
+            G[r, c] = 0.0
+    n_blocks = 0
+    for d0 in range(0, n, BLOCK):
+        nb = min(BLOCK, n - d0)
+        for c in range(q):
+            xc = xb[c]
+            if cols[c] == 0:
+                for i in range(nb):
+                    xc[i] = 1.0
+            else:
+                src = _column(XT, ext, cols[c])[d0:d0 + nb]
+                for i in range(nb):
+                    xc[i] = src[i]
+            if not all_valid:
+                vb = valid[d0:d0 + nb]
+                for i in range(nb):
+                    if not vb[i]:
+                        xc[i] = 0.0
+            for i in range(nb, BLOCK):
+                xc[i] = 0.0
+        for r in range(q):
+            for c in range(r + 1):
+                vdot_acc(xb[r], xb[c], BLOCK, acc, (r * q + c) * ACC_LANES)  # G = X'X
+        n_blocks += 1
+        if n_blocks == SUPER or d0 + BLOCK >= n:
+            for r in range(q):
+                for c in range(r + 1):
+                    G[r, c] += _lane_sum(acc, (r * q + c) * ACC_LANES)
+            n_blocks = 0
+    for r in range(q):
+        for c in range(r + 1, q):
+            G[r, c] = G[c, r]
+
+
+@njit(**KERNEL_OPTIONS)
+def smallest_weight(H, G, q, work):
+    """min over v of v'Hv / v'Gv (the least mean weight along any combination of the
+    coefficients): the smallest eigenvalue of C^-1 H C^-T, C C' = G (leading q x q blocks;
+    ``work`` (3, q, q) scratch); 0 when G is not positive definite."""
+    C = work[0]
+    A = work[1]
+    M = work[2]
+    if not _cholesky(G, C, q):
+        return 0.0
+    for c in range(q):  # A = C^-1 H
+        for r in range(q):
+            s = H[r, c]
+            for e in range(r):
+                s -= C[r, e] * A[e, c]
+            A[r, c] = s / C[r, r]
+    for r in range(q):  # M = A C^-T
+        for c in range(q):
+            s = A[r, c]
+            for e in range(c):
+                s -= M[r, e] * C[c, e]
+            M[r, c] = s / C[c, c]
+    Ms = np.empty((q, q))
+    for r in range(q):
+        for c in range(q):
+            Ms[r, c] = 0.5 * (M[r, c] + M[c, r])
+    return np.linalg.eigvalsh(Ms)[0]
 
 
 # --- dense linear algebra on the leading q x q block ---------------------------------------
@@ -550,7 +615,7 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
     -------
     int
         Newton steps taken (>= 1, the last one included) when converged, else a negative
-        FAIL_* code (FAIL_ROUNDING: determined only up to rounding, see ROUNDING_ULPS).
+        FAIL_* code (FAIL_SATURATED: converged in appearance only, see SATURATED_WEIGHT).
     """
     qa = cols.shape[0]
     H = state[0:qa]
@@ -603,14 +668,24 @@ def newton_fit(XT, ext, cols, q, xy, valid, all_valid, xmax, beta0, blk, kb, acc
                 top = mc
                 info[INFO_TERM] = c
         info[INFO_MOVE] = move
-        _cholesky_inverse(L, tmp, cov_out, q)
-        floor = _rounding_move(cov_out, xmax, q, n_valid)
-        if move <= tol or move <= floor:  # (a step the rounding alone can cause: done)
+        lam2 = 0.0
+        for c in range(q):
+            lam2 += d[c] * g[c]  # the squared Newton decrement d'H d
+        if move <= tol or lam2 <= DECREMENT_TOL * DECREMENT_TOL:
             info[INFO_STEPS] = it
             for c in range(q):
                 beta_out[c] = beta[c] + d[c]
-            if not (floor <= ROUNDING_MOVE):
-                return FAIL_ROUNDING  # the gradient has vanished into its rounding
+            _cholesky_inverse(L, tmp, cov_out, q)
+            bound = 0.0
+            for c in range(q):
+                bound += abs(beta[c]) * (1.0 if cols[c] == 0 else xmax[c])
+            if bound > ETA_SUSPECT:  # could some fitted probability be at 0 or 1?
+                gram_pass(XT, ext, cols, q, valid, all_valid, blk, acc, Ht)
+                passes += 1
+                info[INFO_PASSES] = passes
+                scratch = blk.reshape(-1)[:3 * q * q].reshape((3, q, q))
+                if not (smallest_weight(H, Ht, q, scratch) >= SATURATED_WEIGHT):
+                    return FAIL_SATURATED
             return it
         s = 1.0
         accepted = False

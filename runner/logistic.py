@@ -130,7 +130,7 @@ from . import store as _store
 from .engine import CHUNK_WORK, MAX_CHUNK
 from .errors import DyadpermWarning, InputError, NumericalError
 from .kernels.gather import gather_cross
-from .kernels.irls import (FAIL_DYADS, FAIL_ITERATIONS, FAIL_ROUNDING,
+from .kernels.irls import (FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED,
                            FAIL_SINGULAR, INFO_MOVE, INFO_PASSES, INFO_SIZE, INFO_STEPS,
                            INFO_TERM, SCORE_BLOCK, SERIES_REL, irls_logistic, monomial_tables,
                            refit_dsp, refit_y, score_dsp_refit, score_from_sums, score_logistic,
@@ -364,9 +364,9 @@ def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols:
         why = "the weighted information X'WX became singular"
     elif res.status == FAIL_ITERATIONS:
         why = "the step limit was reached"
-    elif res.status == FAIL_ROUNDING:
-        why = ("the data determine the estimate only up to the rounding of its sums, as when "
-               "fitted probabilities reach 0 or 1 or predictors are nearly collinear")
+    elif res.status == FAIL_SATURATED:
+        why = ("the fitted probabilities of the dyads that inform some combination of the "
+               "coefficients reached 0 or 1")
     else:
         why = "the sums over the dyads are not finite"
     return (f"{fit} did not converge after {res.steps} Newton steps ({why}; {last}), "

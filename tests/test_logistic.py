@@ -21,6 +21,7 @@ import math
 import networkx as nx
 import numpy as np
 import pytest
+import scipy.linalg
 import statsmodels.api as sm
 from numba import njit
 from scipy.optimize import linprog
@@ -534,7 +535,10 @@ def newton_twin(Xc, q, xy, valid, xmax, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL)
     """Twin of kernels.irls.newton_fit: Newton steps from beta0 over the valid rows of Xc
     (N, qa), the model on its first q columns; a step of size s is taken when
     s h(s M) < 1 (M = sum |d_c| xmax_c) or, after its pass, D'H D k(sM) + D'g > 0 (D = s d),
-    else halved; converged when M <= tol (the step is then taken without a new pass).
+    else halved; converged when M <= tol or the Newton decrement d'g <= DECREMENT_TOL^2 (the
+    step is then taken without a new pass),
+    unless the coefficients could put a linear predictor beyond ETA_SUSPECT and some
+    combination of them has a mean weight below SATURATED_WEIGHT (FAIL_SATURATED).
     Returns (status, beta, cov, passes, (H, f, d) at the last coefficients evaluated)."""
     if valid.sum() <= q:
         return kn.FAIL_DYADS, None, None, 0, None
@@ -547,14 +551,16 @@ def newton_twin(Xc, q, xy, valid, xmax, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL)
             return kn.FAIL_SINGULAR, None, None, passes, None
         d = np.linalg.solve(H[:q, :q], g)
         move = np.abs(d) @ xmax
-        cov = np.linalg.inv(H[:q, :q])
-        # the move a gradient rounding of ROUNDING_ULPS ulps of sqrt(n) terms would cause
-        dg = kn.ROUNDING_ULPS * np.finfo(float).eps * np.sqrt(valid.sum()) * xmax
-        floor = xmax @ (np.abs(cov) @ dg)
-        if move <= tol or move <= floor:
-            if not (floor <= kn.ROUNDING_MOVE):
-                return kn.FAIL_ROUNDING, None, None, passes, None
-            return 0, beta + d, cov, passes, (H, f, d)
+        if move <= tol or d @ g <= kn.DECREMENT_TOL ** 2:
+            cols_max = np.concatenate([[1.0], xmax[1:]])  # the intercept: 1
+            if np.abs(beta) @ cols_max > kn.ETA_SUSPECT:
+                # the least mean weight along a combination of the coefficients
+                Xv = Xc[valid][:, :q]
+                passes += 1
+                if scipy.linalg.eigh(H[:q, :q], Xv.T @ Xv, eigvals_only=True)[0] \
+                        < kn.SATURATED_WEIGHT:
+                    return kn.FAIL_SATURATED, None, None, passes, None
+            return 0, beta + d, np.linalg.inv(H[:q, :q]), passes, (H, f, d)
         for h in range(kn.MAX_HALVINGS + 1):
             s = 0.5 ** h
             f_t, H_t = pass_twin(Xc, valid, beta + s * d)
@@ -661,6 +667,29 @@ def test_newton_pass_matches_twin(rng, N, qa, q):
             np.testing.assert_allclose(H, t_H, rtol=TWIN_RTOL, atol=TWIN_ATOL)
 
 
+@pytest.mark.parametrize("N,q", [(2, 1), (3, 2), (17, 3), (600, 4)])
+def test_gram_and_smallest_weight_match_scipy(rng, N, q):
+    X = np.column_stack([np.ones(N), rng.normal(size=(N, q - 1)) * 2])
+    if q > 1:
+        X[rng.random(N) < 0.3, -1] = 0.0  # ties
+    valid = rng.random(N) < 0.8
+    valid[:q] = True
+    shapes = kn.fit_workspace(q)
+    G = np.empty((q, q))
+    kn.gram_pass(np.ascontiguousarray(X.T), np.empty(0), np.arange(q), q, valid, False,
+                 np.empty(shapes[0]), np.empty(shapes[2]), G)
+    Xv = X[valid]
+    # source: numpy's X'X over the valid rows
+    np.testing.assert_allclose(G, Xv.T @ Xv, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    w = expit(Xv @ rng.normal(size=q)) * (1 - expit(Xv @ rng.normal(size=q)))
+    H = Xv.T @ (w[:, None] * Xv)
+    if np.linalg.matrix_rank(Xv) == q:
+        # source: scipy's generalized symmetric eigenproblem H v = lambda G v
+        np.testing.assert_allclose(kn.smallest_weight(H, G, q, np.empty((3, q, q))),
+                                   scipy.linalg.eigh(H, G, eigvals_only=True)[0],
+                                   rtol=1e-9, atol=1e-15)
+
+
 @pytest.mark.parametrize("N,q", [(3, 1), (7, 2), (40, 3), (301, 4), (1000, 5)])
 def test_newton_fit_matches_twin(rng, N, q):
     P = q + 1
@@ -700,7 +729,7 @@ def test_newton_fit_failure_codes(rng):
     xmax = np.abs(X).max(axis=0)
     # diverging coefficients: no convergence, an information that underflows to singular,
     # or fitted probabilities of 0 and 1 to double precision
-    failed = (kn.FAIL_ITERATIONS, kn.FAIL_SINGULAR, kn.FAIL_ROUNDING)
+    failed = (kn.FAIL_ITERATIONS, kn.FAIL_SINGULAR, kn.FAIL_SATURATED)
     assert run_fit(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
     assert newton_twin(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
     assert separated(X, y)  # source: the LP of Albert & Anderson (1984)

@@ -166,13 +166,14 @@ def _random_design(data, n_dyads):
 
 
 def _statsmodels_completes(X, y):
-    """statsmodels Logit (Newton) converged without a warning, on non-separated data."""
+    """statsmodels Logit (Newton, its default step limit and tolerance) converged without a
+    warning."""
     if not 0 < y.sum() < len(y) or np.linalg.matrix_rank(X) < X.shape[1]:
         return None
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         try:
-            fit = sm.Logit(y, X).fit(method="newton", disp=0, maxiter=100, tol=1e-10)
+            fit = sm.Logit(y, X).fit(method="newton", disp=0)
         except Exception:  # noqa: BLE001 - any failure means statsmodels did not complete
             return None
     if not fit.mle_retvals["converged"] or not np.all(np.isfinite(fit.bse)):
