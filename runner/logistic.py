@@ -19,9 +19,11 @@ Convergence (``kernels.irls``, module docstring): Newton steps are accepted by t
 self-concordance bound of the logistic loss, never by comparing two deviances (whose
 difference near the optimum is below their rounding at 10^6 dyads), and a fit has
 converged when the next step moves no dyad's linear predictor by more than ``TOL``
-(``TOL_OBSERVED`` for the fits the result reports); sums over the dyads run in three
-levels, so their rounding does not grow with N. A fit whose gradient has vanished into its
-rounding (fitted probabilities at 0 or 1) is not converged.
+(``TOL_OBSERVED`` for the fits the result reports) or no coefficient by more than 1e-9
+standard errors; sums over the dyads run in three levels, so their rounding does not grow
+with N. A fit that looks converged while the dyads informing some combination of its
+coefficients all have fitted probabilities of 0 or 1 (a separated fit whose gradient has
+vanished into its rounding) is not converged.
 
 Separation (Albert & Anderson 1984, Biometrika 71:1-10): when some combination of the
 predictors splits the 0s from the 1s, the likelihood has no maximum and Newton's
