@@ -950,7 +950,7 @@ def test_score_rows_matches_twin(rng, n, m, k, two_mode, ranges):
 @pytest.mark.parametrize("nan", [False, True])
 def test_score_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     d = _driver_inputs(rng, n, m, k, two_mode, nan)
-    X, p, B = d["X"], d["p"], d["rp"].shape[0]
+    X, B = d["X"], d["rp"].shape[0]
     zcols = lg._reduced_columns(k)
     gamma = rng.normal(scale=0.3, size=(k, k))
     out = np.empty((B, k))
