@@ -1,52 +1,50 @@
-"""Per-permutation cost of the logistic model beside the linear engine, a naive loop and the floor.
+"""Per-relabelling cost of the logistic model against statsmodels refits, in one run.
 
-For n = 1000 nodes (dense directed networks, a 0/1 response with about 30 % ties) and
-k = 1 and k = 3 predictors, prints in one run, per relabelling:
+The design is the case of issue 16 (invented data): a directed binary network of n
+organisations (density about 4 %) with three predictors, a binary tie predictor (an earlier
+contract, 5 % of dyads), a same-category predictor (same region of five) and an absolute
+difference (of founding years). For each n (default 600 and 1000) it prints, per
+relabelling:
 
-- linear y / linear dsp: ``dyadperm.routes.linear`` statistics (the linear engine), the yardstick;
-- logistic score, scheme y and dsp (``statistic="score"``): the dot-product routes of
-  ``dyadperm.routes.logistic`` (y: one product x'y_pi when k = 1, reduced refits otherwise;
-  dsp: the row-wise sums of ``kernels.irls.score_rows``);
-- logistic refit, scheme y and dsp (``statistic="t"``, the Wald z): Newton refits;
-- naive: what a user would write in numpy: relabel with fancy indexing
-  (``Y[np.ix_(p, p)]``), vectorise the dyads, refit by Newton steps with
-  ``np.linalg.solve`` from the same warm start (Y-permutation, Wald z);
-- floor: the bytes of the relabelled float64 layers read once per relabelling
-  (n * n * 8 * R; R = 1 for y, k for dsp) at this machine's one-thread read bandwidth,
-  measured in the same run.
+- the engine's routes of ``dyadperm.routes.logistic`` at ``--jobs`` threads (the engine's thread
+  backend: the relabellings split into one chunk per thread): refits (``statistic="t"``,
+  the Wald z) of schemes y and dsp, and score statistics (``statistic="score"``) of schemes
+  y and dsp; the route each takes (``LogisticPlan.kind``) and the passes over the dyads per
+  relabelling, per refit and per score statistic (a gather of a relabelled layer counts as a
+  pass; scheme y's complete-data route fits from moments of the design and needs only its
+  gather);
+- the baseline: statsmodels ``Logit`` refitted on each relabelled response from the observed
+  estimate (warm start), ``Logit(y_pi, X).fit(start_params=..., method="newton", disp=0)``
+  (statsmodels' BLAS may use every core), with the relabelling by fancy indexing; also a
+  plain numpy Newton refit from the same start (the naive loop);
+- ratios baseline / engine (issue 16: refits >= 10x, score statistics >= 100x), and the
+  engine against the memory-traffic floor (the relabelled float64 layers read once at this
+  machine's one-thread read bandwidth: n^2 8 R bytes, R = 1 for y, k for dsp);
+- with ``--study-perms P`` (n = the largest): ``dyadperm.regress(..., scheme="dsp",
+  permutations=P, jobs)`` end to end, and its projection to 10,000 relabellings.
 
-Times are CPU seconds of one thread (``time.process_time``; BLAS limited to one thread),
-best of ``--rounds`` rounds in which every route runs once in turn, so a busy machine
-slows all routes alike. The statistics of the engine and of the naive loop are compared on
-the same relabellings (largest relative gap reported). Also recorded: mean Newton steps
-per refit from the warm start used and from the alternatives (the choice the module
-docstring of ``dyadperm.routes.logistic`` explains), the bytes of each plan's stored arrays, and
-each child's peak resident memory (ru_maxrss).
+Wall-clock times, best of ``--rounds`` rounds in which every route runs once in turn, so a
+busy machine slows all routes alike. The engine's statistics are compared with statsmodels'
+on the same relabellings (largest relative gap of the Wald z). Each n runs in a fresh
+subprocess (peak resident memory per n).
 
-Each k runs in a fresh subprocess. Usage:
-python benchmarks/bench_logistic.py [--n 1000] [--ks 1,3] [--rounds 3] [--markdown FILE]
+Usage: python benchmarks/bench_logistic.py [--ns 600,1000] [--perms 16] [--rounds 3]
+       [--jobs 2] [--study-perms 300] [--markdown FILE]
 """
 
 from __future__ import annotations
 
 import argparse
 import json
-import os
 import subprocess
 import sys
 import time
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 SEED = 20240611
 HERE = Path(__file__).resolve().parent
-
-
-def _env_one_thread() -> dict:
-    env = dict(os.environ)
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
-                "NUMBA_NUM_THREADS"):
-        env[var] = "1"
-    return env
+ROUTES = (("y", "t"), ("dsp", "t"), ("y", "score"), ("dsp", "score"))
 
 
 def read_bandwidth_one_thread(gib: float = 0.5) -> float:
@@ -57,32 +55,33 @@ def read_bandwidth_one_thread(gib: float = 0.5) -> float:
     return read_bandwidth(gib, threads=1, repeats=5)
 
 
-def make_inputs(n: int, k: int):
-    """Invented data: k normal predictors (the second leaning on the first), a 0/1
-    response from a logistic model with one real effect (about 30 % ties)."""
+def make_inputs(n: int, density: float = 0.04, seed: int = SEED):
+    """(Y, predictors for dyadperm, X and y of the dyads for statsmodels); invented data."""
     import numpy as np
-    rng = np.random.default_rng(SEED + 10 * n + k)
-    xs = [rng.normal(size=(n, n)) for _ in range(k)]
-    if k > 1:
-        xs[1] += 0.5 * xs[0]
-    eta = -1.0 + 0.4 * xs[0]
-    y = (rng.random((n, n)) < 1.0 / (1.0 + np.exp(-eta))).astype(float)
-    return y, xs
+    from scipy.special import expit
 
-
-def _nbytes(obj) -> int:
-    import numpy as np
-    if isinstance(obj, np.ndarray):
-        return obj.nbytes
-    if isinstance(obj, dict):
-        return sum(_nbytes(v) for v in obj.values())
-    if isinstance(obj, (list, tuple)):
-        return sum(_nbytes(v) for v in obj)
-    return 0
+    import dyadperm as dp
+    rng = np.random.default_rng(seed + n)
+    contract = (rng.random((n, n)) < 0.05).astype(float)
+    region = rng.integers(0, 5, n)
+    founded = rng.normal(1990.0, 12.0, n)
+    same = (region[:, None] == region[None, :]).astype(float)
+    gap = np.abs(founded[:, None] - founded[None, :])
+    eta = 1.5 * contract + 0.6 * same - 0.02 * gap
+    off = ~np.eye(n, dtype=bool)
+    lo, hi = -20.0, 20.0
+    for _ in range(60):  # the intercept that gives the density
+        mid = (lo + hi) / 2
+        lo, hi = (mid, hi) if expit(mid + eta[off]).mean() < density else (lo, mid)
+    Y = (rng.random((n, n)) < expit(lo + eta)).astype(float)
+    np.fill_diagonal(Y, 0.0)
+    preds = {"contract": contract, "region": dp.same(region), "founded": dp.gap(founded)}
+    X = np.column_stack([np.ones(off.sum()), contract[off], same[off], gap[off]])
+    return Y, preds, X, off
 
 
 def _naive_newton(X, y, beta0):
-    """Newton refit in plain numpy (the naive loop): Wald z of every slope."""
+    """Newton refit in plain numpy from beta0 (the naive loop): Wald z of every slope."""
     import numpy as np
     b = beta0.copy()
     for _ in range(50):
@@ -97,99 +96,95 @@ def _naive_newton(X, y, beta0):
     return b[1:] / np.sqrt(np.diag(cov)[1:])
 
 
-def child(n: int, k: int, rounds: int) -> dict:
+def _threaded(plan, perms, jobs):
+    """Statistics and passes of ``perms`` split into ``jobs`` chunks run on as many
+    threads (the engine's thread backend)."""
+    import numpy as np
+    parts = np.array_split(perms, jobs)
+    with ThreadPoolExecutor(jobs) as pool:
+        res = list(pool.map(lambda p: plan.statistics_and_passes(p, p), parts))
+    return np.concatenate([r[0] for r in res]), np.concatenate([r[1] for r in res])
+
+
+def child(n: int, n_perm: int, rounds: int, jobs: int, study_perms: int) -> dict:
     import resource
+    import warnings
 
     import numpy as np
+    import statsmodels.api as sm
 
+    import dyadperm as dp
     from dyadperm.routes import logistic as lg
     from dyadperm.inputs.design import prepare
     from dyadperm.pipeline.permutations import draw
-    from dyadperm.routes.linear import build_statistics as build_plan
 
-    y, xs = make_inputs(n, k)
-    prep = prepare(y, {f"x{i + 1}": x for i, x in enumerate(xs)})
+    Y, preds, X, off = make_inputs(n)
+    t0 = time.perf_counter()
+    prep = prepare(Y, preds)
     dd = lg.dyad_data(prep)
     fit = lg.observed_fit(prep, dd)
-    routes = {
-        "linear y": (build_plan(prep, scheme="y", statistic="t"), 32, 1),
-        "linear dsp": (build_plan(prep, scheme="dsp", statistic="t"), 32, k),
-        "logistic score, y": (lg.build_plan(prep, dd, fit, scheme="y", statistic="score"),
-                              32 if k == 1 else 2, 1),
-        "logistic score, dsp": (lg.build_plan(prep, dd, fit, scheme="dsp", statistic="score"),
-                                32, k),
-        "logistic refit, y": (lg.build_plan(prep, dd, fit, scheme="y", statistic="t"), 4, 1),
-        "logistic refit, dsp": (lg.build_plan(prep, dd, fit, scheme="dsp", statistic="t"),
-                                4 if k == 1 else 2, k),
-    }
-    rows, _ = draw(prep.blocks, SEED, 0, 32)
-    out = {"n": n, "k": k, "n_dyads": prep.n_dyads, "routes": {}}
-    stats = {}
-    for name, (plan, B, _) in routes.items():  # warm-up: compile or load the kernels
-        plan.statistics(rows[:1], rows[:1])
-    best = {name: float("inf") for name in routes}
+    setup = {"prepare and observed fit": time.perf_counter() - t0}
+    plans = {}
+    for scheme, statistic in ROUTES:
+        t0 = time.perf_counter()
+        plans[(scheme, statistic)] = lg.build_plan(prep, dd, fit, scheme=scheme,
+                                                   statistic=statistic)
+        setup[f"plan {scheme}/{statistic}"] = time.perf_counter() - t0
+    perms, _ = draw(prep.blocks, SEED, 0, n_perm)
+    for plan in plans.values():  # warm-up: compile or load the kernels
+        plan.statistics(perms[:1], perms[:1])
+    y_obs = Y[off]
+    sm_obs = sm.Logit(y_obs, X).fit(method="newton", disp=0)
+    n_sm = max(2, min(6, n_perm))
+    best = {key: float("inf") for key in list(plans) + ["statsmodels", "naive"]}
+    stats, passes, sm_z = {}, {}, []
     for _ in range(rounds):
-        for name, (plan, B, _) in routes.items():
-            t0 = time.process_time()
-            st = plan.statistics(rows[:B], rows[:B])
-            best[name] = min(best[name], (time.process_time() - t0) / B)
-            stats[name] = st
-    for name, (plan, B, layers) in routes.items():
-        if hasattr(plan, "arrays"):
-            mem = _nbytes(plan.arrays)
-        else:  # a linear plan: its layer stacks (dsp uses one stack as rel and fix)
-            stacks = {id(a): a for p in plan.passes for a in (p.rel, p.fix)}
-            mem = _nbytes(list(stacks.values()))
-        out["routes"][name] = {"sec_per_perm": best[name], "perms": B,
-                               "relabelled_layers": layers, "plan_mib": mem / 2**20}
-    # naive loop: relabel with fancy indexing, Newton refit in numpy (scheme y, Wald z)
-    mask = prep.mask
-    X = dd.X
-    beta0 = lg._null_start(dd.y, dd.complete, k + 1)
-    naive = float("inf")
-    first = []
-    for b in range(2):
-        p = rows[b]
-        t0 = time.process_time()
-        yb = y[np.ix_(p, p)][mask]
-        z = _naive_newton(X, yb, beta0)
-        naive = min(naive, time.process_time() - t0)
-        first.append(z)
-    engine_first = stats["logistic refit, y"][:2]
-    gap = float(np.max(np.abs(engine_first - np.array(first)) / np.maximum(1, np.abs(first))))
-    out["naive"] = {"sec_per_perm": naive, "agree": gap}
-    # Newton steps per refit from three starts: the expected fit under relabelling, that
-    # start moved by its free first Newton step (what the engine uses with complete data),
-    # and the observed full fit
-    steps = {"y, intercept-only fit": [], "y, + free first step (used)": [],
-             "y, observed fit": [], "dsp, reduced fit + 0": [],
-             "dsp, + free first step (used)": [], "dsp, observed fit": []}
-    zcols = lg._reduced_columns(k)
-    gam, cinv = lg._reduced_fits(prep, dd, zcols, dd.complete)
-    E = lg._residual_layers(prep, dd)
-    Xo = np.column_stack([X[:, zcols[0]], E[:, :, 0][dd.rows, dd.cols]])
-    _, b_obs, _ = lg.fit_logistic(Xo, np.arange(k + 1), dd.y, dd.complete,
-                                  np.r_[gam[0], 0.0])
-    ybar = dd.y.mean()
-    h0inv = np.linalg.inv(ybar * (1 - ybar) * (X.T @ X))
-    mu_red = 1.0 / (1.0 + np.exp(-(X[:, zcols[0]] @ gam[0])))
-    w_red = mu_red * (1 - mu_red)
-    for b in range(4):
-        p = rows[b]
-        yb = y[np.ix_(p, p)][dd.rows, dd.cols]
-        one = beta0 + h0inv @ (X.T @ yb - ybar * X.sum(axis=0))
-        for key, st in (("y, intercept-only fit", beta0), ("y, + free first step (used)", one),
-                        ("y, observed fit", fit.beta_std)):
-            steps[key].append(lg.fit_logistic(X, np.arange(k + 1), yb, dd.complete, st)[0])
-        eb = E[:, :, 0][np.ix_(p, p)][dd.rows, dd.cols]
-        Xb = np.column_stack([X[:, zcols[0]], eb])
-        S = X[:, zcols[0]].T @ (w_red * eb)
-        step_e = (eb @ (dd.y - mu_red)) / ((w_red * eb) @ eb - S @ cinv[0] @ S)
-        one = np.r_[gam[0] - cinv[0] @ S * step_e, step_e]
-        for key, st in (("dsp, reduced fit + 0", np.r_[gam[0], 0.0]),
-                        ("dsp, + free first step (used)", one), ("dsp, observed fit", b_obs)):
-            steps[key].append(lg.fit_logistic(Xb, np.arange(k + 1), dd.y, dd.complete, st)[0])
-    out["newton_steps"] = {key: float(np.mean(v)) for key, v in steps.items()}
+        for key, plan in plans.items():
+            t0 = time.perf_counter()
+            st, ps = _threaded(plan, perms, jobs)
+            best[key] = min(best[key], (time.perf_counter() - t0) / n_perm)
+            stats[key], passes[key] = st, ps
+        t0 = time.perf_counter()
+        sm_z = []
+        for b in range(n_sm):
+            yb = Y[np.ix_(perms[b], perms[b])][off]
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                res = sm.Logit(yb, X).fit(start_params=sm_obs.params, method="newton", disp=0)
+            sm_z.append(res.tvalues[1:])
+        best["statsmodels"] = min(best["statsmodels"], (time.perf_counter() - t0) / n_sm)
+        t0 = time.perf_counter()
+        for b in range(2):
+            yb = Y[np.ix_(perms[b], perms[b])][off]
+            _naive_newton(X, yb, sm_obs.params.copy())
+        best["naive"] = min(best["naive"], (time.perf_counter() - t0) / 2)
+    sm_z = np.array(sm_z)
+    gap = float(np.max(np.abs(stats[("y", "t")][:n_sm] - sm_z) / np.maximum(1, np.abs(sm_z))))
+    k = prep.k
+    out = {"n": n, "k": k, "n_dyads": prep.n_dyads, "density": float(y_obs.mean()),
+           "jobs": jobs, "perms": n_perm, "setup": setup, "agree_z": gap, "routes": {},
+           "sec": {"statsmodels": best["statsmodels"], "naive": best["naive"]},
+           "sm_iterations": int(sm_obs.mle_retvals["iterations"])}
+    for (scheme, statistic), plan in plans.items():
+        refits = 1 if scheme == "y" else k
+        out["routes"][f"{scheme}/{statistic}"] = {
+            "kind": plan.kind, "sec": best[(scheme, statistic)],
+            "passes": float(np.mean(passes[(scheme, statistic)])),
+            "per_fit": float(np.mean(passes[(scheme, statistic)])) / refits,
+            "layers": 1 if scheme == "y" else k,
+            "failed": int(np.isnan(stats[(scheme, statistic)]).sum())}
+    if study_perms:
+        t0 = time.perf_counter()
+        res = dp.regress(Y, preds, model="logistic", scheme="dsp", permutations=study_perms,
+                         seed=SEED, jobs=jobs)
+        wall = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        dp.regress(Y, preds, model="logistic", scheme="dsp", permutations=1, seed=SEED)
+        fixed = time.perf_counter() - t0
+        per = (wall - fixed) / study_perms
+        out["study"] = {"perms": study_perms, "wall": wall, "setup": fixed,
+                        "per_perm": per, "projected_10000": fixed + 10_000 * per,
+                        "failed": int(res.failed.sum())}
     out["peak_mib"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return out
 
@@ -201,69 +196,77 @@ def machine() -> dict:
 
 
 def report(results: list[dict], bandwidth: float, info: dict) -> str:
-    lines = []
-    lines.append(f"machine: {info['cpu']}, {info['cores']} cores, {info['ram_gib']:.1f} GiB; "
-                 f"python {info['python']}, numpy {info['numpy']}, numba {info['numba']}; "
-                 f"load average before the run {info['load_before']:.1f}")
-    lines.append(f"one-thread read bandwidth: {bandwidth / 1e9:.1f} GB/s")
+    lines = [f"machine: {info['cpu']}, {info['cores']} cores, {info['ram_gib']:.1f} GiB; "
+             f"python {info['python']}, numpy {info['numpy']}, numba {info['numba']}; "
+             f"load average before the run {info['load_before']:.1f} (shared machine)",
+             f"one-thread read bandwidth: {bandwidth / 1e9:.1f} GB/s"]
     for res in results:
-        n, k = res["n"], res["k"]
-        lin = res["routes"]["linear y"]["sec_per_perm"]
-        lin_dsp = res["routes"]["linear dsp"]["sec_per_perm"]
-        lines.append("")
-        lines.append(f"n = {n}, k = {k} predictors, {res['n_dyads']:,} dyads; "
-                     f"peak resident memory {res['peak_mib']:.0f} MiB")
-        lines.append("")
-        lines.append("| route | ms / relabelling | x linear y | x linear dsp | engine / floor "
-                     "| plan arrays (MiB) |")
-        lines.append("|---|---:|---:|---:|---:|---:|")
+        n, sm_sec = res["n"], res["sec"]["statsmodels"]
+        lines += ["", f"n = {n}, k = {res['k']} predictors, {res['n_dyads']:,} dyads, density "
+                      f"{res['density']:.3f}; jobs = {res['jobs']}, {res['perms']} relabellings "
+                      f"per route; peak resident memory {res['peak_mib']:.0f} MiB", "",
+                  "| route | kind | ms / relabelling | passes / relabelling | passes / refit "
+                  "or statistic | statsmodels / engine | engine / floor |",
+                  "|---|---|---:|---:|---:|---:|---:|"]
         for name, r in res["routes"].items():
-            floor = n * n * 8 * r["relabelled_layers"] / bandwidth
-            lines.append(f"| {name} | {r['sec_per_perm'] * 1e3:.2f} | "
-                         f"{r['sec_per_perm'] / lin:.2f} | {r['sec_per_perm'] / lin_dsp:.2f} | "
-                         f"{r['sec_per_perm'] / floor:.1f} | {r['plan_mib']:.0f} |")
-        nv = res["naive"]
-        refit = res["routes"]["logistic refit, y"]["sec_per_perm"]
-        lines.append(f"| naive numpy refit, y | {nv['sec_per_perm'] * 1e3:.2f} | "
-                     f"{nv['sec_per_perm'] / lin:.2f} | {nv['sec_per_perm'] / lin_dsp:.2f} | "
-                     f"{nv['sec_per_perm'] / (n * n * 8 / bandwidth):.1f} | - |")
-        lines.append("")
-        lines.append(f"naive / engine refit (y): {nv['sec_per_perm'] / refit:.2f}; largest "
-                     f"relative gap of their z statistics: {nv['agree']:.1e}")
-        steps = ", ".join(f"{key}: {v:.2f}" for key, v in res["newton_steps"].items())
-        lines.append(f"mean Newton steps per refit (each but the last costs a pass over the "
-                     f"dyads), by warm start: {steps}")
+            floor = n * n * 8 * r["layers"] / bandwidth
+            lines.append(f"| {name} | {r['kind']} | {r['sec'] * 1e3:.2f} | {r['passes']:.2f} | "
+                         f"{r['per_fit']:.2f} | {sm_sec / r['sec']:.1f} | "
+                         f"{r['sec'] / floor:.1f} |")
+        lines.append(f"| statsmodels Logit refit from the observed estimate | - | "
+                     f"{sm_sec * 1e3:.1f} | - | - | 1.0 | - |")
+        lines.append(f"| naive numpy Newton refit from the observed estimate | - | "
+                     f"{res['sec']['naive'] * 1e3:.1f} | - | - | "
+                     f"{sm_sec / res['sec']['naive']:.2f} | - |")
+        lines += ["", f"largest relative gap of the engine's and statsmodels' Wald z (scheme y, "
+                      f"same relabellings): {res['agree_z']:.1e}; statsmodels' observed fit: "
+                      f"{res['sm_iterations']} Newton steps",
+                  "setup (s): " + ", ".join(f"{key} {v:.2f}" for key, v in res["setup"].items())]
+        if "study" in res:
+            s = res["study"]
+            lines.append(f"dsp study end to end (dyadperm.regress, jobs = {res['jobs']}): "
+                         f"{s['perms']} relabellings in {s['wall']:.1f} s, of which "
+                         f"{s['setup']:.1f} s setup (a run of 1 relabelling): "
+                         f"{s['per_perm'] * 1e3:.1f} ms per relabelling; projected for "
+                         f"10,000 relabellings: {s['projected_10000']:.0f} s = "
+                         f"{s['projected_10000'] / 60:.1f} min; failed fits {s['failed']}")
     return "\n".join(lines)
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--n", type=int, default=1000)
-    ap.add_argument("--ks", default="1,3")
+    ap.add_argument("--ns", default="600,1000")
+    ap.add_argument("--perms", type=int, default=16)
     ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--study-perms", type=int, default=0)
     ap.add_argument("--markdown", default=None, help="append the results to this file")
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
-        n, k = map(int, args.child.split(","))
-        print(json.dumps(child(n, k, args.rounds)))
+        n, study = map(int, args.child.split(","))
+        print(json.dumps(child(n, args.perms, args.rounds, args.jobs, study)))
         return
     info = machine()
     bandwidth = read_bandwidth_one_thread()
+    ns = list(map(int, args.ns.split(",")))
     results = []
-    for k in map(int, args.ks.split(",")):
-        proc = subprocess.run([sys.executable, __file__, "--child", f"{args.n},{k}",
-                               "--rounds", str(args.rounds)], capture_output=True, text=True,
-                              env=_env_one_thread(), check=True)
+    for n in ns:
+        study = args.study_perms if n == max(ns) else 0
+        proc = subprocess.run([sys.executable, __file__, "--child", f"{n},{study}",
+                               "--perms", str(args.perms), "--rounds", str(args.rounds),
+                               "--jobs", str(args.jobs)], capture_output=True, text=True,
+                              check=True)
         results.append(json.loads(proc.stdout.strip().splitlines()[-1]))
     text = report(results, bandwidth, info)
     print(text)
     if args.markdown:
         with open(args.markdown, "a") as fh:
-            fh.write("\n## Logistic model (benchmarks/bench_logistic.py)\n\n")
+            fh.write("\n## Logistic model against statsmodels (benchmarks/bench_logistic.py)\n\n")
             fh.write(f"Run {time.strftime('%Y-%m-%d')} with `python benchmarks/bench_logistic.py "
-                     f"--n {args.n} --ks {args.ks} --rounds {args.rounds}`. CPU time of one "
-                     "thread per relabelling, best of the rounds.\n\n")
+                     f"--ns {args.ns} --perms {args.perms} --rounds {args.rounds} --jobs "
+                     f"{args.jobs} --study-perms {args.study_perms}`. Wall-clock time per "
+                     "relabelling, best of the rounds.\n\n")
             fh.write(text + "\n")
 
 

@@ -21,7 +21,9 @@ import math
 import networkx as nx
 import numpy as np
 import pytest
+import scipy.linalg
 import statsmodels.api as sm
+from numba import njit
 from scipy.optimize import linprog
 from scipy.special import expit
 
@@ -513,107 +515,246 @@ def _pivots_ok(H):
     return bool(np.all(piv > kn.SINGULAR_PIVOT * np.diag(H)) and np.all(piv > 0))
 
 
-def irls_twin(X, cols, y, valid, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL):
-    """Twin of kernels.irls.irls_logistic: Newton steps with halving while the deviance
-    rises, converged when the next step has every |step| <= tol (1 + |b|) (taken without a
-    new pass); (status, beta, cov)."""
-    Xv = X[valid][:, cols]
-    yv = y[valid]
-    q = len(cols)
-    if Xv.shape[0] <= q:
-        return kn.FAIL_DYADS, None, None
+def pass_twin(Xc, valid, beta):
+    """Twin of kernels.irls.newton_pass with numpy vector operations: (X'mu, X'WX) over the
+    valid rows of Xc (N, qa); beta carries the first len(beta) columns."""
+    Xv = Xc[valid]
+    mu = expit(Xv[:, :len(beta)] @ beta)
+    return Xv.T @ mu, Xv.T @ ((mu * (1 - mu))[:, None] * Xv)
 
-    def parts(b):
-        eta = Xv @ b
-        mu = expit(eta)
-        dev = 2 * np.sum(np.logaddexp(0, eta) - yv * eta)
-        return dev, Xv.T @ ((mu * (1 - mu))[:, None] * Xv), Xv.T @ (yv - mu)
 
+def h_bound(u):
+    """(e^u - 1 - u) / u^2 (kernels.irls: the deviance bound of a step of size u)."""
+    with np.errstate(over="ignore"):  # inf past e^709: no step of that size is certified
+        return (np.expm1(u) - u) / u ** 2 if u > 1e-4 else 0.5 + u / 6 + u * u / 24
+
+
+def k_bound(u):
+    """(u - 1 + e^-u) / u^2 (kernels.irls: the backward bound)."""
+    return (u + np.expm1(-u)) / u ** 2 if u > 1e-4 else 0.5 - u / 6 + u * u / 24
+
+
+def newton_twin(Xc, q, xy, valid, xmax, beta0, max_iter=lg.MAX_ITER, tol=lg.TOL):
+    """Twin of kernels.irls.newton_fit: Newton steps from beta0 over the valid rows of Xc
+    (N, qa), the model on its first q columns; a step of size s is taken when
+    s h(s M) < 1 (M = sum |d_c| xmax_c) or, after its pass, D'H D k(sM) + D'g > 0 (D = s d),
+    else halved; converged when M <= tol or the Newton decrement d'g <= DECREMENT_TOL^2 (the
+    step is then taken without a new pass),
+    unless the coefficients could put a linear predictor beyond ETA_SUSPECT and some
+    combination of them has a mean weight below SATURATED_WEIGHT (FAIL_SATURATED).
+    Returns (status, beta, cov, passes, (H, f, d) at the last coefficients evaluated)."""
+    if valid.sum() <= q:
+        return kn.FAIL_DYADS, None, None, 0, None
     beta = np.array(beta0, dtype=float)
-    dev, H, g = parts(beta)
-    for it in range(1, max_iter + 1):
-        if not _pivots_ok(H):
-            return kn.FAIL_SINGULAR, None, None
-        step = np.linalg.solve(H, g)
-        if np.all(np.abs(step) <= tol * (1 + np.abs(beta))):
-            return it, beta + step, np.linalg.inv(H)  # the last step, H where it started
+    f, H = pass_twin(Xc, valid, beta)
+    passes = 1
+    for _ in range(max_iter):
+        g = xy[:q] - f[:q]
+        if not _pivots_ok(H[:q, :q]):
+            return kn.FAIL_SINGULAR, None, None, passes, None
+        d = np.linalg.solve(H[:q, :q], g)
+        move = np.abs(d) @ xmax
+        if move <= tol or d @ g <= kn.DECREMENT_TOL ** 2:
+            cols_max = np.concatenate([[1.0], xmax[1:]])  # the intercept: 1
+            if np.abs(beta) @ cols_max > kn.ETA_SUSPECT:
+                # the least mean weight along a combination of the coefficients
+                Xv = Xc[valid][:, :q]
+                passes += 1
+                if scipy.linalg.eigh(H[:q, :q], Xv.T @ Xv, eigvals_only=True)[0] \
+                        < kn.SATURATED_WEIGHT:
+                    return kn.FAIL_SATURATED, None, None, passes, None
+            return 0, beta + d, np.linalg.inv(H[:q, :q]), passes, (H, f, d)
         for h in range(kn.MAX_HALVINGS + 1):
-            trial = beta + 0.5 ** h * step
-            dev_new, H_new, g_new = parts(trial)
-            if dev_new <= dev + kn.DEVIANCE_SLACK * (abs(dev) + 1):
+            s = 0.5 ** h
+            f_t, H_t = pass_twin(Xc, valid, beta + s * d)
+            passes += 1
+            if s * h_bound(s * move) < 1:
+                break
+            D = s * d
+            if D @ H_t[:q, :q] @ D * k_bound(s * move) + D @ (xy[:q] - f_t[:q]) > 0:
                 break
         else:
-            return kn.FAIL_STEP, None, None
-        beta, dev, H, g = trial, dev_new, H_new, g_new
-    return kn.FAIL_ITERATIONS, None, None
+            return kn.FAIL_STEP, None, None, passes, None
+        beta, f, H = beta + s * d, f_t, H_t
+    return kn.FAIL_ITERATIONS, None, None, passes, None
 
 
-def score_twin(X, zcols, xcol, y, valid, gamma, cinv):
-    """Twin of kernels.irls.score_logistic (Rao 1948), with numpy vector operations."""
-    Z = X[valid][:, zcols]
-    x = X[valid, xcol]
-    mu = expit(Z @ gamma)
-    w = mu * (1 - mu)
-    a = Z.T @ (w * x)
-    info = x @ (w * x) - a @ cinv @ a
-    return x @ (y[valid] - mu) / np.sqrt(info) if info > 0 else np.nan
+def score_twin(state, q, xy_x):
+    """Twin of kernels.irls.score_from_state (Rao 1948): U = x'y - x'mu - H_xZ d,
+    I = H_xx - H_xZ H_ZZ^-1 H_Zx."""
+    H, f, d = state
+    u = xy_x - f[q] - H[q, :q] @ d
+    info = H[q, q] - H[q, :q] @ np.linalg.solve(H[:q, :q], H[:q, q])
+    return u / np.sqrt(info) if info > kn.SINGULAR_PIVOT * H[q, q] else np.nan
 
 
-def run_irls(X, cols, y, valid, beta0):
-    q = len(cols)
-    beta, cov = np.full(q, np.nan), np.full((q, q), np.nan)
-    status = kn.irls_logistic(X, np.asarray(cols, np.int64), y, valid, np.asarray(beta0, float),
-                              np.empty((2 * q + 5, q)), beta, cov, lg.MAX_ITER, lg.TOL)
-    return status, beta, cov
+def run_fit(Xc, q, xy, valid, xmax, beta0, tol=lg.TOL):
+    """kernels.irls.newton_fit on the columns of Xc (N, qa): (status, beta, cov, passes,
+    score of column q or NaN)."""
+    qa = Xc.shape[1]
+    XT = np.ascontiguousarray(np.nan_to_num(Xc).T)
+    shapes = kn.fit_workspace(qa)
+    state = np.empty(shapes[3])
+    beta, cov, info = np.full(q, np.nan), np.full((q, q), np.nan), np.zeros(kn.INFO_SIZE)
+    status = kn.newton_fit(XT, np.empty(0), np.arange(qa), q, np.asarray(xy, float), valid,
+                           bool(valid.all()), np.asarray(xmax, float), np.asarray(beta0, float),
+                           np.empty(shapes[0]), np.empty(shapes[1], np.int64),
+                           np.empty(shapes[2]), state, beta, cov, info, lg.MAX_ITER, tol)
+    score = (kn.score_from_state(state, q, qa, float(xy[q])) if status > 0 and qa > q
+             else np.nan)
+    return status, beta, cov, int(info[kn.INFO_PASSES]), score
+
+
+@njit
+def _vdot(a, b, n):
+    """kernels.irls.vdot (an LLVM intrinsic) called from compiled code."""
+    return kn.vdot(a, b, n)
+
+
+def test_vdot_matches_numpy(rng):
+    for n in (16, 32, 256):
+        a, b = rng.normal(size=n), rng.normal(size=n)
+        # source: numpy's dot product (another summation order)
+        np.testing.assert_allclose(_vdot(a, b, n), a @ b, rtol=1e-13, atol=1e-13)
+        assert _vdot(a, b, n) == kn._vdot_python(a, b, n) or abs(
+            _vdot(a, b, n) - kn._vdot_python(a, b, n)) <= 1e-13 * np.abs(a * b).sum()
+    a = rng.normal(size=64)
+    assert _vdot(a, a, 32) == _vdot(a[:32].copy(), a[:32].copy(), 32)  # only n entries
+
+
+@njit
+def _vdot_acc_sum(a, b, n, acc, at):
+    """kernels.irls.vdot_acc then the lane sum, from compiled code."""
+    kn.vdot_acc(a, b, n, acc, at)
+    return kn._lane_sum(acc, at)
+
+
+def test_vdot_acc_matches_numpy(rng):
+    L = kn.ACC_LANES
+    for n in (L, 2 * L, kn.BLOCK):
+        a, b = rng.normal(size=n), rng.normal(size=n)
+        acc = np.zeros(3 * L)
+        acc[L:2 * L] = rng.normal(size=L)  # lanes carried over from earlier blocks
+        carried = acc[L:2 * L].sum()
+        # source: numpy's dot product; the other lanes untouched, the summed ones zeroed
+        np.testing.assert_allclose(_vdot_acc_sum(a, b, n, acc, L), a @ b + carried,
+                                   rtol=1e-13, atol=1e-13)
+        assert not acc.any()
+
+
+@pytest.mark.parametrize("N", [1, 2, 3, 17, 255, 256, 257, 600])
+@pytest.mark.parametrize("qa,q", [(1, 1), (3, 2), (4, 4), (6, 5)])
+def test_newton_pass_matches_twin(rng, N, qa, q):
+    X = rng.normal(size=(N, qa)) * 3
+    if qa > 1:
+        X[rng.random(N) < 0.2, -1] = 0.0  # ties
+    X[:, 0] = 1.0  # the intercept (kernels.irls.newton_pass does not read it)
+    valid = rng.random(N) < 0.8
+    beta = rng.normal(size=q)
+    XT = np.ascontiguousarray(X.T)
+    for ext_col in (False, True):
+        cols = np.arange(qa, dtype=np.int64)
+        ext = np.empty(0)
+        XTu = XT
+        if ext_col:  # the last column read from ``ext`` (design column P)
+            XTu, ext = np.ascontiguousarray(XT[:-1]), np.ascontiguousarray(XT[-1])
+            cols[-1] = qa - 1
+        for all_valid in (False, True):
+            v = np.ones(N, bool) if all_valid else valid
+            shapes = kn.fit_workspace(qa)
+            H, f = np.empty((qa, qa)), np.empty(qa)
+            work = (np.empty(shapes[0]), np.empty(shapes[1], np.int64), np.empty(shapes[2]))
+            kn.newton_pass(XTu, ext, cols, q, v, all_valid, beta, *work, H, f)
+            t_f, t_H = pass_twin(X, v, beta)
+            np.testing.assert_allclose(f, t_f, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+            np.testing.assert_allclose(H, t_H, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+
+
+@pytest.mark.parametrize("N,q", [(2, 1), (3, 2), (17, 3), (600, 4)])
+def test_gram_and_smallest_weight_match_scipy(rng, N, q):
+    X = np.column_stack([np.ones(N), rng.normal(size=(N, q - 1)) * 2])
+    if q > 1:
+        X[rng.random(N) < 0.3, -1] = 0.0  # ties
+    valid = rng.random(N) < 0.8
+    valid[:q] = True
+    shapes = kn.fit_workspace(q)
+    G = np.empty((q, q))
+    kn.gram_pass(np.ascontiguousarray(X.T), np.empty(0), np.arange(q), q, valid, False,
+                 np.empty(shapes[0]), np.empty(shapes[2]), G)
+    Xv = X[valid]
+    # source: numpy's X'X over the valid rows
+    np.testing.assert_allclose(G, Xv.T @ Xv, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    w = expit(Xv @ rng.normal(size=q)) * (1 - expit(Xv @ rng.normal(size=q)))
+    H = Xv.T @ (w[:, None] * Xv)
+    if np.linalg.matrix_rank(Xv) == q:
+        # source: scipy's generalized symmetric eigenproblem H v = lambda G v
+        np.testing.assert_allclose(kn.smallest_weight(H, G, q, np.empty((3, q, q))),
+                                   scipy.linalg.eigh(H, G, eigvals_only=True)[0],
+                                   rtol=1e-9, atol=1e-15)
 
 
 @pytest.mark.parametrize("N,q", [(3, 1), (7, 2), (40, 3), (301, 4), (1000, 5)])
-def test_irls_kernel_matches_twin(rng, N, q):
-    P = q + 2
+def test_newton_fit_matches_twin(rng, N, q):
+    P = q + 1
     X = rng.normal(size=(N, P))
     X[:, 0] = 1.0
-    X[rng.integers(N), P - 1] = np.nan  # a column outside the fit may hold NaN
-    cols = np.array([0] + list(rng.choice(np.arange(1, P - 1), size=q - 1, replace=False)),
-                    dtype=np.int64) if q > 1 else np.array([0], np.int64)
-    y = (rng.random(N) < expit(X[:, cols] @ rng.normal(scale=0.7, size=q))).astype(float)
+    y = (rng.random(N) < expit(X[:, :q] @ rng.normal(scale=0.7, size=q))).astype(float)
     valid = rng.random(N) < 0.9
     beta0 = rng.normal(scale=0.3, size=q)
-    status, beta, cov = run_irls(X, cols, y, valid, beta0)
-    t_status, t_beta, t_cov = irls_twin(X, cols, y, valid, beta0)
-    assert status == t_status
-    if status > 0:
-        np.testing.assert_allclose(beta, t_beta, rtol=TWIN_RTOL, atol=TWIN_ATOL)
-        np.testing.assert_allclose(cov, t_cov, rtol=TWIN_RTOL, atol=TWIN_ATOL)
-        # source: statsmodels Logit on the same rows
-        sm_fit = sm.Logit(y[valid], X[valid][:, cols]).fit(disp=0, tol=1e-12)
-        np.testing.assert_allclose(beta, sm_fit.params, rtol=FIT_RTOL, atol=FIT_ATOL)
-        np.testing.assert_allclose(np.sqrt(np.diag(cov)), sm_fit.bse, rtol=FIT_RTOL)
-        # the score of a column at the fit of the others: kernel vs twin
-        zc = cols[:-1] if q > 1 else cols
-        xc = int(cols[-1]) if q > 1 else 1
-        if q > 1:
-            st2, g2, c2 = run_irls(X, zc, y, valid, np.zeros(len(zc)))
-            if st2 > 0:
-                s = kn.score_logistic(X, zc, xc, y, valid, g2, c2, np.empty((2, len(zc))))
-                np.testing.assert_allclose(s, score_twin(X, zc, xc, y, valid, g2, c2),
-                                           rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    xy = X[valid].T @ y[valid]
+    xmax = np.abs(X[valid][:, :q]).max(axis=0)
+    status, beta, cov, passes, score = run_fit(X, q, xy, valid, xmax, beta0)
+    t_status, t_beta, t_cov, t_passes, t_state = newton_twin(X, q, xy, valid, xmax, beta0)
+    assert (status > 0) == (t_status == 0) and (status < 0) == (t_status < 0)
+    if status < 0:
+        assert status == t_status
+        return
+    assert passes == t_passes
+    np.testing.assert_allclose(beta, t_beta, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    np.testing.assert_allclose(cov, t_cov, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    # the score of column q at the fit of the first q: kernel vs twin
+    np.testing.assert_allclose(score, score_twin(t_state, q, xy[q]), rtol=TWIN_RTOL,
+                               atol=TWIN_ATOL)
+    # source: statsmodels Logit on the same rows
+    sm_fit = sm.Logit(y[valid], X[valid][:, :q]).fit(disp=0, tol=1e-12)
+    np.testing.assert_allclose(beta, sm_fit.params, rtol=FIT_RTOL, atol=FIT_ATOL)
+    np.testing.assert_allclose(np.sqrt(np.diag(cov)), sm_fit.bse, rtol=FIT_RTOL)
+    if q < P:  # source: statsmodels GLM score test of column q (Rao 1948): chi2 = U^2 / I
+        glm = sm.GLM(y[valid], X[valid][:, :q], family=sm.families.Binomial()).fit(tol=1e-12)
+        chi2 = float(np.squeeze(glm.score_test(exog_extra=X[valid][:, q:q + 1])[0]))
+        np.testing.assert_allclose(score ** 2, chi2, rtol=1e-6)
 
 
-def test_irls_kernel_failure_codes(rng):
+def test_newton_fit_failure_codes(rng):
     X = np.column_stack([np.ones(8), np.arange(8.0)])
     y = (np.arange(8) >= 4).astype(float)  # x separates y completely
     valid = np.ones(8, dtype=bool)
-    # diverging coefficients: no convergence, or an information that underflows to singular
-    assert run_irls(X, np.arange(2), y, valid, np.zeros(2))[0] in (kn.FAIL_ITERATIONS,
-                                                                    kn.FAIL_SINGULAR)
-    assert irls_twin(X, np.arange(2), y, valid, np.zeros(2))[0] < 0
+    xmax = np.abs(X).max(axis=0)
+    # diverging coefficients: no convergence, an information that underflows to singular,
+    # or fitted probabilities of 0 and 1 to double precision
+    failed = (kn.FAIL_ITERATIONS, kn.FAIL_SINGULAR, kn.FAIL_SATURATED)
+    assert run_fit(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
+    assert newton_twin(X, 2, X.T @ y, valid, xmax, np.zeros(2))[0] in failed
     assert separated(X, y)  # source: the LP of Albert & Anderson (1984)
     few = np.zeros(8, dtype=bool)
     few[:2] = True
-    assert run_irls(X, np.arange(2), y, few, np.zeros(2))[0] == kn.FAIL_DYADS
+    assert run_fit(X, 2, X.T @ y, few, xmax, np.zeros(2))[0] == kn.FAIL_DYADS
     dup = np.column_stack([np.ones(8), np.ones(8)])  # singular information
     y2 = np.array([0, 1, 0, 1, 1, 0, 0, 1], float)
-    assert run_irls(dup, np.arange(2), y2, valid, np.zeros(2))[0] == kn.FAIL_SINGULAR
+    assert run_fit(dup, 2, dup.T @ y2, valid, np.ones(2), np.zeros(2))[0] == kn.FAIL_SINGULAR
+    # a step limit of 1 from a distant start: no convergence, not a separation
+    X3 = np.column_stack([np.ones(50), rng.normal(size=50)])
+    y3 = (rng.random(50) < expit(X3[:, 1])).astype(float)
+    assert not separated(X3, y3)
+    shapes = kn.fit_workspace(2)
+    info = np.zeros(kn.INFO_SIZE)
+    status = kn.newton_fit(np.ascontiguousarray(X3.T), np.empty(0), np.arange(2), 2, X3.T @ y3,
+                           np.ones(50, bool), True, np.abs(X3).max(axis=0), np.zeros(2),
+                           np.empty(shapes[0]), np.empty(shapes[1], np.int64),
+                           np.empty(shapes[2]), np.empty(shapes[3]), np.empty(2),
+                           np.empty((2, 2)), info, 1, lg.TOL)
+    assert status == kn.FAIL_ITERATIONS
+    assert info[kn.INFO_STEPS] == 1 and info[kn.INFO_MOVE] > lg.TOL and info[kn.INFO_TERM] >= 0
 
 
 def _driver_inputs(rng, n, m, k, two_mode, nan):
@@ -628,14 +769,43 @@ def _driver_inputs(rng, n, m, k, two_mode, nan):
         layer_y[rng.integers(n), rng.integers(m)] = np.nan
         layer_e[rng.integers(n), rng.integers(m), 0] = np.nan
         X[rng.integers(N), 1] = np.nan
+        y[rng.integers(N)] = np.nan
     B = 5
     rp = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
     cp = np.array([rng.permutation(m) for _ in range(B)], dtype=np.int64) if two_mode else rp
     return dict(rows=rows.astype(np.int64), cols=cols.astype(np.int64), X=X, y=y,
+                XT=np.ascontiguousarray(np.nan_to_num(X).T),
+                layer_ek=np.ascontiguousarray(layer_e.transpose(2, 0, 1)),
+                xmax=np.nan_to_num(np.nanmax(np.abs(X), axis=0)),
                 layer_y=layer_y, layer_e=layer_e, rp=rp, cp=cp, p=p, k=k, N=N)
 
 
 SIZES = [(3, 3, 1, False), (2, 3, 1, True), (7, 7, 2, False), (5, 6, 3, True)]
+
+
+@pytest.mark.parametrize("n,m,two_mode,directed", [(2, 2, False, True), (3, 3, False, False),
+                                                   (7, 7, False, True), (3, 5, True, True),
+                                                   (40, 40, False, True)])
+def test_gather_rows_matches_twin(rng, n, m, two_mode, directed):
+    rows, cols = dyad_index(n, m, directed=directed, two_mode=two_mode)
+    layer = rng.normal(size=(n, m))
+    layer[rng.random((n, m)) < 0.1] = np.nan
+    for _ in range(4):
+        rp = rng.permutation(n).astype(np.int64)
+        cp = rng.permutation(m).astype(np.int64) if two_mode else rp
+        out = np.empty(len(rows))
+        kn.gather_rows(layer, rows.astype(np.int64), cols.astype(np.int64), rp, cp, out)
+        # twin: the relabelled matrix by fancy indexing, read on the dyad set
+        np.testing.assert_array_equal(out, relabel(layer, rp, cp)[rows, cols])
+
+
+def _fit_twin(Xc, q, y, valid, beta0):
+    """newton_twin with X'y and max |x| of the valid rows: (status, beta, cov, passes,
+    state)."""
+    yv = np.where(valid, np.nan_to_num(y), 0.0)
+    Xz = np.nan_to_num(Xc)
+    xmax = np.abs(Xz[valid][:, :q]).max(axis=0) if valid.any() else np.zeros(q)
+    return newton_twin(Xz, q, Xz.T @ yv, valid, xmax, beta0)
 
 
 @pytest.mark.parametrize("n,m,k,two_mode", SIZES)
@@ -651,46 +821,67 @@ def test_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     for onestep in onesteps:
         for use_z in (True, False):
             out = np.empty((B, k))
-            kn.refit_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, beta0,
-                       onestep, out, lg.MAX_ITER, lg.TOL, use_z)
+            passes = np.zeros(B, np.int64)
+            kn.refit_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], fixed_ok,
+                       d["xmax"], beta0, onestep, out, passes, lg.MAX_ITER, lg.TOL, use_z)
             for b in range(B):
                 yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+                valid = fixed_ok & np.isfinite(yb)
                 start = beta0.copy()
                 if onestep.shape[0]:
-                    start += onestep[:, :p] @ (X.T @ yb - onestep[:, p])
-                st, beta, cov = irls_twin(X, np.arange(p), yb, fixed_ok & np.isfinite(yb), start)
+                    start += onestep[:, :p] @ (np.nan_to_num(X).T @ yb - onestep[:, p])
+                # the driver bounds |x| over the dyads of fixed_ok
+                yv = np.where(valid, yb, 0.0)
+                Xz = np.nan_to_num(X)
+                st, beta, cov, n_pass, _ = newton_twin(Xz, p, Xz.T @ yv, valid, d["xmax"],
+                                                       start)
                 want = (np.full(k, np.nan) if st < 0 else
                         beta[1:] / np.sqrt(np.diag(cov)[1:]) if use_z else beta[1:])
                 np.testing.assert_allclose(out[b], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+                if st == 0:  # (a diverging fit may stop a pass sooner or later)
+                    assert passes[b] == 1 + n_pass
     zcols = lg._reduced_columns(k)
     design = np.concatenate([zcols, np.full((k, 1), p, np.int64)], axis=1)
     ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
     b0 = rng.normal(scale=0.1, size=(k, p))
     cinv = np.array([np.linalg.inv(M @ M.T + np.eye(k)) for M in rng.normal(size=(k, k, k))])
-    reduced_fits = [np.zeros((0, 2 * k))] + ([] if nan else [
-        np.column_stack([rng.normal(size=(N, k)), rng.random(size=(N, k))])])
-    for reduced in reduced_fits:
+    reduced_fits = [np.zeros((0, N))] + ([] if nan else [rng.random(size=(k, N))])
+    ties = np.flatnonzero(d["y"] == 1.0).astype(np.int64)
+    for reduced in reduced_fits:  # mu of each reduced fit (complete data)
         out = np.empty((B, k))
-        kn.refit_dsp(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok,
-                     design, b0, reduced, cinv, out, lg.MAX_ITER, lg.TOL, True)
+        passes = np.zeros(B, np.int64)
+        emax = np.nan_to_num(np.nanmax(np.abs(d["layer_e"]), axis=(0, 1)))
+        kn.refit_dsp(d["layer_ek"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"],
+                     ok, design, d["xmax"], emax, b0, reduced, ties, cinv, out, passes,
+                     lg.MAX_ITER, lg.TOL, True)
         for b in range(B):
+            total = 0
             for a in range(k):
                 e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
-                Xb = np.column_stack([X, e])
+                Xb = np.column_stack([X[:, zcols[a]], e])
+                valid = ok[a] & np.isfinite(e)
                 start = b0[a].copy()
                 if reduced.shape[0]:
                     # the first Newton step from the reduced fit: gradient (0, U),
                     # information [[Z'WZ, S], [S', Q]] (kernels.irls.refit_dsp)
-                    r, w = reduced[:, a], reduced[:, k + a]
+                    r, w = d["y"] - reduced[a], reduced[a] * (1 - reduced[a])
                     S = X[:, zcols[a]].T @ (w * e)
                     info = (w * e) @ e - S @ cinv[a] @ S
                     if info > 0:
                         step_e = (e @ r) / info
                         start[-1] += step_e
                         start[:-1] -= cinv[a] @ S * step_e
-                st, beta, cov = irls_twin(Xb, design[a], d["y"], ok[a] & np.isfinite(e), start)
+                # max |e| over the relabelled dyads, or (complete data) over the matrix
+                xmax = np.append(d["xmax"][zcols[a]], emax[a] if reduced.shape[0] else
+                                 np.abs(np.nan_to_num(e[valid])).max())
+                yv = np.where(valid, np.nan_to_num(d["y"]), 0.0)
+                Xz = np.nan_to_num(Xb)
+                st, beta, cov, n_pass, _ = newton_twin(Xz, p, Xz.T @ yv, valid, xmax, start)
                 want = np.nan if st < 0 else beta[-1] / np.sqrt(cov[-1, -1])
                 np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+                total += 1 + n_pass if st == 0 else np.nan
+            if np.isfinite(total):
+                assert passes[b] == total
 
 
 def score_rows_twin(E, F, resid_at, weight_at, x_at, rp, cp, col_start, col_stop):
@@ -762,33 +953,57 @@ def test_score_rows_matches_twin(rng, n, m, k, two_mode, ranges):
 @pytest.mark.parametrize("nan", [False, True])
 def test_score_refit_drivers_match_twin(rng, n, m, k, two_mode, nan):
     d = _driver_inputs(rng, n, m, k, two_mode, nan)
-    X, p, B = d["X"], d["p"], d["rp"].shape[0]
+    X, B = d["X"], d["rp"].shape[0]
     zcols = lg._reduced_columns(k)
     gamma = rng.normal(scale=0.3, size=(k, k))
     out = np.empty((B, k))
+    passes = np.zeros(B, np.int64)
     # dsp with a reduced refit per relabelling
     ok = np.array([np.isfinite(d["y"]) & np.isfinite(X[:, zc]).all(axis=1) for zc in zcols])
-    kn.score_dsp_refit(d["layer_e"], d["rows"], d["cols"], d["rp"], d["cp"], X, d["y"], ok,
-                       zcols, gamma, out, lg.MAX_ITER, lg.TOL)
+    kn.score_dsp_refit(d["layer_ek"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], d["y"],
+                       ok, zcols, d["xmax"], gamma, out, passes, lg.MAX_ITER, lg.TOL)
     for b in range(B):
+        total = 0
         for a in range(k):
             e = relabel(d["layer_e"][:, :, a], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
-            Xb = np.column_stack([X, e])
+            Xb = np.nan_to_num(np.column_stack([X[:, zcols[a]], e]))
             valid = ok[a] & np.isfinite(e)
-            st, g, c = irls_twin(Xb, zcols[a], d["y"], valid, gamma[a])
-            want = np.nan if st < 0 else score_twin(Xb, zcols[a], p, d["y"], valid, g, c)
+            yv = np.where(valid, np.nan_to_num(d["y"]), 0.0)
+            st, g, c, n_pass, state = newton_twin(Xb, k, Xb.T @ yv, valid,
+                                                  d["xmax"][zcols[a]], gamma[a])
+            want = np.nan if st < 0 else score_twin(state, k, Xb[:, k] @ yv)
             np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
-    # y: reduced refit per relabelling
+            total += 1 + n_pass if st == 0 else np.nan
+        if np.isfinite(total):
+            assert passes[b] == total
+    # y: reduced refit per relabelling, from gamma or (complete data) from the
+    # intercept-only fit plus its free first step
     fixed_ok = np.isfinite(X).all(axis=1)
-    kn.score_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], X, fixed_ok, zcols, gamma,
-               out, lg.MAX_ITER, lg.TOL)
-    for b in range(B):
-        yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
-        valid = fixed_ok & np.isfinite(yb)
-        for a in range(k):
-            st, g, c = irls_twin(X, zcols[a], yb, valid, gamma[a])
-            want = np.nan if st < 0 else score_twin(X, zcols[a], a + 1, yb, valid, g, c)
-            np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+    Xz = np.nan_to_num(X)
+    A = rng.normal(scale=0.01, size=(k, k, k))
+    onesteps = [np.zeros((0, k, k + 1))] + ([] if nan else [
+        np.concatenate([A, rng.normal(size=(k, k, 1))], axis=2)])
+    for onestep in onesteps:
+        kn.score_y(d["layer_y"], d["rows"], d["cols"], d["rp"], d["cp"], d["XT"], fixed_ok,
+                   d["xmax"], zcols, gamma, onestep, out, passes, lg.MAX_ITER, lg.TOL)
+        for b in range(B):
+            yb = relabel(d["layer_y"], d["rp"][b], d["cp"][b])[d["rows"], d["cols"]]
+            valid = fixed_ok & np.isfinite(yb)
+            yv = np.where(valid, yb, 0.0)
+            total = 1
+            for a in range(k):
+                Xa = Xz[:, np.append(zcols[a], a + 1)]
+                xy = Xa.T @ yv
+                start = gamma[a].copy()
+                if onestep.shape[0]:
+                    start += onestep[a, :, :k] @ (xy[:k] - onestep[a, :, k])
+                st, g, c, n_pass, state = newton_twin(Xa, k, xy, valid, d["xmax"][zcols[a]],
+                                                      start)
+                want = np.nan if st < 0 else score_twin(state, k, xy[k])
+                np.testing.assert_allclose(out[b, a], want, rtol=TWIN_RTOL, atol=TWIN_ATOL)
+                total += n_pass if st == 0 else np.nan
+            if np.isfinite(total):
+                assert passes[b] == total
 
 
 def test_score_y_with_one_predictor_keeps_the_observed_reduced_fit(rng):

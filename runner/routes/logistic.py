@@ -15,17 +15,29 @@ b_j; ``statistic="score"`` the signed score statistic below. ``deviance`` in the
 -2 log L of the observed fit (a 0/1 response has a saturated log likelihood of 0); ``r2`` is
 NaN.
 
+Convergence (``kernels.irls``, module docstring): Newton steps are accepted by the
+self-concordance bound of the logistic loss, never by comparing two deviances (whose
+difference near the optimum is below their rounding at 10^6 dyads), and a fit has
+converged when the next step moves no dyad's linear predictor by more than ``TOL``
+(``TOL_OBSERVED`` for the fits the result reports) or no coefficient by more than 1e-9
+standard errors; sums over the dyads run in three levels, so their rounding does not grow
+with N. A fit that looks converged while the dyads informing some combination of its
+coefficients all have fitted probabilities of 0 or 1 (a separated fit whose gradient has
+vanished into its rounding) is not converged.
+
 Separation (Albert & Anderson 1984, Biometrika 71:1-10): when some combination of the
 predictors splits the 0s from the 1s, the likelihood has no maximum and Newton's
-coefficients diverge. The observed fit detects that (no convergence), names the
-predictor — first by the one-predictor check (max x among 0s <= min x among 1s, or the
-reverse), else by the linear programme "maximise sum_d s_d x_d'b subject to s_d x_d'b >= 0,
--1 <= b <= 1", s_d = 2 y_d - 1, whose optimum is positive exactly when the data are
-(quasi-)separated — and raises :class:`NumericalError` suggesting Firth's penalised
+coefficients diverge. A failed observed (or reduced) fit is referred to a test of its own:
+first the one-predictor check (max x among 0s <= min x among 1s, or the reverse), else the
+linear programme "maximise sum_d s_d x_d'b subject to s_d x_d'b >= 0, -1 <= b <= 1",
+s_d = 2 y_d - 1, whose optimum is positive exactly when the data are (quasi-)separated,
+solved by cutting planes (``separating_predictors``). Only when it holds is the fit called
+separated: :class:`NumericalError` names the predictors and suggests Firth's penalised
 likelihood (Firth 1993, Biometrika 80:27-38; Heinze & Schemper 2002, Stat. Med.
-21:2409-2419) or dropping or merging categories. A permuted fit that fails gives a NaN
-statistic, which the p-value counts as at least as extreme (conservative); the number of
-such fits is reported as ``failed``.
+21:2409-2419) or dropping or merging categories. Any other failure "did not converge after
+N Newton steps", with the reason, the last step's size and the term that moved most. A
+permuted fit that fails gives a NaN statistic, which the p-value counts as at least as
+extreme (conservative); the number of such fits is reported as ``failed``.
 
 Schemes
 -------
@@ -55,11 +67,23 @@ Per-relabelling refits start from the observed fits: for ``dsp`` from the observ
 fit of term j with 0 for e_pi (the expected value of its coefficient under relabelling);
 for ``y`` from the observed fit of the intercept alone, logit(mean y) and zero slopes (the
 expected fit of a relabelled response; starting from the observed slopes costs more Newton
-steps whenever the effects are large — see benchmarks/RESULTS.md). With complete data the
-first Newton step from there is free: at the start the fitted probabilities are the
-observed fit's, so the step needs only sums over the relabelled column gathered anyway
-(X'y_pi for ``y``; e_pi'(y - mu), Z'W e_pi and sum w e_pi^2 for ``dsp``, the pieces of the
-score statistic); the Newton iterations proper start from that one-step estimate.
+steps whenever the effects are large). With complete data the first Newton step from there
+is free: at the start the fitted probabilities are the observed fit's, so the step needs
+only sums over the relabelled column gathered anyway (X'y_pi for ``y``; e_pi'(y - mu),
+Z'W e_pi and sum w e_pi^2 for ``dsp``, the pieces of the score statistic); the Newton
+iterations proper start from that one-step estimate. A dsp refit then costs a gather of
+the relabelled residual and about two passes over the dyads.
+
+Scheme ``y`` with complete data needs no pass over the dyads at all beyond the gather of
+X'y_pi (the linear engine's ``gather_cross``): a fit of the canonical link depends on y_pi
+only through X'y_pi, and X'mu and X'WX at any coefficients near the intercept-only fit are
+series in the moments of the design, computed once (``kernels.irls``, section "scheme y
+with complete data"; ``_series_degree`` chooses the degree so the truncation is below the
+rounding of a pass out to SERIES_SE standard errors on every slope). Each evaluation checks
+its truncation bound; a relabelling beyond it (or the observed fit, far out when the
+effects are large) is refitted by passes over the dyads instead, so a statistic never
+rests on a truncated series. Refits and score statistics of scheme y then cost the linear
+y scheme's gather.
 
 Score statistic (``statistic="score"``)
 ---------------------------------------
@@ -85,9 +109,9 @@ Which quantities stay fixed under relabelling:
   every relabelling: the reduced fit is the observed one, I is fixed, and the statistic is
   (x'y_pi - x'mu) / sqrt(I) — one product per relabelling, taken by the linear engine's
   ``gather_cross``, the cost of the linear y scheme. Otherwise Z'y_pi changes and the
-  reduced model is refitted for each relabelling and each tested term (warm-started from
-  the observed reduced fit) — k reduced refits, dearer than one full refit: with two or
-  more predictors use ``dsp`` for the fast path.
+  reduced model of each tested term is refitted for each relabelling: from X'y_pi and the
+  moments of the design with complete data (above), else by passes over the dyads, the
+  score taken from the fit's last pass (which sums term j's column too).
 
 Its observed value equals the full model's score test of b_j (for ``dsp`` because
 Z'(y - mu) = 0 at the reduced fit, so e and x_j have the same U and I).
@@ -105,25 +129,44 @@ from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs.memory import check_dense_route
 from ..kernels.gather import gather_cross
+from ..kernels.irls import (FAIL_DYADS, FAIL_ITERATIONS, FAIL_SATURATED, FAIL_SINGULAR,
+                            INFO_MOVE, INFO_PASSES, INFO_SIZE, INFO_STEPS, INFO_TERM,
+                            SCORE_BLOCK, SERIES_REL, irls_logistic, monomial_tables, refit_dsp,
+                            refit_y, score_dsp_refit, score_from_sums, score_logistic,
+                            score_rows, score_y, series_moments, series_tail, series_y)
 from ..kernels.options import FIT_PIVOT
 from ..settings import LOGISTIC_SCHEMES as SCHEMES  # noqa: F401  (re-exported)
 from ..settings import LOGISTIC_STATISTICS as STATISTICS  # noqa: F401  (re-exported)
 from ..settings import check_regression
 from .plan import Plan, chunk_size_for, dense_identity, groups_fingerprint, summary
-from ..kernels.irls import (SCORE_BLOCK, irls_logistic, refit_dsp, refit_y, score_dsp_refit,
-                           score_from_sums, score_logistic, score_rows, score_y)
 
 # Newton steps allowed per fit; a converging fit from a warm start needs under ten.
 MAX_ITER = 50
-# Converged when no coefficient (standardised predictors) moves more than TOL * (1 + |b|).
-TOL = 1e-8
-# Newton steps assumed per refit when sizing chunks.
-STEPS_GUESS = 6
+# Converged when the next Newton step changes no dyad's linear predictor by more than TOL
+# (kernels.irls: the step is then taken, and the Wald covariance is within a relative TOL
+# of the estimate's). TOL for the refits of relabellings; TOL_OBSERVED for the observed
+# fits the result reports.
+TOL = 1e-7
+TOL_OBSERVED = 1e-10
+# Passes over the dyads assumed per refit when sizing chunks.
+STEPS_GUESS = 3
+# Scheme y with complete data fits from moments of the design when a series of degree at
+# most SERIES_MAX_DEGREE, over at most SERIES_MAX_MONOMIALS moments, is exact out to
+# SERIES_SE standard errors on every slope (``_series_degree``).
+SERIES_SE = 8.0
+SERIES_MAX_DEGREE = 30
+SERIES_MAX_MONOMIALS = 6000
 # A separating direction found by the linear programme must leave no dyad on the wrong
 # side by more than this (relative to its largest margin).
 SEPARATION_SLACK = 1e-9
 # Weight (of the largest) above which a predictor is named as part of a separating direction.
 SEPARATION_SHARE = 1e-3
+# The separation test's linear programme runs on a subset of about this many dyads, grown
+# by the dyads a candidate direction leaves on the wrong side, for at most
+# SEPARATION_ROUNDS rounds; an optimum below SEPARATION_ZERO times the largest |a_d| is 0.
+SEPARATION_SAMPLE = 20_000
+SEPARATION_ROUNDS = 30
+SEPARATION_ZERO = 1e-9
 
 
 # --- checks ---------------------------------------------------------------------------------
@@ -194,16 +237,50 @@ class LogisticFit:
     iterations: int
 
 
+@dataclass(frozen=True)
+class KernelFit:
+    """One fit through ``kernels.irls``: status (Newton steps, or a negative FAIL_* code),
+    estimate and Wald covariance (standardised predictors; NaN when failed), and the
+    diagnostics: passes over the dyads, Newton steps, the last step's largest change of a
+    linear predictor (bound) and the position in ``cols`` of the column that moved most."""
+
+    status: int
+    beta: np.ndarray
+    cov: np.ndarray
+    passes: int
+    steps: int
+    move: float
+    term: int
+
+
+def design_columns(X: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
+    """(q, N) C-ordered columns of X (all, or ``cols``) with NaN replaced by 0: the
+    kernels' layout (a dyad outside a fit is excluded by its ``valid`` flag)."""
+    Xc = X if cols is None else X[:, cols]
+    return np.ascontiguousarray(np.nan_to_num(Xc, nan=0.0).T)
+
+
 def fit_logistic(X: np.ndarray, cols: np.ndarray, y: np.ndarray, valid: np.ndarray,
-                 beta0: np.ndarray) -> tuple[int, np.ndarray, np.ndarray]:
-    """One fit through the kernel: (status, estimate, covariance)."""
+                 beta0: np.ndarray, *, tol: float = TOL_OBSERVED) -> KernelFit:
+    """One fit of y on the columns ``cols`` of X (N, P) over the ``valid`` dyads; column
+    cols[0] is the intercept (1 on every dyad: the kernels do not read it)."""
+    cols = np.asarray(cols, dtype=np.int64)
     q = cols.shape[0]
-    beta = np.empty(q)
-    cov = np.empty((q, q))
-    status = irls_logistic(X, np.ascontiguousarray(cols, dtype=np.int64), y, valid,
-                           np.ascontiguousarray(beta0, dtype=np.float64),
-                           np.empty((2 * q + 5, q)), beta, cov, MAX_ITER, TOL)
-    return int(status), beta, cov
+    XT = design_columns(X, cols)
+    if not np.all(XT[0] == 1.0):
+        raise ValueError("fit_logistic: the first design column must be the intercept")
+    valid = np.ascontiguousarray(valid, dtype=bool)
+    yv = np.where(valid, np.nan_to_num(y, nan=0.0), 0.0)
+    xy = (XT * yv).sum(axis=1)  # X'y over the valid dyads (numpy's pairwise sums)
+    xmax = np.abs(XT[:, valid]).max(axis=1) if valid.any() else np.zeros(q)
+    beta = np.full(q, np.nan)
+    cov = np.full((q, q), np.nan)
+    info = np.zeros(INFO_SIZE)
+    status = irls_logistic(XT, np.empty(0), np.arange(q, dtype=np.int64), xy, valid, xmax,
+                           np.ascontiguousarray(beta0, dtype=np.float64), beta, cov, info,
+                           MAX_ITER, tol)
+    return KernelFit(int(status), beta, cov, int(info[INFO_PASSES]), int(info[INFO_STEPS]),
+                     float(info[INFO_MOVE]), int(info[INFO_TERM]))
 
 
 def _null_start(y: np.ndarray, valid: np.ndarray, q: int) -> np.ndarray:
@@ -223,9 +300,11 @@ def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
     if ybar in (0.0, 1.0):
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set "
                          f"(every value is {int(ybar)})")
-    status, beta, cov = fit_logistic(dd.X, np.arange(p), dd.y, valid, _null_start(dd.y, valid, p))
-    if status < 0:
-        raise NumericalError(_failure_message(prep, dd, status))
+    cols = np.arange(p)
+    res = fit_logistic(dd.X, cols, dd.y, valid, _null_start(dd.y, valid, p))
+    if res.status < 0:
+        raise NumericalError(_failure_message(prep, dd, res, cols))
+    beta, cov = res.beta, res.cov
     # back to the user's units: b_c = beta_c / sd_c, b_0 = beta_0 - sum beta_c mean_c / sd_c
     A = np.zeros((p, p))
     A[0, 0] = 1.0
@@ -235,54 +314,114 @@ def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
     se = np.sqrt(np.diag(A @ cov @ A.T))
     eta = dd.X[valid] @ beta
     deviance = float(2.0 * np.sum(np.logaddexp(0.0, eta) - dd.y[valid] * eta))
-    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, status)
+    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, res.status)
 
 
-def _failure_message(prep: _design.Prepared, dd: DyadData, status: int) -> str:
-    names = separating_predictors(dd.X[dd.complete], dd.y[dd.complete], prep.names)
+def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols: np.ndarray,
+                     dropped: int | None = None) -> str:
+    """Why the fit of the design columns ``cols`` failed (``dropped``: the term left out of
+    a reduced model). Separation is named only when the linear programme of
+    ``separating_predictors`` finds it; any other failure is a failed convergence, with the
+    last Newton step's size and the term that moved most."""
+    names = ("intercept",) + tuple(prep.names)
     resp = prep.response_name
-    if names:
-        who = f"predictor {names[0]!r}" + (
-            f" together with {', '.join(repr(n) for n in names[1:])}" if len(names) > 1 else "")
-        return (f"logistic fit of {resp!r}: the 0s and 1s are separated by {who}, so the "
-                f"coefficients have no finite maximum-likelihood value (Albert & Anderson "
-                f"1984); use Firth's penalised likelihood (Firth 1993; Heinze & Schemper 2002) "
-                f"or drop or merge categories of {names[0]!r}")
-    return (f"logistic fit of {resp!r} did not converge (kernel code {status}) in "
-            f"{MAX_ITER} Newton steps, although no predictor separates the 0s from the 1s; "
-            "check for nearly collinear predictors")
+    fit = (f"logistic fit of {resp!r}" if dropped is None else
+           f"logistic fit of {resp!r} without {prep.names[dropped]!r} (the reduced model of "
+           "its test)")
+    advice = "" if dropped is None else "use statistic='t', or "
+    valid = dd.complete
+    Xv = dd.X[valid][:, cols]
+    eta = Xv @ res.beta if np.all(np.isfinite(res.beta)) else None
+    sep = separating_predictors(Xv[:, 1:], dd.y[valid], [names[c] for c in cols[1:]],
+                                intercept=Xv[:, 0], eta=eta)
+    if sep:
+        who = f"predictor {sep[0]!r}" + (
+            f" together with {', '.join(repr(n) for n in sep[1:])}" if len(sep) > 1 else "")
+        return (f"{fit}: the 0s and 1s are separated by {who}, so the coefficients have no "
+                f"finite maximum-likelihood value (Albert & Anderson 1984); {advice}use "
+                f"Firth's penalised likelihood (Firth 1993; Heinze & Schemper 2002) or drop "
+                f"or merge categories of {sep[0]!r}")
+    if res.status == FAIL_DYADS:
+        return f"{fit}: no more complete dyads than coefficients"
+    term = names[cols[res.term]] if res.term >= 0 else "?"
+    last = (f"last step: linear predictors moved by up to {res.move:.3g}, most through "
+            f"{term!r}")
+    if res.status == FAIL_SINGULAR:
+        why = "the weighted information X'WX became singular"
+    elif res.status == FAIL_ITERATIONS:
+        why = "the step limit was reached"
+    elif res.status == FAIL_SATURATED:
+        why = ("the fitted probabilities of the dyads that inform some combination of the "
+               "coefficients reached 0 or 1")
+    else:
+        why = "the sums over the dyads are not finite"
+    return (f"{fit} did not converge after {res.steps} Newton steps ({why}; {last}), "
+            "although no combination of the predictors separates the 0s from the 1s; check "
+            "for nearly collinear predictors")
 
 
-def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str]) -> list[str]:
+def separating_predictors(X: np.ndarray, y: np.ndarray, names: Sequence[str], *,
+                          intercept: np.ndarray | None = None,
+                          eta: np.ndarray | None = None) -> list[str]:
     """Predictors that separate the 0s from the 1s (Albert & Anderson 1984), or [].
 
-    ``X`` (N, p) holds [1, standardised predictors] on the complete dyads. First a single
-    predictor with the intercept: it separates when every x among the 0s is <= every x
-    among the 1s, or the reverse. Otherwise the linear programme of the module docstring;
-    a separating direction b is confirmed by its margins, and the predictors carrying it
-    are named, largest weight first.
+    ``X`` (N, k) holds the predictors on the fit's dyads (an intercept is added). First a
+    single predictor with the intercept: it separates when every x among the 0s is <= every
+    x among the 1s, or the reverse. Otherwise the linear programme of the module docstring
+    over the rows a_d = s_d [1, x_d], by cutting planes so that 10^6 dyads cost little:
+
+    - on a subset S of the dyads (a systematic sample, the dyads with the largest |eta| of
+      the failed fit ``eta`` — the ones a separation drives to 0 or 1 — and each
+      predictor's extremes in each class; identical rows once, weighted by their count);
+    - an optimum of 0 on S proves overlap there: some lambda > 0 has A_S'lambda = 0
+      (Gordan's alternative), so if A_S has full column rank no b != 0 has A b >= 0 on all
+      the dyads, and the data are not separated;
+    - a positive optimum gives a direction b; if every dyad has a_d'b >= 0 (up to
+      SEPARATION_SLACK of the largest margin) the data are separated along b, and the
+      predictors carrying it are named, largest weight first; otherwise the most violated
+      dyads join S and the programme runs again.
     """
     from scipy.optimize import linprog
 
     ones = y == 1.0
     for c, name in enumerate(names):
-        x = X[:, c + 1]
+        x = X[:, c]
         if x[~ones].max() <= x[ones].min() or x[ones].max() <= x[~ones].min():
             return [name]
-    A = np.where(ones, 1.0, -1.0)[:, None] * X
-    res = linprog(-A.sum(axis=0), A_ub=-A, b_ub=np.zeros(A.shape[0]),
-                  bounds=[(-1.0, 1.0)] * X.shape[1], method="highs")
-    if res.status != 0:
-        return []
-    margins = A @ res.x
-    top = margins.max()
-    if not top > 0.0 or margins.min() < -SEPARATION_SLACK * top:
-        return []
-    w = np.abs(res.x[1:])
-    if not w.max() > 0.0:
-        return []
-    order = np.argsort(-w, kind="stable")
-    return [names[c] for c in order if w[c] > SEPARATION_SHARE * w.max()]
+    n_dyads = X.shape[0]
+    one = np.ones(n_dyads) if intercept is None else intercept
+    A = np.where(ones, 1.0, -1.0)[:, None] * np.column_stack([one, X])
+    pick = [np.arange(0, n_dyads, max(1, n_dyads // SEPARATION_SAMPLE))]
+    if eta is not None:
+        pick.append(np.argsort(-np.abs(eta), kind="stable")[:SEPARATION_SAMPLE // 10])
+    for cls in (ones, ~ones):
+        at = np.flatnonzero(cls)
+        for c in range(X.shape[1]):
+            pick += [at[[np.argmin(X[at, c]), np.argmax(X[at, c])]]]
+    S = np.unique(np.concatenate(pick))
+    for _ in range(SEPARATION_ROUNDS):
+        rows, count = np.unique(A[S], axis=0, return_counts=True)
+        res = linprog(-(count[:, None] * rows).sum(axis=0), A_ub=-rows,
+                      b_ub=np.zeros(rows.shape[0]), bounds=[(-1.0, 1.0)] * A.shape[1],
+                      method="highs")
+        if res.status != 0:
+            return []
+        top = (rows @ res.x).max()
+        if not top > SEPARATION_ZERO * np.abs(rows).max():
+            if np.linalg.matrix_rank(rows) == A.shape[1]:
+                return []  # overlap on a full-rank subset: not separated
+            S = np.union1d(S, np.arange(1, n_dyads, max(1, n_dyads // SEPARATION_SAMPLE)))
+            continue
+        margins = A @ res.x
+        if margins.min() >= -SEPARATION_SLACK * top:
+            w = np.abs(res.x[1:])
+            if not w.max() > 0.0:
+                return []
+            order = np.argsort(-w, kind="stable")
+            return [names[c] for c in order if w[c] > SEPARATION_SHARE * w.max()]
+        worst = np.argsort(margins, kind="stable")[:SEPARATION_SAMPLE // 10]
+        S = np.union1d(S, worst[margins[worst] < 0.0])
+    return []
 
 
 # --- the plan -------------------------------------------------------------------------------
@@ -292,10 +431,14 @@ class LogisticPlan:
 
     ``kind`` names the route (module docstring): "refit-y", "refit-dsp", "score-y",
     "score-dsp-refit" run the Newton drivers of ``kernels.irls`` on dyad vectors;
-    "score-y-products" needs one dot product of the relabelled response with a fixed
-    layer (``kernels.gather.gather_cross``, the linear engine's kernel) and
-    "score-dsp-products" the sums of ``kernels.irls.score_rows``. ``arrays`` holds the
-    route's inputs; ``scale`` (k,) multiplies coefficients back into the user's units.
+    "series-y" (scheme y, complete data, refits or score statistics) gathers X'y_pi with
+    the linear engine's ``kernels.gather.gather_cross`` and fits from the moments of the
+    design (``kernels.irls.series_y``); "score-y-products" needs one dot product of the
+    relabelled response with a fixed layer (``gather_cross``) and "score-dsp-products" the
+    sums of ``kernels.irls.score_rows``. ``arrays`` holds the route's inputs; ``scale``
+    (k,) multiplies coefficients back into the user's units. ``statistics_and_passes``
+    also returns the passes over the dyads each relabelling took (a gather of a
+    relabelled layer counts as one).
     """
 
     kind: str
@@ -311,29 +454,48 @@ class LogisticPlan:
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """Statistics (B, k) of the relabellings given as row/column permutations."""
+        return self.statistics_and_passes(row_perms, col_perms)[0]
+
+    def statistics_and_passes(self, row_perms: np.ndarray, col_perms: np.ndarray
+                              ) -> tuple[np.ndarray, np.ndarray]:
+        """Statistics (B, k) and the passes over the dyads each relabelling took (B,)."""
         a = self.arrays
-        out = np.empty((row_perms.shape[0], self.k))
+        n_perm = row_perms.shape[0]
+        out = np.empty((n_perm, self.k))
+        passes = np.ones(n_perm, dtype=np.int64)
         rp = np.ascontiguousarray(row_perms, dtype=np.int64)
         cp = rp if col_perms is row_perms else np.ascontiguousarray(col_perms, dtype=np.int64)
         if self.kind in ("score-y-products", "score-dsp-products"):
-            self._products(rp, cp, out)
-            return out
-        common = (a["rows"], a["cols"], rp, cp, a["X"])
+            self._products(rp, cp, out)  # one row-wise pass over the relabelled layers
+            return out, passes
+        if self.kind == "series-y":
+            S = np.empty((n_perm, 1, a["XT"].shape[0]))
+            gather_cross(a["rel"], a["rel_idx"], a["fix"], a["fix_idx"], rp, cp,
+                         self.col_start, self.col_stop, S)  # X'y_pi
+            series_y(S[:, 0, :], a["XT"], a["mom"], a["deg"], a["parent"], a["pvar"],
+                     a["mult"], a["up1"], a["up2"], a["n_alpha"], a["degree"], a["xmax"],
+                     a["beta0"], a["onestep"], a["zcols"], out, passes, MAX_ITER, TOL,
+                     self.use_z)
+            if not self.use_z:
+                out *= self.scale
+            return out, passes
+        common = (a["rows"], a["cols"], rp, cp, a["XT"])
         if self.kind == "refit-y":
-            refit_y(a["layer"], *common, a["fixed_ok"], a["beta0"], a["onestep"], out,
-                    MAX_ITER, TOL, self.use_z)
+            refit_y(a["layer"], *common, a["fixed_ok"], a["xmax"], a["beta0"], a["onestep"],
+                    out, passes, MAX_ITER, TOL, self.use_z)
         elif self.kind == "refit-dsp":
-            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["beta0"],
-                      a["reduced"], a["cinv"], out, MAX_ITER, TOL, self.use_z)
+            refit_dsp(a["layer"], *common, a["y"], a["fixed_ok"], a["design"], a["xmax"],
+                      a["emax"], a["beta0"], a["mu0"], a["ties"], a["cinv"], out, passes,
+                      MAX_ITER, TOL, self.use_z)
         elif self.kind == "score-dsp-refit":
-            score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["gamma0"],
-                            out, MAX_ITER, TOL)
+            score_dsp_refit(a["layer"], *common, a["y"], a["fixed_ok"], a["zcols"], a["xmax"],
+                            a["gamma0"], out, passes, MAX_ITER, TOL)
         else:
-            score_y(a["layer"], *common, a["fixed_ok"], a["zcols"], a["gamma0"], out, MAX_ITER,
-                    TOL)
+            score_y(a["layer"], *common, a["fixed_ok"], a["xmax"], a["zcols"], a["gamma0"],
+                    a["onestep"], out, passes, MAX_ITER, TOL)
         if not self.use_z:
             out *= self.scale
-        return out
+        return out, passes
 
     def _products(self, rp: np.ndarray, cp: np.ndarray, out: np.ndarray) -> None:
         a = self.arrays
@@ -365,21 +527,38 @@ def _reduced_columns(k: int) -> np.ndarray:
 
 
 def _reduced_fits(prep, dd: DyadData, zcols: np.ndarray, valid: np.ndarray):
-    """Observed reduced fits (estimate, (Z'WZ)^-1) of every term over ``valid``."""
+    """Observed reduced fits (estimate, (Z'WZ)^-1) of every term over ``valid``;
+    NumericalError (``_failure_message``) when one fails."""
     k, q = zcols.shape
     gam = np.empty((k, q))
     cinv = np.empty((k, q, q))
     for j in range(k):
-        status, g, c = fit_logistic(dd.X, zcols[j], dd.y, valid, _null_start(dd.y, valid, q))
-        if status < 0:
-            others = [prep.names[i] for i in range(k) if i != j] or ["the intercept"]
-            raise NumericalError(f"logistic fit of {prep.response_name!r} without "
-                                 f"{prep.names[j]!r} (the reduced model of its test) did not "
-                                 f"converge: the 0s and 1s are separated by "
-                                 f"{', '.join(map(repr, others))}; use statistic='t' or "
-                                 "Firth's penalised likelihood (Firth 1993)")
-        gam[j], cinv[j] = g, c
+        res = fit_logistic(dd.X, zcols[j], dd.y, valid, _null_start(dd.y, valid, q))
+        if res.status < 0:
+            raise NumericalError(_failure_message(prep, dd, res, zcols[j], dropped=j))
+        gam[j], cinv[j] = res.beta, res.cov
     return gam, cinv
+
+
+def _series_degree(X: np.ndarray, xmax: np.ndarray, eta0: float, w0: float) -> int | None:
+    """Degree of the moment series of scheme y (kernels.irls, section "scheme y with complete
+    data"), or None when the series would not pay.
+
+    Relabelled fits have slopes of a few standard errors of the intercept-only fit's
+    information w0 X'X; the series must be exact (its truncation below the rounding of a
+    pass) out to SERIES_SE of them on every predictor at once. None when that needs a
+    degree above SERIES_MAX_DEGREE or more than SERIES_MAX_MONOMIALS moments.
+    """
+    k = X.shape[1] - 1
+    se = np.sqrt(np.diag(np.linalg.inv(w0 * (X.T @ X))))
+    U = SERIES_SE * float(se[1:] @ xmax[1:])
+    for degree in range(2, SERIES_MAX_DEGREE + 1):
+        if math.comb(degree + 2 + k, k) > SERIES_MAX_MONOMIALS:
+            return None
+        tail_mu, tail_w = series_tail(eta0, U, degree)
+        if tail_mu <= SERIES_REL * w0 and tail_w <= SERIES_REL * w0:
+            return degree
+    return None
 
 
 def _residual_layers(prep, dd: DyadData) -> np.ndarray:
@@ -419,9 +598,11 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     p = k + 1
     N = dd.rows.shape[0]
     X = np.ascontiguousarray(dd.X)
+    XT = design_columns(X)  # (p, N), 0 where missing
+    xmax = np.nan_to_num(np.nanmax(np.abs(X), axis=0))
     fixed_x = ~np.isnan(X).any(axis=1)
     zcols = _reduced_columns(k)
-    common = dict(rows=dd.rows, cols=dd.cols, X=X)
+    common = dict(rows=dd.rows, cols=dd.cols, XT=XT, xmax=xmax)
     use_z = statistic != "coef"
     scale = 1.0 / dd.sd
     refit_work = STEPS_GUESS * N * p * p
@@ -430,20 +611,15 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
     def plan(kind, arrays, work, z=use_z):
         return LogisticPlan(kind, arrays, k, prep.n_dyads, z, scale, float(work), **ranges)
 
+    ybar = float(dd.y[dd.complete].mean())
+    w0 = ybar * (1.0 - ybar)
     if scheme == "y":
         layer = np.ascontiguousarray(prep.matrices[k])
-        if statistic != "score":
-            beta0 = _null_start(dd.y, dd.complete, p)
-            onestep = np.zeros((0, p + 1))
-            if prep.complete:  # the first Newton step from beta0 needs only X'y_pi
-                ybar = float(dd.y.mean())
-                onestep = np.empty((p, p + 1))
-                onestep[:, :p] = np.linalg.inv(ybar * (1.0 - ybar) * (X.T @ X))
-                onestep[:, p] = ybar * X.sum(axis=0)
-            arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
-            return plan("refit-y", arrays, refit_work)
-        gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
-        if prep.complete and k == 1:
+        beta0 = _null_start(dd.y, dd.complete, p)
+        score = statistic == "score"
+        if score:
+            gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+        if score and prep.complete and k == 1:
             # the intercept-only fit is invariant (sum y_pi = sum y): one product per
             # relabelling, x'y_pi
             mu = 1.0 / (1.0 + np.exp(-gam[0, 0]))
@@ -453,28 +629,71 @@ def build_plan(prep: _design.Prepared, dd: DyadData, fit: LogisticFit, *, scheme
                           fix=_layer(prep, dd, x)[:, :, None], fix_idx=np.zeros(1, np.int64),
                           offset=mu * x.sum(), info=info)
             return plan("score-y-products", arrays, N, True)
-        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gam)
+        # the free first Newton step of a refit by passes from the intercept-only fit
+        # (every fitted probability mean(y) there): it needs only X'y_pi
+        if not score:
+            onestep = np.zeros((0, p + 1))
+            if prep.complete:
+                onestep = np.empty((p, p + 1))
+                onestep[:, :p] = np.linalg.inv(w0 * (X.T @ X))
+                onestep[:, p] = ybar * X.sum(axis=0)
+        else:
+            onestep = np.zeros((0, k, k + 1))
+            if prep.complete:
+                onestep = np.empty((k, k, k + 1))
+                for j in range(k):
+                    Z = X[:, zcols[j]]
+                    onestep[j, :, :k] = np.linalg.inv(w0 * (Z.T @ Z))
+                    onestep[j, :, k] = ybar * Z.sum(axis=0)
+        degree = _series_degree(X, xmax, beta0[0], w0) if prep.complete else None
+        if degree is not None:
+            # complete data: every fit from X'y_pi and the moments of the design
+            tables = monomial_tables(k, degree + 2)
+            mom = np.empty(tables["deg"].shape[0])
+            series_moments(XT, tables["parent"], tables["pvar"], mom)
+            fix = np.ascontiguousarray(np.stack([_layer(prep, dd, XT[c]) for c in range(p)],
+                                                axis=2))
+            arrays = dict(common, rel=np.nan_to_num(layer)[:, :, None],
+                          rel_idx=np.zeros(1, np.int64), fix=fix,
+                          fix_idx=np.arange(p, dtype=np.int64), mom=mom, degree=degree,
+                          n_alpha=int((tables["deg"] <= degree).sum()), beta0=beta0,
+                          onestep=onestep if score else onestep[None],
+                          zcols=zcols if score else np.zeros((0, k), np.int64),
+                          **{key: tables[key] for key in ("deg", "parent", "pvar", "mult",
+                                                          "up1", "up2")})
+            return plan("series-y", arrays, N * p, True if score else use_z)
+        if not score:
+            arrays = dict(common, layer=layer, fixed_ok=fixed_x, beta0=beta0, onestep=onestep)
+            return plan("refit-y", arrays, refit_work)
+        gamma0 = gam
+        if prep.complete:  # each reduced refit starts at the intercept-only fit + a free step
+            gamma0 = np.array([beta0[:k] for _ in range(k)])
+        arrays = dict(common, layer=layer, fixed_ok=fixed_x, zcols=zcols, gamma0=gamma0,
+                      onestep=onestep)
         return plan("score-y", arrays, k * refit_work, True)
 
     E = _residual_layers(prep, dd)
     gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
+    y = np.ascontiguousarray(dd.y)
     if statistic != "score":
         fixed_ok = _fixed_ok(dd, X, zcols)
         design = np.concatenate([zcols, np.full((k, 1), p, dtype=np.int64)], axis=1)
         beta0 = np.concatenate([gam, np.zeros((k, 1))], axis=1)
-        reduced = np.zeros((0, 2 * k))
+        mu0 = np.zeros((0, N))
+        ties = np.zeros(0, dtype=np.int64)
         if prep.complete:  # the first Newton step from beta0 needs only sums over e_pi
-            reduced = np.empty((N, 2 * k))
+            mu0 = np.empty((k, N))
             for j in range(k):
-                mu = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
-                reduced[:, j] = dd.y - mu
-                reduced[:, k + j] = mu * (1.0 - mu)
-        arrays = dict(common, layer=E, y=dd.y, fixed_ok=fixed_ok, design=design, beta0=beta0,
-                      reduced=reduced, cinv=cinv)
+                mu0[j] = 1.0 / (1.0 + np.exp(-(X[:, zcols[j]] @ gam[j])))
+            ties = np.flatnonzero(dd.y == 1.0).astype(np.int64)
+        emax = np.array([np.abs(E[dd.rows, dd.cols, j]).max() for j in range(k)])
+        arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
+                      fixed_ok=fixed_ok, design=design, emax=np.nan_to_num(emax),
+                      beta0=beta0, mu0=mu0, ties=ties, cinv=cinv)
         return plan("refit-dsp", arrays, k * refit_work)
     if not prep.complete:
-        arrays = dict(common, layer=E, y=dd.y, fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols,
-                      gamma0=gam)
+        arrays = dict(common, layer=np.ascontiguousarray(E.transpose(2, 0, 1)), y=y,
+                      fixed_ok=_fixed_ok(dd, X, zcols), zcols=zcols, gamma0=gam)
         return plan("score-dsp-refit", arrays, k * refit_work, True)
     # complete data: the reduced fit of each term is fixed; per relabelling only the sums
     # U, Q, S of the module docstring (kernels.irls.score_rows)
@@ -506,9 +725,17 @@ def observed_score(dd: DyadData, prep: _design.Prepared) -> np.ndarray:
     zcols = _reduced_columns(k)
     gam, cinv = _reduced_fits(prep, dd, zcols, dd.complete)
     out = np.empty(k)
+    valid = np.ascontiguousarray(dd.complete)
+    yv = np.where(valid, np.nan_to_num(dd.y), 0.0)
+    info = np.zeros(INFO_SIZE)
     for j in range(k):
-        out[j] = score_logistic(dd.X, zcols[j], j + 1, dd.y, dd.complete, gam[j], cinv[j],
-                                np.empty((2, k)))
+        cols = np.append(zcols[j], j + 1)
+        XT = design_columns(dd.X, cols)
+        xy = (XT * yv).sum(axis=1)
+        xmax = np.abs(XT[:k, valid]).max(axis=1)
+        # the reduced fit again from its estimate: one Newton step, then the score
+        out[j] = score_logistic(XT, np.empty(0), np.arange(k, dtype=np.int64), k, xy, valid,
+                                xmax, gam[j], info, MAX_ITER, TOL_OBSERVED)
     return out
 
 
