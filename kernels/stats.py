@@ -11,6 +11,11 @@ from numba import njit
 
 from .options import FIT_PIVOT_SQUARED, KERNEL_OPTIONS
 
+#: Numbers per relabelling and term that ``regression_stats`` writes into ``rows``.
+INTERVAL_WIDTH = 6
+#: ``rows`` of ``regression_stats`` when no interval numbers are wanted.
+NO_ROWS = np.zeros((0, 0, INTERVAL_WIDTH))
+
 
 @njit(**KERNEL_OPTIONS)
 def fill_gram(cross, gram0, out):
@@ -36,16 +41,18 @@ def fill_gram(cross, gram0, out):
 
 
 @njit(**KERNEL_OPTIONS)
-def regression_stats(gram, transforms, scale, use_t, out):
-    """t statistics (or coefficients) of each tested term from each permutation's Gram.
+def regression_stats(gram, transforms, scale, use_t, out, rows):
+    """t statistics (or coefficients) of each tested term from each permutation's Gram,
+    and (when ``rows`` is not empty) the numbers that invert its test.
 
     Parameters
     ----------
     gram : float64 (B, d, d)
         Gram matrix of v = [1, ...] over the permutation's dyad set (gram[b, 0, 0] = N).
-    transforms : float64 (K, d, p + 1)
+    transforms : float64 (K, d, p + 1), or (K, d, p + 2) with ``rows``
         For term k: columns 0..p-2 the other design columns, p-1 the tested column,
-        p the response, each as a combination of v.
+        p the response, each as a combination of v; with ``rows`` a last column X, what
+        the response loses per unit of the tested coefficient (y - b x_k: Y - b X).
     scale : float64 (K,)
         Factor applied to the statistic: the sign of the tested column's direction (t),
         or the factor taking its coefficient back to the user's units (coef).
@@ -53,6 +60,11 @@ def regression_stats(gram, transforms, scale, use_t, out):
         True: t statistic; False: coefficient.
     out : float64 (B, K)
         Written; NaN where the permuted design cannot be fitted or has no residual df.
+    rows : float64 (B, K, 6), or (0, 0, 0) for none
+        Written when not empty: the entries of the Cholesky factor of [Z, A, Y, X] below
+        Z, (l10, l11, l20, l21, l22, df) as ``pipeline.intervals`` reads them, where A is
+        column p-1, Y column p and X column p+1 (t = sqrt(df) l10 / l11); NaN where
+        ``out`` is NaN. The t statistic and coefficient do not depend on X (it comes last).
 
     A design can be fitted when every design column keeps, apart from the columns before
     it, at least ``options.FIT_PIVOT`` of its norm: the Cholesky pivot test
@@ -60,7 +72,8 @@ def regression_stats(gram, transforms, scale, use_t, out):
     """
     n_perm, d, _ = gram.shape
     n_terms, _, p1 = transforms.shape
-    p = p1 - 1
+    with_x = rows.shape[0] > 0
+    p = p1 - 2 if with_x else p1 - 1
     g = np.empty((p1, p1))
     tmp = np.empty((d, p1))
     for b in range(n_perm):
@@ -99,7 +112,17 @@ def regression_stats(gram, transforms, scale, use_t, out):
                     g[r, c] = s2 / g[c, c]
             if not ok or df <= 0.0:
                 out[b, k] = np.nan
+                if with_x:
+                    rows[b, k, :] = np.nan
                 continue
+            if with_x:
+                # y - b x: t(b) = sqrt(df) (l10 - b l20) / sqrt((l11 - b l21)^2 + (b l22)^2)
+                rows[b, k, 0] = g[p, p - 1]
+                rows[b, k, 1] = g[p, p]
+                rows[b, k, 2] = g[p + 1, p - 1]
+                rows[b, k, 3] = g[p + 1, p]
+                rows[b, k, 4] = g[p + 1, p + 1]
+                rows[b, k, 5] = df
             w = g[p, p - 1]  # projection of the response on the tested column's new part
             if use_t:
                 # t = beta / se = w / sqrt(RSS / df), RSS = L[p, p]^2

@@ -120,7 +120,7 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
                               storage=storage, **where)
     elif _sparse_takes(y, predictors, scheme=scheme):  # sparse response, sparse/derived x
         plan = _sparse.plan(y, predictors, scheme=scheme, statistic=statistic,
-                            storage=storage, **where)
+                            storage=storage, ci=level, **where)
     else:
         _refuse_edges(y, predictors, reason="the response is not sparse, so the dense "
                       "route runs")

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from dyadperm.kernels.gather import gather_gram
-from dyadperm.kernels.stats import correlation_stats, fill_gram, regression_stats
+from dyadperm.kernels.stats import NO_ROWS, correlation_stats, fill_gram, regression_stats
 from reference import (KERNEL_ATOL, KERNEL_RTOL, STAT_RTOL, correlation_stats_ref,
                        fill_gram_ref, gather_gram_ref, regression_stats_ref)
 from reference import FIT_PIVOT_SQUARED  # noqa: E402  (the rule, written in the tests)
@@ -85,7 +85,7 @@ def test_regression_stats_equal_twin(N, k, B, use_t, seed):
         transforms[j, d - 1, k + 1] = 1.0
     scale = rng.choice([-1.0, 1.0, 2.5], size=k)
     out = np.empty((B, k))
-    regression_stats(gram, transforms, scale, use_t, out)
+    regression_stats(gram, transforms, scale, use_t, out, NO_ROWS)
     ref = regression_stats_ref(gram, transforms, scale, use_t)
     np.testing.assert_allclose(out, ref, rtol=STAT_RTOL, atol=1e-10)
 
@@ -96,7 +96,7 @@ def test_regression_stats_singular_design_is_nan():
     gram = (V.T @ V)[None]
     transforms = np.eye(3)[None]
     out = np.empty((1, 1))
-    regression_stats(gram, transforms, np.ones(1), True, out)
+    regression_stats(gram, transforms, np.ones(1), True, out, NO_ROWS)
     assert np.isnan(out[0, 0])
 
 
@@ -120,7 +120,7 @@ def test_regression_stats_fit_rule_at_its_boundary(N, ratio):
     gram = (V.T @ V)[None]
     transforms = np.eye(4)[None]
     out = np.empty((1, 1))
-    regression_stats(gram, transforms, np.ones(1), True, out)
+    regression_stats(gram, transforms, np.ones(1), True, out, NO_ROWS)
     ref = regression_stats_ref(gram, transforms, np.ones(1), True)
     assert np.isnan(out[0, 0]) == (ratio < 1) == np.isnan(ref[0, 0])
     if ratio > 1:

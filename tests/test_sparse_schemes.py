@@ -177,7 +177,8 @@ def test_route_matches_dense_route_same_seed(rng, case):
                       groups=groups, dyads=opts.get("dyads"))
             res = dp.regress(net, sparse_preds, **kw)
             ref = dp.regress(Y, dense, directed=opts["directed"], **kw)
-            assert res.notes[0].startswith(f"sparse path: {scheme}") and not ref.notes
+            assert res.notes[0].startswith(f"sparse path: {scheme}") \
+                and not [n for n in ref.notes if not n.startswith("no intervals")]
             assert res.terms == ref.terms and res.n_dyads == ref.n_dyads
             null_s, null_d = np.asarray(res.null), np.asarray(ref.null)
             assert close(null_s, null_d), (scheme, statistic)

@@ -110,8 +110,8 @@ def header_lines(res: Any) -> list[str]:
 def ci_label(res: Any) -> str | None:
     """The column label of a result's coefficient intervals ("95% CI"), or None."""
     level = getattr(res, "ci_level", float("nan"))
-    if level is None or not np.isfinite(level):
-        return None
+    if level is None or not np.isfinite(level) or not np.isfinite(res.ci_low).any():
+        return None  # no interval at all (the notes say why)
     return f"{100 * level:g}% CI"
 
 
@@ -120,7 +120,12 @@ def ci_text(res: Any, i: int) -> str:
     lo, hi = res.ci_low[i], res.ci_high[i]
     if not (np.isfinite(lo) and np.isfinite(hi)):
         return "-"
-    return f"[{_num(lo, 0).strip()}, {_num(hi, 0).strip()}]"
+    return f"[{_bound(lo)}, {_bound(hi)}]"
+
+
+def _bound(x: float) -> str:
+    """An interval end with four significant digits."""
+    return f"{x:.3e}" if x != 0 and (abs(x) >= 1e5 or abs(x) < 1e-3) else f"{x:.4g}"
 
 
 def _interval(res: Any, i: int) -> str:

@@ -49,11 +49,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..kernels.stats import INTERVAL_WIDTH
 from .pvalues import TIE_TOLERANCE
 
 #: The kernels' numbers per relabelling and tested term: the Cholesky block and df.
 COLUMNS = ("l10", "l11", "l20", "l21", "l22", "df")
-WIDTH = len(COLUMNS)
+WIDTH = INTERVAL_WIDTH
 # A polynomial whose coefficients are all this small relative to the largest term of its
 # parts is identically zero: the relabelling is the observed data itself (at every b).
 ZERO_POLY = 1e-12
@@ -183,7 +184,9 @@ def invert(rows: np.ndarray, observed: np.ndarray, *, exact: bool, alpha: float)
     if not exact and m >= 4:
         for h, part in enumerate((rows[:m // 2], rows[m // 2:])):
             halves[h] = _hull(part, observed, False, alpha)[:2]
-    mc_se = np.abs(halves[0] - halves[1]) / 2.0
+    with np.errstate(invalid="ignore"):  # a half too small to bound the interval: no error
+        mc_se = np.where(np.isfinite(halves).all(axis=0),
+                         np.abs(halves[0] - halves[1]) / 2.0, np.nan)
     return Interval(full[0], full[1], full[2], halves, mc_se)
 
 
@@ -231,6 +234,9 @@ def for_terms(spec: dict, extra: np.ndarray | None, observed: np.ndarray | None,
         if iv.pieces > 1:
             notes.append(f"{name}: the values its test accepts are {iv.pieces} separate "
                          "intervals; the interval shown is their hull")
+        elif not np.all(np.isfinite(ends)):
+            notes.append(f"{name}: too few relabellings to reject any value at this level, "
+                         "so its interval is unbounded")
         elif iv.pieces == 0:
             notes.append(f"{name}: its test rejects every value, so it has no interval "
                          "(too few relabellings for this level?)")

@@ -34,9 +34,10 @@ from ..inputs.design import (Prepared, check_design, check_response, dyads_phras
                              iter_dyad_rows, standardise)
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram
-from ..kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, correlation_stats, fill_gram,
+                             regression_stats)
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
-from .plan import (Plan, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
+from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
                    summary)
 
 # The shared relabelling pass and a plan's own statistics add the same products in the same
@@ -70,11 +71,20 @@ class GramStatistics:
     col_start: np.ndarray
     col_stop: np.ndarray
     n_dyads: int
+    #: per tested term, the factor taking b from standardised units to the coefficient's
+    #: when the transforms carry the interval column X (``intervals``), else None
+    ci_scale: np.ndarray | None = None
+
+    @property
+    def extra(self) -> int:
+        """Numbers per relabelling after the k statistics: the interval rows."""
+        return 0 if self.ci_scale is None else WIDTH * self.k
 
     def statistics(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
-        """Statistics (B, k) of the relabellings given as row/column permutations."""
+        """Rows (B, k + extra) of the relabellings given as row/column permutations: the
+        statistics, then (with intervals) each term's interval numbers."""
         n_perm = row_perms.shape[0]
-        out = np.empty((n_perm, self.k))
+        out = np.empty((n_perm, self.k + self.extra))
         for ps in self.passes:
             d = 1 + ps.rel_idx.shape[0] + ps.fix_idx.shape[0]
             gram = np.empty((n_perm, d, d))
@@ -92,8 +102,12 @@ class GramStatistics:
                 out[:, 0] = r
             else:
                 stats = np.empty((n_perm, ps.terms.shape[0]))
-                regression_stats(gram, ps.transforms, ps.scale, self.use_t, stats)
+                rows = NO_ROWS if self.ci_scale is None else \
+                    np.empty((n_perm, ps.terms.shape[0], WIDTH))
+                regression_stats(gram, ps.transforms, ps.scale, self.use_t, stats, rows)
                 out[:, ps.terms] = stats
+                for t, j in enumerate(ps.terms if self.ci_scale is not None else ()):
+                    out[:, self.k + WIDTH * j:self.k + WIDTH * (j + 1)] = rows[:, t]
         return out
 
     def chunk_size(self) -> int:
@@ -176,8 +190,11 @@ def fit_pivot(prep: Prepared, storage: str = "float64") -> float:
 
 
 def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
-                     overwrite: bool = False) -> GramStatistics:
+                     overwrite: bool = False, interval: bool = False) -> GramStatistics:
     """Layers, invariant Gram blocks and transforms of a regression scheme.
+
+    ``interval``: also the numbers that invert each term's test (``pipeline.intervals``),
+    for dsp and freedman-lane with statistic t on complete data (``interval_reason``).
 
     ``overwrite``: the layer stacks may be the inputs themselves, standardised in place
     (see ``owned_base``); ``prep.matrices`` then no longer hold the data. The design (and
@@ -187,12 +204,16 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
     _check_spread(prep, sd)
+    if interval and interval_reason(scheme, statistic, prep.complete) is not None:
+        raise ValueError(interval_reason(scheme, statistic, prep.complete))
     if prep.complete:
-        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite)]
+        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite,
+                                 interval)]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
+    ci_scale = sd[prep.k] / sd[:prep.k] if interval else None
     return GramStatistics(tuple(passes), prep.k, False, statistic == "t", prep.col_start,
-                          prep.col_stop, prep.n_dyads)
+                          prep.col_stop, prep.n_dyads, ci_scale)
 
 
 def _check_spread(prep: Prepared, sd: np.ndarray) -> None:
@@ -217,7 +238,8 @@ def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
 
 
 def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
-                   mean: np.ndarray, sd: np.ndarray, overwrite: bool = False) -> Pass:
+                   mean: np.ndarray, sd: np.ndarray, overwrite: bool = False,
+                   interval: bool = False) -> Pass:
     """Complete data: orthonormal layers, so every permutation's Gram is well conditioned.
 
     The standardised predictors (and, for dsp and Freedman–Lane, the response) are replaced
@@ -227,6 +249,10 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     is the direction of x_j's residual on them (x_j = ... + Rs[k-1, k-1] P[k-1]). Every
     design then has orthonormal fixed columns, so even nearly collinear predictors keep
     their digits; the ill-conditioning stays in the scalar Rs[k-1, k-1].
+
+    ``interval``: each term's transform gets one more column X, what y - b x_j takes away
+    per unit of b in standardised units: for dsp x_j itself (fixed), for Freedman-Lane the
+    relabelled residual of x_j on the other terms, Rs[k-1, k-1] P[k-1].
     """
     k = prep.k
     xs = list(range(k))
@@ -244,7 +270,7 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     d = 1 + R + Q
     rpos = {layer: 1 + a for a, layer in enumerate(rel_idx)}
     fpos = {layer: 1 + R + c for c, layer in enumerate(fix_idx)}
-    transforms = np.zeros((k, d, k + 2))
+    transforms = np.zeros((k, d, k + 2 + int(interval)))
     scale = np.empty(k)
     for j in xs:
         order = [c for c in xs if c != j] + [j]
@@ -268,8 +294,12 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
             for pos, val in basis(k - 1, rpos).items():
                 ystar[pos] = ystar.get(pos, 0.0) + c[k - 1] * val
             cols += [basis(k - 1, fpos), ystar]
-        transforms[j] = _transform(cols, d)
         rkk = rs[k - 1, k - 1]
+        if interval and scheme == "dsp":
+            cols.append({fpos[e]: S[e, j] for e in range(j + 1)})  # x_j = sum_e q_e S[e, j]
+        elif interval:
+            cols.append({pos: rkk * val for pos, val in basis(k - 1, rpos).items()})
+        transforms[j] = _transform(cols, d)
         scale[j] = np.sign(rkk) if statistic == "t" else sd[k] / (sd[j] * rkk)
     gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx)
     return Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64), gram0,
@@ -451,7 +481,8 @@ def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np
             t = int(np.flatnonzero(ps.terms == j)[0])
             stats = np.empty((n_perm, 1))
             regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
-                             np.ascontiguousarray(ps.scale[t:t + 1]), plan.use_t, stats)
+                             np.ascontiguousarray(ps.scale[t:t + 1]), plan.use_t, stats,
+                             NO_ROWS)
             out[i] = stats[:, 0]
     for plan, st in zip(plans, out):
         ref = plan.statistics(rows[:1], cols[:1])[0, j]
@@ -473,24 +504,31 @@ def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str =
          directed: bool | None = None, groups: Any = None, dyads: str | None = None,
          overwrite_inputs: bool = False, ci: float | None = None) -> Plan:
     """The dense linear route: prepared inputs, the QR fit for the table, and the scheme's
-    statistics (``build_statistics``) for the pipeline."""
+    statistics (``build_statistics``) for the pipeline; with ``ci`` (a level) the numbers
+    that give each coefficient's interval at that level, where the run can have them."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     check_memory(y, predictors, storage=storage, groups=groups, in_place=overwrite_inputs)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     fit = _design.observed_fit(prep, pivot=fit_pivot(prep, storage))
     # statistics that overwrite the inputs need their fingerprints first
     fingerprints = input_fingerprints(prep) if overwrite_inputs else None
+    reason = None if ci is None else interval_reason(scheme, statistic, prep.complete)
+    interval = ci is not None and reason is None
     stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,
-                             overwrite=bool(overwrite_inputs))
+                             overwrite=bool(overwrite_inputs), interval=interval)
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads,
                     groups=groups_fingerprint(groups))
+    if interval:
+        settings["stored interval columns"] = stats.extra
     info = summary(prep, kind="regression", model="linear", scheme=scheme,
                    statistic=statistic, method=None, n_dyads=fit.n_dyads,
                    terms=("intercept",) + prep.names)
+    if ci is not None:
+        info["interval"] = interval_summary(ci, reason, stats.ci_scale)
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
     return Plan(kernel=stats, blocks=prep.blocks, chunk_size=stats.chunk_size(),
                 fit=fit_arrays, summary=info,
                 identity=dense_identity(prep, settings, fingerprints),
-                expected=fit.t[1:] if statistic == "t" else None)
+                expected=fit.t[1:] if statistic == "t" else None, extra=stats.extra)

@@ -142,3 +142,25 @@ def dense_identity(prep: Any, settings: dict, fingerprints: dict | None = None) 
     ident["relabelling blocks"] = json.dumps(prep.blocks.row_blocks)
     ident.update(input_fingerprints(prep) if fingerprints is None else fingerprints)
     return ident
+
+
+def interval_reason(scheme: str, statistic: str, complete: bool = True) -> str | None:
+    """Why a run gets no coefficient intervals (None: it gets them)."""
+    if scheme == "y":
+        return ("no intervals with scheme y: it relabels the whole response, so its null is "
+                "no null of beta = b for one coefficient alone; use dsp or freedman-lane")
+    if statistic != "t":
+        return ("no intervals with statistic coef: the relabelled coefficient of y - b x "
+                "can grow with b as fast as the observed one, so its test need not reject "
+                "any b; use statistic t")
+    if not complete:
+        return ("no intervals with missing dyads: the test of beta = b needs x observed "
+                "wherever y is, so its dyads at b != 0 are not those of the reported test")
+    return None
+
+
+def interval_summary(level: float | None, reason: str | None, scale: Any) -> dict:
+    """What a run's summary says of its intervals (``pipeline.intervals.for_terms``)."""
+    if reason is not None:
+        return {"level": level, "reason": reason}
+    return {"level": level, "scale": [float(v) for v in scale]}

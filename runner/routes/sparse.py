@@ -86,7 +86,8 @@ from ..inputs.dyadic import network_name
 from ..inputs.sparse import Edges, SparsePrepared, Term, prepare_sparse
 from ..kernels.sparse import GAP, NETWORK, PAIR_SUM, RECEIVER, SENDER
 from ..settings import check_correlation, check_regression
-from .plan import Plan, chunk_size_for, fingerprint, groups_fingerprint
+from .plan import (Plan, chunk_size_for, fingerprint, groups_fingerprint, interval_reason,
+                   interval_summary)
 from .sparse_products import (_check_collinear, _response_sd, build_sparse_plan,
                               observed_fit_sparse)
 from .sparse_schemes import build_sparse_correlation_plan, build_sparse_scheme_plan, moments_of
@@ -150,9 +151,10 @@ def _scheme_note(prep: SparsePrepared, scheme: str, what: str) -> str:
 
 def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
          storage: str = "float64", directed: bool | None = None, groups: Any = None,
-         dyads: str | None = None) -> Plan:
+         dyads: str | None = None, ci: float | None = None) -> Plan:
     """The sparse linear route (module docstring), every scheme. ``storage`` has no effect
-    here (no dyad layer is stored)."""
+    here (no dyad layer is stored); ``ci``: the level of the coefficient intervals (dsp and
+    Freedman-Lane with statistic t, as on the dense route), or None."""
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     prep = prepare_sparse(y, predictors, directed=directed, groups=groups, dyads=dyads)
     mom = moments_of(prep)
@@ -164,7 +166,9 @@ def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
         chunk = chunk_size(prep)
         note = NOTE.format(edges=prep.y.size)
     else:
-        stats = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic, moments=mom)
+        interval = ci is not None and interval_reason(scheme, statistic) is None
+        stats = build_sparse_scheme_plan(prep, scheme=scheme, statistic=statistic, moments=mom,
+                                         interval=interval)
         gram_xx, xy = stats.gram_xx, stats.xy
         chunk = chunk_size_for(stats.pairs.work(), budget=CHUNK_EDGE_WORK, least=1)
         note = _scheme_note(prep, scheme, {"y": "the response", "dsp": "the predictors"}.get(
@@ -176,13 +180,20 @@ def plan(y: Any, predictors: Any, *, scheme: str = "y", statistic: str = "t",
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups),
                     route="sparse")
+    extra = getattr(stats, "extra", 0)
+    if extra:
+        settings["stored interval columns"] = extra
+    if ci is not None:
+        info["interval"] = interval_summary(ci, interval_reason(scheme, statistic),
+                                            getattr(stats, "ci_scale", None))
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
     # dsp and Freedman–Lane: the kernels' identity relabelling is the full model's fit
     # (Frisch–Waugh–Lovell), from the same products as the fit
     expected = None if scheme == "y" else fit_arrays["stat"][1:]
     return Plan(kernel=stats, blocks=prep.blocks, chunk_size=chunk, fit=fit_arrays,
-                summary=info, identity=sparse_identity(prep, settings), expected=expected)
+                summary=info, identity=sparse_identity(prep, settings), expected=expected,
+                extra=extra)
 
 
 def _rank_edges(ed: Edges, N: int) -> Edges:

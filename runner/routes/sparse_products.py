@@ -32,7 +32,7 @@ from ..inputs.sparse import Edges, SparsePrepared, Term
 from ..kernels.options import FIT_PIVOT
 from ..kernels.sparse import (GAP, NETWORK, PAIR_SUM, RECEIVER, SAME, SENDER, gap_gap_sum,
                               sparse_cross)
-from ..kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..kernels.stats import NO_ROWS, correlation_stats, fill_gram, regression_stats
 
 
 
@@ -244,7 +244,7 @@ class SparsePlan:
             correlation_stats(gram, r)
             return r[:, None]
         out = np.empty((n_perm, self.k))
-        regression_stats(gram, self.transforms, self.scale, self.use_t, out)
+        regression_stats(gram, self.transforms, self.scale, self.use_t, out, NO_ROWS)
         return out
 
 

@@ -58,7 +58,8 @@ from ..inputs.sparse import Edges, SparsePrepared
 from ..kernels.sparse_pairs import (BACKWARD, FORWARD, GAP, NETWORK, PAIR_SUM, RECEIVER, SAME,
                                    SENDER, edge_pair_sums, gap_gap_sums, gap_same_sums,
                                    node_pair_sums, same_same_sums)
-from ..kernels.stats import correlation_stats, fill_gram, regression_stats
+from ..kernels.stats import (INTERVAL_WIDTH, NO_ROWS, correlation_stats, fill_gram,
+                             regression_stats)
 from ..settings import check_regression
 from .linear import _transform
 from .sparse_products import Moments, _check_collinear, _response_sd, fixed_products
@@ -671,6 +672,14 @@ class SparseSchemePlan:
     gram_xx: np.ndarray
     xy: np.ndarray
     correlation: bool = False
+    #: with intervals (the transforms' last column X): per term, the factor taking b from
+    #: standardised units to the coefficient's; else None
+    ci_scale: np.ndarray | None = None
+
+    @property
+    def extra(self) -> int:
+        """Numbers per relabelling after the k statistics: the interval rows."""
+        return 0 if self.ci_scale is None else INTERVAL_WIDTH * self.k
 
     def cross(self, row_perms: np.ndarray, col_perms: np.ndarray) -> np.ndarray:
         """Standardised relabelled-by-fixed products (B, R, F)."""
@@ -687,8 +696,13 @@ class SparseSchemePlan:
             r = np.empty(n_perm)
             correlation_stats(gram, r)
             return r[:, None]
-        out = np.empty((n_perm, self.k))
-        regression_stats(gram, self.transforms, self.scale, self.use_t, out)
+        out = np.empty((n_perm, self.k + self.extra))
+        stats = out[:, :self.k] if self.extra else out
+        rows = NO_ROWS if self.ci_scale is None else \
+            np.empty((n_perm, self.k, INTERVAL_WIDTH))
+        regression_stats(gram, self.transforms, self.scale, self.use_t, stats, rows)
+        if self.extra:
+            out[:, self.k:] = rows.reshape(n_perm, -1)
         return out
 
 
@@ -700,7 +714,8 @@ def _regress_on(gram: np.ndarray, target: int, on: list[int]) -> np.ndarray:
 
 
 def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: str,
-                             moments: Moments | None = None) -> SparseSchemePlan:
+                             moments: Moments | None = None,
+                             interval: bool = False) -> SparseSchemePlan:
     """The plan of a scheme (statistic ``t`` or ``coef``) by pair sums: memory
     O(edges + nodes), nothing of size n x m. One-mode or two-mode.
 
@@ -709,6 +724,9 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
     ``sparse_products.SparsePlan``). ``moments``: ``moments_of(prep)`` when the caller has
     it already. Raises InputError when the response has no variation or a predictor is
     constant or collinear (the sparse path's rule, ``sparse_products._check_collinear``).
+    ``interval`` (dsp, freedman-lane; statistic t): each transform gets a last column X
+    for the intervals of ``pipeline.intervals``: x_j fixed for dsp, x_j's relabelled
+    residual on [1, others] for Freedman-Lane (y - b x_j takes b X from the response).
     """
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage="float64")
     mom = moments_of(prep) if moments is None else moments
@@ -749,7 +767,7 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
         for l1 in group:  # relabelled-by-relabelled and fixed-by-fixed: invariant
             for l2 in group:
                 gram0[pos[l1], pos[l2]] = gobs[1 + l1, 1 + l2]
-    transforms = np.zeros((k, d, k + 2))
+    transforms = np.zeros((k, d, k + 2 + int(interval)))
     for j in xs:
         others = [c for c in xs if c != j]
         cols = [{0: 1.0}] + [{fpos[c]: 1.0} for c in others]
@@ -762,6 +780,8 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
             for c, gc in zip(others, g[1:]):
                 e[rpos[c]] = e.get(rpos[c], 0.0) - gc
             cols += [e, {fpos[ylayer]: 1.0}]
+            if interval:
+                cols.append({fpos[j]: 1.0})
         else:
             # y* = Z gamma + r_pi, r = y - Z gamma (the intercept cancels: D is invariant)
             g = _regress_on(gobs, ylayer, others)
@@ -770,11 +790,18 @@ def build_sparse_scheme_plan(prep: SparsePrepared, *, scheme: str, statistic: st
                 ystar[fpos[c]] = ystar.get(fpos[c], 0.0) + gc
                 ystar[rpos[c]] = ystar.get(rpos[c], 0.0) - gc
             cols += [{fpos[j]: 1.0}, ystar]
+            if interval:
+                gx = _regress_on(gobs, j, others)
+                e = {rpos[j]: 1.0, 0: -gx[0]}
+                for c, gc in zip(others, gx[1:]):
+                    e[rpos[c]] = e.get(rpos[c], 0.0) - gc
+                cols.append(e)
         transforms[j] = _transform(cols, d)
     scale = np.ones(k) if statistic == "t" else y_sd / sd[:k]
     return SparseSchemePlan(scheme, statistic, k, N, tuple(rel), tuple(fix), pairs,
                             np.ascontiguousarray(inv_scale), gram0, transforms,
-                            np.ascontiguousarray(scale), statistic == "t", gram_xx, xy)
+                            np.ascontiguousarray(scale), statistic == "t", gram_xx, xy,
+                            ci_scale=y_sd / sd[:k] if interval else None)
 
 
 def build_sparse_correlation_plan(prep: SparsePrepared, mom: Moments) -> SparseSchemePlan:
