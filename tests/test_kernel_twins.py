@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 
 from dyadperm.kernels.gather import gather_gram
 from dyadperm.kernels.stats import NO_ROWS, correlation_stats, fill_gram, regression_stats
-from reference import (KERNEL_ATOL, KERNEL_RTOL, STAT_RTOL, correlation_stats_ref,
+from reference import (KERNEL_ATOL, KERNEL_RTOL, STAT_RTOL, correlation_stats_ref, ols_t,
                        fill_gram_ref, gather_gram_ref, regression_stats_ref)
 from reference import FIT_PIVOT_SQUARED  # noqa: E402  (the rule, written in the tests)
 
@@ -144,3 +144,39 @@ def test_correlation_stats_equal_twin_and_pearsonr(N, B, seed):
     correlation_stats(gram, out)
     np.testing.assert_allclose(out, correlation_stats_ref(gram), rtol=1e-10)
     np.testing.assert_allclose(out, rs, rtol=1e-9)
+
+
+@pytest.mark.parametrize("N, k, seed", [(5, 1, 0), (9, 2, 1), (40, 3, 2), (7, 3, 3)])
+def test_regression_stats_interval_rows_give_t_at_every_b(N, k, seed):
+    """``rows``: the Cholesky block of [Z, A, Y, X] from which the t of A in the fit of
+    Y - b X on [Z, A] is sqrt(df) (l10 - b l20) / sqrt((l11 - b l21)^2 + (b l22)^2).
+    Reference: that t by a plain least-squares refit (reference.ols_t) at several b."""
+    rng = np.random.default_rng(seed)
+    d = 3 + k
+    B = 3
+    grams, datas = [], []
+    for _ in range(B):
+        V = np.column_stack([np.ones(N), rng.normal(size=(N, d - 1))])
+        grams.append(V.T @ V)
+        datas.append(V)
+    gram = np.array(grams)
+    p = k + 1  # design columns: intercept, k - 1 others, A
+    transforms = rng.normal(size=(k, d, p + 2))
+    transforms[:, :, 0] = 0.0
+    transforms[:, 0, 0] = 1.0  # the intercept
+    out = np.empty((B, k))
+    rows = np.empty((B, k, 6))
+    regression_stats(gram, transforms, np.ones(k), True, out, rows)
+    plain = np.empty((B, k))
+    regression_stats(gram, np.ascontiguousarray(transforms[:, :, :p + 1]), np.ones(k), True,
+                     plain, NO_ROWS)
+    np.testing.assert_array_equal(out, plain)  # the extra column leaves t alone, bit for bit
+    for b in range(B):
+        for j in range(k):
+            W = datas[b] @ transforms[j]
+            l10, l11, l20, l21, l22, df = rows[b, j]
+            assert df == N - p
+            for shift in (-1.3, 0.0, 0.7):
+                t_ref = ols_t(W[:, :p], W[:, p] - shift * W[:, p + 1])[2][-1]
+                t = np.sqrt(df) * (l10 - shift * l20) / np.hypot(l11 - shift * l21, shift * l22)
+                np.testing.assert_allclose(t, t_ref, rtol=1e-8)
