@@ -14,6 +14,7 @@ from .errors import (DyadpermError, DyadpermWarning, InputError, NumericalError,
                      RunFileError)
 from .inputs.dyadic import Dyadic, gap, pair_sum, receiver, reverse, same, sender  # noqa: E402
 from .inputs.sparse import SparseNetwork  # noqa: E402
+from .inputs.waves import Waves  # noqa: E402
 from .output.result import (CorrelationResult, LayerCorrelationResult,  # noqa: E402
                             RegressionResult)
 from .settings import StopRule  # noqa: E402
@@ -26,5 +27,5 @@ __all__ = [
     "InputError", "LayerCorrelationResult", "NumericalError", "RegressionResult",
     "RunFileError", "SparseNetwork", "StopRule", "Study", "calibrate", "correlate", "gap",
     "load_study", "open_result", "pair_sum", "receiver", "regress", "reverse", "same",
-    "sender",
+    "sender", "Waves",
 ]

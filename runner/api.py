@@ -11,12 +11,15 @@ from typing import Any, Callable
 
 from .inputs.sparse import refuse_edges as _refuse_edges
 from .inputs.sparse import takes as _sparse_takes
+from .inputs.waves import refuse_waves as _refuse_waves
+from .inputs.waves import uses_waves as _uses_waves
 from .output.result import CorrelationResult, LayerCorrelationResult, RegressionResult
 from .pipeline.run import open_result, run
 from .routes import correlation as _correlation
 from .routes import linear as _linear
 from .routes import logistic as _logistic
 from .routes import sparse as _sparse
+from .routes import waves as _waves
 from .settings import check_ci, check_regression, run_options
 
 __all__ = ["correlate", "open_result", "regress"]
@@ -30,13 +33,14 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
             storage: str = "float64", backend: str = "threads", scheduler: str | None = None,
             shard: str | None = None, provenance: dict | None = None,
             stop: Any = None, overwrite_inputs: bool = False,
-            ci: Any = 0.95) -> RegressionResult:
+            ci: Any = 0.95, wave_effects: bool = True) -> RegressionResult:
     """Multiple regression of one network on others with permutation p-values (MRQAP).
 
     Parameters
     ----------
-    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic or pandas DataFrame
-        The response network. NaN marks a missing dyad value. A DataFrame is labelled by
+    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic, pandas DataFrame or Waves
+        The response network; ``dyadperm.Waves`` for a panel (several waves of one node
+        set under one relabelling shared by every wave; see dyadperm.inputs.waves). NaN marks a missing dyad value. A DataFrame is labelled by
         its index (rows) and columns; square: one-mode (columns the same labels, any order).
     predictors : dict name -> network, or list
         Networks or derived predictors (``dyadperm.same`` ...), in model order. Labelled
@@ -96,6 +100,9 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
         and no reordering for groups; otherwise the inputs are copied as usual. After the
         run those arrays hold the engine's layers, not the data. Study files whose networks
         are all dense files load into such an array (``dyadperm.study``).
+    wave_effects : bool
+        Panels (``y`` a Waves): one intercept per wave (default), reported as fixed terms
+        and never tested; False: one intercept for every wave.
 
     Returns
     -------
@@ -114,7 +121,11 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     check_regression(model=model, scheme=scheme, statistic=statistic, storage=storage)
     level = check_ci(ci)
     where = dict(directed=directed, groups=groups, dyads=dyads)
-    if model == "logistic":  # binary response: Newton refits or score statistics
+    if _uses_waves(y, predictors):  # a panel: one relabelling shared by every wave
+        _waves.refuse_options(model=model, overwrite_inputs=overwrite_inputs)
+        plan = _waves.plan(y, predictors, scheme=scheme, statistic=statistic, storage=storage,
+                           wave_effects=wave_effects, ci=level, **where)
+    elif model == "logistic":  # binary response: Newton refits or score statistics
         _refuse_edges(y, predictors, reason="model='logistic' runs on dense arrays only")
         plan = _logistic.plan(y, predictors, scheme=scheme, statistic=statistic,
                               storage=storage, **where)
@@ -156,6 +167,10 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
                        chunk_size=chunk_size, out=out, progress=progress, backend=backend,
                        scheduler=scheduler, shard=shard, stop=stop, provenance=provenance)
     where = dict(method=method, storage=storage, directed=directed, groups=groups, dyads=dyads)
+    _refuse_waves(a, [] if b is None else [b], reason="correlate does not take waves; use "
+                  "regress (one intercept per wave)")
+    if isinstance(a, (list, tuple)):
+        _refuse_waves(None, list(a), reason="correlate does not take waves; use regress")
     if b is None:  # several networks: the matrix of pairwise correlations
         nets = list(a.values()) if isinstance(a, dict) else list(a)
         if nets:

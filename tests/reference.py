@@ -402,3 +402,87 @@ def exact_corr_null(A, B, method="pearson", directed=True, two_mode=False):
     null = np.array([dyad_corr(A, relabel(B, pr, pc), method, directed, two_mode)
                      for pr, pc in all_relabellings(n, m, two_mode)])
     return obs, null
+
+
+# --- panels: several waves under one relabelling -----------------------------------------
+def panel_scheme_stat(Ys, Xss, mask, scheme: str, statistic: str, perm,
+                      wave_effects: bool = True) -> np.ndarray:
+    """The k statistics of one relabelling ``perm`` of a panel, by full refits on the
+    stacked dyads of every wave (each wave relabelled by the same ``perm``).
+
+    ``Ys``: the response's T waves (n, n); ``Xss``: per predictor its T waves (a lagged
+    predictor is given already shifted); ``mask``: the dyad set of one wave (n, n), the
+    same at every wave. The design is [one indicator per wave, x's] (``wave_effects``) or
+    [1, x's]; missing values (NaN) move with their matrix and each fit uses the dyads where
+    every matrix of that fit is finite, as ``masked_scheme_stat`` does for one wave.
+    "y": relabel every Y_t; "dsp": residualise x_j on Z = [wave indicators, other x] over
+    the observed complete dyads, relabel each wave of E = x_j - Z g, fit y on [Z, E_pi];
+    "freedman-lane": y* = Z g + relabel(Y - Z g) wave by wave, fit [Z, x_j] on y*.
+    """
+    T = len(Ys)
+    k = len(Xss)
+    Ys = [np.asarray(Y, dtype=np.float64) for Y in Ys]
+    Xss = [[np.asarray(X, dtype=np.float64) for X in Xs] for Xs in Xss]
+    perm = np.asarray(perm)
+
+    def lead(use):
+        if not wave_effects:
+            return np.ones((sum(int(u.sum()) for u in use), 1))
+        blocks = []
+        for t, u in enumerate(use):
+            d = np.zeros((int(u.sum()), T))
+            d[:, t] = 1.0
+            blocks.append(d)
+        return np.concatenate(blocks, axis=0)
+
+    def stack(mats, use):
+        return np.concatenate([M[u] for M, u in zip(mats, use)])
+
+    a = T if wave_effects else 1
+    finite_x = [np.all([np.isfinite(Xs[t]) for Xs in Xss], axis=0) for t in range(T)]
+    out = np.empty(k)
+    if scheme == "y":
+        Yp = [relabel(Y, perm, perm) for Y in Ys]
+        use = [mask & finite_x[t] & np.isfinite(Yp[t]) for t in range(T)]
+        A = np.column_stack([lead(use)] + [stack(Xs, use) for Xs in Xss])
+        for j in range(k):
+            out[j] = ols_stat_or_nan(A, stack(Yp, use), a + j, statistic)
+        return out
+    complete = [mask & finite_x[t] & np.isfinite(Ys[t]) for t in range(T)]
+    for j in range(k):
+        others = [Xss[c] for c in range(k) if c != j]
+        Z = np.column_stack([lead(complete)] + [stack(Xs, complete) for Xs in others])
+        target = Xss[j] if scheme == "dsp" else Ys
+        g, *_ = np.linalg.lstsq(Z, stack(target, complete), rcond=None)
+        fitted = []
+        for t in range(T):
+            f = np.full_like(Ys[t], g[t] if wave_effects else g[0])
+            for gc, Xs in zip(g[a:], others):
+                f = f + gc * Xs[t]
+            fitted.append(f)
+        ok_others = [np.all([np.isfinite(Xs[t]) for Xs in others], axis=0) if others
+                     else np.ones_like(mask) for t in range(T)]
+        if scheme == "dsp":
+            Ep = [relabel(Xss[j][t] - fitted[t], perm, perm) for t in range(T)]
+            use = [mask & np.isfinite(Ep[t]) & np.isfinite(Ys[t]) & ok_others[t]
+                   for t in range(T)]
+            A = np.column_stack([lead(use)] + [stack(Xs, use) for Xs in others]
+                                + [stack(Ep, use)])
+            out[j] = ols_stat_or_nan(A, stack(Ys, use), A.shape[1] - 1, statistic)
+        elif scheme == "freedman-lane":
+            ystar = [fitted[t] + relabel(Ys[t] - fitted[t], perm, perm) for t in range(T)]
+            use = [mask & np.isfinite(ystar[t]) & finite_x[t] for t in range(T)]
+            A = np.column_stack([lead(use)] + [stack(Xs, use) for Xs in Xss])
+            out[j] = ols_stat_or_nan(A, stack(ystar, use), a + j, statistic)
+        else:
+            raise ValueError(f"scheme must be one of {SCHEMES}; got {scheme!r}")
+    return out
+
+
+def panel_exact_null(Ys, Xss, mask, scheme, statistic, wave_effects=True):
+    """(observed (k,), null (n!, k)) of ``panel_scheme_stat`` over every relabelling."""
+    n = np.shape(Ys[0])[0]
+    obs = panel_scheme_stat(Ys, Xss, mask, scheme, statistic, np.arange(n), wave_effects)
+    null = np.array([panel_scheme_stat(Ys, Xss, mask, scheme, statistic, p, wave_effects)
+                     for p, _ in all_relabellings(n)])
+    return obs, null

@@ -63,10 +63,25 @@ class Prepared:
     directed: bool
     complete: bool
     n_dyads: int
+    #: waves of one node set interleaved in the columns (``dyadperm.inputs.waves``)
+    waves: int = 1
+    #: leading predictors that are fixed terms, never tested (wave intercepts)
+    fixed: int = 0
 
     @property
     def two_mode(self) -> bool:
         return self.col_labels is not None
+
+    def holds(self) -> np.ndarray:
+        """Cells that hold dyad values: the dyad set, and for undirected data its mirror
+        image (relabelled reads land in either triangle; with waves, within each wave)."""
+        if self.directed or self.two_mode:
+            return self.mask
+        if self.waves == 1:
+            return self.mask | self.mask.T
+        n, w = self.mask.shape[0], self.waves
+        cube = self.mask.reshape(n, n, w)
+        return (cube | cube.transpose(1, 0, 2)).reshape(n, n * w)
 
     @property
     def k(self) -> int:

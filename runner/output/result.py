@@ -138,13 +138,17 @@ class RegressionResult(_Common):
     ci_level: float = float("nan")
     #: Monte Carlo standard error of ci_low and ci_high (p x 2), from halves of the run
     ci_mc_se: np.ndarray = field(default=None)
+    #: leading terms that are fixed, never tested: 1 (the intercept), or with waves one
+    #: intercept per wave (``dyadperm.Waves``)
+    fixed_terms: int = 1
 
     def _estimates(self) -> np.ndarray:
         return self.coef
 
     def tested_index(self) -> np.ndarray:
-        """Every term but the intercept (relabelling says nothing about it)."""
-        return np.arange(1, len(self.terms))
+        """Every term but the leading fixed ones (the intercept, or one per wave):
+        relabelling says nothing about them."""
+        return np.arange(self.fixed_terms, len(self.terms))
 
 
 @dataclass(frozen=True, eq=False, repr=False)

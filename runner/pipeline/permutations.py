@@ -34,7 +34,7 @@ def draw(blocks: Blocks, entropy: int, first: int, count: int) -> tuple[np.ndarr
         _draw_one(rng, blocks.row_blocks, rows[b])
         if blocks.col_blocks is not None:
             _draw_one(rng, blocks.col_blocks, cols[b])
-    return rows, cols
+    return rows, (blocks.columns(rows) if blocks.col_blocks is None else cols)
 
 
 def _draw_one(rng: np.random.Generator, ranges, out: np.ndarray) -> None:
@@ -60,7 +60,7 @@ def enumerate_exact(blocks: Blocks, first: int, count: int) -> tuple[np.ndarray,
         for r, ((s, e), d) in enumerate(zip(ranges, digits)):
             target = rows[b] if r < n_row_ranges else cols[b]
             target[s:e] = s + unrank(d, e - s)
-    return rows, cols
+    return rows, (blocks.columns(rows) if blocks.col_blocks is None else cols)
 
 
 def unrank(index: int, n: int) -> np.ndarray:
@@ -84,7 +84,7 @@ def draw_from(rng: np.random.Generator, blocks: Blocks) -> tuple[np.ndarray, np.
     for s, e in blocks.row_blocks:
         rows[s:e] = s + rng.permutation(e - s)
     if blocks.col_blocks is None:
-        return rows, rows
+        return rows, blocks.columns(rows)
     cols = np.empty(blocks.n_cols, dtype=np.int64)
     for s, e in blocks.col_blocks:
         cols[s:e] = s + rng.permutation(e - s)
@@ -102,5 +102,6 @@ def draw_many_from(rng: np.random.Generator, blocks: Blocks, count: int
         return out
 
     rows = within(blocks.row_blocks, blocks.n_rows)
-    cols = rows if blocks.col_blocks is None else within(blocks.col_blocks, blocks.n_cols)
+    cols = blocks.columns(rows) if blocks.col_blocks is None else within(blocks.col_blocks,
+                                                                          blocks.n_cols)
     return rows, cols

@@ -247,7 +247,8 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
             p_interval=pv.p_interval, r=np.asarray(observed["coef"], dtype=np.float64),
             method=summary["method"], layers=tuple(summary["layers"]),
             pairs=tuple((int(i), int(j)) for i, j in summary["pairs"]), **tested, **common)
-    nan1 = np.full(1, np.nan)
+    # the untested leading terms: the intercept (panels: one intercept per wave)
+    nan1 = np.full(len(summary["terms"]) - k, np.nan)
     fitv = np.asarray(observed["fit"], dtype=np.float64)
     spec = summary.get("interval")
     ci = {}
@@ -256,17 +257,17 @@ def build_result(summary: dict, observed: dict, null: Any, *, exact: bool, chunk
             spec, np.asarray(rows)[:, k:], observed.get("kernel_extra"),
             list(summary["tested"]), exact=exact)
         ci = dict(ci_low=np.concatenate([nan1, low]), ci_high=np.concatenate([nan1, high]),
-                  ci_mc_se=np.concatenate([np.full((1, 2), np.nan), mc]),
+                  ci_mc_se=np.concatenate([np.full((nan1.size, 2), np.nan), mc]),
                   ci_level=float(spec["level"]))
         common["notes"] = common["notes"] + tuple(ci_notes)
     return RegressionResult(**ci,
         p_adjusted=np.concatenate([nan1, st.p_adjusted]),
-        stop_at=np.concatenate([nan1, st.stop_at]), stop_verdict=("",) + st.verdict,
+        stop_at=np.concatenate([nan1, st.stop_at]), stop_verdict=("",) * nan1.size + st.verdict,
         p=np.concatenate([nan1, pv.p]), p_greater=np.concatenate([nan1, pv.p_greater]),
         p_less=np.concatenate([nan1, pv.p_less]), p_se=np.concatenate([nan1, pv.p_se]),
-        p_interval=np.concatenate([np.full((1, 2), np.nan), pv.p_interval]),
+        p_interval=np.concatenate([np.full((nan1.size, 2), np.nan), pv.p_interval]),
         coef=np.asarray(observed["coef"], dtype=np.float64), r2=float(fitv[0]),
-        deviance=float(fitv[1]), **common)
+        deviance=float(fitv[1]), fixed_terms=int(nan1.size), **common)
 
 
 def open_result(path: Any):

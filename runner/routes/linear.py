@@ -155,7 +155,7 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     fill = 0.0 if prep.complete else np.nan
     # cells that hold dyad values: the dyad set, and for undirected data its mirror image
     # (relabelled reads land in either triangle)
-    holds = prep.mask if (prep.directed or prep.two_mode) else (prep.mask | prep.mask.T)
+    holds = prep.holds()
     for pos, layer in enumerate(layers):
         a = prep.matrices[layer]
         view = out[:, :, pos]
@@ -190,8 +190,15 @@ def fit_pivot(prep: Prepared, storage: str = "float64") -> float:
 
 
 def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
-                     overwrite: bool = False, interval: bool = False) -> GramStatistics:
+                     overwrite: bool = False, interval: bool = False,
+                     absorbed: int = 0) -> GramStatistics:
     """Layers, invariant Gram blocks and transforms of a regression scheme.
+
+    ``absorbed``: design columns the inputs were already centred on (wave intercepts of
+    complete panel data, ``routes.waves``): each is orthogonal to every layer and every
+    relabelled layer, so it changes no coefficient or residual, only the t statistic's
+    residual degrees of freedom, N - p - absorbed. The leading ``prep.fixed`` predictors
+    (wave intercepts of panel data with missing dyads) are in every design, never tested.
 
     ``interval``: also the numbers that invert each term's test (``pipeline.intervals``),
     for dsp and freedman-lane with statistic t on complete data (``interval_reason``).
@@ -211,9 +218,15 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
                                  interval)]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
+    if absorbed and statistic == "t":
+        # t = beta / sqrt(RSS / df): the kernels' df is N - p; the model's N - p - absorbed
+        p = prep.k + 1
+        factor = np.sqrt((prep.n_dyads - p - absorbed) / (prep.n_dyads - p))
+        passes = [Pass(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, ps.gram0, ps.transforms,
+                       ps.terms, ps.scale * factor) for ps in passes]
     ci_scale = sd[prep.k] / sd[:prep.k] if interval else None
-    return GramStatistics(tuple(passes), prep.k, False, statistic == "t", prep.col_start,
-                          prep.col_stop, prep.n_dyads, ci_scale)
+    return GramStatistics(tuple(passes), prep.k - prep.fixed, False, statistic == "t",
+                          prep.col_start, prep.col_stop, prep.n_dyads, ci_scale)
 
 
 def _check_spread(prep: Prepared, sd: np.ndarray) -> None:
@@ -350,14 +363,15 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
     xs = list(range(k))
     gobs = _gram_observed(prep, mean, sd)
     _check_gram(gobs, prep)
+    tested = xs[prep.fixed:]
     if scheme == "y":
         rel = _stack(prep, [ylayer], mean, sd, storage, overwrite)
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
-        specs = [(rel, [0], [ylayer], fix, xs, xs, xs)]
+        specs = [(rel, [0], [ylayer], fix, xs, xs, tested)]
     else:
         W = _stack(prep, xs + [ylayer], mean, sd, storage, overwrite)
         specs = []
-        for j in xs:
+        for j in tested:
             others = [c for c in xs if c != j]
             if scheme == "dsp":
                 specs.append((W, xs, xs, W, others + [ylayer], others + [ylayer], [j]))
@@ -391,7 +405,7 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
             transforms[t_i] = _transform(cols, d)
         scale = np.ones(len(terms)) if statistic == "t" else sd[ylayer] / sd[terms]
         passes.append(Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
-                           None, transforms, np.asarray(terms, np.int64),
+                           None, transforms, np.asarray(terms, np.int64) - prep.fixed,
                            np.ascontiguousarray(scale)))
     return passes
 

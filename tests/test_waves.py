@@ -1,0 +1,208 @@
+"""Panels: several waves of one node set under one relabelling shared by every wave.
+
+Sources named beside each check:
+- exact brute force (tests/reference.py, ``panel_scheme_stat``): all 120 relabellings of
+  5 nodes, each applied to every wave, pooled least squares with one intercept per wave
+  refitted per relabelling by numpy lstsq, for the schemes of Krackhardt 1988 (y), Dekker,
+  Krackhardt & Snijders 2007 (dsp) and Freedman & Lane 1983;
+- statsmodels OLS on the stacked dyads with wave dummies (observed fit).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+
+import dyadperm as dp
+from reference import (P_ATOL, SCHEMES, STAT_ATOL, STAT_RTOL, counts, dyads, panel_exact_null,
+                       panel_scheme_stat)
+
+N = 5
+
+
+def _panel(rng, n=N, waves=3, directed=True, k=2):
+    """Waves of a response and k predictors, with a node propensity that persists."""
+    def sym(M):
+        U = np.triu(M, 1)
+        return U + U.T
+
+    send = rng.normal(size=n)
+    Xs = [[rng.normal(size=(n, n)) + send[:, None] for _ in range(waves)] for _ in range(k)]
+    Ys = [0.8 * Xs[0][t] + rng.normal(size=(n, n)) + send[:, None] + 0.3 * t
+          for t in range(waves)]
+    if not directed:
+        Xs = [[sym(X) for X in W] for W in Xs]
+        Ys = [sym(Y) for Y in Ys]
+    return Ys, Xs
+
+
+def _mask(n, directed=True):
+    r, c = dyads(n, n, directed)
+    m = np.zeros((n, n), dtype=bool)
+    m[r, c] = True
+    return m
+
+
+def _check(res, obs, null, fixed):
+    total = null.shape[0]
+    tested = slice(fixed, None)
+    assert res.exact and res.permutations == total
+    # source: exact brute force — observed statistic and the whole null (order-free)
+    np.testing.assert_allclose(res.stat[tested], obs, rtol=STAT_RTOL, atol=STAT_ATOL)
+    np.testing.assert_allclose(np.sort(np.asarray(res.null), axis=0), np.sort(null, axis=0),
+                               rtol=STAT_RTOL, atol=STAT_ATOL)
+    # source: exact brute force — p = b / n! with the identity counted
+    b2, bg, bl = counts(obs, null)
+    np.testing.assert_allclose(res.p[tested], b2 / total, rtol=0, atol=P_ATOL)
+    np.testing.assert_allclose(res.p_greater[tested], bg / total, rtol=0, atol=P_ATOL)
+    np.testing.assert_allclose(res.p_less[tested], bl / total, rtol=0, atol=P_ATOL)
+    assert np.all(np.isnan(res.p[:fixed]))
+
+
+@pytest.mark.parametrize("statistic", ["t", "coef"])
+@pytest.mark.parametrize("scheme", SCHEMES)
+@pytest.mark.parametrize("waves", [2, 3])
+def test_exact_pvalues_equal_brute_force(rng, waves, scheme, statistic):
+    Ys, Xs = _panel(rng, waves=waves)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "b": dp.Waves(Xs[1])},
+                     scheme=scheme, statistic=statistic, exact=True)
+    assert res.terms == tuple(f"wave {t + 1}" for t in range(waves)) + ("a", "b")
+    obs, null = panel_exact_null(Ys, Xs, _mask(N), scheme, statistic)
+    _check(res, obs, null, waves)
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_exact_pvalues_with_a_lagged_predictor(rng, scheme):
+    Ys, Xs = _panel(rng, waves=3)
+    res = dp.regress(dp.Waves(Ys, names=["2023", "2024", "2025"]),
+                     {"before": dp.Waves(Xs[0], lag=1), "now": dp.Waves(Xs[1])},
+                     scheme=scheme, exact=True)
+    assert res.terms == ("wave 2024", "wave 2025", "before", "now")
+    assert any("2023 drop out" in note for note in res.notes)
+    # source: brute force on the response's waves 2..3 with 'before' at waves 1..2
+    obs, null = panel_exact_null(Ys[1:], [Xs[0][:2], Xs[1][1:]], _mask(N), scheme, "t")
+    _check(res, obs, null, 2)
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_exact_pvalues_undirected(rng, scheme):
+    Ys, Xs = _panel(rng, waves=3, directed=False)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "b": Xs[1][0]}, scheme=scheme,
+                     exact=True)
+    assert not res.directed
+    # source: brute force; the single network 'b' stands at every wave
+    obs, null = panel_exact_null(Ys, [Xs[0], [Xs[1][0]] * 3], _mask(N, False), scheme, "t")
+    _check(res, obs, null, 3)
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_exact_pvalues_with_missing_dyads_and_an_absent_node(rng, scheme):
+    Ys, Xs = _panel(rng, waves=3)
+    Ys[0][1, 3] = np.nan
+    Xs[1][2][4, 0] = np.nan
+    labels = [f"n{i}" for i in range(N)]
+    frames = [pd.DataFrame(Y, index=labels, columns=labels) for Y in Ys]
+    frames[1] = frames[1].drop(index="n2", columns="n2")  # n2 absent at wave 2
+    res = dp.regress(dp.Waves(frames), {"a": dp.Waves(Xs[0]), "b": dp.Waves(Xs[1])},
+                     scheme=scheme, exact=True)
+    Ys[1][2, :] = np.nan
+    Ys[1][:, 2] = np.nan
+    # source: brute force with missing values moving with their matrices
+    obs, null = panel_exact_null(Ys, Xs, _mask(N), scheme, "t")
+    _check(res, obs, null, 3)
+
+
+def test_one_intercept_when_wave_effects_are_off(rng):
+    Ys, Xs = _panel(rng, waves=2)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, scheme="dsp", exact=True,
+                     wave_effects=False)
+    assert res.terms == ("intercept", "a")
+    # source: brute force with the single intercept
+    obs, null = panel_exact_null(Ys, Xs[:1], _mask(N), "dsp", "t", wave_effects=False)
+    _check(res, obs, null, 1)
+
+
+def test_waves_of_one_wave_equal_the_plain_network(rng):
+    # source: the plain dense route (itself checked against brute force elsewhere)
+    Ys, Xs = _panel(rng, waves=1)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "b": dp.Waves(Xs[1])}, exact=True)
+    plain = dp.regress(Ys[0], {"a": Xs[0][0], "b": Xs[1][0]}, exact=True)
+    np.testing.assert_allclose(res.stat, plain.stat, rtol=1e-10)
+    np.testing.assert_allclose(res.p, plain.p, atol=P_ATOL)
+
+
+def test_observed_fit_equals_statsmodels_with_wave_dummies(rng):
+    n, T = 25, 3
+    Ys, Xs = _panel(rng, n=n, waves=T)
+    attr = rng.normal(size=n)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "b": Xs[1][0],
+                                    "same_attr": dp.gap(attr)}, permutations=19, seed=2)
+    r, c = dyads(n, n, True)
+    gapm = np.abs(attr[:, None] - attr[None, :])
+    y = np.concatenate([Y[r, c] for Y in Ys])
+    X = np.column_stack([np.repeat(np.eye(T), len(r), axis=0),
+                         np.concatenate([X[r, c] for X in Xs[0]]),
+                         np.tile(Xs[1][0][r, c], T), np.tile(gapm[r, c], T)])
+    fit = sm.OLS(y, X).fit()  # source: statsmodels OLS, wave dummies and no constant
+    np.testing.assert_allclose(res.coef, fit.params, rtol=1e-9)
+    np.testing.assert_allclose(res.se, fit.bse, rtol=1e-9)
+    np.testing.assert_allclose(res.stat, fit.tvalues, rtol=1e-9)
+    assert res.n_dyads == T * n * (n - 1)
+    # the kernels' observed t (identity relabelling) equals the fit's
+    np.testing.assert_allclose(res.observed, fit.tvalues[T:], rtol=1e-9)
+
+
+def test_groups_within_waves_equal_brute_force(rng):
+    # relabelling within two groups, repeated at every wave; dyads within groups
+    n = 6
+    Ys, Xs = _panel(rng, n=n, waves=2, k=1)
+    groups = np.array([0, 0, 0, 1, 1, 1])
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, scheme="dsp", groups=groups,
+                     exact=True)
+    mask = _mask(n) & (groups[:, None] == groups[None, :])
+    import itertools
+    perms = [np.array(p + tuple(3 + np.array(q))) for p in itertools.permutations(range(3))
+             for q in itertools.permutations(range(3))]
+    ident = np.arange(n)
+    # source: brute force over the 36 relabellings within groups
+    obs = panel_scheme_stat(Ys, Xs, mask, "dsp", "t", ident)
+    null = np.array([panel_scheme_stat(Ys, Xs, mask, "dsp", "t", p) for p in perms])
+    _check(res, obs, null, 2)
+
+
+def test_table_marks_wave_intercepts_untested(rng):
+    Ys, Xs = _panel(rng, waves=2)
+    res = dp.regress(dp.Waves(Ys, names=["spring", "autumn"]), {"a": dp.Waves(Xs[0])},
+                     permutations=99, seed=1)
+    text = res.table()
+    assert "wave spring" in text and "wave autumn" in text
+    assert "not tested" in text
+    frame = res.to_frame()
+    assert frame["p"].isna().tolist() == [True, True, False]
+
+
+# --- bad input ------------------------------------------------------------------------------
+def test_bad_inputs_are_named(rng):
+    Ys, Xs = _panel(rng, waves=3)
+    with pytest.raises(dp.InputError, match="'a' has 2 waves; the response has 3"):
+        dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0][:2])})
+    with pytest.raises(dp.InputError, match="lag applies to predictors"):
+        dp.regress(dp.Waves(Ys, lag=1), {"a": dp.Waves(Xs[0])})
+    with pytest.raises(dp.InputError, match="lag must be a whole number"):
+        dp.Waves(Xs[0], lag=3)
+    with pytest.raises(dp.InputError, match="logistic"):
+        dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, model="logistic")
+    with pytest.raises(dp.InputError, match="correlate does not take waves"):
+        dp.correlate(dp.Waves(Ys), dp.Waves(Xs[0]))
+    with pytest.raises(dp.InputError, match="response must be a dyadperm.Waves"):
+        dp.regress(Ys[0], {"a": dp.Waves(Xs[0])})
+    with pytest.raises(dp.InputError, match="3 names for 2 waves"):
+        dp.Waves(Ys[:2], names=["a", "b", "c"])
+    labels = [f"n{i}" for i in range(N)]
+    other = pd.DataFrame(Xs[0][0], index=[f"m{i}" for i in range(N)],
+                         columns=[f"m{i}" for i in range(N)])
+    frames = [pd.DataFrame(Y, index=labels, columns=labels) for Y in Ys]
+    with pytest.raises(dp.InputError, match="labels not among the response's nodes"):
+        dp.regress(dp.Waves(frames), {"a": dp.Waves([other] * 3)})
