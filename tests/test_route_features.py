@@ -1,6 +1,7 @@
 """Every run feature on every route: the pipeline owns them, so they must all work alike.
 
-Routes: dense linear (y, dsp, freedman-lane), sparse linear (the same three), logistic (y
+Routes: dense linear (y, dsp, freedman-lane; and panels: waves under one relabelling),
+sparse linear (the same three), logistic (y
 and dsp, with the Wald z and the score statistic), correlation (Pearson, Spearman; dense and
 sparse) and the layer correlation matrix. Features: stop rules (Besag-Clifford, Gandy), a
 run file, resume after a kill (chunks in flight lost), growth, shards and merge, the Dask
@@ -76,6 +77,10 @@ ROUTES = {
     "correlation-sparse": lambda **kw: dp.correlate(dp.SparseNetwork.from_scipy(D["ys"]),
                                                     D["xs"], **kw),
     "layer-matrix": lambda **kw: dp.correlate([D["y"], D["x1"], D["x2"]], **kw),
+    "waves-dsp": lambda **kw: dp.regress(
+        dp.Waves([D["x2"].T, D["y"], D["y"].T]),
+        {"x1": dp.Waves([D["x1"], D["x2"], D["x1"].T], lag=1), "x2": D["y"][::-1]},
+        scheme="dsp", **kw),
 }
 
 _REFERENCES: dict[str, np.ndarray] = {}
@@ -178,7 +183,7 @@ def test_stop_rules(route, rule, tmp_path):
 def _observed(res) -> np.ndarray:
     """The observed statistics of the tested terms (the p-values compare the kernels' own,
     which agree with these to rounding)."""
-    return np.asarray(res.stat if res.kind != "regression" else res.stat[1:], dtype=np.float64)
+    return np.asarray(res.stat[res.tested_index()], dtype=np.float64)
 
 
 @pytest.mark.parametrize("route", sorted(ROUTES))
@@ -205,6 +210,9 @@ EXACT_ROUTES = {
     "correlation-pearson": lambda **kw: dp.correlate(D["y"][:5, :5], D["x1"][:5, :5], **kw),
     "layer-matrix": lambda **kw: dp.correlate([D["y"][:4, :4], D["x1"][:4, :4],
                                                D["x2"][:4, :4]], **kw),
+    "waves-freedman-lane": lambda **kw: dp.regress(
+        dp.Waves([D["y"][:5, :5], D["y"][5:10, 5:10]]),
+        {"x1": dp.Waves([D["x1"][:5, :5], D["x2"][:5, :5]])}, scheme="freedman-lane", **kw),
 }
 
 

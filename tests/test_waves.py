@@ -10,6 +10,8 @@ Sources named beside each check:
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -162,7 +164,6 @@ def test_groups_within_waves_equal_brute_force(rng):
     res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, scheme="dsp", groups=groups,
                      exact=True)
     mask = _mask(n) & (groups[:, None] == groups[None, :])
-    import itertools
     perms = [np.array(p + tuple(3 + np.array(q))) for p in itertools.permutations(range(3))
              for q in itertools.permutations(range(3))]
     ident = np.arange(n)
