@@ -18,6 +18,7 @@ import pytest
 import statsmodels.api as sm
 
 import dyadperm as dp
+from dyadperm.inputs.describe import describe_study
 from reference import (P_ATOL, SCHEMES, STAT_ATOL, STAT_RTOL, counts, dyads, panel_exact_null,
                        panel_scheme_stat)
 
@@ -207,3 +208,88 @@ def test_bad_inputs_are_named(rng):
     frames = [pd.DataFrame(Y, index=labels, columns=labels) for Y in Ys]
     with pytest.raises(dp.InputError, match="labels not among the response's nodes"):
         dp.regress(dp.Waves(frames), {"a": dp.Waves([other] * 3)})
+
+
+# --- study files --------------------------------------------------------------------------
+def _matrix_csv(path, labels, values):
+    path.write_text("id," + ",".join(labels) + "\n" + "".join(
+        lab + "," + ",".join("NA" if np.isnan(v) else f"{v:.4f}" for v in row) + "\n"
+        for lab, row in zip(labels, values)))
+
+
+@pytest.fixture
+def panel_folder(tmp_path):
+    rng = np.random.default_rng(12)
+    labels = [f"f{i}" for i in range(7)]
+    Ys, Xs = _panel(rng, n=7, waves=3)
+    Ys = [np.round(Y, 4) for Y in Ys]
+    Xs = [[np.round(X, 4) for X in W] for W in Xs]
+    for t, w in enumerate(["2023", "2024", "2025"]):
+        keep = [i for i in range(7) if not (w == "2024" and i == 3)]  # f3 absent in 2024
+        _matrix_csv(tmp_path / f"trade{w}.csv", [labels[i] for i in keep],
+                    Ys[t][np.ix_(keep, keep)])
+        _matrix_csv(tmp_path / f"kin{w}.csv", labels, Xs[0][t])
+    _matrix_csv(tmp_path / "road.csv", labels, Xs[1][0])
+    (tmp_path / "nodes.csv").write_text("id,size\n" + "".join(
+        f"{lab},{v:.3f}\n" for lab, v in zip(labels, rng.normal(size=7))))
+    return tmp_path, labels, Ys, Xs
+
+
+def _panel_study(folder, extra="", lag=""):
+    path = folder / "panel.toml"
+    path.write_text(
+        '[study]\ntitle = "trade panel"\nnodes = "nodes.csv"\nid_column = "id"\n'
+        'waves = ["2023", "2024", "2025"]\n'
+        '[response]\nname = "trade"\n'
+        'file = { "2023" = "trade2023.csv", "2024" = "trade2024.csv", "2025" = "trade2025.csv" }\n'
+        '[[predictor]]\nname = "kin"\n'
+        'file = { "2023" = "kin2023.csv", "2024" = "kin2024.csv", "2025" = "kin2025.csv" }\n'
+        + lag +
+        '[[predictor]]\nname = "road"\nfile = "road.csv"\n'
+        '[[predictor]]\nname = "size_gap"\ngap = "size"\n'
+        '[test]\nscheme = "dsp"\npermutations = 99\nseed = 5\njobs = 1\n' + extra)
+    return path
+
+
+def test_study_file_with_waves_equals_the_python_call(panel_folder):
+    folder, labels, Ys, Xs = panel_folder
+    study = dp.load_study(_panel_study(folder, lag="lag = 1\n"))
+    res = study.run()
+    assert res.terms == ("wave 2024", "wave 2025", "kin", "road", "size_gap")
+    Ys = [pd.DataFrame(Y, index=labels, columns=labels) for Y in Ys]
+    Ys[1] = Ys[1].drop(index="f3", columns="f3")
+    sizes = pd.read_csv(folder / "nodes.csv", index_col="id")["size"]
+    sizes.index = sizes.index.astype(str)
+    direct = dp.regress(dp.Waves(Ys, names=["2023", "2024", "2025"]),
+                        {"kin": dp.Waves(Xs[0], lag=1), "road": Xs[1][0],
+                         "size_gap": dp.gap(sizes)},
+                        scheme="dsp", permutations=99, seed=5)
+    np.testing.assert_allclose(res.coef, direct.coef, rtol=1e-12)
+    np.testing.assert_array_equal(np.asarray(res.null), np.asarray(direct.null))
+    assert any("2023 drop out" in note for note in res.notes)
+
+
+def test_check_prints_per_wave_counts(panel_folder):
+    folder = panel_folder[0]
+    text = describe_study(_panel_study(folder)).text()  # what `dyadperm check` prints
+    assert "waves: 3 used (2023, 2024, 2025)" in text
+    # 7 nodes: 42 dyads per wave; f3 absent in 2024 leaves 6 * 5 = 30
+    assert "wave 2023: 42 complete dyads" in text
+    assert "wave 2024: 30 complete dyads" in text
+
+
+def test_study_file_wave_errors(panel_folder):
+    folder = panel_folder[0]
+    path = _panel_study(folder)
+    path.write_text(path.read_text().replace(', "2025" = "kin2025.csv"', ""))
+    with pytest.raises(dp.InputError, match=r"\[\[predictor\]\] #1 file: needs one file per "
+                                            r"wave .* no file for wave '2025'"):
+        dp.load_study(path)
+    path = _panel_study(folder)
+    path.write_text(path.read_text().replace('waves = ["2023", "2024", "2025"]\n', ""))
+    with pytest.raises(dp.InputError, match=r"no file for this group|one file per group"):
+        dp.load_study(path)
+    path = _panel_study(folder)
+    path.write_text(path.read_text().replace('name = "road"\n', 'name = "road"\nlag = 1\n'))
+    with pytest.raises(dp.InputError, match=r"lag: needs the predictor given per wave"):
+        dp.load_study(path)

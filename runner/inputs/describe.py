@@ -20,6 +20,7 @@ from .design import (check_design, dyads_phrase, fit_pivot, fold_rows, iter_dyad
                      standardised_condition)
 from .sparse import NETWORK, SparseNetwork, prepare_sparse
 from .study_file import read_study
+from .waves import is_waves, prepare_waves, wave_lines
 
 # Share of missing dyad values above which a network is flagged.
 MOSTLY_MISSING = 0.5
@@ -86,8 +87,14 @@ def describe_study(path: str | Path) -> StudySummary:
     if isinstance(st.response, SparseNetwork):
         return _describe_sparse(st)
     route = route_lines(st)
-    prep = prepare(st.response, st.predictors, directed=st.spec["study"]["directed"],
-                   groups=st.groups, dyads=st.spec["test"]["dyads"])
+    if is_waves(st.response):  # a panel: the waves side by side, pooled below
+        prep, info = prepare_waves(st.response, st.predictors,
+                                   directed=st.spec["study"]["directed"], groups=st.groups,
+                                   dyads=st.spec["test"]["dyads"], wave_effects=False)
+        route = route + tuple(wave_lines(info, prep.response_name))
+    else:
+        prep = prepare(st.response, st.predictors, directed=st.spec["study"]["directed"],
+                       groups=st.groups, dyads=st.spec["test"]["dyads"])
     names = prep.names + (prep.response_name,)
     roles = ["predictor"] * prep.k + ["response"]
     nets = []
@@ -147,6 +154,10 @@ def _symmetric_input(mat: np.ndarray, prep) -> bool:
     if not prep.directed:
         return True
     a = np.where(np.isnan(mat), 0.0, mat)
+    if prep.waves > 1:  # each wave's block of the interleaved columns
+        n = a.shape[0]
+        cube = a.reshape(n, n, prep.waves)
+        return bool(np.array_equal(cube, cube.transpose(1, 0, 2)))
     return bool(np.array_equal(a, a.T))
 
 

@@ -11,6 +11,9 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     two_mode = true           # optional; implied by col_nodes; default false
     directed = true           # optional override; omitted = inferred by the engine
     inside_folder = true      # optional: refuse any path outside the study file's folder
+    waves = ["2023", "2024"]  # optional: a panel; a network's file may then be one file per
+                              # wave, file = { "2023" = "y23.csv", "2024" = "y24.csv" }
+                              # (the response must be); one relabelling for every wave
 
     [response]
     name = "water"            # optional; default: the file's stem
@@ -25,6 +28,8 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     file = "kinship.csv"      # a network file (format and missing allowed as in [response])
     # or one of: same | gap | sender | receiver | pair_sum = "<node-table column>"
     # or: reverse = "<name of the response or of a network predictor>"
+    lag = 1                   # waves only, a predictor given per wave: the response at
+                              # wave t goes with it at wave t - lag (first waves drop out)
 
     [test]
     kind = "regression"       # regression | correlation (correlation: exactly one predictor)
@@ -75,6 +80,7 @@ from .sparse import SparseNetwork
 from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
     read_node_table, split_h5_path
 from .labels import sorted_labels
+from .waves import Waves
 
 # Dense layers larger than this (bytes) send a study the sparse route can take there; a
 # network file larger than this is read lazily (its values once the route is decided).
@@ -84,10 +90,10 @@ __all__ = ["StudyInputs", "read_study"]
 
 _SECTIONS: dict[str, tuple[str, ...]] = {
     "study": ("title", "nodes", "id_column", "col_nodes", "col_id_column", "two_mode",
-              "directed", "inside_folder"),
+              "directed", "inside_folder", "waves"),
     "response": ("name", "file", "format", "missing"),
     "predictor": ("name", "file", "format", "missing", "same", "gap", "sender", "receiver",
-                  "pair_sum", "reverse"),
+                  "pair_sum", "reverse", "lag"),
     "test": ("kind", "model", "scheme", "statistic", "method", "permutations", "seed", "alpha",
              "exact", "groups", "dyads", "jobs", "chunk_size", "stop", "stop_exceedances",
              "stop_risk", "ci"),
@@ -209,6 +215,8 @@ def _validate(doc: dict, check: _Checker) -> dict:
         raise check.error("[study]", "directed", "applies to one-mode data only (this study "
                           "is two-mode)", study["directed"])
 
+    study["waves"] = _waves_entry(st, check)
+
     rs = check.keys("[response]", doc["response"], _SECTIONS["response"])
     response = _network_entry("[response]", rs, check)
     if "name" not in rs:
@@ -227,6 +235,11 @@ def _validate(doc: dict, check: _Checker) -> dict:
 
     te = check.keys("[test]", doc.get("test", {}), _SECTIONS["test"])
     test = _test_entry(te, check, len(predictors))
+    if study["waves"] is not None:
+        _check_wave_files(study["waves"], response, predictors, test, check)
+    elif any("lag" in p for p in predictors):
+        p = next(p for p in predictors if "lag" in p)
+        raise check.error(p["section"], "lag", "needs [study] waves", p["lag"])
 
     out = check.keys("[output]", doc.get("output", {}), _SECTIONS["output"])
     output = {"file": check.text("[output]", out, "file")}
@@ -269,6 +282,49 @@ def _network_entry(section: str, table: dict, check: _Checker) -> dict:
             "missing": check.text(section, table, "missing")}
 
 
+def _waves_entry(st: dict, check: _Checker) -> list[str] | None:
+    """``[study] waves``: the names of the waves of a panel, in time order, or None."""
+    if "waves" not in st:
+        return None
+    waves = st["waves"]
+    if not isinstance(waves, list) or not waves or not all(
+            isinstance(w, (str, int)) and not isinstance(w, bool) for w in waves):
+        raise check.error("[study]", "waves", "must be a list of wave names (text)", waves)
+    names = [str(w) for w in waves]
+    if len(set(names)) != len(names):
+        raise check.error("[study]", "waves", "must name each wave once", waves)
+    return names
+
+
+def _check_wave_files(waves: list[str], response: dict, predictors: list[dict], test: dict,
+                      check: _Checker) -> None:
+    """With waves, a file table is keyed by wave (every wave, no other key); the response
+    is given per wave; a lag needs a predictor given per wave and leaves a wave."""
+    if test["kind"] != "regression":
+        raise check.error("[test]", "kind", "must be regression with [study] waves",
+                          test["kind"])
+    for section, entry in [("[response]", response)] + [(p["section"], p) for p in predictors]:
+        files = entry.get("file")
+        if isinstance(files, dict):
+            unknown = [k for k in files if k not in waves]
+            absent = [w for w in waves if w not in files]
+            if unknown or absent:
+                raise check.error(section, "file", "needs one file per wave of [study] waves "
+                                  f"({', '.join(waves)}); "
+                                  + (f"not a wave: {unknown[0]!r}" if unknown else
+                                     f"no file for wave {absent[0]!r}"), sorted(files))
+        elif section == "[response]":
+            raise check.error(section, "file", "needs one file per wave with [study] waves: "
+                              'file = { "' + waves[0] + '" = "...", ... }', files)
+        lag = entry.get("lag", 0)
+        if lag and not isinstance(files, dict):
+            raise check.error(section, "lag", "needs the predictor given per wave "
+                              "(file = { wave = file, ... })", lag)
+        if lag >= len(waves):
+            raise check.error(section, "lag", f"must be below the number of waves "
+                              f"({len(waves)})", lag)
+
+
 def _predictor_entry(number: int, table: Any, check: _Checker) -> dict:
     section = f"[[predictor]] #{number}"
     table = check.keys(section, table, _SECTIONS["predictor"])
@@ -280,6 +336,8 @@ def _predictor_entry(number: int, table: Any, check: _Checker) -> dict:
                          + (", ".join(given) if given else "none"))
     kind = given[0]
     entry: dict[str, Any] = {"section": section, "kind": kind, "name": name}
+    if "lag" in table:
+        entry["lag"] = check.integer(section, table, "lag", 0, minimum=0)
     if kind == "file":
         entry.update(_network_entry(section, table, check))
     else:
@@ -580,9 +638,16 @@ class _Loader:
             (f"[[predictor]] #{k + 1}", p) for k, p in enumerate(self.spec["predictor"])]
         raws: dict[str, tuple[RawNetwork, str]] = {}
         grouped: dict[str, dict[str, tuple[RawNetwork, str]]] = {}
+        waved: dict[str, list[tuple[RawNetwork, str]]] = {}
         layout = self.layer_layout(entries)
         for section, entry in entries:
             if "file" not in entry:
+                continue
+            if isinstance(entry["file"], dict) and sd["waves"] is not None:
+                waved[entry["name"]] = [
+                    (read_network(self.resolve(section, f"file.{w}", entry["file"][w]),
+                                  fmt=entry["format"], missing=entry["missing"]),
+                     entry["file"][w]) for w in sd["waves"]]
                 continue
             if isinstance(entry["file"], dict):
                 grouped[entry["name"]] = {
@@ -598,10 +663,12 @@ class _Loader:
                                                 lazy=layout is not None or _large(where)),
                                    entry["file"])
         rows, cols = self.node_ids(nodes, col_nodes, [r for r, _ in raws.values()] + [
-            r for parts in grouped.values() for r, _ in parts.values()])
+            r for parts in grouped.values() for r, _ in parts.values()] + [
+            r for parts in waved.values() for r, _ in parts])
 
         networks: dict[str, Any] = {}
-        route = self.route(entries, raws, grouped, rows, cols, nodes, col_nodes, layout)
+        route = self.route(entries, raws, {**grouped, **waved}, rows, cols, nodes, col_nodes,
+                           layout)
         sparse = route.sparse
         slots = {} if sparse or layout is None else self.layer_slots(layout, rows, cols)
         block_ids = None
@@ -623,6 +690,9 @@ class _Loader:
 
         for name, parts in grouped.items():
             networks[name] = self.assemble_groups(name, parts, nodes, rows)
+        lags = {p["name"]: p.get("lag", 0) for p in self.spec["predictor"]}
+        for name, parts in waved.items():
+            networks[name] = self.assemble_waves(name, parts, rows, lags.get(name, 0))
 
         predictors: dict[str, Dyadic | NodeDerived | Reverse] = {}
         for section, p in entries[1:]:
@@ -726,6 +796,26 @@ class _Loader:
             full[np.ix_(members, members)] = values
         return Dyadic(full, rows, None, sd["directed"], None, name)
 
+    def assemble_waves(self, name: str, parts: list, rows: tuple[str, ...], lag: int) -> Waves:
+        """One network per wave on the node order, as a Waves. A labelled matrix file
+        marks the nodes it does not list as absent at its wave (their dyads missing
+        there); an edge list lists ties, so every node is present at every wave."""
+        sd = self.spec["study"]
+        mats = []
+        for (raw, file) in parts:
+            values, notes = align(raw, rows, None, directed=sd["directed"], source=file,
+                                  row_ids_source=sd["nodes"])
+            self.notes.extend(notes)
+            if not raw.is_edges and raw.row_labels is not None:
+                listed = set(raw.row_labels)
+                absent = np.array([lab not in listed for lab in rows])
+                if absent.any():
+                    values = np.array(values, dtype=np.float64)
+                    values[absent, :] = np.nan
+                    values[:, absent] = np.nan
+            mats.append(Dyadic(values, rows, None, sd["directed"], None, name))
+        return Waves(mats, names=sd["waves"], lag=lag, name=name)
+
     def route(self, entries: list, raws: dict, grouped: dict, rows: tuple[str, ...], cols,
               nodes: NodeTable | None, col_nodes: NodeTable | None, layout) -> Route:
         """Which route the study takes: keep its edge lists as edges (sparse) or build n x m
@@ -769,6 +859,8 @@ class _Loader:
         without groups.
         """
         test = self.spec["test"]
+        if self.spec["study"]["waves"] is not None:
+            return "a study with [study] waves runs on dense arrays only"
         if test["kind"] == "regression" and test["model"] != "linear":
             return f'model = "{test["model"]}" runs on dense arrays only'
         for section, entry in entries:

@@ -157,7 +157,12 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
             if obj.names is not None and y.names is not None and obj.wave_names() != all_names:
                 raise InputError(f"predictor {name!r}: its wave names {list(obj.wave_names())} "
                                  f"are not the response's {list(all_names)}")
-    lags = {name: obj.lag for name, obj in items if is_waves(obj) and obj.lag}
+    for name, obj in items:
+        inner = obj.network if isinstance(obj, Reverse) else None
+        if is_waves(inner) and len(inner) != n_waves:
+            raise InputError(f"predictor {name!r} has {len(inner)} waves; the response "
+                             f"has {n_waves}")
+    lags = {name: _lag(obj) for name, obj in items if _lag(obj)}
     first = max(lags.values(), default=0)
     used = list(range(first, n_waves))
     if not used:
@@ -183,9 +188,15 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
     for name, obj in items:
         mats = []
         for w, t in enumerate(used):
-            src = obj.networks[t - obj.lag] if is_waves(obj) else obj
-            what = f"predictor {name!r}" + (f" at wave {all_names[t - obj.lag]}"
-                                            if is_waves(obj) else "")
+            lag = _lag(obj)
+            if is_waves(obj):
+                src = obj.networks[t - lag]
+            elif isinstance(obj, Reverse) and is_waves(obj.network):
+                src = Reverse(obj.network.networks[t - lag], obj.name)
+            else:
+                src = obj
+            what = f"predictor {name!r}" + (f" at wave {all_names[t - lag]}"
+                                            if src is not obj else "")
             mats.append(_on_nodes(src, what, internal, pos, resp[w], explicit, labels))
         waves_of.append(mats)
     waves_of.append([_on_nodes(r, f"{yname} at wave {all_names[t]}", internal, pos, r,
@@ -243,6 +254,15 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
     info = WaveInfo(tuple(all_names[t] for t in used), tuple(all_names[:first]), lags,
                     bool(wave_effects), per_wave, density)
     return prep, info
+
+
+def _lag(obj: Any) -> int:
+    """The lag of a predictor: its own (a Waves), its network's (reverse of a Waves), 0."""
+    if is_waves(obj):
+        return obj.lag
+    if isinstance(obj, Reverse) and is_waves(obj.network):
+        return obj.network.lag
+    return 0
 
 
 def _wave_dyadic(obj: Any, what: str, labels: Sequence[str] | None = None) -> Dyadic:
