@@ -15,6 +15,9 @@ import itertools
 import numpy as np
 import pandas as pd
 import pytest
+import scipy.sparse as sp
+from scipy.linalg import block_diag
+from scipy.stats import binom
 import statsmodels.api as sm
 
 import dyadperm as dp
@@ -293,3 +296,38 @@ def test_study_file_wave_errors(panel_folder):
     path.write_text(path.read_text().replace('name = "road"\n', 'name = "road"\nlag = 1\n'))
     with pytest.raises(dp.InputError, match=r"lag: needs the predictor given per wave"):
         dp.load_study(path)
+
+
+def test_sparse_networks_are_refused_in_one_line(rng):
+    Ys, Xs = _panel(rng, waves=2)
+    waves_sparse = [dp.SparseNetwork.from_scipy(sp.csr_array(np.abs(Y))) for Y in Ys]
+    with pytest.raises(dp.InputError, match="SparseNetwork; waves run on the dense route only"):
+        dp.regress(dp.Waves(waves_sparse), {"a": dp.Waves(Xs[0])})
+
+
+# --- the difference the shared relabelling makes (slow) -------------------------------------
+@pytest.mark.slow
+def test_shared_relabelling_holds_its_size_where_per_wave_relabelling_does_not():
+    """Panels under the null (the response independent of the predictor) where each node's
+    sender propensity persists across the waves, in the response and in the predictor
+    alike. One relabelling shared by every wave keeps a node's rows together across waves,
+    so its rejection rate stays inside the binomial band around alpha (source:
+    scipy.stats.binom); relabelling each wave on its own (the waves as groups of one
+    block-diagonal network) breaks that link and rejects far too often."""
+    rng = np.random.default_rng(2026)
+    n, T, reps, perms, alpha = 12, 3, 400, 99, 0.05
+    shared = per_wave = 0
+    for _ in range(reps):
+        sy, sx = rng.normal(size=n), rng.normal(size=n)
+        Ys = [sy[:, None] + rng.normal(size=(n, n)) for _ in range(T)]
+        Xs = [sx[:, None] + rng.normal(size=(n, n)) for _ in range(T)]
+        seed = int(rng.integers(2**31))
+        a = dp.regress(dp.Waves(Ys), {"x": dp.Waves(Xs)}, permutations=perms, seed=seed,
+                       ci=None)
+        b = dp.regress(block_diag(*Ys), {"x": block_diag(*Xs)}, permutations=perms,
+                       seed=seed, groups=np.repeat(np.arange(T), n), ci=None)
+        shared += a.p[-1] <= alpha
+        per_wave += b.p[-1] <= alpha
+    low, high = binom.interval(0.999, reps, alpha)
+    assert low <= shared <= high, (shared, low, high)
+    assert per_wave > high, (per_wave, high)
