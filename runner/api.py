@@ -122,9 +122,9 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
     level = check_ci(ci)
     where = dict(directed=directed, groups=groups, dyads=dyads)
     if _uses_waves(y, predictors):  # a panel: one relabelling shared by every wave
-        _waves.refuse_options(model=model, overwrite_inputs=overwrite_inputs)
-        plan = _waves.plan(y, predictors, scheme=scheme, statistic=statistic, storage=storage,
-                           wave_effects=wave_effects, ci=level, **where)
+        _waves.refuse_options(overwrite_inputs=overwrite_inputs)
+        plan = _waves.plan(y, predictors, model=model, scheme=scheme, statistic=statistic,
+                           storage=storage, wave_effects=wave_effects, ci=level, **where)
     elif model == "logistic":  # binary response: Newton refits or score statistics
         _refuse_edges(y, predictors, reason="model='logistic' runs on dense arrays only")
         plan = _logistic.plan(y, predictors, scheme=scheme, statistic=statistic,

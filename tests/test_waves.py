@@ -22,6 +22,7 @@ import statsmodels.api as sm
 
 import dyadperm as dp
 from dyadperm.inputs.describe import describe_study
+from test_logistic import oracle_stats
 from reference import (P_ATOL, SCHEMES, STAT_ATOL, STAT_RTOL, counts, dyads, panel_exact_null,
                        panel_scheme_stat)
 
@@ -331,3 +332,55 @@ def test_shared_relabelling_holds_its_size_where_per_wave_relabelling_does_not()
     low, high = binom.interval(0.999, reps, alpha)
     assert low <= shared <= high, (shared, low, high)
     assert per_wave > high, (per_wave, high)
+
+
+# --- logistic model --------------------------------------------------------------------------
+def _binary_panel(rng, n, waves):
+    send = rng.normal(size=n)
+    Xs = [rng.normal(size=(n, n)) + 0.5 * send[:, None] for _ in range(waves)]
+    Ys = [(rng.random((n, n)) < 1 / (1 + np.exp(-(0.6 * X + send[:, None] - 0.3 * t))))
+          .astype(float) for t, X in enumerate(Xs)]
+    return Ys, Xs
+
+
+def test_logistic_observed_fit_equals_statsmodels_logit_with_wave_dummies(rng):
+    n, T = 20, 3
+    Ys, Xs = _binary_panel(rng, n, T)
+    road = rng.normal(size=(n, n))
+    res = dp.regress(dp.Waves(Ys), {"x": dp.Waves(Xs), "road": road}, model="logistic",
+                     permutations=19, seed=2)
+    r, c = dyads(n, n, True)
+    y = np.concatenate([Y[r, c] for Y in Ys])
+    X = np.column_stack([np.repeat(np.eye(T), len(r), axis=0),
+                         np.concatenate([X[r, c] for X in Xs]), np.tile(road[r, c], T)])
+    fit = sm.Logit(y, X).fit(disp=0, tol=1e-12, maxiter=100)  # source: statsmodels Logit
+    assert res.terms == ("wave 1", "wave 2", "wave 3", "x", "road")
+    np.testing.assert_allclose(res.coef, fit.params, rtol=1e-7)
+    np.testing.assert_allclose(res.se, fit.bse, rtol=1e-6)
+    np.testing.assert_allclose(res.stat, fit.tvalues, rtol=1e-6)
+    np.testing.assert_allclose(res.deviance, -2 * fit.llf, rtol=1e-9)
+
+
+@pytest.mark.parametrize("scheme,statistic", [("y", "t"), ("dsp", "t"), ("dsp", "score")])
+def test_logistic_exact_pvalues_equal_brute_force(rng, scheme, statistic):
+    n, T = 5, 2
+    Ys, Xs = _binary_panel(rng, n, T)
+    res = dp.regress(dp.Waves(Ys), {"x": dp.Waves(Xs)}, model="logistic", scheme=scheme,
+                     statistic=statistic, exact=True)
+    # source: the logistic brute-force oracle of tests/test_logistic.py (Newton refits on
+    # the stacked dyads) over all 120 relabellings, each applied to every wave: the waves
+    # side by side as one n x nT matrix, wave 2's indicator as a predictor beside the
+    # constant, columns relabelled as pi at every wave
+    def side(mats):
+        return np.stack(mats, axis=2).reshape(n, n * T)
+
+    D = side([np.zeros((n, n)), np.ones((n, n))])
+    rows, cols = np.nonzero(np.repeat(~np.eye(n, dtype=bool), T, axis=1))  # every wave's dyads
+
+    def stats(p):
+        pc = (p[:, None] * T + np.arange(T)).ravel()
+        return oracle_stats(side(Ys), [D, side(Xs)], scheme, statistic, p, pc, rows, cols)[1:]
+
+    obs = stats(np.arange(n))
+    null = np.array([stats(np.array(p)) for p in itertools.permutations(range(n))])
+    _check(res, obs, null, T)

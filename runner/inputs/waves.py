@@ -137,8 +137,12 @@ def refuse_waves(y: Any, predictors: Any, *, reason: str) -> None:
 
 def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
                   groups: Any = None, dyads: str | None = None,
-                  wave_effects: bool = True) -> tuple[Prepared, WaveInfo]:
-    """Align a panel problem on one node order and stack its waves (module docstring)."""
+                  wave_effects: bool = True,
+                  intercept_layers: bool = False) -> tuple[Prepared, WaveInfo]:
+    """Align a panel problem on one node order and stack its waves (module docstring).
+
+    ``intercept_layers``: the wave intercepts as layers of their own even with complete
+    data (the logistic model, whose fits cannot absorb them by centring)."""
     if not is_waves(y):
         raise InputError("waves: the response must be a dyadperm.Waves when a predictor is one")
     if not isinstance(wave_effects, (bool, np.bool_)):
@@ -238,7 +242,7 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
                     for w in range(T))
     fixed = 0
     pred_names = tuple(names)
-    if wave_effects and not complete and T > 1:
+    if wave_effects and (intercept_layers or not complete) and T > 1:
         # missing dyads: the intercepts of waves 2.. are layers of their own (wave 1's is
         # the engine's constant)
         fixed = T - 1

@@ -177,6 +177,7 @@ def check_binary(prep: _design.Prepared) -> None:
     if not bad.any():
         return
     ii, jj = np.nonzero(bad)
+    jj = jj // prep.waves  # waves: column j * T + t is node j at wave t
     ui, uj = prep.row_order[ii], prep.col_order[jj]
     if not prep.directed and not prep.two_mode:
         ui, uj = np.minimum(ui, uj), np.maximum(ui, uj)
@@ -235,6 +236,7 @@ class LogisticFit:
     n_dyads: int
     beta_std: np.ndarray  # estimate on the standardised predictors
     iterations: int
+    cov: np.ndarray | None = None  # Wald covariance of ``coef``
 
 
 @dataclass(frozen=True)
@@ -311,10 +313,12 @@ def observed_fit(prep: _design.Prepared, dd: DyadData) -> LogisticFit:
     A[0, 1:] = -dd.mean / dd.sd
     A[1:, 1:] = np.diag(1.0 / dd.sd)
     coef = A @ beta
-    se = np.sqrt(np.diag(A @ cov @ A.T))
+    cov_user = A @ cov @ A.T
+    se = np.sqrt(np.diag(cov_user))
     eta = dd.X[valid] @ beta
     deviance = float(2.0 * np.sum(np.logaddexp(0.0, eta) - dd.y[valid] * eta))
-    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, res.status)
+    return LogisticFit(coef, se, coef / se, deviance, int(valid.sum()), beta, res.status,
+                       cov_user)
 
 
 def _failure_message(prep: _design.Prepared, dd: DyadData, res: KernelFit, cols: np.ndarray,
@@ -755,6 +759,15 @@ def plan(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
     # dyad table, design and residual layers: about three n x m arrays per network
     check_dense_route(y, predictors, route="logistic", layers_per_term=3, groups=groups)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    settings = dict(kind="regression", model="logistic", scheme=scheme, statistic=statistic,
+                    method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups))
+    return plan_prepared(prep, scheme=scheme, statistic=statistic, settings=settings)[0]
+
+
+def plan_prepared(prep: _design.Prepared, *, scheme: str, statistic: str,
+                  settings: dict) -> tuple[Plan, LogisticFit]:
+    """The logistic plan of prepared inputs (``plan``; panels: ``routes.waves``), and the
+    observed fit."""
     check_binary(prep)
     # the shared checks (too few dyads, constant or collinear predictors) with the pivot of
     # fits from Gram matrices: the Newton steps solve with X'WX (kernels.options)
@@ -772,12 +785,10 @@ def plan(y: Any, predictors: Any, *, scheme: str = "dsp", statistic: str = "t",
         stat = fit.z if statistic == "t" else fit.coef
         note = ("model 'logistic': z is the Wald statistic b / se; estimates are log odds "
                 "ratios")
-    settings = dict(kind="regression", model="logistic", scheme=scheme, statistic=statistic,
-                    method=None, storage=storage, dyads=dyads, groups=groups_fingerprint(groups))
     info = summary(prep, kind="regression", model="logistic", scheme=scheme,
                    statistic=statistic, method=None, n_dyads=fit.n_dyads,
                    terms=("intercept",) + prep.names)
     info["notes"] = [note]
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=stat, fit=np.array([np.nan, fit.deviance]))
     return Plan(kernel=stats, blocks=prep.blocks, chunk_size=stats.chunk_size(), fit=fit_arrays,
-                summary=info, identity=dense_identity(prep, settings), expected=direct)
+                summary=info, identity=dense_identity(prep, settings), expected=direct), fit
