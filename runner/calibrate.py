@@ -98,6 +98,7 @@ from .inputs import design as _design
 from .inputs.blocks import Blocks
 from .inputs.memory import check_dense_route, gib
 from .inputs.sparse import refuse_edges
+from .inputs.waves import refuse_waves
 from .output.result import _plain
 from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
@@ -414,6 +415,8 @@ def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, se
     and relabellings are exactly those it used, so any replicate can be rerun and checked
     on its own. For checking and teaching.
     """
+    refuse_waves(y, predictors, reason="calibrate does not take waves yet (its simulated "
+                 "responses are built for one network)")
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
     if term not in prep.names:
         raise InputError(f"`term` must be one of the predictors ({', '.join(prep.names)}); "
@@ -503,6 +506,8 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     schemes, R, M = opts["schemes"], opts["replicates"], opts["permutations"]
     alpha, effect = opts["alpha"], opts["effect"]
     entropy = entropy_of(opts["seed"])
+    refuse_waves(y, predictors, reason="calibrate does not take waves yet (its simulated "
+                 "responses are built for one network)")
     refuse_edges(y, predictors, reason="calibrate simulates responses that hold a value at "
                  "every dyad, on the dense route")
     # inputs, three reduced-model arrays per term, and per replicate a simulated response

@@ -384,3 +384,9 @@ def test_logistic_exact_pvalues_equal_brute_force(rng, scheme, statistic):
     obs = stats(np.arange(n))
     null = np.array([stats(np.array(p)) for p in itertools.permutations(range(n))])
     _check(res, obs, null, T)
+
+
+def test_calibrate_refuses_waves_in_one_line(rng):
+    Ys, Xs = _panel(rng, waves=2)
+    with pytest.raises(dp.InputError, match="calibrate does not take waves yet"):
+        dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=9)
