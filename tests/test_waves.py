@@ -22,6 +22,7 @@ import statsmodels.api as sm
 
 import dyadperm as dp
 from dyadperm.inputs.describe import describe_study
+from dyadperm.output import report
 from test_logistic import oracle_stats
 from reference import (P_ATOL, SCHEMES, STAT_ATOL, STAT_RTOL, counts, dyads, panel_exact_null,
                        panel_scheme_stat)
@@ -390,3 +391,20 @@ def test_calibrate_refuses_waves_in_one_line(rng):
     Ys, Xs = _panel(rng, waves=2)
     with pytest.raises(dp.InputError, match="calibrate does not take waves yet"):
         dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=9)
+
+
+def test_run_file_and_reports_of_a_panel(rng, tmp_path):
+    Ys, Xs = _panel(rng, waves=2)
+    out = tmp_path / "panel.h5"
+    res = dp.regress(dp.Waves(Ys, names=["a", "b"]), {"x": dp.Waves(Xs[0], lag=1),
+                                                      "z": dp.Waves(Xs[1])},
+                     permutations=64, seed=4, out=out)
+    again = dp.open_result(out)
+    assert again.terms == res.terms == ("wave b", "x", "z")
+    assert again.fixed_terms == res.fixed_terms == 1
+    np.testing.assert_array_equal(np.asarray(again.null), np.asarray(res.null))
+    np.testing.assert_array_equal(again.p, res.p)
+    csv = report.csv_text(res).splitlines()
+    assert csv[1].startswith("wave b,") and csv[2].startswith("x,")
+    assert "wave b" in report.html_text(res)
+    assert len(report.plot_images(res)) >= 2  # one figure per tested term at least
