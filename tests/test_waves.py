@@ -408,3 +408,31 @@ def test_run_file_and_reports_of_a_panel(rng, tmp_path):
     assert csv[1].startswith("wave b,") and csv[2].startswith("x,")
     assert "wave b" in report.html_text(res)
     assert len(report.plot_images(res)) >= 2  # one figure per tested term at least
+
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_undirected_missing_reverse_and_derived_per_wave_equal_brute_force(rng, scheme):
+    n, T = 5, 2
+
+    def sym(M):
+        U = np.triu(M, 1)
+        return U + U.T
+
+    Ys = [sym(rng.normal(size=(n, n))) for _ in range(T)]
+    Xs = [sym(rng.normal(size=(n, n))) for _ in range(T)]
+    Ys[0][1, 2] = Ys[0][2, 1] = np.nan
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs)}, scheme=scheme, exact=True)
+    # source: brute force, undirected (each unordered pair once), a missing dyad
+    obs, null = panel_exact_null(Ys, [Xs], np.triu(np.ones((n, n), bool), 1), scheme, "t")
+    _check(res, obs, null, T)
+    # directed: the response's own reverse at each wave, a derived predictor per wave
+    # (one attribute vector per wave) and the reverse of a Waves
+    Ys = [rng.normal(size=(n, n)) for _ in range(T)]
+    a1, a2 = rng.normal(size=n), rng.normal(size=n)
+    res = dp.regress(dp.Waves(Ys), {"rev": dp.reverse(None),
+                                    "g": dp.Waves([dp.gap(a1), dp.gap(a2)]),
+                                    "rx": dp.reverse(dp.Waves(Xs))}, scheme=scheme, exact=True)
+    G = [np.abs(a[:, None] - a[None, :]) for a in (a1, a2)]
+    obs, null = panel_exact_null(Ys, [[Y.T for Y in Ys], G, [X.T for X in Xs]],
+                                 ~np.eye(n, dtype=bool), scheme, "t")
+    _check(res, obs, null, T)
