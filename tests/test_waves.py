@@ -436,3 +436,11 @@ def test_undirected_missing_reverse_and_derived_per_wave_equal_brute_force(rng, 
     obs, null = panel_exact_null(Ys, [[Y.T for Y in Ys], G, [X.T for X in Xs]],
                                  ~np.eye(n, dtype=bool), scheme, "t")
     _check(res, obs, null, T)
+
+
+def test_panel_too_large_for_memory_is_refused_before_any_array(rng, monkeypatch):
+    Ys, Xs = _panel(rng, waves=3)
+    monkeypatch.setattr(dp.inputs.memory, "available_bytes", lambda: 1000)
+    with pytest.raises(dp.InputError, match=r"waves: 5 nodes at 3 waves would need .* more "
+                                            r"than the .* available"):
+        dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])})

@@ -35,6 +35,7 @@ from ..errors import InputError
 from .design import (Prepared, _column_ranges, _group_order, _symmetric, check_design,
                      check_response, decide_directed, decide_dyads, fold_rows, name_predictors,
                      node_groups)
+from . import memory
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic, network_name
 from .labels import label_order, some_labels
@@ -137,12 +138,13 @@ def refuse_waves(y: Any, predictors: Any, *, reason: str) -> None:
 
 def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
                   groups: Any = None, dyads: str | None = None,
-                  wave_effects: bool = True,
-                  intercept_layers: bool = False) -> tuple[Prepared, WaveInfo]:
+                  wave_effects: bool = True, intercept_layers: bool = False,
+                  layers_per_term: int = 1) -> tuple[Prepared, WaveInfo]:
     """Align a panel problem on one node order and stack its waves (module docstring).
 
     ``intercept_layers``: the wave intercepts as layers of their own even with complete
-    data (the logistic model, whose fits cannot absorb them by centring)."""
+    data (the logistic model, whose fits cannot absorb them by centring).
+    ``layers_per_term``: n x n T layers the route builds per network (memory check)."""
     if not is_waves(y):
         raise InputError("waves: the response must be a dyadperm.Waves when a predictor is one")
     if not isinstance(wave_effects, (bool, np.bool_)):
@@ -179,6 +181,14 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
     n = len(labels)
     if n < 3:
         raise InputError(f"too few nodes: got {n}; need at least 3")
+    # before any array is built: every network per wave and stacked, the route's layers
+    L = len(items) + 1 + (T - 1 if wave_effects else 0)
+    need = memory.dense_bytes(n, n * T, arrays=2 * L, layers=layers_per_term * L)
+    ok, avail = memory.fits(need)
+    if not ok:
+        raise InputError(f"waves: {n:,} nodes at {T} waves would need {memory.gib(need)} of "
+                         f"memory for the stacked waves, more than the {memory.gib(avail)} "
+                         "available; use fewer waves or a smaller network")
     groups = node_groups(groups, labels)
     order, row_blocks, codes = _group_order(groups, n, "groups", labels)
     dyads = decide_dyads(dyads, groups)

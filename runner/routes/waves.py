@@ -91,7 +91,8 @@ def _logistic_plan(y: Any, predictors: Any, *, scheme: str, statistic: str, stor
                    directed: bool | None, groups: Any, dyads: str | None,
                    wave_effects: bool) -> Plan:
     prep, info = prepare_waves(y, predictors, directed=directed, groups=groups, dyads=dyads,
-                               wave_effects=wave_effects, intercept_layers=True)
+                               wave_effects=wave_effects, intercept_layers=True,
+                               layers_per_term=3)
     settings = _settings(info, model="logistic", scheme=scheme, statistic=statistic,
                          storage=storage, dyads=dyads, groups=groups)
     inner, fit = _logistic.plan_prepared(prep, scheme=scheme, statistic=statistic,
