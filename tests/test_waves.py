@@ -444,3 +444,15 @@ def test_panel_too_large_for_memory_is_refused_before_any_array(rng, monkeypatch
     with pytest.raises(dp.InputError, match=r"waves: 5 nodes at 3 waves would need .* more "
                                             r"than the .* available"):
         dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0])})
+
+
+def test_a_predictor_constant_within_each_wave_is_named(rng):
+    Ys, Xs = _panel(rng, waves=2)
+    level = [np.full((N, N), 1.0), np.full((N, N), 3.0)]  # differs between waves only
+    with pytest.raises(dp.InputError, match=r"predictor 'level' is constant over the dyad set "
+                                            r"within each wave"):
+        dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "level": dp.Waves(level)})
+    # one intercept for every wave: the same predictor is a wave contrast, and fits
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "level": dp.Waves(level)},
+                     wave_effects=False, permutations=9, seed=1)
+    assert res.terms == ("intercept", "a", "level")

@@ -406,6 +406,8 @@ def observed_fit(prep: Prepared, info: WaveInfo, *, pivot: float) -> WaveFit:
     rx = r[:p, :p]
     where = "over the dyad set" if prep.complete else \
         f"over the {n_obs:,} complete dyads of the waves"
+    if info.wave_effects:
+        where += " within each wave (the wave intercepts take its mean at every wave)"
     raw = np.sqrt((rx[:, a:] * rx[:, a:]).sum(axis=0))
     check_design(rx[a:, a:], names, pivot=pivot, raw_norms=raw, where=where)
     if ysq <= 0.0:
