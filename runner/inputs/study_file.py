@@ -215,7 +215,9 @@ def _validate(doc: dict, check: _Checker) -> dict:
         raise check.error("[study]", "directed", "applies to one-mode data only (this study "
                           "is two-mode)", study["directed"])
 
-    study["waves"] = _waves_entry(st, check)
+    waves = _waves_entry(st, check)
+    if waves is not None:  # a panel (absent from the spec otherwise)
+        study["waves"] = waves
 
     rs = check.keys("[response]", doc["response"], _SECTIONS["response"])
     response = _network_entry("[response]", rs, check)
@@ -235,7 +237,7 @@ def _validate(doc: dict, check: _Checker) -> dict:
 
     te = check.keys("[test]", doc.get("test", {}), _SECTIONS["test"])
     test = _test_entry(te, check, len(predictors))
-    if study["waves"] is not None:
+    if study.get("waves") is not None:
         _check_wave_files(study["waves"], response, predictors, test, check)
     elif any("lag" in p for p in predictors):
         p = next(p for p in predictors if "lag" in p)
@@ -643,7 +645,7 @@ class _Loader:
         for section, entry in entries:
             if "file" not in entry:
                 continue
-            if isinstance(entry["file"], dict) and sd["waves"] is not None:
+            if isinstance(entry["file"], dict) and sd.get("waves") is not None:
                 waved[entry["name"]] = [
                     (read_network(self.resolve(section, f"file.{w}", entry["file"][w]),
                                   fmt=entry["format"], missing=entry["missing"]),
@@ -859,7 +861,7 @@ class _Loader:
         without groups.
         """
         test = self.spec["test"]
-        if self.spec["study"]["waves"] is not None:
+        if self.spec["study"].get("waves") is not None:
             return "a study with [study] waves runs on dense arrays only"
         if test["kind"] == "regression" and test["model"] != "linear":
             return f'model = "{test["model"]}" runs on dense arrays only'
