@@ -81,6 +81,9 @@ ROUTES = {
         dp.Waves([D["x2"].T, D["y"], D["y"].T]),
         {"x1": dp.Waves([D["x1"], D["x2"], D["x1"].T], lag=1), "x2": D["y"][::-1]},
         scheme="dsp", **kw),
+    "waves-logistic-y": lambda **kw: dp.regress(
+        dp.Waves([D["yb"], D["yb"].T]), {"x1": dp.Waves([D["x1"], D["x2"]])},
+        model="logistic", scheme="y", **kw),
 }
 
 _REFERENCES: dict[str, np.ndarray] = {}
