@@ -88,7 +88,7 @@ def test_exact_pvalues_with_a_lagged_predictor(rng, scheme):
                      {"before": dp.Waves(Xs[0], lag=1), "now": dp.Waves(Xs[1])},
                      scheme=scheme, exact=True)
     assert res.terms == ("wave 2024", "wave 2025", "before", "now")
-    assert any("2023 drop out" in note for note in res.notes)
+    assert any("wave 2023 drops out" in note for note in res.notes)
     # source: brute force on the response's waves 2..3 with 'before' at waves 1..2
     obs, null = panel_exact_null(Ys[1:], [Xs[0][:2], Xs[1][1:]], _mask(N), scheme, "t")
     _check(res, obs, null, 2)
@@ -271,7 +271,7 @@ def test_study_file_with_waves_equals_the_python_call(panel_folder):
                         scheme="dsp", permutations=99, seed=5)
     np.testing.assert_allclose(res.coef, direct.coef, rtol=1e-12)
     np.testing.assert_array_equal(np.asarray(res.null), np.asarray(direct.null))
-    assert any("2023 drop out" in note for note in res.notes)
+    assert any("wave 2023 drops out" in note for note in res.notes)
 
 
 def test_check_prints_per_wave_counts(panel_folder):
@@ -281,6 +281,8 @@ def test_check_prints_per_wave_counts(panel_folder):
     # 7 nodes: 42 dyads per wave; f3 absent in 2024 leaves 6 * 5 = 30
     assert "wave 2023: 42 complete dyads" in text
     assert "wave 2024: 30 complete dyads" in text
+    assert "trade2024.csv: 1 node(s) absent at wave 2024 (their dyads missing there): 'f3'" \
+        in text
 
 
 def test_study_file_wave_errors(panel_folder):

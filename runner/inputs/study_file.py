@@ -804,17 +804,22 @@ class _Loader:
         there); an edge list lists ties, so every node is present at every wave."""
         sd = self.spec["study"]
         mats = []
-        for (raw, file) in parts:
+        for wave, (raw, file) in zip(sd["waves"], parts):
             values, notes = align(raw, rows, None, directed=sd["directed"], source=file,
                                   row_ids_source=sd["nodes"])
-            self.notes.extend(notes)
             if not raw.is_edges and raw.row_labels is not None:
-                listed = set(raw.row_labels)
-                absent = np.array([lab not in listed for lab in rows])
-                if absent.any():
+                listed = set(raw.row_labels) | set(raw.col_labels or ())
+                absent = [k for k, lab in enumerate(rows) if lab not in listed]
+                if absent:
                     values = np.array(values, dtype=np.float64)
                     values[absent, :] = np.nan
                     values[:, absent] = np.nan
+                    notes = [note for note in notes if "taken as no tie" not in note]
+                    notes.append(f"{file}: {len(absent)} node(s) absent at wave {wave} (their "
+                                 "dyads missing there): "
+                                 + ", ".join(repr(rows[k]) for k in absent[:5])
+                                 + (", ..." if len(absent) > 5 else ""))
+            self.notes.extend(notes)
             mats.append(Dyadic(values, rows, None, sd["directed"], None, name))
         return Waves(mats, names=sd["waves"], lag=lag, name=name)
 

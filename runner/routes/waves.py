@@ -137,8 +137,10 @@ def _notes(info: WaveInfo) -> list[str]:
                      "terms, not tested")
     if info.dropped:
         lagged = ", ".join(f"{name!r} (lag {lag})" for name, lag in info.lags.items())
-        notes.append(f"lag: the response's wave(s) {', '.join(info.dropped)} drop out; "
-                     f"{lagged} take(s) the earlier wave")
+        one = len(info.dropped) == 1 and len(info.lags) == 1
+        notes.append(f"lag: the response's wave{'' if len(info.dropped) == 1 else 's'} "
+                     f"{', '.join(info.dropped)} drop{'s' if len(info.dropped) == 1 else ''} "
+                     f"out; {lagged} take{'s' if one else ''} the earlier wave")
     notes.append(f"waves: {len(info.names)} ({', '.join(info.names)}), one relabelling of the "
                  f"nodes applied to every wave; complete dyads per wave "
                  f"{', '.join(f'{c:,}' for c in info.dyads)}")
