@@ -458,3 +458,25 @@ def test_a_predictor_constant_within_each_wave_is_named(rng):
     res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "level": dp.Waves(level)},
                      wave_effects=False, permutations=9, seed=1)
     assert res.terms == ("intercept", "a", "level")
+
+
+@pytest.mark.parametrize("scheme", ["dsp", "freedman-lane"])
+def test_interval_endpoints_against_brute_force(rng, scheme):
+    Ys, Xs = _panel(rng, waves=2)
+    res = dp.regress(dp.Waves(Ys), {"a": dp.Waves(Xs[0]), "b": dp.Waves(Xs[1])},
+                     scheme=scheme, exact=True, ci=0.9)
+    assert np.all(np.isnan(res.ci_low[:2]))
+    for j in (0, 1):
+        lo, hi = res.ci_low[2 + j], res.ci_high[2 + j]
+        assert np.isfinite(lo) and np.isfinite(hi) and lo < res.coef[2 + j] < hi
+        eps = 1e-6 * (hi - lo)
+        for end, inward in ((lo, 1.0), (hi, -1.0)):
+            # source: brute-force exact p-value of the test of beta_j = b on every wave's
+            # y - b x_j (reference.panel_exact_null), all 120 relabellings
+            def p_at(b):
+                obs, null = panel_exact_null([Y - b * X for Y, X in zip(Ys, Xs[j])], Xs,
+                                             _mask(N), scheme, "t")
+                return counts(obs, null)[0][j] / null.shape[0]
+
+            p_in, p_out = p_at(end + inward * eps), p_at(end - inward * eps)
+            assert p_in > 0.1 >= p_out, (j, end, p_in, p_out)

@@ -29,7 +29,8 @@ from ..inputs.waves import WaveInfo, centre_waves, observed_fit, prepare_waves
 from ..settings import check_regression
 from . import logistic as _logistic
 from .linear import build_statistics
-from .plan import Plan, dense_identity, groups_fingerprint, input_fingerprints
+from .plan import (Plan, dense_identity, groups_fingerprint, input_fingerprints,
+                   interval_reason, interval_summary)
 
 
 @dataclass(frozen=True, eq=False)
@@ -70,19 +71,26 @@ def plan(y: Any, predictors: Any, *, model: str = "linear", scheme: str, statist
     if info.wave_effects and prep.complete and prep.waves > 1:
         centre_waves(prep)
         absorbed = prep.waves - 1
+    # intervals invert each term's test from the kernels' own rows, observed and
+    # relabelled alike: the degrees of freedom the wave intercepts take are the same
+    # factor in every t(b), so they leave the interval as it is
+    reason = None if ci is None else interval_reason(scheme, statistic, prep.complete)
+    interval = ci is not None and reason is None
     stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,
-                             absorbed=absorbed)
+                             absorbed=absorbed, interval=interval)
     notes = _notes(info)
-    if ci is not None:
-        notes.append("no coefficient intervals with waves (not built for panel data yet)")
     fit_arrays = dict(coef=fit.coef, se=fit.se, stat=fit.t if statistic == "t" else fit.coef,
                       fit=np.array([fit.r2, np.nan]))
     a = len(info.intercepts)
     settings = _settings(info, model="linear", scheme=scheme, statistic=statistic,
                          storage=storage, dyads=dyads, groups=groups)
+    if interval:
+        settings["stored interval columns"] = stats.extra
+    summary = _summary(prep, info, "linear", scheme, statistic, fit.n_dyads, notes)
+    if ci is not None:
+        summary["interval"] = interval_summary(ci, reason, stats.ci_scale)
     return Plan(kernel=stats, blocks=prep.blocks, chunk_size=stats.chunk_size(),
-                fit=fit_arrays, summary=_summary(prep, info, "linear", scheme, statistic,
-                                                 fit.n_dyads, notes),
+                fit=fit_arrays, summary=summary,
                 identity=dense_identity(prep, settings, fingerprints),
                 expected=fit.t[a:] if statistic == "t" else None, extra=stats.extra)
 
