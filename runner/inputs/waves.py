@@ -113,7 +113,8 @@ class WaveInfo:
     lags: dict  # predictor name -> lag (only those with a lag)
     wave_effects: bool
     dyads: tuple[int, ...]  # complete dyads per wave (response and every predictor observed)
-    density: tuple[float, ...]  # response's mean over its observed dyads, per wave
+    density: tuple[float, ...]  # response's mean over its observed dyads, per wave (the
+    # share of ties of a 0/1 network)
 
     @property
     def intercepts(self) -> tuple[str, ...]:
@@ -436,5 +437,6 @@ def wave_lines(info: WaveInfo, response: str) -> list[str]:
     if info.dropped:
         lines.append(f"  lag: the response's first wave(s) {', '.join(info.dropped)} drop out")
     for w, c, d in zip(info.names, info.dyads, info.density):
-        lines.append(f"  wave {w}: {c:,} complete dyads, {response} mean {d:.4g}")
+        lines.append(f"  wave {w}: {c:,} complete dyads, {response} density {d:.4g} (its "
+                     "mean over its observed dyads)")
     return lines
