@@ -81,20 +81,77 @@ def test_failed_relabellings_count_at_every_b():
     assert wide.low <= base.low and wide.high >= base.high
 
 
+def _sign_changes_numpy(c):
+    """Plain twin of kernels.roots for one polynomial (lowest degree first): the real
+    roots from numpy.roots (eigenvalues of the companion matrix), kept where the
+    polynomial's sign differs on the two sides (evaluated half-way to the neighbours)."""
+    nz = np.flatnonzero(c)
+    if nz.size == 0 or nz[-1] == 0:
+        return np.zeros(0), np.zeros(0)
+    r = np.roots(c[:nz[-1] + 1][::-1])
+    r = np.unique(np.round(r[np.abs(r.imag) <= 1e-7 * np.maximum(1, np.abs(r))].real, 12))
+    if r.size == 0:
+        return r, r
+    gaps = np.diff(r)
+    below = np.concatenate([[r[0] - 1.0], r[1:] - gaps / 2])
+    above = np.concatenate([r[:-1] + gaps / 2, [r[-1] + 1.0]])
+    val = np.polynomial.polynomial.polyval
+    s_below, s_above = np.sign(val(below, c)), np.sign(val(above, c))
+    keep = s_below != s_above
+    return r[keep], s_above[keep]
+
+
 def test_roots_of_every_degree_against_numpy():
     rng = np.random.default_rng(3)
-    polys = rng.normal(size=(50, 5))
-    polys[10:20, 4] = 0.0
-    polys[20:30, 3:] = 0.0
-    polys[30:40, 2:] = 0.0
-    pts, slope = intervals.real_roots(polys)
-    want = []
-    for c in polys:  # source: numpy.roots (companion matrix of the monic polynomial)
-        nz = np.flatnonzero(c)
-        r = np.roots(c[:nz[-1] + 1][::-1])
-        want += list(r[np.abs(r.imag) < 1e-9].real)
-    np.testing.assert_allclose(np.sort(pts), np.sort(want), rtol=1e-8, atol=1e-10)
-    assert set(np.unique(slope)) <= {-1.0, 0.0, 1.0}
+    polys = rng.normal(size=(400, 5))
+    polys[100:200, 4] = 0.0
+    polys[200:300, 3:] = 0.0
+    polys[300:350, 2:] = 0.0
+    polys[350:360] *= 1e-200  # tiny and huge coefficients: the kernel scales each row
+    polys[360:370] *= 1e200
+    polys[370:375] = 0.0  # identically zero
+    polys[375:380, 1:] = 0.0  # constants
+    pts, slope, row = intervals.real_roots(polys)
+    for i, c in enumerate(polys):
+        want, want_slope = _sign_changes_numpy(c)
+        mine = row == i
+        np.testing.assert_allclose(pts[mine], want, rtol=1e-9, atol=1e-12)
+        np.testing.assert_array_equal(slope[mine], want_slope)
+
+
+def test_roots_with_ties_and_given_roots():
+    # polynomials built from known roots (source: the factor theorem): simple roots
+    # change sign, a double root does not, a triple root does; coincident roots of
+    # different polynomials (ties) are all reported
+    rng = np.random.default_rng(11)
+    P = np.polynomial.polynomial
+    cases = [
+        ([0.5], None), ([-2.0, 3.0], None), ([1.0, 1.0], []), ([1.0, 1.0, 1.0], [1.0]),
+        ([-1.0, 2.0, 2.0], [-1.0]), ([0.25, 0.5, 0.75, 1.0], None), ([3.0, 3.0, -3.0, -3.0], []),
+        ([1e-3, 2e-3, 1e3], None), ([0.0, 0.0, 0.0, 1.0], [0.0, 1.0]),
+    ]
+    for roots, changes in cases:
+        for lead in (1.0, -2.5):
+            c = np.zeros(5)
+            coef = lead * P.polyfromroots(roots)
+            c[:coef.size] = coef
+            pts, slope, _ = intervals.real_roots(np.vstack([c, c]))  # the same row twice
+            want = np.array(roots if changes is None else changes)
+            assert pts.size == 2 * want.size
+            # a root of multiplicity k is fixed by double precision only to about
+            # eps^(1/k) (common practice): 6e-6 for a triple root
+            tol = 2e-5 if len(set(roots)) < len(roots) else 1e-9
+            np.testing.assert_allclose(np.sort(pts)[::2], np.sort(want), rtol=tol, atol=tol)
+            # slopes alternate and end with the sign of the leading coefficient
+            if want.size:
+                assert slope[want.size - 1] == np.sign(lead)
+    # quadratics with two real roots, then one with a complex pair: none
+    a, b = rng.normal(size=2)
+    c = np.array([a * b, -(a + b), 1.0, 0.0, 0.0])
+    pts, _, _ = intervals.real_roots(c[None, :])
+    np.testing.assert_allclose(np.sort(pts), np.sort([a, b]), rtol=1e-12)
+    pts, _, _ = intervals.real_roots(np.array([[1.0, 0.0, 1.0, 0.0, 0.0]]))
+    assert pts.size == 0
 
 
 def test_halves_give_a_monte_carlo_error():

@@ -97,7 +97,7 @@ def test_table_shows_estimates_p_intervals_and_adjusted(regression):
     text = regression.table()
     lines = text.splitlines()
     head = next(line for line in lines if line.startswith("term"))
-    for col in ("estimate", "std.error", "t", "p", "MC s.e.", "95% interval", "adjusted p"):
+    for col in ("estimate", "std.error", "t", "p", "MC s.e.", "p 95% range", "adjusted p"):
         assert col in head
     row = next(line for line in lines if line.startswith("kinship"))
     lo, hi = regression.p_interval[1]

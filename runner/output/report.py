@@ -25,8 +25,8 @@ from ..pipeline import store
 from ..pipeline.run import open_result
 from . import plots
 from .result import TERM_COLUMNS, _plain, term_rows
-from .table import (NOTE_ADJUSTED, NOTE_CI, NOTE_INTERVAL, NOTE_ONE, NOTE_P, _alpha, _interval, _num,
-                    _pval, _stop_lines, ci_label, ci_text, format_table, header_lines,
+from .table import (NOTE_ADJUSTED, NOTE_CI, NOTE_INTERVAL, NOTE_ONE, NOTE_P, P_RANGE, _alpha,
+                    _interval, _num, _pval, _stop_lines, ci_label, ci_text, format_table, header_lines,
                     matrix_lines)
 
 # --------------------------------------------------------------------------- CSV / JSON
@@ -139,7 +139,7 @@ def _result_table_html(res: Any, alpha: float) -> str:
     label = ci_label(res)
     heads = ["term", est_name, "std.error"] + ([label] if label is not None else []) \
         + ([res.statistic] if kind == "regression" else []) \
-        + ["p", "MC s.e.", "95% interval", "p (stat &ge; obs)", "p (stat &le; obs)"] \
+        + ["p", "MC s.e.", P_RANGE, "p (stat &ge; obs)", "p (stat &le; obs)"] \
         + (["adjusted p"] if several else []) + [""]
     rows = ["<tr>" + "".join(f"<th>{h if '&' in h else _e(h)}</th>" for h in heads) + "</tr>"]
     est = res._estimates()

@@ -17,8 +17,10 @@ from ..settings import StopRule
 #: One-line notes under the table, in the order they are shown.
 NOTE_P = ("p: two-sided permutation p-value (|statistic| at least the observed); "
           "MC s.e.: its Monte Carlo standard error")
-NOTE_INTERVAL = ("95% interval: Clopper-Pearson interval of the Monte Carlo p-value "
-                 "(b + 1 of m + 1 relabellings)")
+#: Column of the p-value's own interval (kept apart from a coefficient's "95% CI").
+P_RANGE = "p 95% range"
+NOTE_INTERVAL = (P_RANGE + ": Clopper-Pearson interval of the Monte Carlo p-value "
+                 "(b + 1 of m + 1 relabellings): where the p of an endless run would lie")
 NOTE_ADJUSTED = ("adjusted p: familywise, single-step max statistic over the {k} tested "
                  "terms (Westfall & Young 1993); * marks adjusted p <= {alpha:g}")
 NOTE_ONE = "* marks p <= {alpha:g}"
@@ -156,7 +158,7 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
         cols.append((f"{label:>23}", 23))
     if kind == "regression":
         cols.append((f"{res.statistic:>9}", 9))
-    cols += [(f"{'p':>9}", 9), (f"{'MC s.e.':>9}", 9), (f"{'95% interval':>21}", 21)]
+    cols += [(f"{'p':>9}", 9), (f"{'MC s.e.':>9}", 9), (f"{P_RANGE:>21}", 21)]
     if several:
         cols.append((f"{'adjusted p':>12}", 12))
     cols.append(("  ", 2))

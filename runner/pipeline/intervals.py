@@ -49,6 +49,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..kernels import roots as _roots
 from ..kernels.stats import INTERVAL_WIDTH
 from .pvalues import TIE_TOLERANCE
 
@@ -116,58 +117,62 @@ def extreme_polynomials(rows: np.ndarray, observed: np.ndarray,
     return poly
 
 
-def real_roots(poly: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Every real root of the polynomials (rows, lowest degree first), and the sign of each
-    polynomial's slope there (+1: it becomes positive as b passes the root upwards; 0 at a
-    root of even multiplicity). Roots are the eigenvalues of companion matrices, all
-    polynomials of one degree at once."""
-    nz = poly != 0.0
-    deg = np.where(nz.any(axis=1), poly.shape[1] - 1 - np.argmax(nz[:, ::-1], axis=1), 0)
-    pts, slope = [np.zeros(0)], [np.zeros(0)]
-    for d in range(1, poly.shape[1]):
-        c = poly[deg == d, :d + 1]
-        if c.shape[0] == 0:
-            continue
-        comp = np.zeros((c.shape[0], d, d))
-        comp[:, 0, :] = -c[:, d - 1::-1] / c[:, d:d + 1]
-        comp[:, np.arange(1, d), np.arange(d - 1)] = 1.0
-        r = np.linalg.eigvals(comp) if d > 1 else comp[:, :, 0].astype(complex)
-        real = np.abs(r.imag) <= 1e-9 * np.maximum(1.0, np.abs(r.real))
-        rr = r.real
-        # slope: sum_j j c_j b^(j - 1)
-        der = np.zeros(rr.shape)
-        for j in range(1, d + 1):
-            der += j * c[:, j:j + 1] * rr ** (j - 1)
-        pts.append(rr[real])
-        slope.append(np.sign(der[real]))
-    return np.concatenate(pts), np.concatenate(slope)
-
-
-def accepted_set(poly: np.ndarray, *, exact: bool, alpha: float) -> list[tuple[float, float]]:
-    """The intervals of b where p(b) > alpha, from each relabelling's polynomial."""
+def real_roots(poly: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every point where one of the polynomials (rows, lowest degree first, degree <= 4)
+    changes sign, the sign it takes just above (+1: it becomes positive as b passes the
+    point upwards), and the row it belongs to (``kernels.roots``: safeguarded Newton steps
+    between critical points, no eigenvalues). A root where a polynomial only touches 0
+    changes no count and is left out."""
+    poly = np.ascontiguousarray(poly, dtype=np.float64)
+    if poly.shape[1] < 5:
+        poly = np.hstack([poly, np.zeros((poly.shape[0], 5 - poly.shape[1]))])
     m = poly.shape[0]
+    roots = np.zeros((m, 4))
+    slopes = np.zeros((m, 4), dtype=np.int8)
+    counts = np.zeros(m, dtype=np.int64)
+    _roots.real_roots(poly, roots, slopes, counts)
+    keep = np.arange(4)[None, :] < counts[:, None]
+    row = np.broadcast_to(np.arange(m)[:, None], (m, 4))
+    return roots[keep], slopes[keep].astype(np.float64), row[keep]
+
+
+def _start_count(poly: np.ndarray) -> int:
+    """How many polynomials are >= 0 as b -> -inf: identically zero ones, and those whose
+    sign there, sign(lead) (-1)^degree, is positive."""
+    nz = poly != 0.0
+    deg = np.where(nz.any(axis=1), poly.shape[1] - 1 - np.argmax(nz[:, ::-1], axis=1), -1)
+    lead = poly[np.arange(poly.shape[0]), np.maximum(deg, 0)]
+    return int(np.count_nonzero(deg < 0)) + int(np.count_nonzero(
+        (deg >= 0) & (np.sign(lead) * np.where(deg % 2 == 0, 1.0, -1.0) > 0)))
+
+
+def accepted_set(poly: np.ndarray, *, exact: bool, alpha: float,
+                 roots: tuple[np.ndarray, np.ndarray] | None = None,
+                 extra_count: int = 0) -> list[tuple[float, float]]:
+    """The intervals of b where p(b) > alpha, from each relabelling's polynomial.
+
+    ``roots``: (points, slopes) of ``real_roots(poly)`` when already known;
+    ``extra_count``: relabellings counted as at least as extreme at every b (failed fits),
+    beyond the rows of ``poly``."""
+    m = poly.shape[0] + extra_count
     # p(b) = (count + 1) / (m + 1) (random) or count / m (exact, the identity among them)
     if exact:
         need = int(np.floor(alpha * m + 1e-9)) + 1  # count / m > alpha
     else:
         need = int(np.floor(alpha * (m + 1) + 1e-9))  # (count + 1) / (m + 1) > alpha
-    nz = poly != 0.0
-    deg = np.where(nz.any(axis=1), poly.shape[1] - 1 - np.argmax(nz[:, ::-1], axis=1), -1)
-    lead = poly[np.arange(m), np.maximum(deg, 0)]
-    # how many count as b -> -inf: identically zero ones (P >= 0 everywhere), and those
-    # whose sign there, sign(lead) (-1)^degree, is positive
-    start = int(np.count_nonzero(deg < 0)) + int(np.count_nonzero(
-        (deg >= 0) & (np.sign(lead) * np.where(deg % 2 == 0, 1.0, -1.0) > 0)))
-    pts, slope = real_roots(poly)
+    start = _start_count(poly) + extra_count
+    pts, slope = real_roots(poly)[:2] if roots is None else roots
     order = np.argsort(pts, kind="stable")
     pts, slope = pts[order], slope[order]
     # the count on [pts[i], pts[i + 1]): start plus the changes at pts[0] .. pts[i]
     count = start + np.concatenate([[0], np.cumsum(slope)]).astype(np.int64)
-    out: list[tuple[float, float]] = []
     edges = np.concatenate([[-np.inf], pts, [np.inf]])
-    for i in np.flatnonzero(count >= need):
-        lo, hi = edges[i], edges[i + 1]
-        if out and out[-1][1] == lo:
+    # runs of consecutive accepted pieces [first, stop)
+    step = np.diff(np.concatenate([[0], (count >= need).astype(np.int8), [0]]))
+    out: list[tuple[float, float]] = []
+    for first, stop in zip(np.flatnonzero(step == 1), np.flatnonzero(step == -1)):
+        lo, hi = edges[first], edges[stop]
+        if out and out[-1][1] == lo:  # only a point (two equal roots) between them
             out[-1] = (out[-1][0], hi)
         else:
             out.append((lo, hi))
@@ -178,28 +183,32 @@ def invert(rows: np.ndarray, observed: np.ndarray, *, exact: bool, alpha: float)
     """The interval of one term from its relabellings' rows (m, 6) and the observed row."""
     rows = np.asarray(rows, dtype=np.float64)
     observed = np.asarray(observed, dtype=np.float64)
-    full = _hull(rows, observed, exact, alpha)
-    halves = np.full((2, 2), np.nan)
     m = rows.shape[0]
+    nan2 = np.full((2, 2), np.nan)
+    if not np.all(np.isfinite(observed)) or m == 0:
+        return Interval(np.nan, np.nan, 0, nan2, np.full(2, np.nan))
+    # a relabelling whose fit failed (non-finite numbers) counts as extreme at every b
+    ok = np.all(np.isfinite(rows), axis=1)
+    index = np.flatnonzero(ok)
+    poly = extreme_polynomials(rows[ok], observed)
+    pts, slope, owner = real_roots(poly)  # solved once, shared by the halves
+    full = _hull(poly, (pts, slope), m - index.size, exact, alpha)
+    halves = nan2.copy()
     if not exact and m >= 4:
-        for h, part in enumerate((rows[:m // 2], rows[m // 2:])):
-            halves[h] = _hull(part, observed, False, alpha)[:2]
+        for h, (lo, hi) in enumerate(((0, m // 2), (m // 2, m))):
+            mine = (index >= lo) & (index < hi)
+            mine_roots = mine[owner]
+            failed = (hi - lo) - int(mine.sum())
+            halves[h] = _hull(poly[mine], (pts[mine_roots], slope[mine_roots]), failed,
+                              False, alpha)[:2]
     with np.errstate(invalid="ignore"):  # a half too small to bound the interval: no error
         mc_se = np.where(np.isfinite(halves).all(axis=0),
                          np.abs(halves[0] - halves[1]) / 2.0, np.nan)
     return Interval(full[0], full[1], full[2], halves, mc_se)
 
 
-def _hull(rows, observed, exact, alpha) -> tuple[float, float, int]:
-    if not np.all(np.isfinite(observed)) or rows.shape[0] == 0:
-        return np.nan, np.nan, 0
-    ok = np.all(np.isfinite(rows), axis=1)
-    poly = extreme_polynomials(rows[ok], observed)
-    # a relabelling whose fit failed (non-finite numbers) counts as extreme at every b
-    failed = int((~ok).sum())
-    if failed:
-        poly = np.concatenate([poly, np.zeros((failed, 5))])
-    parts = accepted_set(poly, exact=exact, alpha=alpha)
+def _hull(poly, roots, failed, exact, alpha) -> tuple[float, float, int]:
+    parts = accepted_set(poly, exact=exact, alpha=alpha, roots=roots, extra_count=failed)
     if not parts:
         return np.nan, np.nan, 0
     return parts[0][0], parts[-1][1], len(parts)
