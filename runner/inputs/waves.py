@@ -55,7 +55,10 @@ class Waves:
     networks : list
         One network per wave, in time order: arrays, DataFrames, ``dyadperm.Dyadic``,
         networkx graphs or derived predictors (``dyadperm.same`` ...). Labelled networks
-        are aligned by label; a node absent at a wave has its dyads missing there.
+        are aligned by label; a node absent at a wave has its dyads missing there. The
+        nodes are every label of the response's waves; an unlabelled array (of a
+        predictor) is taken in their label order, so plain arrays of one size keep their
+        positions "0" .. "n-1".
     names : list of str, optional
         The waves' names ("2023", ...); default "1", "2", ...
     lag : int
@@ -178,7 +181,7 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
 
     # the response's waves fix the node set: every node seen at some wave
     resp = [_wave_dyadic(y.networks[t], f"{yname} at wave {all_names[t]}") for t in used]
-    labels = _union_labels(resp, yname)
+    labels = _union_labels(resp)
     n = len(labels)
     if n < 3:
         raise InputError(f"too few nodes: got {n}; need at least 3")
@@ -299,7 +302,8 @@ def _wave_dyadic(obj: Any, what: str, labels: Sequence[str] | None = None) -> Dy
     return dy
 
 
-def _union_labels(resp: list[Dyadic], yname: str) -> list[str]:
+def _union_labels(resp: list[Dyadic]) -> list[str]:
+    """Every label of the response's waves, in label order (``labels.label_order``)."""
     seen: dict[str, None] = {}
     for dy in resp:
         for lab in dy.labels:
