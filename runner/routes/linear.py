@@ -211,6 +211,9 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     mean, sd = standardise(prep)
     _check_spread(prep, sd)
+    if prep.fixed and prep.complete:
+        raise ValueError("fixed layers (wave intercepts) are for missing dyads; complete "
+                         "panels absorb them by centring (absorbed=...)")
     if interval and interval_reason(scheme, statistic, prep.complete) is not None:
         raise ValueError(interval_reason(scheme, statistic, prep.complete))
     if prep.complete:
