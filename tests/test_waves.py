@@ -489,3 +489,24 @@ def test_interval_endpoints_against_brute_force(rng, scheme):
 
             p_in, p_out = p_at(end + inward * eps), p_at(end - inward * eps)
             assert p_in > 0.1 >= p_out, (j, end, p_in, p_out)
+
+
+def test_study_groups_follow_the_node_table_whatever_its_order(panel_folder):
+    # the node table lists the nodes in reverse label order; groups come from its column
+    folder, labels, Ys, Xs = panel_folder
+    order = labels[::-1]
+    side = {lab: ("east" if i % 2 else "west") for i, lab in enumerate(labels)}
+    (folder / "nodes.csv").write_text("id,size,side\n" + "".join(
+        f"{lab},{i / 7:.3f},{side[lab]}\n" for i, lab in enumerate(order)))
+    res = dp.load_study(_panel_study(folder, extra='groups = "side"\n')).run()
+    Yf = [pd.DataFrame(Y, index=labels, columns=labels) for Y in Ys]
+    Yf[1] = Yf[1].drop(index="f3", columns="f3")
+    sizes = pd.Series([i / 7 for i in range(7)], index=order).round(3)
+    # source: the same panel through the Python API, groups as a Series aligned by label
+    direct = dp.regress(dp.Waves(Yf, names=["2023", "2024", "2025"]),
+                        {"kin": dp.Waves(Xs[0]), "road": Xs[1][0], "size_gap": dp.gap(sizes)},
+                        scheme="dsp", permutations=99, seed=5,
+                        groups=pd.Series(side))
+    np.testing.assert_allclose(res.coef, direct.coef, rtol=1e-12)
+    np.testing.assert_array_equal(np.asarray(res.null), np.asarray(direct.null))
+    assert res.n_dyads == direct.n_dyads

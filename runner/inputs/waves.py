@@ -38,7 +38,7 @@ from .design import (Prepared, _column_ranges, _group_order, _symmetric, check_d
 from . import memory
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, as_dyadic, network_name
-from .labels import label_order, some_labels
+from .labels import some_labels
 from .optional import is_frame
 from .sparse import SparseNetwork
 
@@ -56,9 +56,10 @@ class Waves:
         One network per wave, in time order: arrays, DataFrames, ``dyadperm.Dyadic``,
         networkx graphs or derived predictors (``dyadperm.same`` ...). Labelled networks
         are aligned by label; a node absent at a wave has its dyads missing there. The
-        nodes are every label of the response's waves; an unlabelled array (of a
-        predictor) is taken in their label order, so plain arrays of one size keep their
-        positions "0" .. "n-1".
+        nodes are every label of the response's waves, in the order of the first wave
+        then of appearance; an unlabelled predictor array (and a groups array) is read in
+        that order, so plain arrays of one size keep their positions "0" .. "n-1" (when
+        the node set changes between waves, give labelled networks).
     names : list of str, optional
         The waves' names ("2023", ...); default "1", "2", ...
     lag : int
@@ -179,9 +180,11 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
         raise InputError("waves: the lag leaves no wave of the response")
     T = len(used)
 
-    # the response's waves fix the node set: every node seen at some wave
-    resp = [_wave_dyadic(y.networks[t], f"{yname} at wave {all_names[t]}") for t in used]
-    labels = _union_labels(resp)
+    # the response's waves fix the node set: every node seen at some wave (a wave a lag
+    # drops too, so the node order does not depend on the lag)
+    every = [_wave_dyadic(net, f"{yname} at wave {w}") for net, w in zip(y.networks, all_names)]
+    resp = [every[t] for t in used]
+    labels = _union_labels(every)
     n = len(labels)
     if n < 3:
         raise InputError(f"too few nodes: got {n}; need at least 3")
@@ -215,7 +218,8 @@ def prepare_waves(y: Any, predictors: Any, *, directed: bool | None = None,
                 src = obj
             what = f"predictor {name!r}" + (f" at wave {all_names[t - lag]}"
                                             if src is not obj else "")
-            mats.append(_on_nodes(src, what, internal, pos, resp[w], explicit, labels))
+            mats.append(_on_nodes(src, what, internal, pos, resp[w], explicit, labels,
+                                  order))
         waves_of.append(mats)
     waves_of.append([_on_nodes(r, f"{yname} at wave {all_names[t]}", internal, pos, r,
                                explicit) for r, t in zip(resp, used)])
@@ -294,8 +298,8 @@ def _wave_dyadic(obj: Any, what: str, labels: Sequence[str] | None = None) -> Dy
             and not _is_graph(obj):
         shape = getattr(obj, "shape", None)
         raise InputError(f"{what} has shape {shape}; the waves have {len(labels)} nodes "
-                         "(an unlabelled network is taken in the node order: every label of "
-                         "the response's waves, in label order)")
+                         "(an unlabelled network is taken in the node order: the labels of "
+                         "the response's waves, first wave first)")
     dy = as_dyadic(obj, name=what, labels=None if _is_graph(obj) else labels)
     if dy.two_mode:
         raise InputError(f"{what} is two-mode; waves of two-mode networks are not supported")
@@ -303,13 +307,15 @@ def _wave_dyadic(obj: Any, what: str, labels: Sequence[str] | None = None) -> Dy
 
 
 def _union_labels(resp: list[Dyadic]) -> list[str]:
-    """Every label of the response's waves, in label order (``labels.label_order``)."""
+    """The node order of a panel: the labels of the response's first wave, then each label
+    new at a later wave, in order of appearance. (The engine's internal order is by
+    label whatever this order is; it says how an unlabelled predictor or a groups array
+    is read.)"""
     seen: dict[str, None] = {}
     for dy in resp:
         for lab in dy.labels:
             seen.setdefault(lab, None)
-    labels = list(seen)
-    return [labels[i] for i in label_order(labels)]
+    return list(seen)
 
 
 def _is_graph(obj: Any) -> bool:
@@ -317,16 +323,20 @@ def _is_graph(obj: Any) -> bool:
 
 
 def _on_nodes(obj: Any, what: str, internal: list[str], pos: dict, resp_wave: Dyadic,
-              explicit: list[bool], labels: Sequence[str] | None = None) -> np.ndarray:
+              explicit: list[bool], labels: Sequence[str] | None = None,
+              order: np.ndarray | None = None) -> np.ndarray:
     """(n, n) float64 on the internal node order; NaN for nodes the network lacks.
-    ``labels``: the node labels an unlabelled array is taken in (None: positions)."""
+    ``labels``: the node order (an unlabelled array, or a derived predictor's plain
+    vector, is read in it); ``order``: its internal order (internal[i] = labels[order[i]])."""
     n = len(internal)
     if isinstance(obj, NodeDerived):
-        return np.array(obj.dense(internal), dtype=np.float64)
+        # a plain vector holds one value per node in the node order, a mapping or Series
+        # is aligned by label: either way build it there, then take the internal order
+        return np.asarray(obj.dense(list(labels)), dtype=np.float64)[np.ix_(order, order)]
     if isinstance(obj, Reverse):
         src = resp_wave if obj.network is None else obj.network
         return np.ascontiguousarray(_on_nodes(src, what, internal, pos, resp_wave, explicit,
-                                              labels).T)
+                                              labels, order).T)
     dy = obj if isinstance(obj, Dyadic) and obj is resp_wave else \
         _wave_dyadic(obj, what, labels) if not isinstance(obj, Waves) else None
     if dy is None:
