@@ -72,6 +72,17 @@ results do not depend on ``jobs``: replicate r of term j draws everything from
 ``SeedSequence(seed, spawn_key=(j, r))`` (its residual relabelling, then its tests'
 relabellings, drawn at once); :func:`simulated_response` gives any replicate back.
 
+Panels (``dyadperm.Waves``: several waves of one node set) are prepared as a run prepares
+them (``inputs.waves.prepare_waves``: the waves stacked, lagged predictors taken at their
+earlier wave and the response's first waves dropped). The reduced model of each term
+holds one intercept per wave (``wave_effects``, the default), fixed terms that are never
+tested nor calibrated; the residuals' relabelling is one relabelling of the nodes applied
+to every wave (rows pi, columns ``Blocks.columns``), as are the tests' relabellings. The
+tests read the layers as a run does: on complete data centred within each wave, on
+missing dyads with the wave intercepts as fixed layers; classical OLS counts the wave
+intercepts among its parameters (N - T - k degrees of freedom for T waves and k
+predictors). The standardised ``effect`` uses sds over the analysed dyads of every wave.
+
 Studies on the sparse route (networks kept as edge lists) are refused, in one line with
 the memory the dense route would need: a simulated response, fitted values plus
 relabelled residuals, holds a value at every dyad, so it is an n x n array whatever the
@@ -98,7 +109,8 @@ from .inputs import design as _design
 from .inputs.blocks import Blocks
 from .inputs.memory import check_dense_route, gib
 from .inputs.sparse import refuse_edges
-from .inputs.waves import refuse_waves
+from .inputs.waves import WaveInfo, centre_waves, prepare_waves, uses_waves
+from .inputs.waves import observed_fit as waves_observed_fit
 from .output.result import _plain
 from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
@@ -317,22 +329,49 @@ def _analysed(prep: _design.Prepared) -> np.ndarray:
     return ok
 
 
-def _reduced(prep: _design.Prepared, j: int, ok: np.ndarray) -> _Reduced:
+def _reduced(prep: _design.Prepared, j: int, ok: np.ndarray,
+             wave_effects: bool = False) -> _Reduced:
+    """Reduced model of tested term ``j``: y on Z = [1, the other predictors], or for a
+    panel with ``wave_effects`` [one indicator per wave, the other predictors] (the wave
+    intercepts take the place of the constant and of the fixed wave layers)."""
     k = prep.k
     y = prep.matrices[k]
-    others = [c for c in range(k) if c != j]
-    Z = np.column_stack([np.ones(int(ok.sum()))] + [prep.matrices[c][ok] for c in others])
+    jj = prep.fixed + j
+    others = [c for c in range(prep.fixed, k) if c != jj]
+    T = prep.waves
+    if wave_effects and T > 1:
+        lead = np.zeros((int(ok.sum()), T))
+        lead[np.arange(lead.shape[0]), np.nonzero(ok)[1] % T] = 1.0
+    else:
+        lead = np.ones((int(ok.sum()), 1))
+    a = lead.shape[1]
+    Z = np.column_stack([lead] + [prep.matrices[c][ok] for c in others])
     gamma = np.linalg.lstsq(Z, y[ok], rcond=None)[0]
-    fitted = np.full(y.shape, gamma[0])
-    for c, g in zip(others, gamma[1:]):
+    if a == 1:
+        fitted = np.full(y.shape, gamma[0])
+    else:  # column c is wave c mod T
+        fitted = np.broadcast_to(gamma[:a][np.arange(y.shape[1]) % T], y.shape).copy()
+    for c, g in zip(others, gamma[a:]):
         fitted = fitted + g * prep.matrices[c]
-    resid = np.where(ok, y - fitted, np.nan)
-    if not prep.directed and not prep.two_mode:
-        lower = np.tril_indices(y.shape[0], -1)
-        resid[lower] = resid.T[lower]
-    x = prep.matrices[j]
+    resid = _mirror(prep, np.where(ok, y - fitted, np.nan))
+    x = prep.matrices[jj]
     shift = (np.std(y[ok]) / np.std(x[ok])) * x
     return _Reduced(fitted, resid, shift)
+
+
+def _mirror(prep: _design.Prepared, out: np.ndarray) -> np.ndarray:
+    """Undirected one-mode data: the lower triangle from the upper one, in place (with
+    waves, within each wave: column j * T + t is node j at wave t)."""
+    if prep.directed or prep.two_mode:
+        return out
+    n = out.shape[0]
+    lower = np.tril_indices(n, -1)
+    if prep.waves == 1:
+        out[lower] = out.T[lower]
+    else:
+        cube = out.reshape(n, n, prep.waves)  # a view of ``out``
+        cube[lower] = cube.transpose(1, 0, 2)[lower]
+    return out
 
 
 def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks, count: int):
@@ -350,10 +389,7 @@ def _as_response(prep: _design.Prepared, values: np.ndarray) -> np.ndarray:
     """A response matrix in the form ``design.prepare`` gives: NaN off the dyad set, mirrored."""
     out = np.array(values, dtype=np.float64, copy=True)
     out[~prep.mask] = np.nan
-    if not prep.directed and not prep.two_mode:
-        lower = np.tril_indices(out.shape[0], -1)
-        out[lower] = out.T[lower]
-    return out
+    return _mirror(prep, out)
 
 
 def _simulate(prep, red: _Reduced, rows, cols) -> np.ndarray:
@@ -361,17 +397,24 @@ def _simulate(prep, red: _Reduced, rows, cols) -> np.ndarray:
     return _as_response(prep, red.fitted + red.resid[np.ix_(rows, cols)])
 
 
-def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x):
+def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, ok_x,
+          absorbed=0):
     """p-values of term ``j`` on response ``ystar``: each scheme, then classical OLS.
 
     ``batch`` holds the relabellings, the identity first (random draws) or among them
-    (exact enumeration, where it is index 0).
+    (exact enumeration, where it is index 0). ``absorbed``: wave intercepts of a complete
+    panel, absorbed by centring within waves as a run does (``routes.waves``): ``prep``'s
+    predictors are centred already, ``ystar`` is centred here; they count in the degrees
+    of freedom.
     """
     complete = prep.complete and not np.isnan(ystar[prep.mask]).any()
+    if absorbed:
+        ystar = ystar.copy()
+        centre_waves(replace(prep, matrices=(ystar,)))
     sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete)
     plans = []
     for s in schemes:  # only the passes that fill term j's statistic
-        plan = build_statistics(sim, scheme=s, statistic=statistic)
+        plan = build_statistics(sim, scheme=s, statistic=statistic, absorbed=absorbed)
         plans.append(replace(plan, passes=tuple(ps for ps in plan.passes if j in ps.terms)))
     if all(ps.gram0 is not None for plan in plans for ps in plan.passes):
         stats = shared_statistics(plans, j, batch)
@@ -385,10 +428,44 @@ def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, 
         if statistic == "t":
             t_obs = stats[0][0]  # the identity relabelling: the full-model t (engine check)
         else:
-            t_obs = build_statistics(sim, scheme=schemes[0], statistic="t").statistics(*ident)[0][j]
-        df = int(np.isfinite(ystar[ok_x]).sum()) - (prep.k + 1)
+            t_obs = build_statistics(sim, scheme=schemes[0], statistic="t",
+                                     absorbed=absorbed).statistics(*ident)[0][j]
+        # parameters: the constant (or one intercept per wave) and every predictor
+        df = int(np.isfinite(ystar[ok_x]).sum()) - (prep.k + 1 + absorbed)
         out[-1] = 2.0 * t_dist.sf(abs(t_obs), df) if df > 0 else np.nan
     return out
+
+
+def _prepare(y: Any, predictors: Any, *, directed, groups, dyads, wave_effects,
+             layers_per_term: int = 1):
+    """The inputs on the engine's order, and the panel's WaveInfo (None: one network).
+
+    A panel (``dyadperm.Waves``) is prepared as a run prepares it
+    (``inputs.waves.prepare_waves``: stacked waves, lags, wave intercepts as fixed layers
+    when dyads are missing); one network by ``design.prepare``."""
+    if uses_waves(y, predictors):
+        if not isinstance(wave_effects, (bool, np.bool_)):
+            raise InputError(f"`wave_effects` must be True or False; got {wave_effects!r}")
+        return prepare_waves(y, predictors, directed=directed, groups=groups, dyads=dyads,
+                             wave_effects=bool(wave_effects),
+                             layers_per_term=layers_per_term)
+    return _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads), None
+
+
+def _wave_intercepts(prep: _design.Prepared, info: WaveInfo | None) -> bool:
+    """Whether the reduced and full models hold one intercept per wave."""
+    return info is not None and info.wave_effects and prep.waves > 1
+
+
+def _for_tests(prep: _design.Prepared, info: WaveInfo | None) -> tuple[_design.Prepared, int]:
+    """The inputs the schemes read and the design columns absorbed: a complete panel with
+    wave intercepts has its layers centred within each wave (a copy), as a run does
+    (``routes.waves.plan``); anything else is read as prepared."""
+    if not (_wave_intercepts(prep, info) and prep.complete):
+        return prep, 0
+    out = replace(prep, matrices=tuple(np.array(a, copy=True) for a in prep.matrices))
+    centre_waves(out)
+    return out, prep.waves - 1
 
 
 class Replicate(NamedTuple):
@@ -397,7 +474,9 @@ class Replicate(NamedTuple):
     ``response`` (NaN off the dyad set; undirected data symmetric); ``rows`` and ``cols``
     (m, n) and (m, m_cols): the random relabellings its tests used, as M'[a, b] =
     M[rows[t, a], cols[t, b]] (one-mode: ``cols`` is ``rows``); None when the calibration
-    enumerated every relabelling instead.
+    enumerated every relabelling instead. A panel (``dyadperm.Waves``): ``response`` is
+    (T, n, n), one matrix per wave used (a lag drops the first waves), in the node order
+    of ``dyadperm.Waves``; ``rows`` relabel the nodes at every wave and ``cols`` is ``rows``.
     """
 
     response: np.ndarray
@@ -408,30 +487,40 @@ class Replicate(NamedTuple):
 def simulated_response(y: Any, predictors: Any, *, term: str, replicate: int, seed: int,
                        permutations: int = 199, effect: float | None = None,
                        directed: bool | None = None, groups: Any = None,
-                       dyads: str | None = None) -> Replicate:
+                       dyads: str | None = None, wave_effects: bool = True) -> Replicate:
     """The data set :func:`calibrate` simulates for ``term``, replicate ``replicate``.
 
     With the same inputs, ``seed`` and ``permutations`` as the calibration, the response
     and relabellings are exactly those it used, so any replicate can be rerun and checked
     on its own. For checking and teaching.
     """
-    refuse_waves(y, predictors, reason="calibrate does not take waves yet (its simulated "
-                 "responses are built for one network)")
-    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    if term not in prep.names:
-        raise InputError(f"`term` must be one of the predictors ({', '.join(prep.names)}); "
+    prep, info = _prepare(y, predictors, directed=directed, groups=groups, dyads=dyads,
+                          wave_effects=wave_effects)
+    tested = prep.names[prep.fixed:]
+    if term not in tested:
+        raise InputError(f"`term` must be one of the predictors ({', '.join(tested)}); "
                          f"got {term!r}")
     replicate = _whole(replicate, "replicate", 0)
     seed = _whole(seed, "seed", 0)
     permutations = _whole(permutations, "permutations", 1)
-    j = prep.names.index(term)
-    red = _reduced(prep, j, _analysed(prep))
+    j = tested.index(term)
+    red = _reduced(prep, j, _analysed(prep), _wave_intercepts(prep, info))
     exact = prep.blocks.count() <= permutations
     rows, cols, perms = _replicate_stream(seed, j, replicate, prep.blocks,
                                           0 if exact else permutations)
     ystar = _simulate(prep, red, rows, cols)
     if effect is not None:
         ystar = ystar + float(effect) * red.shift
+    if prep.waves > 1 or info is not None:
+        n, T = prep.mask.shape[0], prep.waves
+        cube = ystar.reshape(n, n, T)
+        out = np.empty((T, n, n))
+        for t in range(T):
+            out[t][np.ix_(prep.row_order, prep.row_order)] = cube[:, :, t]
+        if perms is None:
+            return Replicate(out, None, None)
+        rows = _to_user(perms[0], prep.row_order)
+        return Replicate(out, rows, rows)
     out = np.empty_like(ystar)
     out[np.ix_(prep.row_order, prep.col_order)] = ystar
     if perms is None:
@@ -456,7 +545,8 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
               seed: Any = None, jobs: int = 1, directed: bool | None = None, groups: Any = None,
               dyads: str | None = None, include_ols: bool = True, statistic: str = "t",
               band_level: float = BAND_LEVEL,
-              progress: bool | Callable[[int, int], None] = False) -> CalibrationResult:
+              progress: bool | Callable[[int, int], None] = False,
+              wave_effects: bool = True) -> CalibrationResult:
     """Size (and power) of each scheme on simulated responses that keep the user's design.
 
     Parameters
@@ -487,6 +577,10 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         Probability of the binomial band around the valid rejection rate.
     progress : bool or callable(done, total)
         Called with replicates done and their total.
+    wave_effects : bool
+        Panels (``y`` a ``dyadperm.Waves``): one intercept per wave in every reduced and
+        full model (default), fixed terms that are never tested nor calibrated; False:
+        one intercept for every wave. As in :func:`dyadperm.regress`.
 
     Returns
     -------
@@ -506,17 +600,20 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     schemes, R, M = opts["schemes"], opts["replicates"], opts["permutations"]
     alpha, effect = opts["alpha"], opts["effect"]
     entropy = entropy_of(opts["seed"])
-    refuse_waves(y, predictors, reason="calibrate does not take waves yet (its simulated "
-                 "responses are built for one network)")
     refuse_edges(y, predictors, reason="calibrate simulates responses that hold a value at "
                  "every dyad, on the dense route")
     # inputs, three reduced-model arrays per term, and per replicate a simulated response
     # and the schemes' layer stacks
     check_dense_route(y, predictors, route="calibrate", layers_per_term=4 + len(schemes),
                       groups=groups)
-    prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
+    prep, info = _prepare(y, predictors, directed=directed, groups=groups, dyads=dyads,
+                          wave_effects=wave_effects, layers_per_term=4 + len(schemes))
     # the same input checks as a run (the one rule of a fittable design, no variation)
-    _design.observed_fit(prep, pivot=fit_pivot(prep))
+    if info is None:
+        _design.observed_fit(prep, pivot=fit_pivot(prep))
+    else:
+        waves_observed_fit(prep, info, pivot=fit_pivot(prep))
+    tprep, absorbed = _for_tests(prep, info)
 
     count = prep.blocks.count()
     exact = count <= M
@@ -536,15 +633,15 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
     if exact and count > EXACT_LIMIT:  # pragma: no cover - count <= M keeps this unreachable
         raise InputError(f"too many relabellings to enumerate: {count:,}")
 
-    k = prep.k
+    k = prep.k - prep.fixed  # tested terms (a panel's wave layers are not)
     n, m = prep.mask.shape
     ok = _analysed(prep)
     ok_x = prep.mask.copy()
-    for a in prep.matrices[:k]:
+    for a in prep.matrices[:prep.k]:
         ok_x &= np.isfinite(a)
     ident = (np.arange(n, dtype=np.int64)[None, :], np.arange(m, dtype=np.int64)[None, :])
     exact_perms = enumerate_exact(prep.blocks, 0, count) if exact else None
-    reduced = [_reduced(prep, j, ok) for j in range(k)]
+    reduced = [_reduced(prep, j, ok, _wave_intercepts(prep, info)) for j in range(k)]
     n_methods = len(schemes) + int(include_ols)
 
     def one(j: int, r: int):
@@ -555,12 +652,12 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
             batch = (np.concatenate([ident[0], perms[0]]), np.concatenate([ident[1], perms[1]]))
         ystar = _simulate(prep, reduced[j], rows, cols)
         try:
-            p0 = _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident,
-                       ok_x)
+            p0 = _test(tprep, ystar, j, schemes, statistic, include_ols, batch, exact, ident,
+                       ok_x, absorbed)
             p1 = None
             if effect is not None:
-                p1 = _test(prep, ystar + effect * reduced[j].shift, j, schemes, statistic,
-                           include_ols, batch, exact, ident, ok_x)
+                p1 = _test(tprep, ystar + effect * reduced[j].shift, j, schemes, statistic,
+                           include_ols, batch, exact, ident, ok_x, absorbed)
         except InputError:
             # missing values moved with the residuals: on this replicate's complete dyads the
             # design breaks the fit rule, so a run would refuse this data set (no test)
@@ -587,11 +684,12 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         prej, prate, pint = _rates(power_p, alpha, R)
     methods = tuple(schemes) + ((OLS,) if include_ols else ())
     passes = k * R * len(schemes) * (m_total + 1) * (2 if effect is not None else 1)
-    notes = []
+    terms = prep.names[prep.fixed:]
+    notes = [] if info is None else _wave_notes(info)
     for j in range(k):
         refused = int(np.isnan(null_p[j, 0]).sum())
         if refused:
-            notes.append(f"{refused} of {R} simulated responses of {prep.names[j]!r} leave the "
+            notes.append(f"{refused} of {R} simulated responses of {terms[j]!r} leave the "
                          "design unfittable over their complete dyads (a run would refuse "
                          "them): those replicates have no p-value and count as not rejecting")
     if not math.isclose(valid, alpha, rel_tol=1e-9):
@@ -599,7 +697,7 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         notes.append(f"with {m_total} relabellings a valid test rejects {valid:.4f} of the "
                      f"time, not {alpha:g}: p-values come in steps of 1/{step}")
     return CalibrationResult(
-        terms=prep.names, methods=methods, response=prep.response_name, alpha=alpha,
+        terms=terms, methods=methods, response=prep.response_name, alpha=alpha,
         replicates=R, permutations=m_total, exact=exact, statistic=statistic,
         valid_rate=valid, band_level=opts["band_level"], band=np.array([lo / R, hi / R]),
         nominal_band=np.array([nlo / R, nhi / R]),
@@ -609,6 +707,19 @@ def calibrate(y: Any, predictors: Any, *, schemes: Any = DEFAULT_SCHEMES, replic
         n_nodes=n + m if prep.two_mode else n, n_dyads=int(ok.sum()),
         directed=prep.directed, two_mode=prep.two_mode, passes=int(passes),
         seconds=time.perf_counter() - t0, notes=tuple(notes))
+
+
+def _wave_notes(info: WaveInfo) -> list[str]:
+    """What a panel's calibration did with its waves, in plain words."""
+    notes = [f"waves: {len(info.names)} ({', '.join(info.names)}), one relabelling of the "
+             "nodes applied to every wave, for the simulated residuals and every test"]
+    if info.wave_effects and len(info.names) > 1:
+        notes.append(f"wave intercepts ({', '.join(info.intercepts)}) in every reduced and "
+                     "full model: fixed terms, not tested, not calibrated; classical OLS "
+                     "counts them as parameters")
+    if info.dropped:
+        notes.append(f"lag: the response's wave(s) {', '.join(info.dropped)} drop out")
+    return notes
 
 
 def _rates(p: np.ndarray, alpha: float, R: int):

@@ -486,3 +486,54 @@ def panel_exact_null(Ys, Xss, mask, scheme, statistic, wave_effects=True):
     null = np.array([panel_scheme_stat(Ys, Xss, mask, scheme, statistic, p, wave_effects)
                      for p, _ in all_relabellings(n)])
     return obs, null
+
+
+def panel_simulated_response(Ys, Xss, mask, j: int, perm, wave_effects: bool = True,
+                             directed: bool = True, effect: float | None = None):
+    """The null response of calibrate's simulation for term ``j`` of a panel, written
+    from the text of methods (Freedman & Lane 1983 null model): the reduced model y on
+    Z = [one indicator per wave (``wave_effects``) or 1, the other x's] fitted by lstsq on
+    the stacked dyads of every wave (those in ``mask`` where y and every x are finite);
+    y*_t = Z g at wave t + R_t relabelled, R_t = y_t - Z g (NaN off the fitted dyads),
+    every wave relabelled by the same ``perm``: R_t'[a, b] = R_t[perm[a], perm[b]]. With
+    ``effect`` e: y* + e sd(y) / sd(x_j) x_j, sds over the fitted dyads of every wave.
+
+    ``Ys``: the response's T waves (n, n); ``Xss``: per predictor its T waves (a lagged
+    predictor given already shifted); ``mask``: the dyad set of one wave (for undirected
+    data i < j; the result is then mirrored). Returns (T, n, n), NaN off the dyad set.
+    """
+    T = len(Ys)
+    k = len(Xss)
+    Ys = [np.asarray(Y, dtype=np.float64) for Y in Ys]
+    Xss = [[np.asarray(X, dtype=np.float64) for X in Xs] for Xs in Xss]
+    use = [mask & np.isfinite(Ys[t]) & np.all([np.isfinite(Xs[t]) for Xs in Xss], axis=0)
+           for t in range(T)]
+    others = [c for c in range(k) if c != j]
+    lead = []
+    for t in range(T):
+        d = np.zeros((int(use[t].sum()), T if wave_effects else 1))
+        d[:, t if wave_effects else 0] = 1.0
+        lead.append(d)
+    Z = np.column_stack([np.concatenate(lead)]
+                        + [np.concatenate([Xss[c][t][use[t]] for t in range(T)])
+                           for c in others])
+    y = np.concatenate([Ys[t][use[t]] for t in range(T)])
+    g, *_ = np.linalg.lstsq(Z, y, rcond=None)
+    a = T if wave_effects else 1
+    out = np.empty((T,) + Ys[0].shape)
+    for t in range(T):
+        fitted = np.full_like(Ys[t], g[t] if wave_effects else g[0])
+        for gc, c in zip(g[a:], others):
+            fitted = fitted + gc * Xss[c][t]
+        R = np.where(use[t], Ys[t] - fitted, np.nan)
+        if not directed:
+            R = np.where(use[t], R, R.T)  # the pair's value in both cells
+        ystar = fitted + relabel(R, perm, perm)
+        if effect is not None:
+            xs = np.concatenate([Xss[j][s][use[s]] for s in range(T)])
+            ystar = ystar + effect * np.std(y) / np.std(xs) * Xss[j][t]
+        ystar = np.where(mask, ystar, np.nan)
+        if not directed:
+            ystar = np.where(mask, ystar, ystar.T)
+        out[t] = ystar
+    return out

@@ -398,10 +398,12 @@ def test_logistic_exact_pvalues_equal_brute_force(rng, scheme, statistic, missin
     _check(res, obs, null, T, rtol=FIT_RTOL, atol=FIT_ATOL)
 
 
-def test_calibrate_refuses_waves_in_one_line(rng):
+def test_calibrate_takes_a_panel(rng):
+    # calibrate's panel checks are in tests/test_calibrate_waves.py; here: it runs, and
+    # tests only the predictors (the wave intercepts are fixed terms)
     Ys, Xs = _panel(rng, waves=2)
-    with pytest.raises(dp.InputError, match="calibrate does not take waves yet"):
-        dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=9)
+    res = dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=9)
+    assert res.terms == ("a",) and res.n_nodes == N
 
 
 def test_run_file_and_reports_of_a_panel(rng, tmp_path):
