@@ -402,7 +402,7 @@ def test_calibrate_takes_a_panel(rng):
     # calibrate's panel checks are in tests/test_calibrate_waves.py; here: it runs, and
     # tests only the predictors (the wave intercepts are fixed terms)
     Ys, Xs = _panel(rng, waves=2)
-    res = dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=9)
+    res = dp.calibrate(dp.Waves(Ys), {"a": dp.Waves(Xs[0])}, replicates=2, permutations=19)
     assert res.terms == ("a",) and res.n_nodes == N
 
 
