@@ -367,7 +367,8 @@ def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, 
     (exact enumeration, where it is index 0).
     """
     complete = prep.complete and not np.isnan(ystar[prep.mask]).any()
-    sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete)
+    sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete,
+                  exact=None)
     plans = []
     for s in schemes:  # only the passes that fill term j's statistic
         plan = build_statistics(sim, scheme=s, statistic=statistic)
