@@ -418,8 +418,8 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     sums = np.zeros(p + 1)
     values = prep.matrices if prep.exact is None else prep.exact  # float64 either way
     for block in iter_dyad_rows(prep, values):
-        ok = ~np.isnan(block).any(axis=1)
-        block = block[ok]
+        if not prep.complete:  # complete data: every dyad of the set is kept
+            block = block[~np.isnan(block).any(axis=1)]
         if block.shape[0] == 0:
             continue
         n_obs += block.shape[0]
@@ -435,8 +435,9 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
     ymean = sums[-1] / n_obs
     tss = 0.0
-    for block in iter_dyad_rows(prep, values):
-        ok = ~np.isnan(block).any(axis=1)
+    # complete data: the response alone (the same values, summed in the same order)
+    for block in iter_dyad_rows(prep, values[-1:] if prep.complete else values):
+        ok = ~np.isnan(block).any(axis=1) if not prep.complete else slice(None)
         tss += float(((block[ok, -1] - ymean) ** 2).sum())
     if tss <= 0.0:
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set")
