@@ -563,11 +563,15 @@ class LazyBlock:
         import h5py
 
         order = np.argsort(rows, kind="stable")
+        wanted = rows[order]  # increasing, as h5py's selections need
         with h5py.File(self._h5[0], "r") as fh:
             ds = fh[self._h5[1]]
-            lo, hi = int(rows.min()), int(rows.max()) + 1
-            span = np.asarray(ds[lo:hi])
-        out[order] = span[rows[order] - lo]
+            lo, hi = int(wanted[0]), int(wanted[-1]) + 1
+            if hi - lo == wanted.shape[0]:
+                block = np.asarray(ds[lo:hi])  # consecutive rows: one slice
+            else:
+                block = np.asarray(ds[wanted.tolist()])  # only the rows asked for
+        out[order] = block
         return out
 
 
