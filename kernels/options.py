@@ -42,6 +42,12 @@ FASTMATH = {"nsz", "arcp", "contract", "afn"}
 
 KERNEL_OPTIONS = dict(nogil=True, cache=True, fastmath=FASTMATH, error_model="numpy")
 
+#: Options of the setup's sums (``kernels.tsqr``: Householder norms and dot products over a
+#: block of dyads): ``reassoc`` as well, so the sums run in vector registers. They run once per plan over one fixed order of rows and blocks, never
+#: per chunk, so a plan stays the same for any chunk size or number of jobs; only the
+#: compiled code (the CPU's vector width) decides the order.
+SETUP_OPTIONS = dict(KERNEL_OPTIONS, fastmath=FASTMATH | {"reassoc"})
+
 #: Relative pivot every fit from Gram matrices needs (module docstring).
 FIT_PIVOT = 1e-5
 #: The same rule on sums of squares, as the kernels test it: pivot^2 > FIT_PIVOT_SQUARED *

@@ -411,7 +411,8 @@ def _test(prep, ystar, j, schemes, statistic, include_ols, batch, exact, ident, 
     if absorbed:
         ystar = ystar.copy()
         centre_waves(replace(prep, matrices=(ystar,)))
-    sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete)
+    sim = replace(prep, matrices=prep.matrices[:prep.k] + (ystar,), complete=complete,
+                  exact=None)
     plans = []
     for s in schemes:  # only the passes that fill term j's statistic
         plan = build_statistics(sim, scheme=s, statistic=statistic, absorbed=absorbed)

@@ -76,6 +76,8 @@ def _progress(progress: Optional[bool]):
 _STOP_HELP = ("Sequential stopping: none, besag-clifford or gandy (overrides the study "
               "file).")
 _STOP_H_HELP = "besag-clifford: exceedances h that end a term (default 10)."
+_STORAGE_HELP = ("Layers in float64 or float32 (overrides the file's [test] storage); float32 "
+                 "halves memory and traffic, sums stay float64.")
 _CI_HELP = ("Level of the coefficient intervals, e.g. 0.9 (overrides the file; 0: none). "
             "Intervals invert the scheme's own test (dsp, freedman-lane).")
 _STOP_RISK_HELP = ("gandy: bound on the chance of a decision at alpha other than an "
@@ -107,9 +109,10 @@ def run(
     stop_exceedances: Optional[int] = typer.Option(None, help=_STOP_H_HELP),
     stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
     ci: Optional[float] = typer.Option(None, help=_CI_HELP),
+    storage: Optional[str] = typer.Option(None, help=_STORAGE_HELP),
 ) -> None:
     """Run a study and print its table (and keep a run file with --out)."""
-    st = load_study(study)
+    st = load_study(study, storage=storage)
     target = out if out is not None else st.output
     if target is not None and Path(target).exists():
         raise RunFileError(f"{target}: run file exists; resume it or add permutations with "
@@ -143,6 +146,8 @@ def extend(
                                        "planned permutation of a stopped run."),
     stop_exceedances: Optional[int] = typer.Option(None, help=_STOP_H_HELP),
     stop_risk: Optional[float] = typer.Option(None, help=_STOP_RISK_HELP),
+    storage: Optional[str] = typer.Option(None, help="float64 or float32 (default: the run "
+                                          "file's; another one is refused)."),
 ) -> None:
     """Finish the missing chunks of a run, then add permutations up to --permutations."""
     hdr = store.read_header(run_file)
@@ -162,7 +167,8 @@ def extend(
         raise InputError(f"--permutations: the run already has {hdr.permutations}; ask for at "
                          "least that many")
     seed = hdr.identity.get("seed")
-    st = load_study(study_path)
+    st = load_study(study_path, storage=storage if storage is not None
+                    else hdr.identity.get("storage", "float64"))
     res = st.run(permutations=total, seed=None if seed is None else int(seed), jobs=jobs,
                  out=run_file, progress=_progress(progress), chunk_size=hdr.chunk_size,
                  backend=backend, scheduler=scheduler, stop=stop,
@@ -218,9 +224,10 @@ def plan(
 
 
 @app.command()
-def check(study: Path = typer.Argument(..., help="Study file (TOML).")) -> None:
+def check(study: Path = typer.Argument(..., help="Study file (TOML)."),
+          storage: Optional[str] = typer.Option(None, help=_STORAGE_HELP)) -> None:
     """Validate a study's inputs and describe what was read."""
-    typer.echo(describe_study(study).text())
+    typer.echo(describe_study(study, storage=storage).text())
 
 
 @app.command()

@@ -92,6 +92,7 @@ class Study(StudyInputs):
             shard=shard,
             provenance={"study_text": self.text, "study_path": str(self.path)},
             stop=rule,
+            storage=t["storage"],
         )
         if self.layers_in_place:
             # the run may standardise the layers in place (even a failed one, part way):
@@ -106,7 +107,8 @@ class Study(StudyInputs):
                             ci=t["ci"] if ci is None else check_ci(ci), **common)
 
 
-def load_study(path: str | Path) -> Study:
+def load_study(path: str | Path, *, storage: str | None = None) -> Study:
     """Read, validate and load a study file (see ``dyadperm.inputs.study_file.read_study``
-    for what is checked and the errors raised)."""
-    return read_study(path, cls=Study)
+    for what is checked and the errors raised). ``storage`` ("float64" or "float32")
+    overrides the file's ``[test] storage``: the layers the networks are loaded into."""
+    return read_study(path, cls=Study, storage=storage)

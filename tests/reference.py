@@ -39,6 +39,30 @@ SCHEMES = ("y", "dsp", "freedman-lane")
 
 
 # --- kernel twin --------------------------------------------------------------------------
+
+def fold_rows_ref(layers, mask, col_start, col_stop, intercept, skip_nan):
+    """R factor of D = [1, z_1 .. z_L] (without the 1 unless ``intercept``) over the cells
+    (r, j), col_start[r] <= j < col_stop[r], where ``mask`` holds (and, with ``skip_nan``,
+    no layer is NaN): one ``np.linalg.qr`` of the whole D, rows in row-major order. Rows
+    of R are made to have a nonnegative diagonal (R is unique up to those signs); also
+    returns the number of dyads."""
+    n, m = mask.shape
+    cols = np.arange(m)
+    inside = mask & (cols[None, :] >= col_start[:, None]) & (cols[None, :] < col_stop[:, None])
+    Z = np.stack([np.asarray(a, dtype=np.float64) for a in layers], axis=-1)[inside]
+    if skip_nan:
+        Z = Z[~np.isnan(Z).any(axis=1)]
+    D = np.column_stack([np.ones(Z.shape[0]), Z]) if intercept else Z
+    p = D.shape[1]
+    R = np.linalg.qr(np.vstack([D, np.zeros((p, p))]), mode="r")[:p]
+    return sign_rows(R), Z.shape[0]
+
+
+def sign_rows(R: np.ndarray) -> np.ndarray:
+    """R with each row's sign flipped so its diagonal is nonnegative."""
+    s = np.where(np.diag(R) < 0, -1.0, 1.0)
+    return R * s[:, None]
+
 def gather_cross_ref(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col_stop,
                      out=None):
     """Twin of ``kernels.gather.gather_cross``.

@@ -121,7 +121,7 @@ def test_load_full_study(folder):
                               "seed": 7, "alpha": 0.05, "exact": "auto", "groups": "district",
                               "dyads": "within", "jobs": None, "chunk_size": None,
                               "stop": "none", "stop_exceedances": None, "stop_risk": None,
-                              "ci": 0.95}
+                              "ci": 0.95, "storage": "float64"}
     assert s.spec["study"] == {"title": "Water between farms", "nodes": "farms.csv",
                                "id_column": "farm", "col_nodes": None, "col_id_column": None,
                                "two_mode": False, "directed": None, "inside_folder": False}
@@ -232,7 +232,7 @@ def test_two_mode_flag_without_column_table(folder):
     ({"test": "permutaions = 10"},
      r"^demo\.toml \[test\] permutaions: unknown key; allowed keys: kind, model, scheme, "
      r"statistic, method, permutations, seed, alpha, exact, groups, dyads, jobs, chunk_size, "
-     r"stop, stop_exceedances, stop_risk, ci$"),
+     r"stop, stop_exceedances, stop_risk, ci, storage$"),
     ({"study": BASE["study"] + '\ncolour = "red"'},
      r"demo\.toml \[study\] colour: unknown key; allowed keys: title, nodes, id_column"),
     ({"response": 'file = "water.csv"\nweight = "w"'},

@@ -81,9 +81,10 @@ class StudySummary:
         return "\n".join(lines)
 
 
-def describe_study(path: str | Path) -> StudySummary:
-    """Load and validate a study file, and summarise its inputs (raises InputError)."""
-    st = read_study(path)
+def describe_study(path: str | Path, *, storage: str | None = None) -> StudySummary:
+    """Load and validate a study file, and summarise its inputs (raises InputError);
+    ``storage`` overrides the file's (the layers the dense route would hold)."""
+    st = read_study(path, storage=storage)
     if isinstance(st.response, SparseNetwork):
         return _describe_sparse(st)
     route = route_lines(st)
@@ -102,7 +103,7 @@ def describe_study(path: str | Path) -> StudySummary:
     complete = 0
     sums = np.zeros((len(names) + 1, len(names) + 1))
     r_acc = np.zeros((0, prep.k + 1))
-    for block in iter_dyad_rows(prep, prep.matrices):
+    for block in iter_dyad_rows(prep, prep.matrices if prep.exact is None else prep.exact):
         ok = ~np.isnan(block).any(axis=1)
         complete += int(ok.sum())
         z = np.concatenate([np.ones((int(ok.sum()), 1)), block[ok]], axis=1)
@@ -177,7 +178,8 @@ def route_lines(st) -> tuple[str, ...]:
     if route.sparse:
         return (f"route: sparse (edge lists and node attributes, no n x n array): {can}; the "
                 f"dense route would need {need} of memory{have}",)
-    lines = [f"route: dense (n x n arrays, {need} of memory{have}): {can}"]
+    lines = [f"route: dense (n x n arrays, {test['storage']} layers, {need} of memory{have}): "
+             f"{can}"]
     if route.blocker is not None:
         lines.append(f"  not the sparse route: {route.blocker}")
     return tuple(lines)

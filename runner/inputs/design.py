@@ -67,6 +67,10 @@ class Prepared:
     waves: int = 1
     #: leading predictors that are fixed terms, never tested (wave intercepts)
     fixed: int = 0
+    #: float64 values of ``matrices`` held in float32 (a study's float32 layers): per
+    #: matrix, rows read again from its file (``Dyadic.source``) or the matrix itself;
+    #: None when every matrix is float64. The observed fit reads these.
+    exact: tuple | None = None
 
     @property
     def two_mode(self) -> bool:
@@ -194,7 +198,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
             # reads dyad values through `mask` (layers blank the cells off it)
             internal.append(mat)
             continue
-        a = np.array(mat, dtype=np.float64, copy=True) if identity else mat[np.ix_(row_order, col_order)]
+        a = np.array(mat, copy=True) if identity else mat[np.ix_(row_order, col_order)]
         a[~mask] = np.nan
         if not is_directed:
             # dyad values live in the upper triangle; mirror so relabelled reads see them
@@ -204,9 +208,22 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
     complete = excluded is None and not any(_any_rows(np.isnan, a, mask) for a in internal)
     n_dyads = int(mask.sum())
     labels_out = tuple(labels)
+    exact = None
+    if any(a.dtype != np.float64 for a in internal):
+        exact = tuple(_exact_values(a, mat, dy, row_order, col_order)
+                      for a, mat, (_, dy) in zip(internal, mats, dyadics))
     return Prepared(names, resp.name, tuple(internal), mask, blocks, col_start, col_stop,
                     row_order, col_order, labels_out, tuple(col_labels) if two_mode else None,
-                    is_directed, complete, n_dyads)
+                    is_directed, complete, n_dyads, exact)
+
+
+def _exact_values(a: np.ndarray, mat: np.ndarray, dy: Dyadic | None, row_order: np.ndarray,
+                  col_order: np.ndarray) -> Any:
+    """The float64 values of internal matrix ``a`` (made from input ``mat``): ``a`` itself
+    when float64, else the rows its Dyadic's ``source`` reads, put in the internal order."""
+    if a.dtype == np.float64 or dy is None or dy.source is None or mat is not dy.values:
+        return a
+    return dy.source if a is mat else dy.source.reordered(row_order, col_order)
 
 
 def decide_directed(directed: bool | None, asymmetric: Sequence[str],
@@ -265,7 +282,9 @@ def _align(name: str, obj: Any, resp: Dyadic) -> Dyadic:
     rows = _reorder(name, dy.labels, resp.labels, "row" if resp.two_mode else "node")
     cols = _reorder(name, dy.col_node_labels, resp.col_node_labels, "column")
     ex = None if dy.excluded is None else dy.excluded[np.ix_(rows, cols)]
-    return Dyadic(dy.values[np.ix_(rows, cols)], resp.labels, resp.col_labels, dy.directed, ex, name)
+    src = None if dy.source is None else dy.source.reordered(rows, cols)
+    return Dyadic(dy.values[np.ix_(rows, cols)], resp.labels, resp.col_labels, dy.directed, ex, name,
+                  src)
 
 
 def _reorder(name: str, have: Sequence[str], want: Sequence[str], what: str) -> np.ndarray:
@@ -412,9 +431,10 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     r_acc = np.zeros((0, p + 1))
     n_obs = 0
     sums = np.zeros(p + 1)
-    for block in iter_dyad_rows(prep, prep.matrices):
-        ok = ~np.isnan(block).any(axis=1)
-        block = block[ok]
+    values = prep.matrices if prep.exact is None else prep.exact  # float64 either way
+    for block in iter_dyad_rows(prep, values):
+        if not prep.complete:  # complete data: every dyad of the set is kept
+            block = block[~np.isnan(block).any(axis=1)]
         if block.shape[0] == 0:
             continue
         n_obs += block.shape[0]
@@ -430,8 +450,9 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
     ymean = sums[-1] / n_obs
     tss = 0.0
-    for block in iter_dyad_rows(prep, prep.matrices):
-        ok = ~np.isnan(block).any(axis=1)
+    # complete data: the response alone (the same values, summed in the same order)
+    for block in iter_dyad_rows(prep, values[-1:] if prep.complete else values):
+        ok = ~np.isnan(block).any(axis=1) if not prep.complete else slice(None)
         tss += float(((block[ok, -1] - ymean) ** 2).sum())
     if tss <= 0.0:
         raise InputError(f"response {prep.response_name!r} has no variation over the dyad set")

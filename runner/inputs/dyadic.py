@@ -41,6 +41,12 @@ class Dyadic:
         Structurally excluded dyads (fixed, never enter the dyad set).
     name : str or None
         Name used in messages and result tables.
+    source : object or None
+        Where the float64 values can be read again, a block of rows at a time
+        (``source[i0:i1]``, e.g. ``io.RowReader``), when ``values`` holds them in float32:
+        a study file's layers loaded with ``storage = "float32"``. The observed fit reads
+        the source, so it is not rounded to the layers' precision. Only then may
+        ``values`` be float32.
     """
 
     values: np.ndarray
@@ -49,6 +55,7 @@ class Dyadic:
     directed: bool | None = None
     excluded: np.ndarray | None = None
     name: str | None = None
+    source: Any = None
 
     def __post_init__(self) -> None:
         what = self.name or "network"
@@ -56,8 +63,11 @@ class Dyadic:
         if not isinstance(v, np.ndarray) or v.ndim != 2:
             raise InputError(f"{what} must be a 2-d array; got {type(v).__name__} "
                              f"with shape {getattr(v, 'shape', '?')}")
-        if v.dtype != np.float64:
+        if v.dtype != np.float64 and not (v.dtype == np.float32 and self.source is not None):
             raise InputError(f"{what} must hold float64 values; got dtype {v.dtype}")
+        if self.source is not None and tuple(self.source.shape) != v.shape:
+            raise InputError(f"{what}: its source has shape {tuple(self.source.shape)}; the "
+                             f"values have {v.shape}")
         n, m = v.shape
         if len(self.labels) != n:
             raise InputError(f"{what} has {n} rows but {len(self.labels)} row labels")
@@ -265,7 +275,8 @@ def as_dyadic(obj: Any, *, name: str, labels: Sequence[str] | None = None,
         return frame_dyadic(obj, name=name, two_mode=col_labels is not None)
     if isinstance(obj, Dyadic):
         if obj.name is None:
-            return Dyadic(obj.values, obj.labels, obj.col_labels, obj.directed, obj.excluded, name)
+            return Dyadic(obj.values, obj.labels, obj.col_labels, obj.directed, obj.excluded, name,
+                          obj.source)
         return obj
     directed = None
     try:

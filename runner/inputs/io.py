@@ -43,8 +43,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["NodeTable", "RawNetwork", "read_node_table", "read_network", "align",
-           "collect_labels", "split_h5_path", "FORMATS"]
+__all__ = ["NodeTable", "RawNetwork", "RowReader", "read_node_table", "read_network", "align",
+           "float64_rows", "collect_labels", "split_h5_path", "FORMATS"]
 
 #: Accepted values of ``fmt`` in :func:`read_network`.
 FORMATS = ("auto", "edges", "matrix")
@@ -519,6 +519,8 @@ class LazyBlock:
         for r0, block in self.row_blocks():
             if cols is not None:
                 block = block[:, cols]
+            if out.dtype != np.float64:
+                block = self._narrowed(r0, block, out.dtype)
             if dest is None:
                 out[r0:r0 + block.shape[0]] = block
             else:
@@ -528,6 +530,97 @@ class LazyBlock:
         out = np.empty(self.shape)
         self.copy_to(out)
         return out
+
+    def _narrowed(self, r0: int, block: np.ndarray, dtype: np.dtype) -> np.ndarray:
+        with np.errstate(over="ignore"):  # a value beyond float32 is named just below
+            narrow = block.astype(dtype)
+        _check_narrowed(block, narrow, self.shown, r0)
+        return narrow
+
+    def read_rows(self, rows: np.ndarray) -> np.ndarray:
+        """float64 rows ``rows`` (block positions, any order) read again from the file."""
+        n, m = self.shape
+        out = np.empty((rows.shape[0], m))
+        if rows.shape[0] == 0:
+            return out
+        if self._npy_offset is not None:
+            size = m * self.dtype.itemsize
+            with open(self.shown, "rb") as fh:
+                k = 0
+                while k < rows.shape[0]:
+                    # a run of consecutive rows is one read
+                    e = k + 1
+                    while e < rows.shape[0] and rows[e] == rows[e - 1] + 1:
+                        e += 1
+                    buf = np.empty((e - k, m), dtype=self.dtype)
+                    fh.seek(self._npy_offset + int(rows[k]) * size)
+                    if fh.readinto(memoryview(buf).cast("B")) != buf.nbytes:
+                        raise InputError(f"{self.shown}: the file ends before its "
+                                         f"{n} x {m} block does")
+                    out[k:e] = buf
+                    k = e
+            return out
+        import h5py
+
+        order = np.argsort(rows, kind="stable")
+        wanted = rows[order]  # increasing, as h5py's selections need
+        with h5py.File(self._h5[0], "r") as fh:
+            ds = fh[self._h5[1]]
+            lo, hi = int(wanted[0]), int(wanted[-1]) + 1
+            if hi - lo == wanted.shape[0]:
+                block = np.asarray(ds[lo:hi])  # consecutive rows: one slice
+            else:
+                block = np.asarray(ds[wanted.tolist()])  # only the rows asked for
+        out[order] = block
+        return out
+
+
+class RowReader:
+    """The float64 values of a dense network file as placed on a node order, read from
+    the file again, a block of rows at a time: ``reader[i0:i1]`` is rows i0 .. i1 - 1 of
+    the placed network, (i1 - i0, m) float64.
+
+    A study whose layers are stored in float32 (``storage = "float32"``) keeps no float64
+    copy of its networks; its observed fit reads the files again through these, so the
+    classical fit is not rounded to the layers' precision. ``rows``/``cols``: placed
+    position i, j holds the file's row ``rows[i]``, column ``cols[j]`` (None: the same).
+    """
+
+    def __init__(self, values: "LazyBlock | np.ndarray", rows: np.ndarray | None = None,
+                 cols: np.ndarray | None = None) -> None:
+        self.values = values
+        n, m = values.shape
+        self.rows = np.arange(n, dtype=np.int64) if rows is None else np.asarray(rows, np.int64)
+        self.cols = None if cols is None else np.asarray(cols, np.int64)
+        self.shape = (self.rows.shape[0], m if cols is None else self.cols.shape[0])
+        self.dtype = np.dtype(np.float64)
+
+    def reordered(self, rows: np.ndarray, cols: np.ndarray) -> "RowReader":
+        """The reader of the placed network put in another order: position i, j of the new
+        one is position rows[i], cols[j] of this one."""
+        cols_now = np.arange(self.shape[1], dtype=np.int64) if self.cols is None else self.cols
+        return RowReader(self.values, self.rows[rows], cols_now[cols])
+
+    def __getitem__(self, key: slice) -> np.ndarray:
+        if not isinstance(key, slice) or key.step not in (None, 1):
+            raise TypeError("a RowReader reads contiguous row slices only")
+        i0, i1, _ = key.indices(self.shape[0])
+        rows = self.rows[i0:i1]
+        if isinstance(self.values, LazyBlock):
+            block = self.values.read_rows(rows)
+        else:
+            block = np.asarray(self.values[rows], dtype=np.float64)
+        return block if self.cols is None else block[:, self.cols]
+
+
+def _check_narrowed(block: np.ndarray, narrow: np.ndarray, shown: str, r0: int = 0) -> None:
+    """InputError for a finite value of ``block`` that its narrower copy ``narrow`` (float32
+    layers) cannot hold: it would become infinite."""
+    if np.isinf(narrow).any():
+        i, j = np.argwhere(np.isinf(narrow) & np.isfinite(block))[0]
+        raise InputError(f"{shown}: value {float(block[i, j])!r} at row {r0 + i}, column {j} "
+                         f"(0-based) is beyond the range of storage {narrow.dtype.name}; use "
+                         "storage = \"float64\"")
 
 
 def _check_block_header(shown: str, shape: tuple[int, ...], dtype: np.dtype) -> None:
@@ -741,6 +834,25 @@ def align(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None
     return values, notes
 
 
+def float64_rows(raw: RawNetwork, row_ids: Sequence[str], col_ids: Sequence[str] | None = None,
+                 *, block_ids: tuple[Sequence[str], Sequence[str] | None] | None = None
+                 ) -> RowReader:
+    """A :class:`RowReader` of an unlabelled dense block (.npy, HDF5) placed as
+    ``align(raw, row_ids, col_ids, block_ids=block_ids)`` places it (call ``align``
+    first: it checks the labels and the shape)."""
+    if raw.is_edges or raw.row_labels is not None:
+        raise ValueError("float64_rows reads unlabelled dense blocks (.npy, HDF5) only")
+    if block_ids is None:
+        return RowReader(raw.values)
+    rows = list(row_ids)
+    cols = list(col_ids) if col_ids is not None else rows
+    br = list(block_ids[0])
+    bc = list(block_ids[1]) if col_ids is not None else br
+    none = ""
+    return RowReader(raw.values, _lookup(rows, _index_of(br), str, raw.name, none),
+                     _lookup(cols, _index_of(bc), str, raw.name, none))
+
+
 def _lookup(labels: Sequence[str], index: dict[str, int], place, shown: str,
             from_text: str) -> np.ndarray:
     """Positions of ``labels`` in the node order; ``place(k)`` names label k's place."""
@@ -817,13 +929,19 @@ def _align_dense(raw, rows, cols, two_mode, directed, shown, row_from, col_from,
             if isinstance(values, LazyBlock):
                 values.copy_to(out, ri, ci)
             else:
-                out[...] = values[np.ix_(ri, ci)]
+                with np.errstate(over="ignore"):  # a value beyond float32 is named below
+                    out[...] = values[np.ix_(ri, ci)]
+                if out.dtype != np.float64:
+                    _check_narrowed(values[np.ix_(ri, ci)], out, shown)
         elif out is None:
             out = values.copy()
         elif isinstance(values, LazyBlock):
             values.copy_to(out)
         else:
-            out[...] = values
+            with np.errstate(over="ignore"):  # a value beyond float32 is named just below
+                out[...] = values
+            if out.dtype != np.float64:
+                _check_narrowed(values, out, shown)
         row_names = [f"row {r}" for r in ri]
         col_names = [f"column {c}" for c in ci]
     else:

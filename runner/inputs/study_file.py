@@ -49,6 +49,8 @@ Schema (every section and key; unknown ones are an error that lists the allowed 
     stop_exceedances = 10     # besag-clifford only: h, exceedances that end a term
     stop_risk = 0.001         # gandy only: bound on the chance of a different decision
     ci = 0.95                 # regression only: level of the coefficient intervals (false: none)
+    storage = "float64"       # float64 | float32: the engine's layers (sums stay float64;
+                              # float32 halves memory and traffic; not for model = "logistic")
 
     [output]
     file = "water_run.h5"     # optional run file, relative to the study file
@@ -73,12 +75,12 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
-from ..settings import DEFAULT_EXCEEDANCES, DEFAULT_RISK, STOP_RULES
+from ..settings import DEFAULT_EXCEEDANCES, DEFAULT_RISK, STOP_RULES, STORAGE
 from .dyadic import Dyadic, NodeDerived, Reverse, gap, pair_sum, receiver, reverse, same, sender
 from . import memory
 from .sparse import SparseNetwork
-from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, read_network, \
-    read_node_table, split_h5_path
+from .io import FORMATS, NodeTable, RawNetwork, align, collect_labels, float64_rows, \
+    read_network, read_node_table, split_h5_path
 from .labels import sorted_labels
 from .waves import Waves
 
@@ -96,7 +98,7 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
                   "pair_sum", "reverse", "lag"),
     "test": ("kind", "model", "scheme", "statistic", "method", "permutations", "seed", "alpha",
              "exact", "groups", "dyads", "jobs", "chunk_size", "stop", "stop_exceedances",
-             "stop_risk", "ci"),
+             "stop_risk", "ci", "storage"),
     "output": ("file",),
 }
 _DERIVED = {"same": same, "gap": gap, "sender": sender, "receiver": receiver,
@@ -110,6 +112,7 @@ _CHOICES = {
     "statistic": ("t", "coef", "score"),
     "method": ("pearson", "spearman"),
     "dyads": ("within", "all"),
+    "storage": STORAGE,
 }
 _REGRESSION_ONLY = ("model", "scheme", "statistic")
 _DEFAULTS = {"kind": "regression", "model": "linear", "scheme": "dsp", "statistic": "t",
@@ -420,6 +423,10 @@ def _test_entry(te: dict, check: _Checker, n_predictors: int) -> dict:
                               "intervals), or false for none", ci)
         else:
             test["ci"] = float(ci)
+    test["storage"] = check.text(sec, te, "storage", choices=STORAGE, default="float64")
+    if test["storage"] != "float64" and test["model"] == "logistic":
+        raise check.error(sec, "storage", 'must be "float64" for model = "logistic"',
+                          test["storage"])
     return test
 
 
@@ -563,13 +570,16 @@ class StudyInputs:
 
 # --------------------------------------------------------------------------- loading
 
-def read_study(path: str | Path, cls: type = StudyInputs) -> Any:
+def read_study(path: str | Path, cls: type = StudyInputs, *, storage: str | None = None) -> Any:
     """Read, validate and load a study file into ``cls`` (a StudyInputs class).
 
     Parameters
     ----------
     path : str or Path
         The TOML study file. Paths inside it are relative to its folder.
+    storage : {"float64", "float32"}, optional
+        Overrides ``[test] storage`` (the command line's ``--storage``); it decides how
+        ``.npy``/HDF5 networks are loaded, so it is given here, not to ``run``.
 
     Returns
     -------
@@ -599,6 +609,13 @@ def read_study(path: str | Path, cls: type = StudyInputs) -> Any:
         raise InputError(f"{shown}: not valid TOML: {exc}") from None
     check = _Checker(shown)
     spec = _validate(doc, check)
+    if storage is not None:
+        if storage not in STORAGE:
+            raise InputError(f"storage must be one of {', '.join(STORAGE)}; got {storage!r}")
+        if storage != "float64" and spec["test"]["model"] == "logistic":
+            raise InputError(f"storage {storage!r}: {shown} fits model = \"logistic\", which "
+                             "needs float64")
+        spec["test"]["storage"] = storage
     return _Loader(path, check, spec, cls).load(text)
 
 
@@ -688,7 +705,10 @@ class _Loader:
                                   row_ids_source=sd["nodes"], col_ids_source=sd["col_nodes"],
                                   out=slots.get(name), block_ids=block_ids)
             self.notes.extend(notes)
-            networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name)
+            # float32 layers: the observed fit reads the float64 values from the file again
+            exact = (None if values.dtype == np.float64
+                     else float64_rows(raw, rows, cols, block_ids=block_ids))
+            networks[name] = Dyadic(values, rows, cols, sd["directed"], None, name, exact)
 
         for name, parts in grouped.items():
             networks[name] = self.assemble_groups(name, parts, nodes, rows)
@@ -751,11 +771,13 @@ class _Loader:
 
     def layer_slots(self, layout: list[list[str]], rows: tuple[str, ...],
                     cols: tuple[str, ...] | None) -> dict[str, np.ndarray]:
-        """One (n, m) view per network into the layer arrays of ``layout``."""
+        """One (n, m) view per network into the layer arrays of ``layout``, in the
+        ``[test] storage`` dtype (float32 layers keep no float64 copy: the networks'
+        ``Dyadic.source`` reads the files again for the observed fit)."""
         n, m = len(rows), len(cols) if cols is not None else len(rows)
         slots = {}
         for names in layout:
-            base = np.empty((n, m, len(names)))
+            base = np.empty((n, m, len(names)), dtype=self.spec["test"]["storage"])
             for pos, name in enumerate(names):
                 slots[name] = base[:, :, pos]
         return slots
@@ -844,7 +866,8 @@ class _Loader:
         if test["groups"] is not None:
             built += k + 1  # reordered copies
         per_term = 3 if test["kind"] == "regression" and test["model"] == "logistic" else 1
-        need = memory.dense_bytes(n, m, arrays=built, layers=per_term * (k + 1))
+        need = memory.dense_bytes(n, m, arrays=built, layers=per_term * (k + 1),
+                                  itemsize=np.dtype(test["storage"]).itemsize)
         blocker = self.sparse_blocker(entries, raws, grouped, nodes, col_nodes)
         fits, avail = memory.fits(need)
         if blocker is None and (8.0 * n * m * (k + 1) > SPARSE_ABOVE or not fits):

@@ -337,7 +337,9 @@ def missing_chunks(done: np.ndarray, shard: str = "") -> list[int]:
 def check_same_run(path: Path, hdr: RunHeader, identity: dict) -> None:
     """RunFileError naming the first setting or input where a file differs from a run."""
     have = hdr.identity
-    for key in sorted(set(have) | set(identity)):
+    # settings first (storage, scheme, ...), then the inputs: a setting that differs also
+    # changes what the inputs are stored as, and is the thing to name
+    for key in sorted(set(have) | set(identity), key=lambda k: (k.startswith("fingerprint:"), k)):
         if have.get(key) != identity.get(key):
             what = key.replace("fingerprint:", "input ")
             raise RunFileError(f"{path}: belongs to another run: {what} differs "

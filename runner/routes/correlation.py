@@ -76,7 +76,7 @@ def _ranked(prep: Prepared) -> Prepared:
             lower = np.tril_indices(n, -1)
             r[lower] = r.T[lower]
         mats.append(r)
-    return replace(prep, matrices=tuple(mats))
+    return replace(prep, matrices=tuple(mats), exact=None)
 
 
 def pair_label(a: str, b: str) -> str:
@@ -251,7 +251,7 @@ def layers_plan(networks: Any, *, method: str = "pearson", storage: str = "float
     pair_stats, n_pair = [], []
     for i, j in pairs:
         pp = replace(prep, names=(names[j],), response_name=names[i],
-                     matrices=(mats[j], mats[i]))
+                     matrices=(mats[j], mats[i]), exact=None)
         pair_stats.append(build_correlation_statistics(pp, method=method, storage=storage))
         ok = prep.mask & ~np.isnan(mats[i]) & ~np.isnan(mats[j])
         n_pair.append(prep.n_dyads if prep.complete else int(np.count_nonzero(ok)))

@@ -25,15 +25,18 @@ from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
+from numba import types
+from numba.typed import List
 from scipy.stats import rankdata
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs import memory as _memory
-from ..inputs.design import (Prepared, check_design, check_response, dyads_phrase, fold_rows,
-                             iter_dyad_rows, standardise)
+from ..inputs.design import (STREAM_DYADS, Prepared, check_design, check_response,
+                             dyads_phrase, iter_dyad_rows, standardise)
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram
+from ..kernels.tsqr import fold_rows
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, correlation_stats, fill_gram,
                              regression_stats)
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
@@ -43,6 +46,9 @@ from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dens
 # The shared relabelling pass and a plan's own statistics add the same products in the same
 # order; they must agree on the first relabelling's statistic to this relative tolerance.
 SHARED_RTOL = 1e-9
+# Dyads of a row folded into its QR factor at once (``kernels.tsqr.fold_rows``): the block
+# (5 x 256 float64 = 10 KB) stays in L1.
+QR_WIDTH = 256
 
 
 @dataclass(frozen=True, eq=False)
@@ -322,25 +328,44 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
                 transforms, np.arange(k, dtype=np.int64), scale)
 
 
+def qr_layers(prep: Prepared, stack: np.ndarray) -> tuple[np.ndarray, int]:
+    """The R factor (L, L) of the layers of ``stack`` (n, m, L) over the dyad set (R'R =
+    Z'Z), by one streaming pass of ``kernels.tsqr.fold_rows`` over blocks of rows (float32
+    layers are read as they are, in float64 arithmetic), and the number of dyads."""
+    n_layers = stack.shape[2]
+    out = np.zeros((n_layers, n_layers))
+    count = np.zeros(1, dtype=np.int64)
+    bt = np.empty((n_layers, QR_WIDTH))
+    keep = np.empty(QR_WIDTH, dtype=bool)
+    fac = np.empty((n_layers, n_layers))
+    kind = types.Array(types.float32 if stack.dtype == np.float32 else types.float64, 2, "A")
+    step = max(1, STREAM_DYADS // max(stack.shape[1], 1))
+    for i0 in range(0, stack.shape[0], step):
+        layers = List.empty_list(kind)
+        for c in range(n_layers):
+            layers.append(stack[i0:i0 + step, :, c])
+        fold_rows(layers, prep.mask[i0:i0 + step], prep.col_start[i0:i0 + step],
+                  prep.col_stop[i0:i0 + step], bt, keep, fac, out, count, False, False)
+    return out, int(count[0])
+
+
 def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float) -> np.ndarray:
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
     with (old layers) = (new layers) @ S. Two passes of a streaming QR (the second
     restores the orthogonality the first loses to rounding on ill-conditioned layers).
 
-    The layers are the standardised predictors (then the response): centred, so the
-    first pass's R is a factor of their centred cross products, and the design (and the
-    response's residual on it) must pass the one rule at ``pivot`` before it is inverted.
+    Each pass folds the layers (``qr_layers``). The layers are the standardised
+    predictors (then the response): centred, so the first pass's R is a factor of their
+    centred cross products, and the design (and the response's residual on it) must pass
+    the one rule at ``pivot`` before it is inverted.
     """
     n_layers = stack.shape[2]
     S = np.eye(n_layers)
     step = max(1, (1 << 20) // max(stack.shape[1], 1))
     for first in (True, False):
-        r = np.zeros((0, n_layers))
-        for i0 in range(0, stack.shape[0], step):
-            block = np.asarray(stack[i0:i0 + step][prep.mask[i0:i0 + step]], dtype=np.float64)
-            r = fold_rows(r, block)
-        if r.shape[0] < n_layers:
-            raise InputError(f"too few dyads for the model: {r.shape[0]} dyads for "
+        r, count = qr_layers(prep, stack)
+        if count < n_layers:
+            raise InputError(f"too few dyads for the model: {count} dyads for "
                              f"{n_layers} layers")
         if first:
             k = prep.k

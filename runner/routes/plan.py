@@ -102,12 +102,23 @@ def chunk_size_for(work: float, *, budget: float = CHUNK_WORK, least: int = MIN_
     return int(np.clip(budget // max(work, 1), least, most))
 
 
+# Bytes of an array hashed at once by ``fingerprint`` (a contiguous copy of that much at most).
+FINGERPRINT_BYTES = 8 << 20
+
+
 def fingerprint(arr: np.ndarray) -> str:
-    """SHA-256 of an array's dtype, shape and bytes."""
-    a = np.ascontiguousarray(arr)
+    """SHA-256 of an array's dtype, shape and bytes (in C order).
+
+    The bytes are fed to the hash in blocks along the first axis, each made contiguous on
+    its own, so a layer of a strided stack is never copied whole (the hash of the bytes in
+    pieces is the hash of all of them)."""
+    a = np.asarray(arr)
+    a = a.reshape(1) if a.ndim == 0 else a  # as np.ascontiguousarray has it
     h = hashlib.sha256()
     h.update(f"{a.dtype.str}{a.shape}".encode())
-    h.update(a.tobytes())
+    step = max(1, FINGERPRINT_BYTES // max(1, a[:1].nbytes))
+    for i0 in range(0, a.shape[0], step):
+        h.update(memoryview(np.ascontiguousarray(a[i0:i0 + step])))
     return h.hexdigest()
 
 

@@ -1,0 +1,139 @@
+"""Tall-skinny QR of layers over the dyad set: the setup of the dense linear route.
+
+Before any relabelling the dense linear route needs the R factor of D = [1, z_1 .. z_L]
+over the dyad set for the classical fit (the predictors and the response as given) and
+the one fit rule, and that of D = [z_1 .. z_L] for the orthonormal basis of the
+standardised layers the relabelling kernels read. ``fold_rows`` gets it in one streaming pass that reads every dyad once:
+
+- the dyads of each row, in blocks of up to ``bt.shape[1]``, are folded into the row's own
+  triangular factor by
+  Householder reflections whose upper part is the factor so far (a tall-skinny QR with
+  blocks of dyads as leaves: Demmel, Grigori, Hoemmen & Langou 2012, SIAM J. Sci. Comput.
+  34:A206-A239 [memory]); each row's factor is then folded into the running one in row
+  order. A row's factor depends on that row alone, so the result does not depend on how
+  the rows are split into calls (a study's files are read in blocks of rows, arrays in
+  memory in one call).
+
+Rounding: the Householder sums (squared norms, dot products over a block of dyads) are
+reassociated so they run in vector registers (``SETUP_OPTIONS``); they run once per plan,
+on one fixed order of rows and blocks, so a plan is the same for any chunk size or number
+of jobs.
+
+``layers`` is a numba typed List of 2-d float64 or float32 arrays (any strides, all of one
+type), each (rows, m): row r of every layer is row r of the call (``mask`` and the column
+ranges are given for the same rows). Dyads are the cells (r, j) with col_start[r] <= j <
+col_stop[r] where ``mask`` holds.
+"""
+
+import numpy as np
+from numba import njit
+
+from .options import KERNEL_OPTIONS, SETUP_OPTIONS
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _load_block(layers, r, j0, nb, intercept, bt):
+    """bt[:, w] = [1, z_1 .. z_L] (without the 1 unless ``intercept``) of cells
+    (r, j0 + w), w < nb, in float64.
+
+    bt : float64 (L + intercept, width), written in columns 0 .. nb - 1. (Inner loops run
+    over 1-d views with indices from 0, so they compile to vector loads and stores.)
+    """
+    first = 1 if intercept else 0
+    if intercept:
+        dst = bt[0]
+        for w in range(nb):
+            dst[w] = 1.0
+    for e in range(len(layers)):
+        dst = bt[e + first]
+        seg = layers[e][r, j0:j0 + nb]
+        for w in range(nb):
+            dst[w] = seg[w]
+
+
+@njit(**SETUP_OPTIONS)
+def _fold_block(bt, nb, fac):
+    """Fold the nb rows of bt' (bt is (p, width), one column per row) into the upper
+    triangular ``fac`` (p, p): afterwards fac' fac gains bt' bt. bt is overwritten with the
+    Householder vectors."""
+    p = fac.shape[0]
+    for c in range(p):
+        s = 0.0
+        for w in range(nb):
+            s += bt[c, w] * bt[c, w]
+        if s == 0.0:
+            continue
+        alpha = fac[c, c]
+        norm = np.sqrt(alpha * alpha + s)
+        beta = -norm if alpha >= 0.0 else norm
+        tau = (beta - alpha) / beta
+        scale = 1.0 / (alpha - beta)
+        for w in range(nb):
+            bt[c, w] *= scale  # v = [1; x / (alpha - beta)]
+        fac[c, c] = beta
+        for c2 in range(c + 1, p):
+            g = fac[c, c2]
+            for w in range(nb):
+                g += bt[c, w] * bt[c2, w]  # v' y
+            g *= tau
+            fac[c, c2] -= g
+            for w in range(nb):
+                bt[c2, w] -= g * bt[c, w]  # y - tau (v' y) v
+
+
+@njit(**KERNEL_OPTIONS)
+def fold_rows(layers, mask, col_start, col_stop, bt, keep, fac, out, count, intercept,
+              skip_nan):
+    """Fold the dyads of every row into the running R factor ``out``.
+
+    Parameters
+    ----------
+    layers : typed List of L float64 or float32 (rows, m) arrays, all of one type
+    mask : bool (rows, m)
+        The dyad set.
+    col_start, col_stop : int64 (rows,)
+        Columns of each row that may hold dyads.
+    bt : float64 (p, width); keep : bool (width,); fac : float64 (p, p)
+        Workspaces (width: dyads per block, at least p); p = L + 1 with ``intercept``,
+        else L.
+    out : float64 (p, p)
+        Upper triangular factor R of D = [1, z] (or z alone) over the dyads folded so far
+        (R'R = D'D), updated: each row's factor is folded in, in row order. Start from
+        zeros.
+    count : int64 (1,)
+        Dyads folded, added to.
+    intercept, skip_nan : bool
+        D has the column of ones first; leave out dyads where some layer is NaN (missing
+        data).
+    """
+    n_rows = mask.shape[0]
+    p = out.shape[0]
+    width = bt.shape[1]
+    for r in range(n_rows):
+        fac[:, :] = 0.0
+        j = col_start[r]
+        stop = col_stop[r]
+        while j < stop:
+            nb = min(width, stop - j)
+            _load_block(layers, r, j, nb, intercept, bt)
+            kept = 0
+            for w in range(nb):
+                ok = mask[r, j + w]
+                if skip_nan and ok:
+                    for c in range(p):
+                        if np.isnan(bt[c, w]):
+                            ok = False
+                keep[w] = ok
+                kept += ok
+            if kept < nb:
+                for c in range(p):
+                    for w in range(nb):
+                        bt[c, w] = bt[c, w] if keep[w] else 0.0
+            count[0] += kept
+            _fold_block(bt, nb, fac)
+            j += nb
+        # the row's factor, as p more rows of data, into the running factor
+        for c in range(p):
+            for w in range(p):
+                bt[c, w] = fac[w, c]
+        _fold_block(bt, p, out)
