@@ -214,7 +214,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
                       for a, mat, (_, dy) in zip(internal, mats, dyadics))
     return Prepared(names, resp.name, tuple(internal), mask, blocks, col_start, col_stop,
                     row_order, col_order, labels_out, tuple(col_labels) if two_mode else None,
-                    is_directed, complete, n_dyads, exact)
+                    is_directed, complete, n_dyads, exact=exact)
 
 
 def _exact_values(a: np.ndarray, mat: np.ndarray, dy: Dyadic | None, row_order: np.ndarray,
