@@ -19,7 +19,6 @@ and in x1. For each scheme either
 from __future__ import annotations
 
 import numpy as np
-import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 

@@ -11,7 +11,6 @@ run file's fingerprints.
 """
 
 import hashlib
-import sys
 
 import h5py
 import numpy as np
@@ -19,11 +18,11 @@ import pytest
 import statsmodels.api as sm
 
 import dyadperm as dp
-from dyadperm import cli
 from dyadperm.errors import InputError, RunFileError
 from dyadperm.inputs.io import RowReader, read_network
 from dyadperm.routes import linear as schemes
 from dyadperm.routes.plan import fingerprint
+from cli_run import run_cli as _cli
 
 N = 31
 SCHEMES = ("dsp", "y", "freedman-lane")
@@ -188,17 +187,6 @@ def test_run_file_records_storage_and_refuses_another(tmp_path, rng):
                                            r"\(file: float32, now: float64\)"):
         dp.load_study(tmp_path / "s.toml").run(out=out, permutations=60)
 
-
-def _cli(monkeypatch, capsys, *args) -> tuple[int, str, str]:
-    """The console entry point in this process: exit code, stdout, stderr."""
-    monkeypatch.setattr(sys, "argv", ["dyadperm", *map(str, args)])
-    code = 0
-    try:
-        cli.main()
-    except SystemExit as exc:
-        code = int(exc.code or 0)
-    out = capsys.readouterr()
-    return code, out.out, out.err
 
 
 def test_cli_storage_run_extend_check(tmp_path, rng, monkeypatch, capsys):

@@ -24,7 +24,6 @@ import pytest
 from reference import KERNEL_ATOL, KERNEL_RTOL, gather_cross_ref
 
 import dyadperm as dp
-from dyadperm.errors import InputError
 from dyadperm.kernels.gather import MAX_BLOCK, choose_tile, gather_cross
 
 # float32 storage against float64 (see the module docstring for where these come from)

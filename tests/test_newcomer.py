@@ -4,7 +4,6 @@ a short repr, and the logistic statistic named z."""
 from __future__ import annotations
 
 import re
-import sys
 from pathlib import Path
 
 import joblib
@@ -12,6 +11,7 @@ import numpy as np
 import pytest
 
 import dyadperm as dp
+from cli_run import run_cli as _cli
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -33,18 +33,6 @@ def test_readme_quick_start_is_the_two_commands_ci_runs():
     ci = (ROOT / ".ci" / "run").read_text()
     assert "## Quick start" in ci and "python3 -m venv .ci-venv" in ci
 
-
-def _cli(monkeypatch, capsys, *args) -> tuple[int, str, str]:
-    from dyadperm import cli
-
-    monkeypatch.setattr(sys, "argv", ["dyadperm", *map(str, args)])
-    code = 0
-    try:
-        cli.main()
-    except SystemExit as exc:
-        code = int(exc.code or 0)
-    out = capsys.readouterr()
-    return code, out.out, out.err
 
 
 def _small_study(folder: Path, jobs_line: str = "") -> Path:

@@ -18,7 +18,6 @@ P(p <= 0.05) = 10/200 = 0.05 exactly: the band is the right yardstick (common pr
 from __future__ import annotations
 
 import numpy as np
-import pytest
 import statsmodels.api as sm
 from scipy.stats import binom
 

@@ -14,7 +14,6 @@ import csv
 import io
 import json
 import struct
-import sys
 import textwrap
 from html.parser import HTMLParser
 
@@ -26,6 +25,7 @@ import dyadperm as dp
 from dyadperm.output import report
 from dyadperm.errors import InputError
 from reference import INTERVAL_RTOL
+from cli_run import run_cli as _cli
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # source: PNG specification, section 5.2
 
@@ -266,19 +266,6 @@ def test_html_embeds_every_plot_and_escapes_the_study(tmp_path):
     assert "SHA-256 of input kinship" in text and "package version" in text
     assert "stopped the run" in text or "ran all" in text
 
-
-def _cli(monkeypatch, capsys, *args) -> tuple[int, str, str]:
-    """The console entry point in this process: (exit code, stdout, stderr)."""
-    from dyadperm import cli
-
-    monkeypatch.setattr(sys, "argv", ["dyadperm", *map(str, args)])
-    code = 0
-    try:
-        cli.main()
-    except SystemExit as exc:
-        code = int(exc.code or 0)
-    out = capsys.readouterr()
-    return code, out.out, out.err
 
 
 def test_cli_report_writes_every_file(tmp_path, monkeypatch, capsys):
