@@ -3,7 +3,9 @@
 Source of truth for every check: the O(n^2) plain-numpy twin written here, which builds each
 layer as a dense n x m array, relabels it as methods.md says (M'[i, j] = M[pr(i), pc(j)],
 ``M[np.ix_(pr, pc)]``; one-mode pr = pc) and sums the centred products over the dyad set
-(one-mode: i != j inside a group, undirected i < j; two-mode: every cell). Each kernel is
+(one-mode: i != j inside a group, undirected i < j; two-mode: every cell). Each kernel
+(``edge_pair_sums`` for layers met along edges, ``node_pair_sums``, ``same_same_sums``,
+``gap_same_sums`` and ``gap_gap_sums`` for derived layers against derived layers) is
 reached by a choice of layer kinds and the test asserts that the kernel under test was the
 route taken. Inputs are seeded and include n = 2 and 3, odd sizes, ties, categories that
 are empty in a group or on one side of two-mode data, groups, directed, undirected and
