@@ -196,7 +196,7 @@ def test_series_route_matches_refits_by_passes(rng, monkeypatch, statistic):
     dd = lg.dyad_data(prep)
     fit = lg.observed_fit(prep, dd)
     plan = lg.build_plan(prep, dd, fit, scheme="y", statistic=statistic)
-    assert plan.kind == "series-y"
+    assert plan.kind == "series-y"  # its statistics are the kernel kn.series_y's
     perms = np.array([np.arange(n)] + [rng.permutation(n) for _ in range(40)])
     stats, passes = plan.statistics_and_passes(perms, perms)
     assert passes[0] > 1 and np.sum(passes == 1) > 20  # the observed fit is far: by passes
