@@ -38,10 +38,11 @@ def regress(y: Any, predictors: Any, *, model: str = "linear", scheme: str = "ds
 
     Parameters
     ----------
-    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic, pandas DataFrame or Waves
+    y : array (n, n) or (n, m), scipy.sparse, networkx graph, Dyadic, DataFrame or Waves
         The response network; ``dyadperm.Waves`` for a panel (several waves of one node
-        set under one relabelling shared by every wave; see dyadperm.inputs.waves). NaN marks a missing dyad value. A DataFrame is labelled by
-        its index (rows) and columns; square: one-mode (columns the same labels, any order).
+        set under one relabelling shared by every wave; see dyadperm.inputs.waves). NaN
+        marks a missing dyad value. A DataFrame is labelled by its index (rows) and
+        columns; square: one-mode (columns the same labels, any order).
     predictors : dict name -> network, or list
         Networks or derived predictors (``dyadperm.same`` ...), in model order. Labelled
         networks (DataFrame, Dyadic) are aligned to the response's nodes by label; plain
@@ -167,10 +168,10 @@ def correlate(a: Any, b: Any = None, *, method: str = "pearson", permutations: i
                        chunk_size=chunk_size, out=out, progress=progress, backend=backend,
                        scheduler=scheduler, shard=shard, stop=stop, provenance=provenance)
     where = dict(method=method, storage=storage, directed=directed, groups=groups, dyads=dyads)
-    _refuse_waves(a, [] if b is None else [b], reason="correlate does not take waves; use "
-                  "regress (one intercept per wave)")
-    if isinstance(a, (list, tuple)):
-        _refuse_waves(None, list(a), reason="correlate does not take waves; use regress")
+    given = (list(a.values()) if isinstance(a, dict) else
+             list(a) if isinstance(a, (list, tuple)) else [a]) + ([] if b is None else [b])
+    _refuse_waves(None, given, reason="correlate does not take waves; use regress (one "
+                  "intercept per wave)")
     if b is None:  # several networks: the matrix of pairwise correlations
         nets = list(a.values()) if isinstance(a, dict) else list(a)
         if nets:

@@ -353,25 +353,10 @@ def _reduced(prep: _design.Prepared, j: int, ok: np.ndarray,
         fitted = np.broadcast_to(gamma[:a][np.arange(y.shape[1]) % T], y.shape).copy()
     for c, g in zip(others, gamma[a:]):
         fitted = fitted + g * prep.matrices[c]
-    resid = _mirror(prep, np.where(ok, y - fitted, np.nan))
+    resid = prep.mirror(np.where(ok, y - fitted, np.nan))
     x = prep.matrices[jj]
     shift = (np.std(y[ok]) / np.std(x[ok])) * x
     return _Reduced(fitted, resid, shift)
-
-
-def _mirror(prep: _design.Prepared, out: np.ndarray) -> np.ndarray:
-    """Undirected one-mode data: the lower triangle from the upper one, in place (with
-    waves, within each wave: column j * T + t is node j at wave t)."""
-    if prep.directed or prep.two_mode:
-        return out
-    n = out.shape[0]
-    lower = np.tril_indices(n, -1)
-    if prep.waves == 1:
-        out[lower] = out.T[lower]
-    else:
-        cube = out.reshape(n, n, prep.waves)  # a view of ``out``
-        cube[lower] = cube.transpose(1, 0, 2)[lower]
-    return out
 
 
 def _replicate_stream(entropy: int, term: int, replicate: int, blocks: Blocks, count: int):
@@ -389,7 +374,7 @@ def _as_response(prep: _design.Prepared, values: np.ndarray) -> np.ndarray:
     """A response matrix in the form ``design.prepare`` gives: NaN off the dyad set, mirrored."""
     out = np.array(values, dtype=np.float64, copy=True)
     out[~prep.mask] = np.nan
-    return _mirror(prep, out)
+    return prep.mirror(out)
 
 
 def _simulate(prep, red: _Reduced, rows, cols) -> np.ndarray:

@@ -87,6 +87,21 @@ class Prepared:
         cube = self.mask.reshape(n, n, w)
         return (cube | cube.transpose(1, 0, 2)).reshape(n, n * w)
 
+    def mirror(self, out: np.ndarray) -> np.ndarray:
+        """Undirected one-mode data: the lower triangle of ``out`` (a matrix of this
+        layout) from the upper one, in place, as ``prepare`` stores dyad values (with
+        waves, within each wave). Returns ``out``."""
+        if self.directed or self.two_mode:
+            return out
+        n = out.shape[0]
+        lower = np.tril_indices(n, -1)
+        if self.waves == 1:
+            out[lower] = out.T[lower]
+        else:
+            cube = out.reshape(n, n, self.waves)  # a view of ``out``
+            cube[lower] = cube.transpose(1, 0, 2)[lower]
+        return out
+
     @property
     def k(self) -> int:
         return len(self.names)

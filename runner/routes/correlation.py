@@ -64,7 +64,6 @@ def build_correlation_statistics(prep: Prepared, *, method: str, storage: str = 
 def _ranked(prep: Prepared) -> Prepared:
     """Replace each matrix's dyad values by their average ranks (ties share a rank)."""
     mats = []
-    n = prep.mask.shape[0]
     for a in prep.matrices:
         r = np.full(a.shape, np.nan)
         vals = a[prep.mask]
@@ -72,10 +71,7 @@ def _ranked(prep: Prepared) -> Prepared:
         ranks = np.full(vals.shape, np.nan)
         ranks[ok] = rankdata(vals[ok], method="average")
         r[prep.mask] = ranks
-        if not prep.directed and not prep.two_mode:
-            lower = np.tril_indices(n, -1)
-            r[lower] = r.T[lower]
-        mats.append(r)
+        mats.append(prep.mirror(r))
     return replace(prep, matrices=tuple(mats), exact=None)
 
 

@@ -27,7 +27,6 @@ from typing import Any, Sequence
 import numpy as np
 from numba import types
 from numba.typed import List
-from scipy.stats import rankdata
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
