@@ -21,20 +21,23 @@ permutation):
   ``out[b, a, c] +=`` per dyad: with one relabelled layer (scheme y, correlation) up to
   4 fixed layers per pass with two interleaved partial sums each; with several
   (dsp, freedman-lane) fused tiles of 3 relabelled x 4 fixed (or 4 x 3) layers, twelve
-  sums per pass over the row, the three or four gathered values sharing one index load.
+  pairs per pass over the row, each in two partial sums (even and odd columns), the three
+  or four gathered values sharing one index load.
 - Vector tiles. When a tile's layers are consecutive in their records (the dsp and
-  freedman-lane stacks of 3 predictors are), ``tile_vec`` keeps the twelve sums in three
-  4-lane vectors, reads each record with one 4-wide load and does three vector fused
-  multiply-adds per dyad instead of twelve scalar ones (numba has no vector types, so
-  that loop is written in LLVM IR). Each lane still sums one pair in increasing column
-  order with one fused multiply-add per term: the same bits as the scalar tiles.
+  freedman-lane stacks of 3 predictors are), ``tile_vec`` keeps the twelve pairs' even and
+  odd sums in six 4-lane vectors, reads each record with one 4-wide load and does three
+  vector fused multiply-adds per dyad instead of twelve scalar ones (numba has no vector
+  types, so that loop is written in LLVM IR). Each lane still sums one pair's even (or
+  odd) columns in increasing order with one fused multiply-add per term: the same bits as
+  the scalar tiles. Two chains per lane halve the time spent waiting on the adder's
+  latency (one chain per lane ran at one dyad per fused multiply-add latency).
 
 Summation order (what makes results bit-identical for any chunk size, number of jobs or
 block size): for each permutation b and pair (a, c), the products of row i are summed in
-increasing column order, either in one sum (tiles) or in two partial sums over the
-columns at even and at odd offsets from ``col_start[i]`` (one relabelled layer), the
-row's sum being (even + odd); the row sums are added in increasing row order. Which of
-the two depends on (R, Q) alone (``choose_tile``). Nothing in this order depends on
+two partial sums over the columns at even and at odd offsets from ``col_start[i]``, each
+in increasing column order, the row's sum being (even + odd); the row sums are added in
+increasing row order. Tiles and single-layer passes sum the same way; which of them runs
+depends on (R, Q) alone (``choose_tile``). Nothing in this order depends on
 which other permutations share a block, so a permutation gives the same bits alone or
 in any batch. ``fastmath`` leaves out ``reassoc`` (kernels/options.py), so the compiler
 keeps this order.
@@ -113,25 +116,30 @@ def _tile_vec_python(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc):
     for j in range(j0, j1):
         g = rb + co[j]
         o = fb + (j - js) * lf
+        half = 12 * ((j - js) & 1)  # even offsets from js: acc[:12]; odd: acc[12:]
         u = [float(relf[g + r0 + t]) for t in range(4)]
         v = [float(fixf[o + f0 + t]) for t in range(4)]
         for a in range(3):
             for c in range(4):
                 if swap:  # lanes: relabelled layers; sums s_ca, c < 3
-                    acc[a * 4 + c] += v[a] * u[c]
+                    acc[half + a * 4 + c] += v[a] * u[c]
                 else:  # lanes: fixed layers; sums s_ac, a < 3
-                    acc[a * 4 + c] += u[a] * v[c]
+                    acc[half + a * 4 + c] += u[a] * v[c]
 
 
 def _tile_vec_codegen(swap):
-    """LLVM IR of a 3 x 4 tile loop with three <4 x double> accumulators.
+    """LLVM IR of a 3 x 4 tile loop with six <4 x double> accumulators.
 
     For j in [j0, j1): u = rel[rb + co[j] + r0 : +4] and v = fix[fb + (j - js) lf + f0 : +4]
     (one 4-wide load each, widened to double), then for a = 0, 1, 2:
-    acc_a = fma(splat(u[a]), v, acc_a) -- or, with ``swap``, fma(splat(v[a]), u, acc_a).
-    Each lane is one (relabelled, fixed) pair's sum, in increasing j, with one fused
-    multiply-add per term: the same operations, in the same order, as the scalar tiles,
-    so the results are the same bits. acc (12,) float64 is read on entry and written back.
+    acc_a = fma(splat(u[a]), v, acc_a) -- or, with ``swap``, fma(splat(v[a]), u, acc_a) --
+    into the even set of accumulators for even j - js and the odd set for odd j - js (j0 -
+    js must be even). Each lane is one (relabelled, fixed) pair's partial sum, in
+    increasing j, with one fused multiply-add per term: the same operations, in the same
+    order, as the scalar tiles, so the results are the same bits. Two sets of sums make
+    two independent chains of fused multiply-adds per lane, so the loop waits on the
+    adder's latency half as often. acc (24,) float64 (even set, then odd set) is read on
+    entry and written back.
     """
     def codegen(context, builder, signature, args):
         from llvmlite import ir
@@ -147,52 +155,72 @@ def _tile_vec_codegen(swap):
         v4e = ir.VectorType(elt, 4)
         fma = cgutils.get_or_insert_function(
             builder.module, ir.FunctionType(v4d, [v4d, v4d, v4d]), "llvm.fma.v4f64")
-        start = []
-        for a in range(3):
+        start = []  # 0..2: even set, 3..5: odd set
+        for a in range(6):
             vec = ir.Constant(v4d, ir.Undefined)
             for c in range(4):
                 x = builder.load(builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
                 vec = builder.insert_element(vec, x, ir.Constant(i32, c))
             start.append(vec)
-        entry = builder.block
-        head = builder.append_basic_block("tile.head")
-        body = builder.append_basic_block("tile.body")
-        done = builder.append_basic_block("tile.done")
-        builder.branch(head)
-        builder.position_at_end(head)
-        j = builder.phi(i64)
-        j.add_incoming(j0, entry)
-        sums = []
-        for a in range(3):
-            ph = builder.phi(v4d)
-            ph.add_incoming(start[a], entry)
-            sums.append(ph)
-        builder.cbranch(builder.icmp_signed("<", j, j1), body, done)
-        builder.position_at_end(body)
-        g = builder.add(rb, builder.sext(builder.load(builder.gep(co_p, [j])), i64))
-        o = builder.add(fb, builder.mul(builder.sub(j, js), lf))
 
         def load4(ptr, at):
             raw = builder.load(builder.bitcast(builder.gep(ptr, [at]), v4e.as_pointer()),
                                align=4)
             return builder.fpext(raw, v4d) if elt != dbl else raw
 
-        u = load4(rel_p, builder.add(g, r0))
-        v = load4(fix_p, builder.add(o, f0))
-        lanes, split = (u, v) if swap else (v, u)
-        new = []
-        for a in range(3):
-            s = builder.shuffle_vector(split, split, ir.Constant(ir.VectorType(i32, 4), [a] * 4))
-            new.append(builder.call(fma, [s, lanes, sums[a]]))  # s_a. += split_a * lanes
+        def column(jj, sums):
+            """The three fused multiply-adds of column jj into ``sums``."""
+            g = builder.add(rb, builder.sext(builder.load(builder.gep(co_p, [jj])), i64))
+            o = builder.add(fb, builder.mul(builder.sub(jj, js), lf))
+            u = load4(rel_p, builder.add(g, r0))
+            v = load4(fix_p, builder.add(o, f0))
+            lanes, split = (u, v) if swap else (v, u)
+            new = []
+            for a in range(3):
+                s = builder.shuffle_vector(split, split,
+                                           ir.Constant(ir.VectorType(i32, 4), [a] * 4))
+                new.append(builder.call(fma, [s, lanes, sums[a]]))  # s_a. += split_a * lanes
+            return new
+
+        entry = builder.block
+        head = builder.append_basic_block("tile.head")
+        body = builder.append_basic_block("tile.body")
+        last = builder.append_basic_block("tile.last")
+        one = builder.append_basic_block("tile.one")
+        done = builder.append_basic_block("tile.done")
+        builder.branch(head)
+        builder.position_at_end(head)
+        j = builder.phi(i64)
+        j.add_incoming(j0, entry)
+        sums = []
+        for a in range(6):
+            ph = builder.phi(v4d)
+            ph.add_incoming(start[a], entry)
+            sums.append(ph)
+        one_i = ir.Constant(i64, 1)
+        builder.cbranch(builder.icmp_signed("<", builder.add(j, one_i), j1), body, last)
+        builder.position_at_end(body)  # columns j (even set) and j + 1 (odd set)
+        new = column(j, sums[:3]) + column(builder.add(j, one_i), sums[3:])
         step = builder.block
-        j.add_incoming(builder.add(j, ir.Constant(i64, 1)), step)
-        for a in range(3):
+        j.add_incoming(builder.add(j, ir.Constant(i64, 2)), step)
+        for a in range(6):
             sums[a].add_incoming(new[a], step)
         builder.branch(head)
+        builder.position_at_end(last)  # at most one column left, at an even offset
+        builder.cbranch(builder.icmp_signed("<", j, j1), one, done)
+        builder.position_at_end(one)
+        tail = column(j, sums[:3])
+        builder.branch(done)
         builder.position_at_end(done)
-        for a in range(3):
+        ends = []
+        for a in range(3):  # the odd set leaves the loop as it is
+            ph = builder.phi(v4d)
+            ph.add_incoming(sums[a], last)
+            ph.add_incoming(tail[a], one)
+            ends.append(ph)
+        for a, vec in enumerate(ends + sums[3:]):
             for c in range(4):
-                x = builder.extract_element(sums[a], ir.Constant(i32, c))
+                x = builder.extract_element(vec, ir.Constant(i32, c))
                 builder.store(x, builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
         return context.get_dummy_value()
     return codegen
@@ -367,13 +395,15 @@ def _dot4(relf, rb, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end, pf_n, 
 
 # --- fused gather + dot of several relabelled layers against several fixed layers --------
 # For R > 1 (dsp, freedman-lane) one pass over the row reads 3 (or 4) relabelled layers at
-# each gathered dyad and multiplies them by 4 (or 3) fixed layers: 12 running sums, one
-# per (relabelled, fixed) pair, each in increasing column order (twelve independent sums
-# keep the multiply-add units busy without splitting a sum in two).
+# each gathered dyad and multiplies them by 4 (or 3) fixed layers: 12 sums, one per
+# (relabelled, fixed) pair, each split in two partial sums over the columns at even and
+# at odd offsets from the row's first column, each in increasing column order; the row's
+# sum is (even + odd). The scalar tiles run the even columns, then the odd ones (argument
+# ``first`` = js or js + 1), twelve sums at a time; the vector tile keeps both sets.
 
 @njit(inline="always", **KERNEL_OPTIONS)
-def _tile34(relf, rb, r0, r1, r2, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end,
-            pf_n, line):
+def _tile34(relf, rb, r0, r1, r2, co, fixf, fb, lf, f0, f1, f2, f3, js, first, je, pf,
+            pf_end, pf_n, line):
     s00 = 0.0
     s01 = 0.0
     s02 = 0.0
@@ -386,8 +416,8 @@ def _tile34(relf, rb, r0, r1, r2, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, 
     s21 = 0.0
     s22 = 0.0
     s23 = 0.0
-    o = fb
-    for j in range(js, je):
+    o = fb + (first - js) * lf
+    for j in range(first, je, 2):
         if (j - js) & 7 == 0:
             pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
         g = rb + co[np.uint64(j)]
@@ -412,13 +442,13 @@ def _tile34(relf, rb, r0, r1, r2, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, 
         s03 += u0 * v
         s13 += u1 * v
         s23 += u2 * v
-        o += lf
+        o += 2 * lf
     return s00, s01, s02, s03, s10, s11, s12, s13, s20, s21, s22, s23, pf
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
-def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, je, pf, pf_end,
-            pf_n, line):
+def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, first, je, pf,
+            pf_end, pf_n, line):
     s00 = 0.0
     s01 = 0.0
     s02 = 0.0
@@ -431,8 +461,8 @@ def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, je, pf, 
     s30 = 0.0
     s31 = 0.0
     s32 = 0.0
-    o = fb
-    for j in range(js, je):
+    o = fb + (first - js) * lf
+    for j in range(first, je, 2):
         if (j - js) & 7 == 0:
             pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
         g = rb + co[np.uint64(j)]
@@ -456,7 +486,7 @@ def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, je, pf, 
         s30 += u * v0
         s31 += u * v1
         s32 += u * v2
-        o += lf
+        o += 2 * lf
     return s00, s01, s02, s10, s11, s12, s20, s21, s22, s30, s31, s32, pf
 
 
@@ -496,7 +526,7 @@ def _vec_tile_row(swap, relf, rb0, r0, co, fixf, fb, lf, c0, js, je, pf, pf_end,
     """A full tile of one row by ``tile_vec``, VEC_COLUMNS columns per call, with the
     prefetches of the scalar tiles (pf_n per 8 columns) issued between calls."""
     vacc[:] = 0.0
-    j0 = js
+    j0 = js  # every call starts at an even offset from js (VEC_COLUMNS is even)
     while j0 < je:
         j1 = min(j0 + VEC_COLUMNS, je)
         pf = _prefetch_some(relf, pf, pf_end, pf_n * ((j1 - j0 + 7) // 8), line)
@@ -530,13 +560,13 @@ def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end
                                        fix_idx[c], js, je, pf, pf_end, pfn, line, vacc)
                     for x in range(3):
                         for y in range(4):
-                            acc[a + x, c + y] += vacc[x * 4 + y]
+                            acc[a + x, c + y] += vacc[x * 4 + y] + vacc[12 + x * 4 + y]
                 else:
                     pf = _vec_tile_row(True, relf, rb0, rel_idx[a], co, fixf, fb, lf,
                                        fix_idx[c], js, je, pf, pf_end, pfn, line, vacc)
                     for x in range(4):
                         for y in range(3):
-                            acc[a + x, c + y] += vacc[y * 4 + x]
+                            acc[a + x, c + y] += vacc[y * 4 + x] + vacc[12 + y * 4 + x]
                 continue
             r0 = rel_idx[a]
             r1 = rel_idx[min(a + 1, last_a)]
@@ -546,10 +576,15 @@ def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end
             c2 = fix_idx[min(c + 2, last_c)]
             if tile == 34:
                 c3 = fix_idx[min(c + 3, last_c)]
-                (s00, s01, s02, s03, s10, s11, s12, s13, s20, s21, s22, s23,
+                (e00, e01, e02, e03, e10, e11, e12, e13, e20, e21, e22, e23,
                  pf) = _tile34(relf, rb0, r0, r1, r2, co, fixf, fb, lf, c0, c1, c2, c3, js,
-                               je, pf, pf_end, pfn, line)
-                sums = ((s00, s01, s02, s03), (s10, s11, s12, s13), (s20, s21, s22, s23))
+                               js, je, pf, pf_end, pfn, line)
+                (d00, d01, d02, d03, d10, d11, d12, d13, d20, d21, d22, d23,
+                 pf) = _tile34(relf, rb0, r0, r1, r2, co, fixf, fb, lf, c0, c1, c2, c3, js,
+                               js + 1, je, pf, pf_end, 0, line)
+                sums = ((e00 + d00, e01 + d01, e02 + d02, e03 + d03),
+                        (e10 + d10, e11 + d11, e12 + d12, e13 + d13),
+                        (e20 + d20, e21 + d21, e22 + d22, e23 + d23))
                 for x in range(3):
                     if a + x <= last_a:
                         row = sums[x]
@@ -558,10 +593,14 @@ def _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf, pf_end
                                 acc[a + x, c + y] += row[y]
             else:
                 r3 = rel_idx[min(a + 3, last_a)]
-                (s00, s01, s02, s10, s11, s12, s20, s21, s22, s30, s31, s32,
+                (e00, e01, e02, e10, e11, e12, e20, e21, e22, e30, e31, e32,
                  pf) = _tile43(relf, rb0, r0, r1, r2, r3, co, fixf, fb, lf, c0, c1, c2, js,
-                               je, pf, pf_end, pfn, line)
-                sums = ((s00, s01, s02), (s10, s11, s12), (s20, s21, s22), (s30, s31, s32))
+                               js, je, pf, pf_end, pfn, line)
+                (d00, d01, d02, d10, d11, d12, d20, d21, d22, d30, d31, d32,
+                 pf) = _tile43(relf, rb0, r0, r1, r2, r3, co, fixf, fb, lf, c0, c1, c2, js,
+                               js + 1, je, pf, pf_end, 0, line)
+                sums = ((e00 + d00, e01 + d01, e02 + d02), (e10 + d10, e11 + d11, e12 + d12),
+                        (e20 + d20, e21 + d21, e22 + d22), (e30 + d30, e31 + d31, e32 + d32))
                 for x in range(4):
                     if a + x <= last_a:
                         row = sums[x]
@@ -615,7 +654,7 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     line = max(1, CACHE_LINE // relf.itemsize)  # elements per cache line
     row_lines = (rowlen + line - 1) // line
     tile = choose_tile(n_rel, n_fix)
-    vacc = np.zeros(12)  # accumulators of the vector tiles (one row at a time)
+    vacc = np.zeros(24)  # accumulators of the vector tiles, even and odd (one row at a time)
     for b0 in range(0, n_perm, block):
         nb = min(block, n_perm - b0)
         for q in range(nb):

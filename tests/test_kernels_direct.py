@@ -118,19 +118,23 @@ def test_masked_moments_equals_numpy(n, m):
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 @pytest.mark.parametrize("n_rel,n_fix", [(3, 4), (4, 3), (6, 4), (3, 5)])
 @pytest.mark.parametrize("block", [1, 3])
-def test_vector_tiles_same_bits_as_scalar(dtype, n_rel, n_fix, block):
+@pytest.mark.parametrize("n,ranges", [(11, "full"), (150, "full"), (150, "triangle")])
+def test_vector_tiles_same_bits_as_scalar(dtype, n_rel, n_fix, block, n, ranges):
     """Tiles whose layers are consecutive in their records run in vector registers
     (``kernels.gather.tile_vec``); the same layers spread out (every other slot) run in
     scalar registers. Both must give the same bits -- one fused multiply-add per term in
-    the same order -- and match the plain-numpy twin."""
+    the same order, even and odd columns in two sums -- and match the plain-numpy twin.
+    Rows of 150 columns span several vector calls (``VEC_COLUMNS``); the upper triangle
+    gives rows of every length, odd and even, starting at odd and even columns."""
     rng = np.random.default_rng(n_rel * 10 + n_fix)
-    n, B = 11, 5
+    B = 5
     L = max(n_rel, n_fix) + 1  # one spare layer: 4-wide reads stay inside each record
     vals = rng.normal(size=(n, n, L)).astype(dtype)
     spread = np.zeros((n, n, 2 * L), dtype=dtype)
     spread[:, :, ::2] = vals
     rows = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
-    start = np.zeros(n, dtype=np.int64)
+    start = np.arange(1, n + 1, dtype=np.int64) if ranges == "triangle" else \
+        np.zeros(n, dtype=np.int64)
     stop = np.full(n, n, dtype=np.int64)
     got = {}
     for name, arr, step in (("vector", vals, 1), ("scalar", spread, 2)):
