@@ -834,3 +834,78 @@ def gather_gram(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col
         for r in range(d):
             for s in range(r + 1, d):
                 out[b, r, s] = out[b, s, r]
+
+
+# Columns of a row copied into the layer-major workspace of ``identity_gram`` at once
+# (L x 256 float64: 8 KB per layer, so a 4-layer chunk stays in the first-level cache).
+GRAM_COLUMNS = 256
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _dot_chunk(x, y, w):
+    """sum_t x[t] y[t], t < w, in four partial sums over t mod 4, combined as
+    (s0 + s1) + (s2 + s3): four independent chains the compiler can keep in one vector."""
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    w4 = w - w % 4
+    for t in range(0, w4, 4):
+        s0 += x[t] * y[t]
+        s1 += x[t + 1] * y[t + 1]
+        s2 += x[t + 2] * y[t + 2]
+        s3 += x[t + 3] * y[t + 3]
+    for t in range(w4, w):
+        s0 += x[t] * y[t]
+    return (s0 + s1) + (s2 + s3)
+
+
+@njit(**KERNEL_OPTIONS)
+def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
+    """Gram of v = [1, rel layers, fix layers] over the cells of the identity relabelling.
+
+    The invariant Gram of a complete-data plan: what ``gather_gram`` sums with identity
+    relabellings over data without NaN, without its per-value NaN tests and relabelling
+    lookups. Each row's cells j in [col_start[i], col_stop[i]) are copied, GRAM_COLUMNS at
+    a time, into a layer-major workspace; each entry adds that chunk's products in four
+    partial sums (``_dot_chunk``); chunks in increasing column order, rows in increasing
+    order. Deterministic: the order depends on the column ranges only.
+
+    ``out`` float64 (d, d), d = 1 + R + Q, is written; out[0, 0] counts the cells.
+    """
+    n_rows = fix.shape[0]
+    n_rel = rel_idx.shape[0]
+    n_fix = fix_idx.shape[0]
+    n_lay = n_rel + n_fix
+    buf = np.empty((n_lay, GRAM_COLUMNS))
+    ones = np.ones(GRAM_COLUMNS)
+    sums = np.zeros(n_lay)
+    cross = np.zeros((n_lay, n_lay))
+    count = 0
+    for i in range(n_rows):
+        j0 = col_start[i]
+        while j0 < col_stop[i]:
+            w = min(GRAM_COLUMNS, col_stop[i] - j0)
+            for a in range(n_rel):
+                la = rel_idx[a]
+                for t in range(w):
+                    buf[a, t] = rel[i, j0 + t, la]
+            for c in range(n_fix):
+                lc = fix_idx[c]
+                for t in range(w):
+                    buf[n_rel + c, t] = fix[i, j0 + t, lc]
+            for r in range(n_lay):
+                x = buf[r]
+                sums[r] += _dot_chunk(x, ones, w)
+                for s in range(r + 1):
+                    # G[r, s] += sum over the chunk of v_r v_s
+                    cross[r, s] += _dot_chunk(x, buf[s], w)
+            count += w
+            j0 += w
+    out[0, 0] = count
+    for r in range(n_lay):
+        out[0, 1 + r] = sums[r]
+        out[1 + r, 0] = sums[r]
+        for s in range(r + 1):
+            out[1 + r, 1 + s] = cross[r, s]
+            out[1 + s, 1 + r] = cross[r, s]

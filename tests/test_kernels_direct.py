@@ -9,7 +9,7 @@ below from its definition.
 import numpy as np
 import pytest
 
-from dyadperm.kernels.gather import cross_rows, gather_cross
+from dyadperm.kernels.gather import GRAM_COLUMNS, cross_rows, gather_cross, identity_gram
 from dyadperm.kernels.sparse import GAP, PAIR_SUM, RECEIVER, SAME, SENDER, sparse_cross
 from reference import KERNEL_ATOL, KERNEL_RTOL, gather_cross_ref
 
@@ -148,3 +148,41 @@ def test_vector_tiles_same_bits_as_scalar(dtype, n_rel, n_fix, block, n, ranges)
     gather_cross_ref(vals.astype(np.float64), np.arange(n_rel), vals.astype(np.float64),
                      np.arange(n_fix), rows, rows, start, stop, want)
     np.testing.assert_allclose(got["vector"], want, rtol=KERNEL_RTOL, atol=KERNEL_ATOL)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("ranges", ["full", "triangle", "uneven"])
+def test_identity_gram_against_numpy(dtype, ranges):
+    """``identity_gram`` (the invariant Gram of complete-data plans) against the Gram of
+    [1, layers] written out with numpy over the same cells (reference: numpy's matrix
+    product in float64); rows longer than one workspace chunk (``GRAM_COLUMNS``), ranges
+    of every length, rel and fix the same array or two, float32 layers read as float64."""
+    rng = np.random.default_rng(7)
+    n = GRAM_COLUMNS + 37
+    stack = rng.normal(loc=0.3, size=(n, n, 4)).astype(dtype)
+    resp = rng.normal(size=(n, n, 1)).astype(dtype)
+    if ranges == "full":
+        start, stop = np.zeros(n, np.int64), np.full(n, n, np.int64)
+    elif ranges == "triangle":
+        start, stop = np.arange(1, n + 1, dtype=np.int64), np.full(n, n, np.int64)
+    else:
+        start = rng.integers(0, n, n).astype(np.int64)
+        stop = np.minimum(n, start + rng.integers(0, n, n)).astype(np.int64)
+    for rel, rel_idx, fix, fix_idx in ((stack, [0, 1, 2], stack, [0, 1, 2, 3]),
+                                       (resp, [0], stack, [1, 3])):
+        cells = [np.concatenate([rel[i, start[i]:stop[i]][:, rel_idx],
+                                 fix[i, start[i]:stop[i]][:, fix_idx]], axis=1)
+                 for i in range(n)]
+        z = np.concatenate(cells, axis=0).astype(np.float64)
+        z = np.concatenate([np.ones((z.shape[0], 1)), z], axis=1)
+        want = z.T @ z
+        d = want.shape[0]
+        got = np.empty((d, d))
+        identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
+                      start, stop, got)
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-9 * n)
+        assert np.array_equal(got, got.T)
+        again = np.empty((d, d))
+        identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
+                      start, stop, again)
+        assert np.array_equal(got, again)  # one order of sums: the same bits every call

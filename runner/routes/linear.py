@@ -34,7 +34,7 @@ from ..inputs import memory as _memory
 from ..inputs.design import (STREAM_DYADS, Prepared, check_design, check_response,
                              dyads_phrase, iter_dyad_rows, standardise)
 from ..kernels.options import FIT_PIVOT
-from ..kernels.gather import gather_cross, gather_gram
+from ..kernels.gather import gather_cross, gather_gram, identity_gram
 from ..kernels.tsqr import fold_rows
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, correlation_stats, fill_gram,
                              regression_stats)
@@ -458,14 +458,11 @@ def _check_gram(gobs: np.ndarray, prep: Prepared) -> None:
 
 
 def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
-    n, m = prep.mask.shape
+    """The invariant Gram of a complete-data plan (``kernels.gather.identity_gram``)."""
     d = 1 + len(rel_idx) + len(fix_idx)
-    ident_r = np.arange(n, dtype=np.int64)[None, :]
-    ident_c = np.arange(m, dtype=np.int64)[None, :]
-    g = np.empty((1, d, d))
-    gather_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
-                ident_r, ident_c, prep.col_start, prep.col_stop, g)
-    g0 = g[0].copy()
+    g0 = np.empty((d, d))
+    identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
+                  prep.col_start, prep.col_stop, g0)
     # the column ranges may include cells off the dyad set (held as 0): count only dyads
     g0[0, 0] = prep.n_dyads
     return g0
