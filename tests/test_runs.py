@@ -203,3 +203,25 @@ def test_dask_local_cluster_equals_local_run():
         res = dp.regress(y, xs, backend="dask", scheduler=cluster.scheduler_address, **kw)
     assert np.array_equal(res.null, local.null)
     np.testing.assert_array_equal(res.p, local.p)
+
+
+def test_inputs_are_hashed_only_for_a_run_file(tmp_path, monkeypatch):
+    """A run held in memory never reads its identity, so it never hashes its inputs; a run
+    with a run file hashes each network once and stores the same fingerprints an eager
+    identity has (SHA-256 of the bytes, as ``routes.plan.fingerprint`` documents)."""
+    from dyadperm.routes import plan as plan_mod
+
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(12, 12))
+    y = 0.5 * x + rng.normal(size=(12, 12))
+    calls = []
+    real = plan_mod.fingerprint
+    monkeypatch.setattr(plan_mod, "fingerprint", lambda a: calls.append(a.shape) or real(a))
+    dp.regress(y, {"x": x}, permutations=20, seed=1)
+    assert calls == []
+    out = tmp_path / "run.h5"
+    dp.regress(y, {"x": x}, permutations=20, seed=1, out=out)
+    assert len(calls) == 3  # the mask, the predictor and the response, once each
+    ident = store.read_header(out).identity
+    assert ident["fingerprint:x"] == real(x)
+    assert ident["fingerprint:response"] == real(y)
