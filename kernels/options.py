@@ -48,6 +48,10 @@ KERNEL_OPTIONS = dict(nogil=True, cache=True, fastmath=FASTMATH, error_model="nu
 #: compiled code (the CPU's vector width) decides the order.
 SETUP_OPTIONS = dict(KERNEL_OPTIONS, fastmath=FASTMATH | {"reassoc"})
 
+#: Options of element-wise setup kernels that must give numpy's bits: IEEE arithmetic
+#: (no reciprocal or contraction), so (x - mean) / sd is rounded as numpy rounds it.
+EXACT_OPTIONS = dict(nogil=True, cache=True, error_model="numpy")
+
 #: Relative pivot every fit from Gram matrices needs (module docstring).
 FIT_PIVOT = 1e-5
 #: The same rule on sums of squares, as the kernels test it: pivot^2 > FIT_PIVOT_SQUARED *

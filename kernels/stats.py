@@ -9,7 +9,7 @@ from the Cholesky factor of T'GT (the R of a QR of the data), one permutation at
 import numpy as np
 from numba import njit
 
-from .options import FIT_PIVOT_SQUARED, KERNEL_OPTIONS
+from .options import EXACT_OPTIONS, FIT_PIVOT_SQUARED, KERNEL_OPTIONS
 
 #: Numbers per relabelling and term that ``regression_stats`` writes into ``rows``.
 INTERVAL_WIDTH = 6
@@ -183,3 +183,84 @@ def masked_moments(mat, mask, out):
     out[0] = count
     out[1] = mean
     out[2] = m2
+
+
+@njit(**KERNEL_OPTIONS)
+def masked_values(mat, mask, out):
+    """Copy the cells of ``mat`` where ``mask`` holds, in row-major order, into ``out``.
+
+    What ``mat[mask]`` gives, written into an existing 1-d array of any stride (a column
+    of a design matrix) without the boolean-index temporary.
+
+    Parameters
+    ----------
+    mat : float64 or float32 (n, m), any strides
+    mask : bool (n, m)
+    out : float64 (count of mask,), any stride
+        Written.
+    """
+    n, m = mat.shape
+    k = 0
+    for i in range(n):
+        for j in range(m):
+            if mask[i, j]:
+                out[k] = mat[i, j]
+                k += 1
+
+
+@njit(**EXACT_OPTIONS)
+def standardise_layer(mat, mean, sd, holds, fill, out):
+    """out = (mat - mean) / sd where ``holds``, else ``fill``: one layer of a stack.
+
+    The bits of numpy's ``np.subtract(mat, mean, out=out); out /= sd; out[~holds] = fill``
+    in one pass: the difference is rounded to ``out``'s type, then the quotient (in
+    float64) rounded again. ``out`` may be ``mat`` itself (standardised in place).
+
+    mat : float64 (n, m), any strides; out : float64 or float32 (n, m), any strides;
+    holds : bool (n, m); mean, sd, fill : float.
+    """
+    n, m = mat.shape
+    for i in range(n):
+        for j in range(m):
+            if holds[i, j]:
+                d = out.dtype.type(mat[i, j] - mean)
+                out[i, j] = np.float64(d) / sd
+            else:
+                out[i, j] = fill
+
+
+# Records handled at once by ``apply_upper`` (L x 512 float64 workspaces stay in L1).
+APPLY_CHUNK = 512
+
+
+@njit(**KERNEL_OPTIONS)
+def apply_upper(flat, n_layers, rinv):
+    """Each record v of ``flat`` (n_cells x L values, C order) becomes v @ rinv, in place
+    (rinv upper triangular (L, L) float64): new_c = sum_{e <= c} v_e rinv[e, c], summed in
+    increasing e in float64 (one fused multiply-add a term), stored in the stack's type.
+    Records go through layer-major workspaces ``APPLY_CHUNK`` at a time, so the sums run
+    across records in vector registers (each record's own sum keeps its order).
+
+    flat : float64 or float32 (n_cells * L,), a C-ordered (n, m, L) stack flattened.
+    """
+    L = n_layers
+    n_cells = flat.shape[0] // L
+    buf = np.empty((L, APPLY_CHUNK))
+    acc = np.empty(APPLY_CHUNK)
+    for q0 in range(0, n_cells, APPLY_CHUNK):
+        w = min(APPLY_CHUNK, n_cells - q0)
+        base = q0 * L
+        for e in range(L):
+            row = buf[e]
+            for t in range(w):
+                row[t] = flat[base + t * L + e]
+        for c in range(L):
+            for t in range(w):
+                acc[t] = 0.0
+            for e in range(c + 1):
+                row = buf[e]
+                rc = rinv[e, c]
+                for t in range(w):
+                    acc[t] += row[t] * rc
+            for t in range(w):
+                flat[base + t * L + c] = acc[t]

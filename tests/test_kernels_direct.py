@@ -186,3 +186,37 @@ def test_identity_gram_against_numpy(dtype, ranges):
         identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
                       start, stop, again)
         assert np.array_equal(got, again)  # one order of sums: the same bits every call
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_setup_kernels_against_numpy(dtype):
+    """The setup's element-wise kernels against the numpy they replace (reference: numpy):
+    ``standardise_layer`` gives the bits of subtract, divide and fill (the float32 stack
+    rounded twice, as numpy's in-place float32 arithmetic rounds); ``masked_values`` the
+    values of ``mat[mask]`` in the same order; ``apply_upper`` each record times an upper
+    triangular matrix (numpy's matrix product, to rounding), for rows longer and shorter
+    than one workspace chunk."""
+    from dyadperm.kernels.stats import apply_upper, masked_values, standardise_layer
+
+    rng = np.random.default_rng(11)
+    n, m = 37, 29
+    mat = rng.normal(loc=3.0, scale=2.0, size=(n, m))
+    holds = rng.random((n, m)) < 0.8
+    mean, sd = np.float64(2.9), np.float64(1.7)  # numpy scalars, as the route's _stack has
+    want = np.empty((n, m, 2), dtype=dtype)[:, :, 1]
+    np.subtract(mat, mean, out=want)
+    want /= sd
+    want[~holds] = np.nan
+    got = np.empty((n, m, 2), dtype=dtype)[:, :, 1]
+    standardise_layer(mat, mean, sd, holds, np.nan, got)
+    np.testing.assert_array_equal(got, want)
+    col = np.empty((int(holds.sum()), 3))
+    masked_values(mat, holds, col[:, 2])
+    np.testing.assert_array_equal(col[:, 2], mat[holds])
+    for cells in (5, 1500):
+        stack = rng.normal(size=(cells, 1, 4)).astype(dtype)
+        rinv = np.triu(rng.normal(size=(4, 4)))
+        want = (stack.astype(np.float64) @ rinv).astype(dtype)
+        apply_upper(stack.reshape(-1), 4, rinv)
+        np.testing.assert_allclose(stack, want, rtol=1e-12 if dtype == np.float64 else 1e-6,
+                                   atol=1e-12 if dtype == np.float64 else 1e-5)

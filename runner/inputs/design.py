@@ -20,7 +20,7 @@ from scipy.linalg import solve_triangular
 
 from ..errors import DyadpermWarning, InputError
 from ..kernels.options import FIT_PIVOT, QR_PIVOT
-from ..kernels.stats import masked_moments
+from ..kernels.stats import masked_moments, masked_values
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .labels import label_order, some_labels
@@ -408,6 +408,20 @@ def iter_dyad_rows(prep: Prepared, arrays: Sequence[np.ndarray]):
         yield np.stack([a[i0:i0 + step][sel] for a in arrays], axis=1)
 
 
+def _design_rows(prep: Prepared, arrays: Sequence[Any]):
+    """Yield, block of rows by block, [1, values of ``arrays``] on the dyad set (N_block,
+    1 + L): the rows of the design matrix, written in place (no stacked copy to widen)."""
+    n, m = prep.mask.shape
+    step = max(1, STREAM_DYADS // max(m, 1))
+    for i0 in range(0, n, step):
+        sel = prep.mask[i0:i0 + step]
+        z = np.empty((int(np.count_nonzero(sel)), 1 + len(arrays)))
+        z[:, 0] = 1.0
+        for c, a in enumerate(arrays):
+            masked_values(np.asarray(a[i0:i0 + step]), sel, z[:, 1 + c])
+        yield z
+
+
 @dataclass(frozen=True)
 class ObservedFit:
     """Classical least-squares fit on the observed dyads (intercept first)."""
@@ -445,16 +459,16 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     p = k + 1
     r_acc = np.zeros((0, p + 1))
     n_obs = 0
-    sums = np.zeros(p + 1)
+    ysum = 0.0
     values = prep.matrices if prep.exact is None else prep.exact  # float64 either way
-    for block in iter_dyad_rows(prep, values):
+    for block in _design_rows(prep, values):
         if not prep.complete:  # complete data: every dyad of the set is kept
             block = block[~np.isnan(block).any(axis=1)]
         if block.shape[0] == 0:
             continue
         n_obs += block.shape[0]
-        sums[1:] += block.sum(axis=0)
-        r_acc = fold_rows(r_acc, np.concatenate([np.ones((block.shape[0], 1)), block], axis=1))
+        ysum += float(block[:, p].sum())
+        r_acc = fold_rows(r_acc, block)
     if n_obs <= p:
         raise InputError(f"too few dyads for the model: {n_obs} complete dyads for {p} terms")
     r = r_acc[:p + 1, :p + 1]
@@ -463,7 +477,7 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     raw = np.sqrt((rx[:, 1:] * rx[:, 1:]).sum(axis=0))  # the predictors' norms before centring
     cond = check_design(rx[1:, 1:], prep.names, pivot=pivot, raw_norms=raw, where=where)
     y_piv = abs(r[p, p]) if r.shape[0] > p else 0.0
-    ymean = sums[-1] / n_obs
+    ymean = ysum / n_obs
     tss = 0.0
     # complete data: the response alone (the same values, summed in the same order)
     for block in iter_dyad_rows(prep, values[-1:] if prep.complete else values):

@@ -26,6 +26,7 @@ from typing import Any, Sequence
 
 import numpy as np
 from numba import types
+from scipy.linalg import solve_triangular
 from numba.typed import List
 
 from ..errors import InputError, NumericalError
@@ -36,8 +37,8 @@ from ..inputs.design import (STREAM_DYADS, Prepared, check_design, check_respons
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram, identity_gram
 from ..kernels.tsqr import fold_rows
-from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, correlation_stats, fill_gram,
-                             regression_stats)
+from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
+                             fill_gram, regression_stats, standardise_layer)
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
 from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
                    summary)
@@ -162,11 +163,8 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     # (relabelled reads land in either triangle)
     holds = prep.holds()
     for pos, layer in enumerate(layers):
-        a = prep.matrices[layer]
-        view = out[:, :, pos]
-        np.subtract(a, mean[layer], out=view)
-        view /= sd[layer]
-        view[~holds] = fill
+        standardise_layer(prep.matrices[layer], float(mean[layer]), float(sd[layer]), holds,
+                          fill, out[:, :, pos])
     return out
 
 
@@ -360,7 +358,6 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float) -> np.ndarr
     """
     n_layers = stack.shape[2]
     S = np.eye(n_layers)
-    step = max(1, (1 << 20) // max(stack.shape[1], 1))
     for first in (True, False):
         r, count = qr_layers(prep, stack)
         if count < n_layers:
@@ -372,9 +369,8 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float) -> np.ndarr
             if n_layers > k:
                 check_response(float(r[k, k] ** 2), float((r[:, k] ** 2).sum()),
                                prep.response_name)
-        rinv = np.linalg.solve(np.triu(r), np.eye(n_layers))
-        for i0 in range(0, stack.shape[0], step):
-            stack[i0:i0 + step] = np.asarray(stack[i0:i0 + step], dtype=np.float64) @ rinv
+        rinv = solve_triangular(np.triu(r), np.eye(n_layers))
+        apply_upper(stack.reshape(-1), n_layers, rinv)  # the stack is C-ordered: a view
         S = r @ S
     return S
 
