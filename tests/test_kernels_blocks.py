@@ -215,8 +215,9 @@ def test_float32_storage_agrees_with_float64(rng, scheme):
     np.testing.assert_allclose(r32.null, r64.null, rtol=T32_RTOL, atol=T32_ATOL)
     # float32 is not float64: the stored values were rounded, so some statistic moves
     assert not np.array_equal(r32.null, r64.null)
-    # the observed fit is the float64 QR fit either way
-    np.testing.assert_array_equal(r32.stat, r64.stat)
+    # the observed fit comes from the float64 data either way (float32: a QR of the
+    # inputs; float64: the factor of the standardised layers), never the rounded layers
+    np.testing.assert_allclose(r32.stat, r64.stat, rtol=1e-12)
 
 
 def test_float32_null_is_bit_identical_for_any_chunk_size_and_jobs(rng):

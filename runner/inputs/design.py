@@ -498,6 +498,64 @@ def observed_fit(prep: Prepared, *, pivot: float = FIT_PIVOT,
     return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
 
 
+def check_factor(prep: Prepared, r: np.ndarray, mean: np.ndarray, sd: np.ndarray, *,
+                 pivot: float) -> float:
+    """The one rule on complete data from the R factor ``r`` (k + 1, k + 1) of their
+    standardised layers [z_1 .. z_k, z_y] (see :func:`fit_from_factor`): the design by
+    :func:`check_design` (the predictors' norms before centring come from their means and
+    spreads) and the response's residual by :func:`check_response`. Returns the
+    condition number of the standardised predictors."""
+    k = prep.k
+    n_obs = prep.n_dyads
+    if n_obs <= k + 1:
+        raise InputError(f"too few dyads for the model: {n_obs} dyads for {k + 1} terms")
+    # |x_j| / sd_j: the raw norm in standardised units (the centred one is sqrt(N))
+    raw = np.sqrt(n_obs * (mean[:k] / sd[:k]) ** 2 + n_obs)
+    cond = check_design(r[:k, :k], prep.names, pivot=pivot, raw_norms=raw)
+    check_response(float(r[k, k] ** 2), float((r[:, k] ** 2).sum()), prep.response_name,
+                   pivot=FIT_PIVOT)
+    return cond
+
+
+def fit_from_factor(prep: Prepared, r: np.ndarray, mean: np.ndarray, sd: np.ndarray,
+                    cond: float) -> ObservedFit:
+    """OLS of the complete data from the R factor of their standardised layers.
+
+    ``r`` (k + 1, k + 1) is an R factor (R'R = Z'Z) of Z = [z_1 .. z_k, z_y] over the dyad
+    set, each z = (x - mean) / sd with the mean and spread (divisor N) of the layer over
+    the dyad set -- what the dense linear route makes anyway for its orthonormal basis
+    (``routes.linear._orthonormalise``), so the classical fit costs no pass of its own.
+    It must have passed :func:`check_factor` (``cond``: the condition number it gave).
+    Centred layers make the intercept's column orthogonal to the rest: the slopes are
+    b = R_xx^-1 r_xy in standardised units, scaled by sd_y / sd_j; the intercept is
+    mean_y - sum_j beta_j mean_j, with variance sigma^2 / N + mean' Cov(beta) mean; RSS =
+    r_yy^2 sd_y^2 and TSS = N sd_y^2.
+    """
+    k = prep.k
+    p = k + 1
+    n_obs = prep.n_dyads
+    rx = r[:k, :k]
+    sx, sy = sd[:k], sd[k]
+    rss_std = float(r[k, k] ** 2)
+    b = solve_triangular(rx, r[:k, k])
+    rinv = solve_triangular(rx, np.eye(k))
+    var_std = rss_std / (n_obs - p)  # sigma^2 in units of sd_y^2
+    slope_scale = sy / sx
+    coef = np.empty(p)
+    se = np.empty(p)
+    coef[1:] = b * slope_scale
+    se[1:] = np.sqrt(var_std * (rinv * rinv).sum(axis=1)) * slope_scale
+    coef[0] = mean[k] - float(mean[:k] @ coef[1:])
+    lead = (mean[:k] * slope_scale) @ rinv  # mean' D R^-1, D = diag(sd_y / sd_j)
+    se[0] = np.sqrt(var_std * (sy * sy / n_obs + float(lead @ lead)))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = coef / se
+    warn_condition(rx, cond, prep.names)
+    rss = rss_std * sy * sy
+    tss = n_obs * sy * sy
+    return ObservedFit(coef, se, t, 1.0 - rss / tss, n_obs, rss, cond)
+
+
 def fit_pivot(complete: bool, *, storage: str = "float64", model: str = "linear") -> float:
     """The relative pivot a route's fits resolve (``kernels.options``): ``QR_PIVOT`` for the
     dense linear route on complete float64 data (its kernels read an orthonormal basis of

@@ -32,8 +32,9 @@ from numba.typed import List
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs import memory as _memory
-from ..inputs.design import (STREAM_DYADS, Prepared, check_design, check_response,
-                             dyads_phrase, iter_dyad_rows, standardise)
+from ..inputs.design import (STREAM_DYADS, ObservedFit, Prepared, check_design, check_factor,
+                             check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
+                             standardise)
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram, identity_gram
 from ..kernels.tsqr import fold_rows
@@ -80,6 +81,9 @@ class GramStatistics:
     #: per tested term, the factor taking b from standardised units to the coefficient's
     #: when the transforms carry the interval column X (``intervals``), else None
     ci_scale: np.ndarray | None = None
+    #: complete data: the classical fit read from the layers' QR factor
+    #: (``design.fit_from_factor``), else None
+    fit: ObservedFit | None = None
 
     @property
     def extra(self) -> int:
@@ -219,9 +223,11 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
                          "panels absorb them by centring (absorbed=...)")
     if interval and interval_reason(scheme, statistic, prep.complete) is not None:
         raise ValueError(interval_reason(scheme, statistic, prep.complete))
+    fit = None
     if prep.complete:
-        passes = [_complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite,
-                                 interval)]
+        one, fit = _complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite,
+                                  interval)
+        passes = [one]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
     if absorbed and statistic == "t":
@@ -232,7 +238,7 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
                        ps.terms, ps.scale * factor) for ps in passes]
     ci_scale = sd[prep.k] / sd[:prep.k] if interval else None
     return GramStatistics(tuple(passes), prep.k - prep.fixed, False, statistic == "t",
-                          prep.col_start, prep.col_stop, prep.n_dyads, ci_scale)
+                          prep.col_start, prep.col_stop, prep.n_dyads, ci_scale, fit)
 
 
 def _check_spread(prep: Prepared, sd: np.ndarray) -> None:
@@ -279,11 +285,11 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     if scheme == "y":
         rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
-        S = _orthonormalise(fix, prep, pivot)
+        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, response=rel)
         rel_idx, fix_idx = [0], xs
     else:
         rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
-        S = _orthonormalise(fix, prep, pivot)
+        S, fit = _orthonormalise(fix, prep, pivot, mean, sd)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
     d = 1 + R + Q
@@ -322,14 +328,17 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
         scale[j] = np.sign(rkk) if statistic == "t" else sd[k] / (sd[j] * rkk)
     gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx)
     return Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64), gram0,
-                transforms, np.arange(k, dtype=np.int64), scale)
+                transforms, np.arange(k, dtype=np.int64), scale), fit
 
 
-def qr_layers(prep: Prepared, stack: np.ndarray) -> tuple[np.ndarray, int]:
-    """The R factor (L, L) of the layers of ``stack`` (n, m, L) over the dyad set (R'R =
-    Z'Z), by one streaming pass of ``kernels.tsqr.fold_rows`` over blocks of rows (float32
-    layers are read as they are, in float64 arithmetic), and the number of dyads."""
-    n_layers = stack.shape[2]
+def qr_layers(prep: Prepared, stack: np.ndarray,
+              more: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+    """The R factor (L, L) of the layers of ``stack`` (n, m, L) -- then those of ``more``,
+    a stack of the same shape and type -- over the dyad set (R'R = Z'Z), by one streaming
+    pass of ``kernels.tsqr.fold_rows`` over blocks of rows (float32 layers are read as
+    they are, in float64 arithmetic), and the number of dyads."""
+    parts = [stack] if more is None else [stack, more]
+    n_layers = sum(part.shape[2] for part in parts)
     out = np.zeros((n_layers, n_layers))
     count = np.zeros(1, dtype=np.int64)
     bt = np.empty((n_layers, QR_WIDTH))
@@ -339,40 +348,50 @@ def qr_layers(prep: Prepared, stack: np.ndarray) -> tuple[np.ndarray, int]:
     step = max(1, STREAM_DYADS // max(stack.shape[1], 1))
     for i0 in range(0, stack.shape[0], step):
         layers = List.empty_list(kind)
-        for c in range(n_layers):
-            layers.append(stack[i0:i0 + step, :, c])
+        for part in parts:
+            for c in range(part.shape[2]):
+                layers.append(part[i0:i0 + step, :, c])
         fold_rows(layers, prep.mask[i0:i0 + step], prep.col_start[i0:i0 + step],
                   prep.col_stop[i0:i0 + step], bt, keep, fac, out, count, False, False)
     return out, int(count[0])
 
 
-def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float) -> np.ndarray:
+def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.ndarray,
+                    sd: np.ndarray, response: np.ndarray | None = None):
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
-    with (old layers) = (new layers) @ S. Two passes of a streaming QR (the second
-    restores the orthogonality the first loses to rounding on ill-conditioned layers).
+    with (old layers) = (new layers) @ S, and the classical fit. Two passes of a
+    streaming QR (the second restores the orthogonality the first loses to rounding on
+    ill-conditioned layers).
 
     Each pass folds the layers (``qr_layers``). The layers are the standardised
-    predictors (then the response): centred, so the first pass's R is a factor of their
-    centred cross products, and the design (and the response's residual on it) must pass
-    the one rule at ``pivot`` before it is inverted.
+    predictors (then the response; or the response is ``response``, a stack of its own,
+    folded after them and left as it is): centred, so the first pass's R is a factor of
+    their centred cross products, and the design (and the response's residual on it) must
+    pass the one rule at ``pivot`` (``design.check_factor``) before it is inverted. The
+    classical fit is read from the refined factor of [predictors, response]: the second
+    pass's R times the first's (``design.fit_from_factor``; the first pass alone loses
+    digits on nearly collinear predictors).
     """
     n_layers = stack.shape[2]
     S = np.eye(n_layers)
+    cond = 1.0
+    full = None
     for first in (True, False):
-        r, count = qr_layers(prep, stack)
+        r, count = qr_layers(prep, stack, response)
         if count < n_layers:
             raise InputError(f"too few dyads for the model: {count} dyads for "
                              f"{n_layers} layers")
         if first:
-            k = prep.k
-            check_design(r[:k, :k], prep.names, pivot=pivot)
-            if n_layers > k:
-                check_response(float(r[k, k] ** 2), float((r[:, k] ** 2).sum()),
-                               prep.response_name)
+            cond = check_factor(prep, r, mean, sd, pivot=pivot)
+        else:
+            # [old layers, response] = [q, response] blockdiag(S, 1): R = r blockdiag(S, 1)
+            full = r.copy()
+            full[:, :n_layers] = r[:, :n_layers] @ S
+        r = r[:n_layers, :n_layers]
         rinv = solve_triangular(np.triu(r), np.eye(n_layers))
         apply_upper(stack.reshape(-1), n_layers, rinv)  # the stack is C-ordered: a view
         S = r @ S
-    return S
+    return S, fit_from_factor(prep, full, mean, sd, cond)
 
 
 def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
@@ -543,13 +562,18 @@ def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str =
     check_regression(model="linear", scheme=scheme, statistic=statistic, storage=storage)
     check_memory(y, predictors, storage=storage, groups=groups, in_place=overwrite_inputs)
     prep = _design.prepare(y, predictors, directed=directed, groups=groups, dyads=dyads)
-    fit = _design.observed_fit(prep, pivot=fit_pivot(prep, storage))
+    # complete float64 data: the fit comes from the QR the statistics make of their layers;
+    # float32 layers or missing dyads: a QR of the float64 inputs of its own, first
+    from_layers = prep.complete and storage == "float64" and prep.exact is None
+    fit = None if from_layers else _design.observed_fit(prep, pivot=fit_pivot(prep, storage))
     # statistics that overwrite the inputs need their fingerprints first
     fingerprints = input_fingerprints(prep) if overwrite_inputs else None
     reason = None if ci is None else interval_reason(scheme, statistic, prep.complete)
     interval = ci is not None and reason is None
     stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,
                              overwrite=bool(overwrite_inputs), interval=interval)
+    if fit is None:
+        fit = stats.fit
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
                     method=None, storage=storage, dyads=dyads,
                     groups=groups_fingerprint(groups))
