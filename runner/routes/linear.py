@@ -473,11 +473,26 @@ def _check_gram(gobs: np.ndarray, prep: Prepared) -> None:
 
 
 def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
-    """The invariant Gram of a complete-data plan (``kernels.gather.identity_gram``)."""
+    """The invariant Gram of a complete-data plan (``kernels.gather.identity_gram``).
+
+    When the relabelled and fixed layers are layers of one stack (dsp, Freedman-Lane),
+    the Gram of the distinct layers is summed once and spread over both (each entry is the
+    same sum of the same products either way: the same bits, a third of the work for dsp
+    with three predictors)."""
+    rel_idx = [int(a) for a in rel_idx]
+    fix_idx = [int(c) for c in fix_idx]
     d = 1 + len(rel_idx) + len(fix_idx)
-    g0 = np.empty((d, d))
-    identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
-                  prep.col_start, prep.col_stop, g0)
+    if rel is fix:
+        layers = sorted(set(rel_idx) | set(fix_idx))
+        g = np.empty((1 + len(layers), 1 + len(layers)))
+        identity_gram(fix, np.asarray(layers, np.int64), fix, np.zeros(0, np.int64),
+                      prep.col_start, prep.col_stop, g)
+        where = [0] + [1 + layers.index(e) for e in rel_idx + fix_idx]
+        g0 = np.ascontiguousarray(g[np.ix_(where, where)])
+    else:
+        g0 = np.empty((d, d))
+        identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
+                      prep.col_start, prep.col_stop, g0)
     # the column ranges may include cells off the dyad set (held as 0): count only dyads
     g0[0, 0] = prep.n_dyads
     return g0
