@@ -149,6 +149,39 @@ def correlation_stats(gram, out):
             out[b] = np.nan
 
 
+@njit(inline="always", **KERNEL_OPTIONS)
+def _masked_row_sum(mat, mask, i, shift, square):
+    """sum over the row's masked cells of (x - shift) (or its square), in four partial
+    sums over the columns j mod 4, combined as (s0 + s1) + (s2 + s3): four independent
+    chains instead of one (an unmasked cell adds 0.0, which changes no sum)."""
+    m = mat.shape[1]
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    m4 = m - m % 4
+    for j in range(0, m4, 4):
+        d0 = mat[i, j] - shift
+        d1 = mat[i, j + 1] - shift
+        d2 = mat[i, j + 2] - shift
+        d3 = mat[i, j + 3] - shift
+        if square:
+            d0 *= d0
+            d1 *= d1
+            d2 *= d2
+            d3 *= d3
+        s0 += d0 if mask[i, j] else 0.0
+        s1 += d1 if mask[i, j + 1] else 0.0
+        s2 += d2 if mask[i, j + 2] else 0.0
+        s3 += d3 if mask[i, j + 3] else 0.0
+    for j in range(m4, m):
+        d0 = mat[i, j] - shift
+        if square:
+            d0 *= d0
+        s0 += d0 if mask[i, j] else 0.0
+    return (s0 + s1) + (s2 + s3)
+
+
 @njit(**KERNEL_OPTIONS)
 def masked_moments(mat, mask, out):
     """Count, mean and sum of squared deviations of ``mat`` over the cells of ``mask``.
@@ -159,27 +192,20 @@ def masked_moments(mat, mask, out):
     mask : bool (n, m)
     out : float64 (3,)
         Written: [N, mean, sum over the mask of (x - mean)^2]. Two passes (mean first), each
-        summing row by row and then the row sums, so rounding grows with n + m, not n * m.
+        summing row by row (``_masked_row_sum``) and then the row sums, so rounding grows
+        with n + m, not n * m.
     """
     n, m = mat.shape
     count = 0
     total = 0.0
     for i in range(n):
-        row = 0.0
         for j in range(m):
-            if mask[i, j]:
-                row += mat[i, j]  # sum_j x_ij over the row's dyads
-                count += 1
-        total += row
+            count += mask[i, j]
+        total += _masked_row_sum(mat, mask, i, 0.0, False)  # sum_j x_ij over the row's dyads
     mean = total / max(count, 1)
     m2 = 0.0
     for i in range(n):
-        row = 0.0
-        for j in range(m):
-            if mask[i, j]:
-                d = mat[i, j] - mean
-                row += d * d  # sum_j (x_ij - mean)^2
-        m2 += row
+        m2 += _masked_row_sum(mat, mask, i, mean, True)  # sum_j (x_ij - mean)^2
     out[0] = count
     out[1] = mean
     out[2] = m2

@@ -47,6 +47,10 @@ from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dens
 # The shared relabelling pass and a plan's own statistics add the same products in the same
 # order; they must agree on the first relabelling's statistic to this relative tolerance.
 SHARED_RTOL = 1e-9
+# Condition number of the layers' first QR factor up to which one pass of orthonormalising
+# is enough: the basis is then orthonormal to about 1e-16 x 1e4 = 1e-12, far below what a
+# statistic needs (a second pass costs two reads of the stack and a QR fold).
+REFINE_COND = 1e4
 # Dyads of a row folded into its QR factor at once (``kernels.tsqr.fold_rows``): the block
 # (5 x 256 float64 = 10 KB) stays in L1.
 QR_WIDTH = 256
@@ -359,18 +363,20 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
 def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.ndarray,
                     sd: np.ndarray, response: np.ndarray | None = None):
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
-    with (old layers) = (new layers) @ S, and the classical fit. Two passes of a
-    streaming QR (the second restores the orthogonality the first loses to rounding on
-    ill-conditioned layers).
+    with (old layers) = (new layers) @ S, and the classical fit. One pass of a streaming
+    QR, and a second one when the layers' condition number is above ``REFINE_COND``: it
+    restores the orthogonality the first loses to rounding on ill-conditioned layers
+    (q = Z R^-1 with R from a backward-stable QR is orthonormal to about machine epsilon
+    times the condition number: common practice, "twice is enough").
 
     Each pass folds the layers (``qr_layers``). The layers are the standardised
     predictors (then the response; or the response is ``response``, a stack of its own,
     folded after them and left as it is): centred, so the first pass's R is a factor of
     their centred cross products, and the design (and the response's residual on it) must
     pass the one rule at ``pivot`` (``design.check_factor``) before it is inverted. The
-    classical fit is read from the refined factor of [predictors, response]: the second
-    pass's R times the first's (``design.fit_from_factor``; the first pass alone loses
-    digits on nearly collinear predictors).
+    classical fit is read from the factor of [predictors, response]: the first pass's, or
+    after a second pass the refined one, its R times the first's (``design.
+    fit_from_factor``; on nearly collinear predictors the first pass alone loses digits).
     """
     n_layers = stack.shape[2]
     S = np.eye(n_layers)
@@ -383,6 +389,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
                              f"{n_layers} layers")
         if first:
             cond = check_factor(prep, r, mean, sd, pivot=pivot)
+            full = r
         else:
             # [old layers, response] = [q, response] blockdiag(S, 1): R = r blockdiag(S, 1)
             full = r.copy()
@@ -391,6 +398,8 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
         rinv = solve_triangular(np.triu(r), np.eye(n_layers))
         apply_upper(stack.reshape(-1), n_layers, rinv)  # the stack is C-ordered: a view
         S = r @ S
+        if first and np.linalg.cond(r) <= REFINE_COND:
+            break
     return S, fit_from_factor(prep, full, mean, sd, cond)
 
 
