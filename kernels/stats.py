@@ -290,3 +290,41 @@ def apply_upper(flat, n_layers, rinv):
                     acc[t] += row[t] * rc
             for t in range(w):
                 flat[base + t * L + c] = acc[t]
+
+
+# Side of the square tiles ``is_symmetric`` compares with their mirror images (two 64 x 64
+# float64 tiles stay in the first-level cache while one is read across its columns).
+SYM_TILE = 64
+
+
+@njit(**KERNEL_OPTIONS)
+def is_symmetric(mat):
+    """Whether ``mat`` (n, n, any strides) equals its transpose off the diagonal, NaN
+    equal to NaN. Tiles of SYM_TILE x SYM_TILE against their mirror tiles; stops at the
+    first pair that differs (directed data: at once)."""
+    n = mat.shape[0]
+    for bi in range(0, n, SYM_TILE):
+        for bj in range(bi, n, SYM_TILE):
+            for i in range(bi, min(bi + SYM_TILE, n)):
+                for j in range(max(bj, i + 1), min(bj + SYM_TILE, n)):
+                    a = mat[i, j]
+                    b = mat[j, i]
+                    if not (a == b or (np.isnan(a) and np.isnan(b))):
+                        return False
+    return True
+
+
+@njit(**KERNEL_OPTIONS)
+def any_nonfinite(mat, mask, want_nan):
+    """Whether some cell of ``mat`` (n, m, any strides) is NaN (``want_nan``) or infinite
+    (else); with ``mask`` (bool (n, m), or a (0, 0) array for none) only cells where it
+    holds count. Stops at the first."""
+    n, m = mat.shape
+    masked = mask.shape[0] > 0
+    for i in range(n):
+        for j in range(m):
+            x = mat[i, j]
+            hit = np.isnan(x) if want_nan else np.isinf(x)
+            if hit and (not masked or mask[i, j]):
+                return True
+    return False

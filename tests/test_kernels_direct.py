@@ -220,3 +220,48 @@ def test_setup_kernels_against_numpy(dtype):
         apply_upper(stack.reshape(-1), 4, rinv)
         np.testing.assert_allclose(stack, want, rtol=1e-12 if dtype == np.float64 else 1e-6,
                                    atol=1e-12 if dtype == np.float64 else 1e-5)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32, np.int64, np.bool_])
+def test_symmetry_and_value_scans_against_numpy(dtype):
+    """``is_symmetric`` and ``any_nonfinite`` (the checks of ``design.prepare``) against
+    numpy's own (reference: numpy's comparisons, isnan and isinf): symmetric and not,
+    the first difference in the last tile, NaN equal to NaN across the diagonal, a cell
+    outside the mask, strided views, sizes that are not a multiple of the tile."""
+    from dyadperm.kernels.stats import SYM_TILE, any_nonfinite, is_symmetric
+
+    rng = np.random.default_rng(5)
+    n = SYM_TILE * 2 + 7
+    base = rng.integers(0, 3, size=(n, n))
+    sym = (base + base.T).astype(dtype)
+    assert is_symmetric(sym)
+    assert is_symmetric(np.ascontiguousarray(np.stack([sym, sym], axis=2))[:, :, 1])
+    off = sym.copy()
+    off[n - 1, n - 3] = not off[n - 3, n - 1] if dtype == np.bool_ else off[n - 3, n - 1] + 1
+    assert not is_symmetric(off)
+    diag = sym.copy()
+    diag[np.arange(n), np.arange(n)] = rng.integers(0, 2, n).astype(dtype)
+    assert is_symmetric(diag)  # the diagonal never counts
+
+    def numpy_symmetric(a):
+        b = a.copy()
+        np.fill_diagonal(b, 0)
+        return bool(np.array_equal(b, b.T))
+    for a in (sym, off, diag, base.astype(dtype)):
+        assert is_symmetric(a) == numpy_symmetric(a)
+    if np.dtype(dtype).kind == "f":
+        nan = sym.copy()
+        nan[3, n - 2] = nan[n - 2, 3] = np.nan
+        assert is_symmetric(nan)
+        nan[n - 2, 3] = 1.0
+        assert not is_symmetric(nan)
+        mask = np.ones((n, n), dtype=bool)
+        none = np.zeros((0, 0), dtype=bool)
+        assert not any_nonfinite(sym, none, True) and not any_nonfinite(sym, none, False)
+        bad = sym.copy()
+        bad[n - 1, n - 1] = np.inf
+        assert any_nonfinite(bad, none, False) and not any_nonfinite(bad, none, True)
+        bad[2, 5] = np.nan
+        mask[2, 5] = False
+        assert any_nonfinite(bad, none, True) == bool(np.isnan(bad).any())
+        assert any_nonfinite(bad, mask, True) == bool((np.isnan(bad) & mask).any())

@@ -20,7 +20,7 @@ from scipy.linalg import solve_triangular
 
 from ..errors import DyadpermWarning, InputError
 from ..kernels.options import FIT_PIVOT, QR_PIVOT
-from ..kernels.stats import masked_moments, masked_values
+from ..kernels.stats import any_nonfinite, is_symmetric, masked_moments, masked_values
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .labels import label_order, some_labels
@@ -326,31 +326,22 @@ def node_groups(groups: Any, labels: Sequence[str]) -> Any:
     return groups
 
 
+NO_MASK = np.zeros((0, 0), dtype=bool)
+
+
 def _any_rows(test, mat: np.ndarray, mask: np.ndarray | None = None) -> bool:
-    """Whether ``test`` (np.isnan, np.isinf) holds for some cell of ``mat`` (on ``mask``),
-    in blocks of rows, so no temporary the size of the matrix is made."""
-    step = max(1, STREAM_DYADS // max(mat.shape[1], 1))
-    for i0 in range(0, mat.shape[0], step):
-        blk = mat[i0:i0 + step]
-        hit = test(blk) if mask is None else test(blk) & mask[i0:i0 + step]
-        if hit.any():
-            return True
-    return False
+    """Whether ``test`` (np.isnan, np.isinf) holds for some cell of ``mat`` (on ``mask``):
+    one pass of ``kernels.stats.any_nonfinite`` (no temporary), stopping at the first."""
+    arr = np.asarray(mat)
+    if arr.dtype.kind != "f":
+        return False  # integer and boolean cells are finite
+    return bool(any_nonfinite(arr, NO_MASK if mask is None else mask, test is np.isnan))
 
 
 def _symmetric(mat: np.ndarray) -> bool:
-    """Equal to its transpose off the diagonal (NaN equals NaN), in blocks of rows."""
-    n = mat.shape[0]
-    step = max(1, STREAM_DYADS // max(n, 1))
-    for i0 in range(0, n, step):
-        blk = mat[i0:i0 + step]
-        blk_t = mat[:, i0:i0 + step].T
-        same = (blk == blk_t) | (np.isnan(blk) & np.isnan(blk_t))
-        rows = np.arange(blk.shape[0])
-        same[rows, i0 + rows] = True
-        if not same.all():
-            return False
-    return True
+    """Equal to its transpose off the diagonal (NaN equals NaN): ``kernels.stats.
+    is_symmetric``, by tiles, stopping at the first difference."""
+    return bool(is_symmetric(np.asarray(mat)))
 
 
 def _group_order(groups: Any, n: int, what: str, labels: Sequence[str] | None = None):
