@@ -1,15 +1,18 @@
 """Setup of the dense linear route (before any relabelling), in reads of the inputs.
 
 For n in {2000, 5000} (dense directed networks, 3 predictors, complete data) and the
-schemes y and dsp, times ``routes.linear.plan`` (prepare, observed fit, run identity,
-layers, orthonormal basis, invariant Gram) in a fresh subprocess, best of ``--repeats``
-after a warm-up call that loads the kernels, and each of its stages on its own:
+schemes y and dsp, times ``routes.linear.plan`` (prepare, layers, orthonormal basis and the
+classical fit read off its QR factor, invariant Gram) in a fresh subprocess, best of
+``--repeats`` after a warm-up call that loads the kernels, and stages on their own:
 
 - prepare: alignment, directedness (symmetry), infinite and missing value scans;
-- observed fit: the streaming QR of [1, X, y] (``design.observed_fit``) and the TSS pass;
-- fingerprints: SHA-256 of each input for the run identity (``plan.input_fingerprints``);
-- statistics: means and spreads, the standardised layer stack, the two passes of the
-  orthonormalisation, the invariant Gram (``linear.build_statistics``).
+- statistics: means and spreads, the standardised layer stack, the orthonormalisation
+  (one QR pass, two for ill-conditioned layers) with the classical fit, the invariant
+  Gram (``linear.build_statistics``);
+- not part of this plan: the fingerprints (SHA-256 of each input, ``plan.
+  input_fingerprints``), taken only for a run file (or first, when a study's layers are
+  standardised in place), and the QR of the float64 inputs (``design.observed_fit``),
+  which only float32 layers and missing dyads need.
 
 "Reads" = time x the two-thread read bandwidth measured in the same run / the bytes of the
 float64 inputs (4 n^2 8): how many times the setup could have read its inputs from memory.
@@ -58,14 +61,14 @@ def child(n: int, scheme: str, repeats: int) -> dict:
         prep = prepare(y, xs)
         t["prepare"] = time.perf_counter() - t0
         t0 = time.perf_counter()
-        observed_fit(prep, pivot=linear.fit_pivot(prep))
-        t["observed fit"] = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        input_fingerprints(prep)
-        t["fingerprints"] = time.perf_counter() - t0
-        t0 = time.perf_counter()
         linear.build_statistics(prep, scheme=scheme, statistic="t")
         t["statistics"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        input_fingerprints(prep)
+        t["(fingerprints)"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        observed_fit(prep, pivot=linear.fit_pivot(prep))
+        t["(QR of the inputs)"] = time.perf_counter() - t0
         for key, val in t.items():
             best[key] = min(best.get(key, float("inf")), val)
     return {"n": n, "scheme": scheme, "seconds": best, "input_bytes": (K + 1) * n * n * 8}
