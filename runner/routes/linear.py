@@ -34,7 +34,7 @@ from ..inputs import design as _design
 from ..inputs import memory as _memory
 from ..inputs.design import (STREAM_DYADS, ObservedFit, Prepared, check_design, check_factor,
                              check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
-                             standardise)
+                             side_by_side, standardise)
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import gather_cross, gather_gram, identity_gram
 from ..kernels.tsqr import fold_rows
@@ -170,9 +170,15 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     # cells that hold dyad values: the dyad set, and for undirected data its mirror image
     # (relabelled reads land in either triangle)
     holds = prep.holds()
-    for pos, layer in enumerate(layers):
-        standardise_layer(prep.matrices[layer], float(mean[layer]), float(sd[layer]), holds,
-                          fill, out[:, :, pos])
+    # halves of the rows to two threads, every layer of a half on one (layers of one cell
+    # share its cache line)
+    half = (n + 1) // 2
+
+    def rows(part: slice) -> None:
+        for pos, layer in enumerate(layers):
+            standardise_layer(prep.matrices[layer][part], float(mean[layer]),
+                              float(sd[layer]), holds[part], fill, out[part, :, pos])
+    side_by_side(rows, [slice(0, half), slice(half, n)], n * m)
     return out
 
 
@@ -396,7 +402,12 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
             full[:, :n_layers] = r[:, :n_layers] @ S
         r = r[:n_layers, :n_layers]
         rinv = solve_triangular(np.triu(r), np.eye(n_layers))
-        apply_upper(stack.reshape(-1), n_layers, rinv)  # the stack is C-ordered: a view
+        # the stack is C-ordered (its flat view is a view); cells are independent, so the
+        # halves of its rows go to two threads
+        half = (stack.shape[0] + 1) // 2
+        side_by_side(lambda rows: apply_upper(stack[rows].reshape(-1), n_layers, rinv),
+                     [slice(0, half), slice(half, stack.shape[0])],
+                     stack.shape[0] * stack.shape[1])
         S = r @ S
         if first and np.linalg.cond(r) <= REFINE_COND:
             break
