@@ -328,3 +328,34 @@ def any_nonfinite(mat, mask, want_nan):
             if hit and (not masked or mask[i, j]):
                 return True
     return False
+
+
+@njit(**KERNEL_OPTIONS)
+def place_rows(block, cols, out, out_rows, status):
+    """out[out_rows[i], j] = block[i, cols[j]] cast to ``out``'s type, checking each value.
+
+    The loading of a network file: one pass that checks, casts and places a block of rows
+    (no temporaries). ``cols`` / ``out_rows`` of length 0 mean the identity. Stops at the
+    first value that is infinite (status = [1, i, j]) or finite but beyond the range of
+    ``out``'s type (status = [2, i, j]); status[0] = 0 when every value was placed.
+
+    block : (r, m) any numeric type; out : float64 or float32 (n, m), any strides;
+    cols, out_rows : int64; status : int64 (3,).
+    """
+    r, m = block.shape
+    use_cols = cols.shape[0] > 0
+    use_rows = out_rows.shape[0] > 0
+    status[0] = 0
+    for i in range(r):
+        dst = out_rows[i] if use_rows else i
+        for j in range(m):
+            x = block[i, cols[j]] if use_cols else block[i, j]
+            xf = np.float64(x)
+            if np.isinf(xf):
+                status[0], status[1], status[2] = 1, i, j
+                return
+            y = out.dtype.type(xf)
+            if np.isinf(y):
+                status[0], status[1], status[2] = 2, i, j
+                return
+            out[dst, j] = y

@@ -265,3 +265,43 @@ def test_symmetry_and_value_scans_against_numpy(dtype):
         mask[2, 5] = False
         assert any_nonfinite(bad, none, True) == bool(np.isnan(bad).any())
         assert any_nonfinite(bad, mask, True) == bool((np.isnan(bad) & mask).any())
+
+
+def test_place_rows_against_numpy():
+    """``place_rows`` (loading a network file: check, cast and place a block of rows)
+    against numpy's fancy indexing and astype (reference: numpy): rows and columns put in
+    another order, float32 targets, integer blocks; the first infinite value and the first
+    value beyond float32 are reported by row and column, and nothing after them placed."""
+    from dyadperm.kernels.stats import place_rows
+
+    rng = np.random.default_rng(9)
+    block = rng.normal(size=(6, 5)) * 1e3
+    cols = rng.permutation(5).astype(np.int64)
+    dest = rng.permutation(6).astype(np.int64)
+    none = np.zeros(0, dtype=np.int64)
+    status = np.zeros(3, dtype=np.int64)
+    for dtype in (np.float64, np.float32):
+        out = np.full((6, 5, 2), -1.0, dtype=dtype)[:, :, 0]
+        place_rows(block, cols, out, dest, status)
+        want = np.empty((6, 5), dtype=dtype)
+        want[dest] = block[:, cols].astype(dtype)
+        assert status[0] == 0
+        np.testing.assert_array_equal(out, want)
+    ints = rng.integers(-5, 5, size=(3, 4))
+    out = np.empty((3, 4))
+    place_rows(ints, none, out, none, status)
+    np.testing.assert_array_equal(out, ints.astype(np.float64))
+    bad = block.copy()
+    bad[2, 3] = np.inf
+    bad[4, 0] = 1e300
+    out = np.zeros((6, 5))
+    place_rows(bad, none, out, none, status)
+    assert list(status) == [1, 2, 3]
+    assert out[3].tolist() == [0.0] * 5  # stopped there
+    bad[2, 3] = 1.0
+    out32 = np.zeros((6, 5), dtype=np.float32)
+    with np.errstate(over="ignore"):  # the pure-Python twin (no JIT) casts with numpy
+        place_rows(bad, none, out32, none, status)
+    assert list(status) == [2, 4, 0]
+    place_rows(bad, none, np.zeros((6, 5)), none, status)
+    assert status[0] == 0  # 1e300 is a float64

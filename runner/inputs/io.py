@@ -42,6 +42,7 @@ from typing import Iterable, Iterator, Sequence
 import numpy as np
 
 from ..errors import InputError
+from ..kernels.stats import place_rows
 
 __all__ = ["NodeTable", "RawNetwork", "RowReader", "read_node_table", "read_network", "align",
            "float64_rows", "collect_labels", "split_h5_path", "FORMATS"]
@@ -478,8 +479,9 @@ class LazyBlock:
         self._npy_offset = npy_offset
         self._h5 = h5
 
-    def row_blocks(self) -> Iterator[tuple[int, np.ndarray]]:
-        """(first row, float64 rows) blocks in order, each checked for infinite values."""
+    def row_blocks(self, checked: bool = True) -> Iterator[tuple[int, np.ndarray]]:
+        """(first row, float64 rows) blocks in order, each checked for infinite values
+        (``checked=False``: the rows as the file holds them, unchecked)."""
         n, m = self.shape
         step = max(1, READ_BYTES // max(1, m * self.dtype.itemsize))
         if self._npy_offset is not None:
@@ -491,14 +493,15 @@ class LazyBlock:
                     if fh.readinto(memoryview(buf).cast("B")) != buf.nbytes:
                         raise InputError(f"{self.shown}: the file ends before its "
                                          f"{n} x {m} block does")
-                    yield r0, self._checked(r0, buf)
+                    yield r0, self._checked(r0, buf) if checked else buf
             return
         import h5py
 
         with h5py.File(self._h5[0], "r") as fh:
             ds = fh[self._h5[1]]
             for r0 in range(0, n, step):
-                yield r0, self._checked(r0, np.asarray(ds[r0:r0 + step]))
+                rows = np.asarray(ds[r0:r0 + step])
+                yield r0, self._checked(r0, rows) if checked else rows
 
     def _checked(self, r0: int, buf: np.ndarray) -> np.ndarray:
         block = buf.astype(np.float64, copy=False)
@@ -512,30 +515,36 @@ class LazyBlock:
         ``rows``/``cols`` (optional): out[i, j] = block[rows[i], cols[j]], the block's rows
         and columns put in another order as they are read (a row block at a time).
         """
+        none = np.zeros(0, dtype=np.int64)
         dest = None
         if rows is not None:
-            dest = np.empty_like(rows)
+            dest = np.empty(rows.shape[0], dtype=np.int64)
             dest[rows] = np.arange(rows.shape[0])
-        for r0, block in self.row_blocks():
-            if cols is not None:
-                block = block[:, cols]
-            if out.dtype != np.float64:
-                block = self._narrowed(r0, block, out.dtype)
+        take = none if cols is None else np.ascontiguousarray(cols, dtype=np.int64)
+        status = np.zeros(3, dtype=np.int64)
+        for r0, block in self.row_blocks(checked=False):
+            # check, cast and place in one pass (kernels.stats.place_rows)
+            n_rows = block.shape[0]
             if dest is None:
-                out[r0:r0 + block.shape[0]] = block
+                place_rows(block, take, out[r0:r0 + n_rows], none, status)
             else:
-                out[dest[r0:r0 + block.shape[0]]] = block
+                place_rows(block, take, out, dest[r0:r0 + n_rows], status)
+            if status[0]:
+                i, j = int(status[1]), int(status[2])
+                value = float(block[i, j if cols is None else int(cols[j])])
+                if status[0] == 1:
+                    raise InputError(f"{self.shown}: infinite value at row {r0 + i}, column "
+                                     f"{j if cols is None else int(cols[j])} (0-based) is not "
+                                     "data (use NaN for a missing value)")
+                raise InputError(f"{self.shown}: value {value!r} at row {r0 + i}, column "
+                                 f"{j if cols is None else int(cols[j])} (0-based) is beyond "
+                                 f"the range of storage {out.dtype.name}; use storage = "
+                                 "\"float64\"")
 
     def copy(self) -> np.ndarray:
         out = np.empty(self.shape)
         self.copy_to(out)
         return out
-
-    def _narrowed(self, r0: int, block: np.ndarray, dtype: np.dtype) -> np.ndarray:
-        with np.errstate(over="ignore"):  # a value beyond float32 is named just below
-            narrow = block.astype(dtype)
-        _check_narrowed(block, narrow, self.shown, r0)
-        return narrow
 
     def read_rows(self, rows: np.ndarray) -> np.ndarray:
         """float64 rows ``rows`` (block positions, any order) read again from the file."""
