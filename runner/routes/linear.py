@@ -26,8 +26,8 @@ from typing import Any, Sequence
 
 import numpy as np
 from numba import types
-from scipy.linalg import solve_triangular
 from numba.typed import List
+from scipy.linalg import solve_triangular
 
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
@@ -85,8 +85,8 @@ class GramStatistics:
     #: per tested term, the factor taking b from standardised units to the coefficient's
     #: when the transforms carry the interval column X (``intervals``), else None
     ci_scale: np.ndarray | None = None
-    #: complete data: the classical fit read from the layers' QR factor
-    #: (``design.fit_from_factor``), else None
+    #: the classical fit read from the layers' QR factor (``design.fit_from_factor``) when
+    #: ``build_statistics(classical=True)`` had complete data, else None
     fit: ObservedFit | None = None
 
     @property
@@ -208,7 +208,7 @@ def fit_pivot(prep: Prepared, storage: str = "float64") -> float:
 
 def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: str = "float64",
                      overwrite: bool = False, interval: bool = False,
-                     absorbed: int = 0) -> GramStatistics:
+                     absorbed: int = 0, classical: bool = False) -> GramStatistics:
     """Layers, invariant Gram blocks and transforms of a regression scheme.
 
     ``absorbed``: design columns the inputs were already centred on (wave intercepts of
@@ -219,6 +219,9 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
 
     ``interval``: also the numbers that invert each term's test (``pipeline.intervals``),
     for dsp and freedman-lane with statistic t on complete data (``interval_reason``).
+
+    ``classical``: with complete data, also read the classical fit off the layers' QR
+    factor (``GramStatistics.fit``; float64 layers: the route's table, no pass of its own).
 
     ``overwrite``: the layer stacks may be the inputs themselves, standardised in place
     (see ``owned_base``); ``prep.matrices`` then no longer hold the data. The design (and
@@ -236,7 +239,7 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
     fit = None
     if prep.complete:
         one, fit = _complete_pass(prep, scheme, statistic, storage, mean, sd, overwrite,
-                                  interval)
+                                  interval, classical)
         passes = [one]
     else:
         passes = _masked_passes(prep, scheme, statistic, storage, mean, sd, overwrite)
@@ -274,7 +277,8 @@ def _transform(cols: list[dict[int, float]], d: int) -> np.ndarray:
 
 def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
                    mean: np.ndarray, sd: np.ndarray, overwrite: bool = False,
-                   interval: bool = False) -> Pass:
+                   interval: bool = False,
+                   classical: bool = False) -> tuple[Pass, ObservedFit | None]:
     """Complete data: orthonormal layers, so every permutation's Gram is well conditioned.
 
     The standardised predictors (and, for dsp and Freedman–Lane, the response) are replaced
@@ -295,11 +299,12 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     if scheme == "y":
         rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
-        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, response=rel)
+        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, response=rel,
+                                 classical=classical)
         rel_idx, fix_idx = [0], xs
     else:
         rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
-        S, fit = _orthonormalise(fix, prep, pivot, mean, sd)
+        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, classical=classical)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
     d = 1 + R + Q
@@ -367,13 +372,15 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
 
 
 def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.ndarray,
-                    sd: np.ndarray, response: np.ndarray | None = None):
+                    sd: np.ndarray, response: np.ndarray | None = None,
+                    classical: bool = False) -> tuple[np.ndarray, ObservedFit | None]:
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
-    with (old layers) = (new layers) @ S, and the classical fit. One pass of a streaming
-    QR, and a second one when the layers' condition number is above ``REFINE_COND``: it
-    restores the orthogonality the first loses to rounding on ill-conditioned layers
-    (q = Z R^-1 with R from a backward-stable QR is orthonormal to about machine epsilon
-    times the condition number: common practice, "twice is enough").
+    with (old layers) = (new layers) @ S, and (with ``classical``) the classical fit, else
+    None. One pass of a streaming QR, and a second one when the layers' condition number
+    is above ``REFINE_COND``: it restores the orthogonality the first loses to rounding on
+    ill-conditioned layers (q = Z R^-1 with R from a backward-stable QR is orthonormal to
+    about machine epsilon times the condition number: common practice, "twice is
+    enough").
 
     Each pass folds the layers (``qr_layers``). The layers are the standardised
     predictors (then the response; or the response is ``response``, a stack of its own,
@@ -411,7 +418,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
         S = r @ S
         if first and np.linalg.cond(r) <= REFINE_COND:
             break
-    return S, fit_from_factor(prep, full, mean, sd, cond)
+    return S, fit_from_factor(prep, full, mean, sd, cond) if classical else None
 
 
 def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
@@ -606,7 +613,8 @@ def plan(y: Any, predictors: Any, *, scheme: str, statistic: str, storage: str =
     reason = None if ci is None else interval_reason(scheme, statistic, prep.complete)
     interval = ci is not None and reason is None
     stats = build_statistics(prep, scheme=scheme, statistic=statistic, storage=storage,
-                             overwrite=bool(overwrite_inputs), interval=interval)
+                             overwrite=bool(overwrite_inputs), interval=interval,
+                             classical=from_layers)
     if fit is None:
         fit = stats.fit
     settings = dict(kind="regression", model="linear", scheme=scheme, statistic=statistic,
