@@ -29,11 +29,11 @@ digits (the agreement the pipeline asks of the kernels' observed statistic, 1e-6
   relative to its diagonal (Higham 2002, Accuracy and Stability of Numerical Algorithms,
   2nd ed., section 10.1 [memory]), so pivot^2 = 1e-10 keeps about six digits.
 - ``QR_PIVOT`` (1e-11) for the dense linear route with complete float64 data, whose
-  kernels read an orthonormal basis of the predictors (made by two passes of a QR): the
-  kernels' Gram matrices are then near the identity whatever the predictors' collinearity,
-  and only the QR of the standardised predictors must resolve their pivots, to a relative
-  error near machine epsilon / pivot (common practice: the forward error of a Householder
-  QR). A pivot below 1e-11 leaves fewer than five digits and cannot be told apart from
+  kernels read an orthonormal basis of the predictors (made by a QR, twice when they are
+  ill-conditioned): the kernels' Gram matrices are then near the identity whatever the
+  predictors' collinearity, and only the QR of the standardised predictors must resolve
+  their pivots, to a relative error near machine epsilon / pivot (common practice: the
+  forward error of a Householder QR). A pivot below 1e-11 leaves fewer than five digits and cannot be told apart from
   exact collinearity in a large network (rounding noise of an exactly collinear pair grows
   like epsilon sqrt(N)).
 """

@@ -282,8 +282,8 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     """Complete data: orthonormal layers, so every permutation's Gram is well conditioned.
 
     The standardised predictors (and, for dsp and Freedman–Lane, the response) are replaced
-    by an orthonormal basis q of their span over the dyad set (two passes of a streaming
-    QR), L = q S. For term j a small QR of S with column j last rotates the x-part of the
+    by an orthonormal basis q of their span over the dyad set (a streaming QR, twice for
+    ill-conditioned layers: ``_orthonormalise``), L = q S. For term j a small QR of S with column j last rotates the x-part of the
     basis into P, whose first k-1 columns span the other predictors and whose last column
     is the direction of x_j's residual on them (x_j = ... + Rs[k-1, k-1] P[k-1]). Every
     design then has orthonormal fixed columns, so even nearly collinear predictors keep
