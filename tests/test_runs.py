@@ -225,3 +225,28 @@ def test_inputs_are_hashed_only_for_a_run_file(tmp_path, monkeypatch):
     ident = store.read_header(out).identity
     assert ident["fingerprint:x"] == real(x)
     assert ident["fingerprint:response"] == real(y)
+
+
+def test_workers_of_a_run_in_memory_get_no_inputs_for_the_identity(monkeypatch):
+    """A plan's identity is made from the prepared inputs when first read (a closure over
+    them). A run without a run file never reads it, so the plan its workers get -- pickled
+    for processes and Dask -- carries a plain, empty identity, not that closure; the
+    caller's plan keeps its own and can still make a run file afterwards."""
+    from dyadperm.pipeline import engine
+    from dyadperm.pipeline import run as run_mod
+    from dyadperm.routes import linear
+    from dyadperm.routes.plan import LazyIdentity, fingerprint
+    from dyadperm.settings import RunOptions
+
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(10, 10))
+    y = x + rng.normal(size=(10, 10))
+    plan = linear.plan(y, {"x": x}, scheme="dsp", statistic="t")
+    assert isinstance(plan.identity, LazyIdentity)
+    seen = []
+    real = engine.compute_chunk
+    monkeypatch.setattr(engine, "compute_chunk",
+                        lambda p, d, c: seen.append(p.identity) or real(p, d, c))
+    run_mod.execute(plan, RunOptions(permutations=10, seed=1, chunk_size=5))
+    assert seen and all(ident == {} and not isinstance(ident, LazyIdentity) for ident in seen)
+    assert dict(plan.identity)["fingerprint:x"] == fingerprint(x)

@@ -18,6 +18,7 @@ a run a run happens here, the same way for every route:
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from pathlib import Path
 from typing import Any
@@ -28,6 +29,7 @@ from ..errors import DyadpermWarning, InputError
 from ..output.result import (CorrelationResult, LayerCorrelationResult, RegressionResult,
                              statistic_label)
 from ..settings import EXACT_LIMIT, RunOptions, StopRule, entropy_of
+from ..routes.plan import LazyIdentity
 from . import intervals, store
 from .engine import Draws, iter_chunks, run_all, workers_used
 from .stopping import (assess, closing, finish_progress, run_until, sequential_for,
@@ -110,6 +112,10 @@ def execute(plan: Any, opts: RunOptions) -> tuple[Draws, np.ndarray, np.ndarray 
                 chunk_size=draws.chunk_size, exact=draws.exact, shard=opts.shard,
                 study_text=prov.get("study_text", ""), study_path=prov.get("study_path", ""),
                 summary=summary, observed=observed_arrays(plan, row), extra=plan.extra))
+    if out is None and isinstance(plan.identity, LazyIdentity):
+        # no run file: the identity is never read, and the plan the workers get (pickled
+        # for processes and Dask) must not carry the inputs it would be made from
+        plan = dataclasses.replace(plan, identity={})
     tick = _ticker(opts.progress, draws.total)
     where = dict(jobs=opts.jobs, backend=opts.backend, scheduler=opts.scheduler)
     # a stop rule reads the finished prefix at chunk boundaries
