@@ -161,7 +161,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         if mat.shape != resp.shape:
             raise InputError(f"predictor {name!r} has shape {mat.shape[0]} x {mat.shape[1]}; "
                              f"the response has {resp.shape[0]} x {resp.shape[1]}")
-    infinite = side_by_side(lambda a: _any_rows(np.isinf, a), mats,
+    infinite = side_by_side(lambda a: _has_nonfinite(a, nan=False), mats,
                             resp.shape[0] * resp.shape[1])
     for name, inf in zip(names + (resp.name,), infinite):
         if inf:
@@ -231,7 +231,7 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
             a[lower] = a.T[lower]
         internal.append(a)
     complete = excluded is None and not any(side_by_side(
-        lambda a: _any_rows(np.isnan, a, mask), internal, mask.size))
+        lambda a: _has_nonfinite(a, nan=True, mask=mask), internal, mask.size))
     n_dyads = int(mask.sum())
     labels_out = tuple(labels)
     exact = None
@@ -351,13 +351,13 @@ def side_by_side(fn, items: Sequence[Any], cells: int) -> list:
         return list(pool.map(fn, items))
 
 
-def _any_rows(test, mat: np.ndarray, mask: np.ndarray | None = None) -> bool:
-    """Whether ``test`` (np.isnan, np.isinf) holds for some cell of ``mat`` (on ``mask``):
-    one pass of ``kernels.stats.any_nonfinite`` (no temporary), stopping at the first."""
+def _has_nonfinite(mat: np.ndarray, *, nan: bool, mask: np.ndarray | None = None) -> bool:
+    """Whether some cell of ``mat`` (on ``mask``) is NaN (``nan``) or infinite (else): one
+    pass of ``kernels.stats.any_nonfinite`` (no temporary), stopping at the first."""
     arr = np.asarray(mat)
     if arr.dtype.kind != "f":
         return False  # integer and boolean cells are finite
-    return bool(any_nonfinite(arr, NO_MASK if mask is None else mask, test is np.isnan))
+    return bool(any_nonfinite(arr, NO_MASK if mask is None else mask, nan))
 
 
 def _symmetric(mat: np.ndarray) -> bool:

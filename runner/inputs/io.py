@@ -479,9 +479,9 @@ class LazyBlock:
         self._npy_offset = npy_offset
         self._h5 = h5
 
-    def row_blocks(self, checked: bool = True) -> Iterator[tuple[int, np.ndarray]]:
-        """(first row, float64 rows) blocks in order, each checked for infinite values
-        (``checked=False``: the rows as the file holds them, unchecked)."""
+    def row_blocks(self) -> Iterator[tuple[int, np.ndarray]]:
+        """(first row, rows) blocks in order, as the file holds them (its dtype, unchecked:
+        ``copy_to`` checks each value as it places it)."""
         n, m = self.shape
         step = max(1, READ_BYTES // max(1, m * self.dtype.itemsize))
         if self._npy_offset is not None:
@@ -493,20 +493,14 @@ class LazyBlock:
                     if fh.readinto(memoryview(buf).cast("B")) != buf.nbytes:
                         raise InputError(f"{self.shown}: the file ends before its "
                                          f"{n} x {m} block does")
-                    yield r0, self._checked(r0, buf) if checked else buf
+                    yield r0, buf
             return
         import h5py
 
         with h5py.File(self._h5[0], "r") as fh:
             ds = fh[self._h5[1]]
             for r0 in range(0, n, step):
-                rows = np.asarray(ds[r0:r0 + step])
-                yield r0, self._checked(r0, rows) if checked else rows
-
-    def _checked(self, r0: int, buf: np.ndarray) -> np.ndarray:
-        block = buf.astype(np.float64, copy=False)
-        _check_finite(block, self.shown, r0)
-        return block
+                yield r0, np.asarray(ds[r0:r0 + step])
 
     def copy_to(self, out: np.ndarray, rows: np.ndarray | None = None,
                 cols: np.ndarray | None = None) -> None:
@@ -522,7 +516,7 @@ class LazyBlock:
             dest[rows] = np.arange(rows.shape[0])
         take = none if cols is None else np.ascontiguousarray(cols, dtype=np.int64)
         status = np.zeros(3, dtype=np.int64)
-        for r0, block in self.row_blocks(checked=False):
+        for r0, block in self.row_blocks():
             # check, cast and place in one pass (kernels.stats.place_rows)
             n_rows = block.shape[0]
             if dest is None:
@@ -530,16 +524,15 @@ class LazyBlock:
             else:
                 place_rows(block, take, out, dest[r0:r0 + n_rows], status)
             if status[0]:
-                i, j = int(status[1]), int(status[2])
-                value = float(block[i, j if cols is None else int(cols[j])])
+                # the file's own row and column
+                i = r0 + int(status[1])
+                j = int(status[2]) if cols is None else int(take[status[2]])
                 if status[0] == 1:
-                    raise InputError(f"{self.shown}: infinite value at row {r0 + i}, column "
-                                     f"{j if cols is None else int(cols[j])} (0-based) is not "
-                                     "data (use NaN for a missing value)")
-                raise InputError(f"{self.shown}: value {value!r} at row {r0 + i}, column "
-                                 f"{j if cols is None else int(cols[j])} (0-based) is beyond "
-                                 f"the range of storage {out.dtype.name}; use storage = "
-                                 "\"float64\"")
+                    raise InputError(f"{self.shown}: infinite value at row {i}, column {j} "
+                                     "(0-based) is not data (use NaN for a missing value)")
+                raise InputError(f"{self.shown}: value {float(block[i - r0, j])!r} at row {i}, "
+                                 f"column {j} (0-based) is beyond the range of storage "
+                                 f"{out.dtype.name}; use storage = \"float64\"")
 
     def copy(self) -> np.ndarray:
         out = np.empty(self.shape)
