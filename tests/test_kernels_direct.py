@@ -151,6 +151,46 @@ def test_vector_tiles_same_bits_as_scalar(dtype, n_rel, n_fix, block, n, ranges)
 
 
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("n_layers,fix_idx", [(3, [0, 1, 2]), (3, [1, 2]), (2, [0, 1]),
+                                              (4, [0, 1, 2, 3]), (6, [0, 1, 2, 3, 4]),
+                                              (5, [2, 3, 4])])
+@pytest.mark.parametrize("block", [1, 4])
+@pytest.mark.parametrize("n,ranges", [(13, "full"), (150, "full"), (150, "triangle")])
+def test_vector_one_layer_pass_same_bits_as_scalar(dtype, n_layers, fix_idx, block, n,
+                                                   ranges):
+    """One relabelled layer against consecutive fixed layers (scheme y, correlation) runs
+    in vector registers (``kernels.gather.dot_vec``, 4-wide reads of the fixed records);
+    the same layers spread out (every other slot) run in the scalar passes ``_dot1`` ..
+    ``_dot4``. Both must give the same bits -- four chains over the columns (mod 4), one
+    fused multiply-add per term -- and match the plain-numpy twin. The fixed stack has no
+    spare layer, so the last columns' 4-wide reads would leave the array: those columns
+    are summed in scalars (the case of scheme y's stack of 3 predictors). Rows of 150
+    columns span several vector calls; the upper triangle gives rows of every length."""
+    rng = np.random.default_rng(n_layers * 10 + len(fix_idx))
+    B = 5
+    fix = rng.normal(size=(n, n, n_layers)).astype(dtype)
+    rel = rng.normal(size=(n, n, 2)).astype(dtype)
+    spread = np.zeros((n, n, 2 * n_layers), dtype=dtype)
+    spread[:, :, ::2] = fix
+    rows = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
+    start = np.arange(1, n + 1, dtype=np.int64) if ranges == "triangle" else \
+        np.zeros(n, dtype=np.int64)
+    stop = np.full(n, n, dtype=np.int64)
+    rel_idx = np.array([1], dtype=np.int64)
+    got = {}
+    for name, arr, step in (("vector", fix, 1), ("scalar", spread, 2)):
+        out = np.empty((B, 1, len(fix_idx)))
+        gather_cross(rel, rel_idx, arr, np.asarray(fix_idx, np.int64) * step, rows, rows,
+                     start, stop, out, block=block)
+        got[name] = out
+    np.testing.assert_array_equal(got["vector"], got["scalar"])
+    want = np.empty((B, 1, len(fix_idx)))
+    gather_cross_ref(rel.astype(np.float64), rel_idx, fix.astype(np.float64),
+                     np.asarray(fix_idx), rows, rows, start, stop, want)
+    np.testing.assert_allclose(got["vector"], want, rtol=KERNEL_RTOL, atol=KERNEL_ATOL)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
 @pytest.mark.parametrize("ranges", ["full", "triangle", "uneven"])
 def test_identity_gram_against_numpy(dtype, ranges):
     """``identity_gram`` (the invariant Gram of complete-data plans) against the Gram of
