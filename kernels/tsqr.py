@@ -19,8 +19,9 @@ reassociated so they run in vector registers (``SETUP_OPTIONS``); they run once 
 on one fixed order of rows and blocks, so a plan is the same for any chunk size or number
 of jobs.
 
-``layers`` is a numba typed List of 2-d float64 or float32 arrays (any strides, all of one
-type), each (rows, m): row r of every layer is row r of the call (``mask`` and the column
+``stacks`` is a tuple of 3-d float64 or float32 arrays (all of one type), each (rows, m,
+L_s): the layers are those of the first stack, then the second's, ..., L in all; row r of
+every layer is row r of the call: row r of every layer is row r of the call (``mask`` and the column
 ranges are given for the same rows). Dyads are the cells (r, j) with col_start[r] <= j <
 col_stop[r] where ``mask`` holds.
 """
@@ -32,23 +33,26 @@ from .options import KERNEL_OPTIONS, SETUP_OPTIONS
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
-def _load_block(layers, r, j0, nb, intercept, bt):
+def _load_block(stacks, r, j0, nb, intercept, bt):
     """bt[:, w] = [1, z_1 .. z_L] (without the 1 unless ``intercept``) of cells
-    (r, j0 + w), w < nb, in float64.
+    (r, j0 + w), w < nb, in float64: the layers of each stack in turn.
 
     bt : float64 (L + intercept, width), written in columns 0 .. nb - 1. (Inner loops run
     over 1-d views with indices from 0, so they compile to vector loads and stores.)
     """
-    first = 1 if intercept else 0
+    e = 0
     if intercept:
         dst = bt[0]
         for w in range(nb):
             dst[w] = 1.0
-    for e in range(len(layers)):
-        dst = bt[e + first]
-        seg = layers[e][r, j0:j0 + nb]
-        for w in range(nb):
-            dst[w] = seg[w]
+        e = 1
+    for part in stacks:
+        for c in range(part.shape[2]):
+            dst = bt[e]
+            seg = part[r, j0:j0 + nb, c]
+            for w in range(nb):
+                dst[w] = seg[w]
+            e += 1
 
 
 @njit(**SETUP_OPTIONS)
@@ -82,13 +86,13 @@ def _fold_block(bt, nb, fac):
 
 
 @njit(**KERNEL_OPTIONS)
-def fold_rows(layers, mask, col_start, col_stop, bt, keep, fac, out, count, intercept,
+def fold_rows(stacks, mask, col_start, col_stop, bt, keep, fac, out, count, intercept,
               skip_nan):
     """Fold the dyads of every row into the running R factor ``out``.
 
     Parameters
     ----------
-    layers : typed List of L float64 or float32 (rows, m) arrays, all of one type
+    stacks : tuple of float64 or float32 (rows, m, L_s) arrays, all of one type (L in all)
     mask : bool (rows, m)
         The dyad set.
     col_start, col_stop : int64 (rows,)
@@ -106,34 +110,70 @@ def fold_rows(layers, mask, col_start, col_stop, bt, keep, fac, out, count, inte
         D has the column of ones first; leave out dyads where some layer is NaN (missing
         data).
     """
-    n_rows = mask.shape[0]
-    p = out.shape[0]
+    for r in range(mask.shape[0]):
+        count[0] += _row_factor(stacks, mask, col_start, col_stop, r, bt, keep, fac,
+                                intercept, skip_nan)
+        _fold_factor(fac, bt, out)
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _row_factor(stacks, mask, col_start, col_stop, r, bt, keep, fac, intercept, skip_nan):
+    """fac = the upper triangular factor of row r's dyads alone (blocks of up to
+    ``bt.shape[1]`` dyads folded in column order); returns the row's dyad count."""
+    p = fac.shape[0]
     width = bt.shape[1]
-    for r in range(n_rows):
-        fac[:, :] = 0.0
-        j = col_start[r]
-        stop = col_stop[r]
-        while j < stop:
-            nb = min(width, stop - j)
-            _load_block(layers, r, j, nb, intercept, bt)
-            kept = 0
-            for w in range(nb):
-                ok = mask[r, j + w]
-                if skip_nan and ok:
-                    for c in range(p):
-                        if np.isnan(bt[c, w]):
-                            ok = False
-                keep[w] = ok
-                kept += ok
-            if kept < nb:
+    fac[:, :] = 0.0
+    kept_row = 0
+    j = col_start[r]
+    stop = col_stop[r]
+    while j < stop:
+        nb = min(width, stop - j)
+        _load_block(stacks, r, j, nb, intercept, bt)
+        kept = 0
+        for w in range(nb):
+            ok = mask[r, j + w]
+            if skip_nan and ok:
                 for c in range(p):
-                    for w in range(nb):
-                        bt[c, w] = bt[c, w] if keep[w] else 0.0
-            count[0] += kept
-            _fold_block(bt, nb, fac)
-            j += nb
-        # the row's factor, as p more rows of data, into the running factor
-        for c in range(p):
-            for w in range(p):
-                bt[c, w] = fac[w, c]
-        _fold_block(bt, p, out)
+                    if np.isnan(bt[c, w]):
+                        ok = False
+            keep[w] = ok
+            kept += ok
+        if kept < nb:
+            for c in range(p):
+                for w in range(nb):
+                    bt[c, w] = bt[c, w] if keep[w] else 0.0
+        kept_row += kept
+        _fold_block(bt, nb, fac)
+        j += nb
+    return kept_row
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _fold_factor(fac, bt, out):
+    """A row's factor, as p more rows of data, into the running factor ``out``."""
+    p = out.shape[0]
+    for c in range(p):
+        for w in range(p):
+            bt[c, w] = fac[w, c]
+    _fold_block(bt, p, out)
+
+
+@njit(**KERNEL_OPTIONS)
+def row_factors(stacks, mask, col_start, col_stop, bt, keep, facs, counts, intercept,
+                skip_nan):
+    """The first half of ``fold_rows`` on its own: facs[r] = row r's factor, counts[r] =
+    its dyads (facs: float64 (rows, p, p); counts: int64 (rows,)). Rows are independent,
+    so calls over disjoint rows (with workspaces of their own) may run side by side;
+    ``fold_factors`` then folds them in row order: the bits of ``fold_rows``."""
+    for r in range(mask.shape[0]):
+        counts[r] = _row_factor(stacks, mask, col_start, col_stop, r, bt, keep, facs[r],
+                                intercept, skip_nan)
+
+
+@njit(**KERNEL_OPTIONS)
+def fold_factors(facs, counts, bt, out, count):
+    """The second half of ``fold_rows``: fold the row factors ``facs`` (from
+    ``row_factors``) into ``out`` in row order, adding their dyads to ``count``."""
+    for r in range(facs.shape[0]):
+        count[0] += counts[r]
+        _fold_factor(facs[r], bt, out)

@@ -14,8 +14,6 @@ the size of R.
 
 import numpy as np
 import pytest
-from numba import types
-from numba.typed import List
 
 from dyadperm.kernels.tsqr import fold_rows
 from reference import KERNEL_RTOL, fold_rows_ref, sign_rows
@@ -27,14 +25,11 @@ def _call(layers, mask, start, stop, intercept, skip_nan, width=8, splits=None):
     out = np.zeros((p, p))
     count = np.zeros(1, dtype=np.int64)
     bt, keep, fac = np.empty((p, width)), np.empty(width, dtype=bool), np.empty((p, p))
-    kind = types.Array(types.float32 if layers[0].dtype == np.float32 else types.float64, 2,
-                       "A")
+    stack = layers[0].base  # the (n, m, L) array the layers are views of (``_case``)
+    assert stack is not None and stack.shape[2] == len(layers)
     cuts = [0] + list(splits or []) + [n]
     for a, b in zip(cuts[:-1], cuts[1:]):
-        lst = List.empty_list(kind)
-        for layer in layers:
-            lst.append(layer[a:b])
-        fold_rows(lst, mask[a:b], start[a:b], stop[a:b], bt, keep, fac, out, count, intercept,
+        fold_rows((stack[a:b],), mask[a:b], start[a:b], stop[a:b], bt, keep, fac, out, count, intercept,
                   skip_nan)
     return out, int(count[0])
 
@@ -101,3 +96,32 @@ def test_fold_rows_of_no_dyads_is_zero(rng):
                                       triangle=False)
     got, count = _call(layers, np.zeros_like(mask), start, stop, True, False)
     assert count == 0 and not got.any()
+
+
+def test_row_factors_folded_in_order_same_bits_as_fold_rows(rng):
+    """``row_factors`` on disjoint halves of the rows (what ``routes.linear.qr_layers``
+    runs on two threads) and ``fold_factors`` in row order give the bits of one
+    ``fold_rows`` pass; the layers come from two stacks (predictors, then the response,
+    as scheme y folds them), float64 and float32."""
+    from dyadperm.kernels.tsqr import fold_factors, row_factors
+
+    for dtype in (np.float64, np.float32):
+        layers, mask, start, stop = _case(rng, 31, 29, 3, kind="normal", nan=False,
+                                          holes=True, triangle=True, dtype=dtype)
+        stack = layers[0].base
+        resp = rng.normal(size=(31, 29, 1)).astype(dtype)
+        p = 4
+        whole = np.zeros((p, p))
+        count = np.zeros(1, dtype=np.int64)
+        fold_rows((stack, resp), mask, start, stop, np.empty((p, 5)), np.empty(5, bool),
+                  np.empty((p, p)), whole, count, False, False)
+        facs, counts = np.empty((31, p, p)), np.empty(31, dtype=np.int64)
+        for a, b in ((0, 13), (13, 31)):
+            row_factors((stack[a:b], resp[a:b]), mask[a:b], start[a:b], stop[a:b],
+                        np.empty((p, 5)), np.empty(5, bool), facs[a:b], counts[a:b], False,
+                        False)
+        got = np.zeros((p, p))
+        got_count = np.zeros(1, dtype=np.int64)
+        fold_factors(facs, counts, np.empty((p, 5)), got, got_count)
+        assert got_count[0] == count[0] == mask[np.arange(29)[None, :] >= start[:, None]].sum()
+        np.testing.assert_array_equal(got, whole)
