@@ -1181,17 +1181,18 @@ def _dot_chunk(x, y, w):
 
 
 @njit(**KERNEL_OPTIONS)
-def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
-    """Gram of v = [1, rel layers, fix layers] over the cells of the identity relabelling.
+def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
+    """The sums of each chunk of cells, for ``identity_gram`` and its threads.
 
-    The invariant Gram of a complete-data plan: what ``gather_gram`` sums with identity
-    relabellings over data without NaN, without its per-value NaN tests and relabelling
-    lookups. Each row's cells j in [col_start[i], col_stop[i]) are copied, GRAM_COLUMNS at
-    a time, into a layer-major workspace; each entry adds that chunk's products in four
-    partial sums (``_dot_chunk``); chunks in increasing column order, rows in increasing
-    order. Deterministic: the order depends on the column ranges only.
+    Row i's cells j in [col_start[i], col_stop[i]) are cut into chunks of GRAM_COLUMNS
+    columns (the last shorter); chunk t of row i writes parts[first[i] + t] = [sum v_0,
+    sum v_0 v_0, sum v_1, sum v_1 v_0, sum v_1 v_1, sum v_2, ...] over its cells: for each
+    layer r of v = [rel layers, fix layers], the sum of v_r, then the sums of v_r v_s for
+    s <= r, each in four partial sums (``_dot_chunk``). Rows are independent, so calls
+    over disjoint rows may run side by side.
 
-    ``out`` float64 (d, d), d = 1 + R + Q, is written; out[0, 0] counts the cells.
+    first : int64 (rows,), the slot of each row's first chunk (``chunk_slots``); parts : float64 (slots, T),
+    T = L + L (L + 1) / 2 with L = R + Q.
     """
     n_rows = fix.shape[0]
     n_rel = rel_idx.shape[0]
@@ -1199,10 +1200,8 @@ def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
     n_lay = n_rel + n_fix
     buf = np.empty((n_lay, GRAM_COLUMNS))
     ones = np.ones(GRAM_COLUMNS)
-    sums = np.zeros(n_lay)
-    cross = np.zeros((n_lay, n_lay))
-    count = 0
     for i in range(n_rows):
+        slot = first[i]
         j0 = col_start[i]
         while j0 < col_stop[i]:
             w = min(GRAM_COLUMNS, col_stop[i] - j0)
@@ -1214,18 +1213,73 @@ def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
                 lc = fix_idx[c]
                 for t in range(w):
                     buf[n_rel + c, t] = fix[i, j0 + t, lc]
+            out = parts[slot]
+            k = 0
             for r in range(n_lay):
                 x = buf[r]
-                sums[r] += _dot_chunk(x, ones, w)
+                out[k] = _dot_chunk(x, ones, w)
+                k += 1
                 for s in range(r + 1):
-                    # G[r, s] += sum over the chunk of v_r v_s
-                    cross[r, s] += _dot_chunk(x, buf[s], w)
-            count += w
+                    out[k] = _dot_chunk(x, buf[s], w)
+                    k += 1
+            slot += 1
             j0 += w
+
+
+@njit(**KERNEL_OPTIONS)
+def add_chunks(parts, acc):
+    """acc[k] += parts[t, k] for t in order: the chunks' sums added in increasing chunk
+    order (rows in increasing order), whichever threads made them."""
+    for t in range(parts.shape[0]):
+        for k in range(acc.shape[0]):
+            acc[k] += parts[t, k]
+
+
+@njit(**KERNEL_OPTIONS)
+def gram_from_sums(acc, count, out):
+    """out (d, d) = the Gram of [1, layers] from ``add_chunks``'s sums; out[0, 0] = count."""
+    n_lay = out.shape[0] - 1
     out[0, 0] = count
+    k = 0
     for r in range(n_lay):
-        out[0, 1 + r] = sums[r]
-        out[1 + r, 0] = sums[r]
+        out[0, 1 + r] = acc[k]
+        out[1 + r, 0] = acc[k]
+        k += 1
         for s in range(r + 1):
-            out[1 + r, 1 + s] = cross[r, s]
-            out[1 + s, 1 + r] = cross[r, s]
+            out[1 + r, 1 + s] = acc[k]
+            out[1 + s, 1 + r] = acc[k]
+            k += 1
+
+
+def chunk_slots(col_start, col_stop):
+    """int64 (rows + 1,): the slot of each row's first chunk in ``gram_chunks``'s parts,
+    then the number of slots."""
+    width = np.maximum(np.asarray(col_stop) - np.asarray(col_start), 0)
+    first = np.zeros(len(width) + 1, dtype=np.int64)
+    np.cumsum((width + GRAM_COLUMNS - 1) // GRAM_COLUMNS, out=first[1:])
+    return first
+
+
+def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
+    """Gram of v = [1, rel layers, fix layers] over the cells of the identity relabelling.
+
+    The invariant Gram of a complete-data plan: what ``gather_gram`` sums with identity
+    relabellings over data without NaN, without its per-value NaN tests and relabelling
+    lookups. Each row's cells j in [col_start[i], col_stop[i]) are copied, GRAM_COLUMNS at
+    a time, into a layer-major workspace; each entry adds that chunk's products in four
+    partial sums (``_dot_chunk``); chunks in increasing column order, rows in increasing
+    order (``gram_chunks``, then ``add_chunks``; ``routes.linear`` runs the first on two
+    threads over halves of the rows, the same bits). Deterministic: the order depends on
+    the column ranges only.
+
+    ``out`` float64 (d, d), d = 1 + R + Q, is written; out[0, 0] counts the cells.
+    """
+    n_lay = len(rel_idx) + len(fix_idx)
+    first = chunk_slots(col_start, col_stop)
+    parts = np.empty((first[-1], n_lay + n_lay * (n_lay + 1) // 2))
+    gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts)
+    acc = np.zeros(parts.shape[1])
+    add_chunks(parts, acc)
+    count = int(np.maximum(np.asarray(col_stop) - np.asarray(col_start), 0).sum())
+    gram_from_sums(acc, count, out)
+    return out

@@ -345,3 +345,37 @@ def test_place_rows_against_numpy():
     assert list(status) == [2, 4, 0]
     place_rows(bad, none, np.zeros((6, 5)), none, status)
     assert status[0] == 0  # 1e300 is a float64
+
+
+@pytest.mark.parametrize("directed", [True, False])
+def test_identity_gram_on_threads_same_bits(monkeypatch, directed):
+    """The plan's invariant Gram (``routes.linear._identity_gram``) makes the chunks' sums
+    on two threads, halves of blocks of rows, and adds them in chunk order: the bits of
+    the one-thread ``identity_gram``. The blocks are made small and the setup's threads
+    start at any size (``design.STREAM_DYADS``), so several blocks of uneven halves run on
+    two threads; undirected data use the upper triangle's ranges."""
+    import dyadperm.inputs.design as design
+    import dyadperm.routes.linear as linear
+
+    rng = np.random.default_rng(11)
+    n = 530
+    mats = [rng.normal(size=(n, n)) for _ in range(4)]
+    if not directed:
+        mats = [(a + a.T) / 2 for a in mats]
+    prep = design.prepare(mats[0], {f"x{i}": mats[i] for i in (1, 2, 3)})
+    monkeypatch.setattr(design, "STREAM_DYADS", 1)
+    stack = np.ascontiguousarray(np.stack(mats[1:] + mats[:1], axis=2))
+    calls = []
+    real = linear.side_by_side
+    monkeypatch.setattr(linear, "side_by_side",
+                        lambda fn, items, cells: calls.append(len(items)) or real(fn, items, cells))
+    monkeypatch.setattr(linear, "FACTOR_BYTES", 8 * 14 * 3 * 97)  # blocks of 97 rows
+    for rel_idx, fix_idx in (([0, 1, 2], [0, 1, 2, 3]), ([3], [0, 1, 2])):
+        got = linear._identity_gram(prep, stack, rel_idx, stack if len(rel_idx) > 1 else
+                                    stack.copy(), fix_idx)
+        want = np.empty_like(got)
+        identity_gram(stack, np.asarray(rel_idx, np.int64), stack, np.asarray(fix_idx, np.int64),
+                      prep.col_start, prep.col_stop, want)
+        want[0, 0] = prep.n_dyads
+        np.testing.assert_array_equal(got, want)
+    assert len(calls) >= 2 * 6 and set(calls) == {2}

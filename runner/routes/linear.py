@@ -30,11 +30,12 @@ from scipy.linalg import solve_triangular
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs import memory as _memory
-from ..inputs.design import (STREAM_DYADS, ObservedFit, Prepared, check_design, check_factor,
+from ..inputs.design import (ObservedFit, Prepared, check_design, check_factor,
                              check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
                              side_by_side, standardise)
 from ..kernels.options import FIT_PIVOT
-from ..kernels.gather import gather_cross, gather_gram, identity_gram
+from ..kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, gather_cross, gather_gram,
+                              gram_chunks, gram_from_sums)
 from ..kernels.tsqr import fold_factors, row_factors
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
                              fill_gram, regression_stats, standardise_layer)
@@ -526,19 +527,43 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
     d = 1 + len(rel_idx) + len(fix_idx)
     if rel is fix:
         layers = sorted(set(rel_idx) | set(fix_idx))
-        g = np.empty((1 + len(layers), 1 + len(layers)))
-        identity_gram(fix, np.asarray(layers, np.int64), fix, np.zeros(0, np.int64),
-                      prep.col_start, prep.col_stop, g)
+        g = _gram_on_threads(prep, fix, layers, fix, [])
         where = [0] + [1 + layers.index(e) for e in rel_idx + fix_idx]
         g0 = np.ascontiguousarray(g[np.ix_(where, where)])
     else:
-        g0 = np.empty((d, d))
-        identity_gram(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
-                      prep.col_start, prep.col_stop, g0)
+        g0 = _gram_on_threads(prep, rel, rel_idx, fix, fix_idx)
     # the column ranges may include cells off the dyad set (held as 0): count only dyads
     g0[0, 0] = prep.n_dyads
     return g0
 
+
+def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
+                     fix_idx: list[int]) -> np.ndarray:
+    """``identity_gram`` with the chunks' sums (``gram_chunks``) made on two threads, halves
+    of each block of rows, and added in chunk order (``add_chunks``): the same bits. Blocks
+    of rows keep the chunks' sums under ``FACTOR_BYTES``."""
+    n_lay = len(rel_idx) + len(fix_idx)
+    ri, fi = np.asarray(rel_idx, np.int64), np.asarray(fix_idx, np.int64)
+    first = chunk_slots(prep.col_start, prep.col_stop)
+    width = n_lay + n_lay * (n_lay + 1) // 2
+    n, m = prep.mask.shape
+    step = max(2, FACTOR_BYTES // (8 * width * max(1, -(-m // GRAM_COLUMNS))))
+    acc = np.zeros(width)
+    for lo in range(0, n, step):
+        hi = min(lo + step, n)
+        mid = (lo + hi + 1) // 2
+        base = first[lo]
+        parts = np.empty((first[hi] - base, width))
+
+        def chunks(rows: slice) -> None:
+            gram_chunks(rel[rows], ri, fix[rows], fi, prep.col_start[rows],
+                        prep.col_stop[rows], first[rows] - base, parts)
+        side_by_side(chunks, [slice(lo, mid), slice(mid, hi)], (hi - lo) * m * n_lay)
+        add_chunks(parts, acc)
+    g = np.empty((1 + n_lay, 1 + n_lay))
+    count = int(np.maximum(prep.col_stop - prep.col_start, 0).sum())
+    gram_from_sums(acc, count, g)
+    return g
 
 
 def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np.ndarray]:
