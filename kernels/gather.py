@@ -19,7 +19,8 @@ permutation):
   once per permutation.
 - Register accumulators. Products are summed in local scalars, never by
   ``out[b, a, c] +=`` per dyad: with one relabelled layer (scheme y, correlation) up to
-  4 fixed layers per pass with four interleaved partial sums each; with several
+  4 consecutive fixed layers per pass (a vector pass, below; any other fixed layer in a
+  scalar pass of its own, ``_dot1``) with four interleaved partial sums each; with several
   (dsp, freedman-lane) fused tiles of 3 relabelled x 4 fixed (or 4 x 3) layers, twelve
   pairs per pass over the row, each in two partial sums (even and odd columns), the three
   or four gathered values sharing one index load.
@@ -27,8 +28,9 @@ permutation):
   records (scheme y's stack of predictors is), ``dot_vec`` reads each fixed record with
   one 4-wide load and adds the gathered value times it into one of four 4-lane vectors
   (the four chains), one vector fused multiply-add per dyad instead of up to four scalar
-  ones and their loads: the same bits as ``_dot1`` .. ``_dot4`` (scheme y at n = 2,000,
-  two threads: 1.94 -> 1.4-1.5 ms per relabelling).
+  ones and their loads: the same bits as ``_dot1`` on each layer (scheme y at n = 2,000,
+  two threads: 1.94 -> 1.4-1.5 ms per relabelling). The scalar passes of 2 to 4 layers
+  it replaced are gone: a layer outside a consecutive group runs in ``_dot1``.
 - Vector tiles. When a tile's layers are consecutive in their records (the dsp and
   freedman-lane stacks of 3 predictors are), ``tile_vec`` keeps the twelve pairs' even and
   odd sums in six 4-lane vectors, reads each record with one 4-wide load and does three
@@ -51,6 +53,7 @@ keeps this order.
 """
 
 import numpy as np
+from llvmlite import ir
 from numba import config, njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
@@ -67,8 +70,8 @@ from .options import KERNEL_OPTIONS
 # block 1/2/4/8/16.)
 MAX_BLOCK = 16
 BLOCK_BYTES = 256 * 1024
-# Fixed layers summed together per pass over a row (the register accumulators of one
-# pass: 2 partial sums x up to this many layers).
+# Fixed layers summed together per vector pass over a row (``dot_vec``: the four lanes of
+# each chain's vector).
 FIX_GROUP = 4
 # Bytes of one cache line, the unit of prefetching (64 on current x86-64 and ARM cores).
 CACHE_LINE = 64
@@ -100,7 +103,6 @@ else:
         sig = types.void(arr, idx)
 
         def codegen(context, builder, signature, args):
-            from llvmlite import ir
             aryty = signature.args[0]
             ary = context.make_array(aryty)(context, builder, args[0])
             ptr = builder.gep(ary.data, [args[1]])
@@ -112,6 +114,9 @@ else:
             return context.get_dummy_value()
         return sig, codegen
 
+
+# The vector type of the LLVM IR loops (``tile_vec``, ``dot_vec``): four doubles.
+V4D = ir.VectorType(ir.DoubleType(), 4)
 
 # Columns per call of the vector tile (the prefetches of the next stored row are issued
 # between calls). Long enough that loading and storing the accumulators is cheap.
@@ -134,6 +139,60 @@ def _tile_vec_python(swap, relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc):
                     acc[half + a * 4 + c] += u[a] * v[c]
 
 
+def _ir_data(context, builder, signature, args, at):
+    """Data pointer of the array argument at position ``at`` of an intrinsic's call."""
+    return context.make_array(signature.args[at])(context, builder, args[at]).data
+
+
+def _ir_read_acc(builder, acc_p, count):
+    """``count`` <4 x double> vectors read from acc[0 : 4 count] (float64 pointer)."""
+    i32, i64 = ir.IntType(32), ir.IntType(64)
+    vecs = []
+    for a in range(count):
+        vec = ir.Constant(ir.VectorType(ir.DoubleType(), 4), ir.Undefined)
+        for c in range(4):
+            x = builder.load(builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
+            vec = builder.insert_element(vec, x, ir.Constant(i32, c))
+        vecs.append(vec)
+    return vecs
+
+
+def _ir_write_acc(builder, acc_p, vecs):
+    """Write the <4 x double> vectors ``vecs`` back to acc[0 : 4 len(vecs)]."""
+    i32, i64 = ir.IntType(32), ir.IntType(64)
+    for a, vec in enumerate(vecs):
+        for c in range(4):
+            x = builder.extract_element(vec, ir.Constant(i32, c))
+            builder.store(x, builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
+
+
+def _ir_load4(builder, ptr, at):
+    """ptr[at : at + 4] as <4 x double>: one 4-wide load, widened from float32."""
+    dbl = ir.DoubleType()
+    elt = ptr.type.pointee
+    raw = builder.load(builder.bitcast(builder.gep(ptr, [at]),
+                                       ir.VectorType(elt, 4).as_pointer()), align=4)
+    return builder.fpext(raw, ir.VectorType(dbl, 4)) if elt != dbl else raw
+
+
+def _ir_loop_head(builder, name, j0, start):
+    """Open a loop over j from j0 carrying the vectors ``start``: branch to and position
+    at its head block; returns (head, j phi, the vectors' phis). The caller adds the
+    incoming values of the loop's back edge."""
+    entry = builder.block
+    head = builder.append_basic_block(f"{name}.head")
+    builder.branch(head)
+    builder.position_at_end(head)
+    j = builder.phi(ir.IntType(64))
+    j.add_incoming(j0, entry)
+    sums = []
+    for vec in start:
+        ph = builder.phi(vec.type)
+        ph.add_incoming(vec, entry)
+        sums.append(ph)
+    return head, j, sums
+
+
 def _tile_vec_codegen(swap):
     """LLVM IR of a 3 x 4 tile loop with six <4 x double> accumulators.
 
@@ -149,38 +208,20 @@ def _tile_vec_codegen(swap):
     entry and written back.
     """
     def codegen(context, builder, signature, args):
-        from llvmlite import ir
         (relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, acc) = args
-        aty = signature.args
-        rel_p = context.make_array(aty[0])(context, builder, relf).data
-        co_p = context.make_array(aty[2])(context, builder, co).data
-        fix_p = context.make_array(aty[3])(context, builder, fixf).data
-        acc_p = context.make_array(aty[11])(context, builder, acc).data
-        i32, i64, dbl = ir.IntType(32), ir.IntType(64), ir.DoubleType()
-        v4d = ir.VectorType(dbl, 4)
-        elt = rel_p.type.pointee
-        v4e = ir.VectorType(elt, 4)
+        rel_p, co_p, fix_p, acc_p = (_ir_data(context, builder, signature, args, at)
+                                     for at in (0, 2, 3, 11))
+        i32, i64 = ir.IntType(32), ir.IntType(64)
         fma = cgutils.get_or_insert_function(
-            builder.module, ir.FunctionType(v4d, [v4d, v4d, v4d]), "llvm.fma.v4f64")
-        start = []  # 0..2: even set, 3..5: odd set
-        for a in range(6):
-            vec = ir.Constant(v4d, ir.Undefined)
-            for c in range(4):
-                x = builder.load(builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
-                vec = builder.insert_element(vec, x, ir.Constant(i32, c))
-            start.append(vec)
-
-        def load4(ptr, at):
-            raw = builder.load(builder.bitcast(builder.gep(ptr, [at]), v4e.as_pointer()),
-                               align=4)
-            return builder.fpext(raw, v4d) if elt != dbl else raw
+            builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
+        start = _ir_read_acc(builder, acc_p, 6)  # 0..2: even set, 3..5: odd set
 
         def column(jj, sums):
             """The three fused multiply-adds of column jj into ``sums``."""
             g = builder.add(rb, builder.sext(builder.load(builder.gep(co_p, [jj])), i64))
             o = builder.add(fb, builder.mul(builder.sub(jj, js), lf))
-            u = load4(rel_p, builder.add(g, r0))
-            v = load4(fix_p, builder.add(o, f0))
+            u = _ir_load4(builder, rel_p, builder.add(g, r0))
+            v = _ir_load4(builder, fix_p, builder.add(o, f0))
             lanes, split = (u, v) if swap else (v, u)
             new = []
             for a in range(3):
@@ -189,21 +230,11 @@ def _tile_vec_codegen(swap):
                 new.append(builder.call(fma, [s, lanes, sums[a]]))  # s_a. += split_a * lanes
             return new
 
-        entry = builder.block
-        head = builder.append_basic_block("tile.head")
+        head, j, sums = _ir_loop_head(builder, "tile", j0, start)
         body = builder.append_basic_block("tile.body")
         last = builder.append_basic_block("tile.last")
         one = builder.append_basic_block("tile.one")
         done = builder.append_basic_block("tile.done")
-        builder.branch(head)
-        builder.position_at_end(head)
-        j = builder.phi(i64)
-        j.add_incoming(j0, entry)
-        sums = []
-        for a in range(6):
-            ph = builder.phi(v4d)
-            ph.add_incoming(start[a], entry)
-            sums.append(ph)
         one_i = ir.Constant(i64, 1)
         builder.cbranch(builder.icmp_signed("<", builder.add(j, one_i), j1), body, last)
         builder.position_at_end(body)  # columns j (even set) and j + 1 (odd set)
@@ -221,14 +252,11 @@ def _tile_vec_codegen(swap):
         builder.position_at_end(done)
         ends = []
         for a in range(3):  # the odd set leaves the loop as it is
-            ph = builder.phi(v4d)
+            ph = builder.phi(V4D)
             ph.add_incoming(sums[a], last)
             ph.add_incoming(tail[a], one)
             ends.append(ph)
-        for a, vec in enumerate(ends + sums[3:]):
-            for c in range(4):
-                x = builder.extract_element(vec, ir.Constant(i32, c))
-                builder.store(x, builder.gep(acc_p, [ir.Constant(i64, a * 4 + c)]))
+        _ir_write_acc(builder, acc_p, ends + sums[3:])
         return context.get_dummy_value()
     return codegen
 
@@ -273,7 +301,7 @@ def _dot_vec_codegen():
     For j in [j0, j1): u = rel[rb + co[j]] (widened to double) and v = fix[fb + (j - js) lf
     + f0 : +4] (one 4-wide load, widened), then acc_(j - js) mod 4 = fma(splat(u), v,
     acc_(j - js) mod 4). j0 - js must be a multiple of 4, so columns at offsets 0, 1, 2, 3
-    (mod 4) go to chains 0, 1, 2, 3 as in ``_dot1`` .. ``_dot4``: lane c of chain t is the
+    (mod 4) go to chains 0, 1, 2, 3 as in ``_dot1``: lane c of chain t is the
     scalar sum of fixed layer f0 + c over those columns, in increasing j, one fused
     multiply-add per term -- the same bits. Lanes past the pass's layers read whatever
     follows in the record and are dropped by the caller; the caller keeps every 4-wide
@@ -281,27 +309,14 @@ def _dot_vec_codegen():
     read on entry and written back.
     """
     def codegen(context, builder, signature, args):
-        from llvmlite import ir
         (relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc) = args
-        aty = signature.args
-        rel_p = context.make_array(aty[0])(context, builder, relf).data
-        co_p = context.make_array(aty[2])(context, builder, co).data
-        fix_p = context.make_array(aty[3])(context, builder, fixf).data
-        acc_p = context.make_array(aty[10])(context, builder, acc).data
+        rel_p, co_p, fix_p, acc_p = (_ir_data(context, builder, signature, args, at)
+                                     for at in (0, 2, 3, 10))
         i32, i64, dbl = ir.IntType(32), ir.IntType(64), ir.DoubleType()
-        v4d = ir.VectorType(dbl, 4)
-        elt = fix_p.type.pointee
-        v4e = ir.VectorType(elt, 4)
         fma = cgutils.get_or_insert_function(
-            builder.module, ir.FunctionType(v4d, [v4d, v4d, v4d]), "llvm.fma.v4f64")
+            builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
         zeros = ir.Constant(ir.VectorType(i32, 4), [0] * 4)
-        start = []
-        for t in range(4):
-            vec = ir.Constant(v4d, ir.Undefined)
-            for c in range(4):
-                x = builder.load(builder.gep(acc_p, [ir.Constant(i64, t * 4 + c)]))
-                vec = builder.insert_element(vec, x, ir.Constant(i32, c))
-            start.append(vec)
+        start = _ir_read_acc(builder, acc_p, 4)
 
         def column(jj, acc_t):
             """The fused multiply-add of column jj into the chain ``acc_t``."""
@@ -310,27 +325,15 @@ def _dot_vec_codegen():
             if u.type != dbl:
                 u = builder.fpext(u, dbl)
             o = builder.add(builder.add(fb, builder.mul(builder.sub(jj, js), lf)), f0)
-            raw = builder.load(builder.bitcast(builder.gep(fix_p, [o]), v4e.as_pointer()),
-                               align=4)
-            v = builder.fpext(raw, v4d) if elt != dbl else raw
-            s = builder.insert_element(ir.Constant(v4d, ir.Undefined), u, ir.Constant(i32, 0))
+            v = _ir_load4(builder, fix_p, o)
+            s = builder.insert_element(ir.Constant(V4D, ir.Undefined), u, ir.Constant(i32, 0))
             s = builder.shuffle_vector(s, s, zeros)
             return builder.call(fma, [s, v, acc_t])  # acc_t += u * v, lane by lane
 
-        entry = builder.block
-        head = builder.append_basic_block("dot.head")
+        head, j, sums = _ir_loop_head(builder, "dot", j0, start)
         body = builder.append_basic_block("dot.body")
         tail = builder.append_basic_block("dot.tail")
         done = builder.append_basic_block("dot.done")
-        builder.branch(head)
-        builder.position_at_end(head)
-        j = builder.phi(i64)
-        j.add_incoming(j0, entry)
-        sums = []
-        for t in range(4):
-            ph = builder.phi(v4d)
-            ph.add_incoming(start[t], entry)
-            sums.append(ph)
         builder.cbranch(builder.icmp_signed("<", builder.add(j, ir.Constant(i64, 3)), j1),
                         body, tail)
         builder.position_at_end(body)  # columns j .. j + 3, one per chain
@@ -354,16 +357,13 @@ def _dot_vec_codegen():
             go_end = builder.block
             builder.branch(after)
             builder.position_at_end(after)
-            ph = builder.phi(v4d)
+            ph = builder.phi(V4D)
             ph.add_incoming(ends[t], here)
             ph.add_incoming(got, go_end)
             ends[t] = ph
         builder.branch(done)
         builder.position_at_end(done)
-        for t, vec in enumerate(ends):
-            for c in range(4):
-                x = builder.extract_element(vec, ir.Constant(i32, c))
-                builder.store(x, builder.gep(acc_p, [ir.Constant(i64, t * 4 + c)]))
+        _ir_write_acc(builder, acc_p, ends)
         return context.get_dummy_value()
     return codegen
 
@@ -384,13 +384,13 @@ else:
                 _dot_vec_codegen())
 
 
-# --- fused gather + dot of one row against a group of fixed layers ---------------------
-# Each helper sums, over the columns j in [js, je) of one row,
-#     s_c = sum_j rel[rb + co[j]] * fix[fb + (j - js) * lf + f_c]
+# --- fused gather + dot of one row against one fixed layer ------------------------------
+# ``_dot1`` sums, over the columns j in [js, je) of one row,
+#     s = sum_j rel[rb + co[j]] * fix[fb + (j - js) * lf + f0]
 # in four partial sums over the columns at offsets 0, 1, 2, 3 (mod 4) from js, each in
 # increasing column order, combined as (s0 + s1) + (s2 + s3), and meanwhile issues
 # ``pf_n`` prefetches per 8 columns of the line offsets pf, pf + line, ... below pf_end.
-# They return the sums and the next prefetch offset. (Four chains of fused multiply-adds
+# It returns the sum and the next prefetch offset. (Four chains of fused multiply-adds
 # per sum instead of two: 2.34 -> 1.94 ms per relabelling for scheme y at n = 2,000.)
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -449,219 +449,6 @@ def _dot1(relf, rb, co, fixf, fb, lf, f0, js, je, pf, pf_end, pf_n, line):
         o += lf
         j += 1
     return (a0 + b0) + (c0 + d0), pf
-
-
-@njit(inline="always", **KERNEL_OPTIONS)
-def _dot2(relf, rb, co, fixf, fb, lf, f0, f1, js, je, pf, pf_end, pf_n, line):
-    a0 = 0.0
-    a1 = 0.0
-    b0 = 0.0
-    b1 = 0.0
-    c0 = 0.0
-    c1 = 0.0
-    d0 = 0.0
-    d1 = 0.0
-    o = fb
-    j = js
-    while j + 3 < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
-        w = np.float64(relf[np.uint64(rb + co[np.uint64(j + 2)])])
-        x = np.float64(relf[np.uint64(rb + co[np.uint64(j + 3)])])
-        # a_c += rel_pi[i, j] * fix[i, j, c]; b_c, c_c, d_c likewise at j + 1, 2, 3
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        b0 += v * np.float64(fixf[np.uint64(o + f0)])
-        b1 += v * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        c0 += w * np.float64(fixf[np.uint64(o + f0)])
-        c1 += w * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        d0 += x * np.float64(fixf[np.uint64(o + f0)])
-        d1 += x * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        j += 4
-    # the last columns, at offsets 0, 1, 2 (mod 4) from the last full step, each in its
-    # own block: a product shared by the three sums' branches would be rounded before
-    # it is added; here each is one fused multiply-add, as in the loop above. (Only the
-    # first can fall on a multiple of 8 from js, where prefetches are issued.)
-    if j < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        b0 += u * np.float64(fixf[np.uint64(o + f0)])
-        b1 += u * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        c0 += u * np.float64(fixf[np.uint64(o + f0)])
-        c1 += u * np.float64(fixf[np.uint64(o + f1)])
-        o += lf
-        j += 1
-    return (a0 + b0) + (c0 + d0), (a1 + b1) + (c1 + d1), pf
-
-
-@njit(inline="always", **KERNEL_OPTIONS)
-def _dot3(relf, rb, co, fixf, fb, lf, f0, f1, f2, js, je, pf, pf_end, pf_n, line):
-    a0 = 0.0
-    a1 = 0.0
-    a2 = 0.0
-    b0 = 0.0
-    b1 = 0.0
-    b2 = 0.0
-    c0 = 0.0
-    c1 = 0.0
-    c2 = 0.0
-    d0 = 0.0
-    d1 = 0.0
-    d2 = 0.0
-    o = fb
-    j = js
-    while j + 3 < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
-        w = np.float64(relf[np.uint64(rb + co[np.uint64(j + 2)])])
-        x = np.float64(relf[np.uint64(rb + co[np.uint64(j + 3)])])
-        # a_c += rel_pi[i, j] * fix[i, j, c]; b_c, c_c, d_c likewise at j + 1, 2, 3
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        a2 += u * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        b0 += v * np.float64(fixf[np.uint64(o + f0)])
-        b1 += v * np.float64(fixf[np.uint64(o + f1)])
-        b2 += v * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        c0 += w * np.float64(fixf[np.uint64(o + f0)])
-        c1 += w * np.float64(fixf[np.uint64(o + f1)])
-        c2 += w * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        d0 += x * np.float64(fixf[np.uint64(o + f0)])
-        d1 += x * np.float64(fixf[np.uint64(o + f1)])
-        d2 += x * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        j += 4
-    # the last columns, at offsets 0, 1, 2 (mod 4) from the last full step, each in its
-    # own block: a product shared by the three sums' branches would be rounded before
-    # it is added; here each is one fused multiply-add, as in the loop above. (Only the
-    # first can fall on a multiple of 8 from js, where prefetches are issued.)
-    if j < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        a2 += u * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        b0 += u * np.float64(fixf[np.uint64(o + f0)])
-        b1 += u * np.float64(fixf[np.uint64(o + f1)])
-        b2 += u * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        c0 += u * np.float64(fixf[np.uint64(o + f0)])
-        c1 += u * np.float64(fixf[np.uint64(o + f1)])
-        c2 += u * np.float64(fixf[np.uint64(o + f2)])
-        o += lf
-        j += 1
-    return (a0 + b0) + (c0 + d0), (a1 + b1) + (c1 + d1), (a2 + b2) + (c2 + d2), pf
-
-
-@njit(inline="always", **KERNEL_OPTIONS)
-def _dot4(relf, rb, co, fixf, fb, lf, f0, f1, f2, f3, js, je, pf, pf_end, pf_n, line):
-    a0 = 0.0
-    a1 = 0.0
-    a2 = 0.0
-    a3 = 0.0
-    b0 = 0.0
-    b1 = 0.0
-    b2 = 0.0
-    b3 = 0.0
-    c0 = 0.0
-    c1 = 0.0
-    c2 = 0.0
-    c3 = 0.0
-    d0 = 0.0
-    d1 = 0.0
-    d2 = 0.0
-    d3 = 0.0
-    o = fb
-    j = js
-    while j + 3 < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        v = np.float64(relf[np.uint64(rb + co[np.uint64(j + 1)])])
-        w = np.float64(relf[np.uint64(rb + co[np.uint64(j + 2)])])
-        x = np.float64(relf[np.uint64(rb + co[np.uint64(j + 3)])])
-        # a_c += rel_pi[i, j] * fix[i, j, c]; b_c, c_c, d_c likewise at j + 1, 2, 3
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        a2 += u * np.float64(fixf[np.uint64(o + f2)])
-        a3 += u * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        b0 += v * np.float64(fixf[np.uint64(o + f0)])
-        b1 += v * np.float64(fixf[np.uint64(o + f1)])
-        b2 += v * np.float64(fixf[np.uint64(o + f2)])
-        b3 += v * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        c0 += w * np.float64(fixf[np.uint64(o + f0)])
-        c1 += w * np.float64(fixf[np.uint64(o + f1)])
-        c2 += w * np.float64(fixf[np.uint64(o + f2)])
-        c3 += w * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        d0 += x * np.float64(fixf[np.uint64(o + f0)])
-        d1 += x * np.float64(fixf[np.uint64(o + f1)])
-        d2 += x * np.float64(fixf[np.uint64(o + f2)])
-        d3 += x * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        j += 4
-    # the last columns, at offsets 0, 1, 2 (mod 4) from the last full step, each in its
-    # own block: a product shared by the three sums' branches would be rounded before
-    # it is added; here each is one fused multiply-add, as in the loop above. (Only the
-    # first can fall on a multiple of 8 from js, where prefetches are issued.)
-    if j < je:
-        if (j - js) & 7 == 0:
-            pf = _prefetch_some(relf, pf, pf_end, pf_n, line)
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        a0 += u * np.float64(fixf[np.uint64(o + f0)])
-        a1 += u * np.float64(fixf[np.uint64(o + f1)])
-        a2 += u * np.float64(fixf[np.uint64(o + f2)])
-        a3 += u * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        b0 += u * np.float64(fixf[np.uint64(o + f0)])
-        b1 += u * np.float64(fixf[np.uint64(o + f1)])
-        b2 += u * np.float64(fixf[np.uint64(o + f2)])
-        b3 += u * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        j += 1
-    if j < je:
-        u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
-        c0 += u * np.float64(fixf[np.uint64(o + f0)])
-        c1 += u * np.float64(fixf[np.uint64(o + f1)])
-        c2 += u * np.float64(fixf[np.uint64(o + f2)])
-        c3 += u * np.float64(fixf[np.uint64(o + f3)])
-        o += lf
-        j += 1
-    return (a0 + b0) + (c0 + d0), (a1 + b1) + (c1 + d1), (a2 + b2) + (c2 + d2), (a3 + b3) + (c3 + d3), pf
 
 
 # --- fused gather + dot of several relabelled layers against several fixed layers --------
@@ -765,7 +552,7 @@ def _tile43(relf, rb, r0, r1, r2, r3, co, fixf, fb, lf, f0, f1, f2, js, first, j
 def choose_tile(n_rel, n_fix):
     """Which pass structure ``cross_rows`` uses for R relabelled and Q fixed layers.
 
-    0: one relabelled layer per pass (``_dot1`` .. ``_dot4``); 34 or 43: fused tiles of
+    0: one relabelled layer per pass (``dot_vec``, ``_dot1``); 34 or 43: fused tiles of
     3 x 4 or 4 x 3 layers (``_tile34``, ``_tile43``), chosen when R >= 2 and the padded
     tile work is at most 1.5 R Q. Depends on (R, Q) only, never on the permutations.
     """
@@ -780,15 +567,21 @@ def choose_tile(n_rel, n_fix):
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
+def _consecutive(idx, at, width):
+    """Whether layers idx[at : at + width] follow one another in their records."""
+    for t in range(1, width):
+        if idx[at + t] != idx[at] + t:
+            return False
+    return True
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
 def _vec_tile_ok(idx, at, width, n_cols):
     """Whether layers idx[at : at + width] are consecutive, and a 4-wide read from
     idx[at] stays inside a stored record of ``n_cols`` layers."""
     if at + width > idx.shape[0] or idx[at] + 4 > n_cols:
         return False
-    for t in range(1, width):
-        if idx[at + t] != idx[at] + t:
-            return False
-    return True
+    return _consecutive(idx, at, width)
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -807,21 +600,12 @@ def _vec_tile_row(swap, relf, rb0, r0, co, fixf, fb, lf, c0, js, je, pf, pf_end,
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
-def _consecutive(idx, at, width):
-    """Whether layers idx[at : at + width] follow one another in their records."""
-    for t in range(1, width):
-        if idx[at + t] != idx[at] + t:
-            return False
-    return True
-
-
-@njit(inline="always", **KERNEL_OPTIONS)
 def _vec_dot_row(relf, rb, co, fixf, fb, lf, f0, width, js, je, pf, pf_end, pf_n, line,
                  dacc):
     """One row of a one-layer pass against fixed layers f0 .. f0 + width - 1 (width 2 to
-    4) by ``dot_vec``, VEC_COLUMNS columns per call with the prefetches of ``_dot1`` ..
-    ``_dot4`` (pf_n per 8 columns) between calls; the row's sums in dacc[:width] as
-    (s0 + s1) + (s2 + s3) of the four chains, the same bits as ``_dot1`` .. ``_dot4``.
+    4) by ``dot_vec``, VEC_COLUMNS columns per call with the prefetches of ``_dot1``
+    (pf_n per 8 columns) between calls; the row's sums in dacc[:width] as (s0 + s1) +
+    (s2 + s3) of the four chains, the same bits as ``_dot1`` on each layer.
 
     A 4-wide read may run past the last of the ``width`` layers into the next record;
     only at the very end of ``fixf`` would it leave the array, so the columns whose read
@@ -1014,27 +798,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                                                   width, js, je, pf, pf_end, pfn, line, dacc)
                                 for t in range(width):
                                     tot[q, a, c + t] += dacc[t]
-                            elif width == 4:
-                                s0, s1, s2, s3, pf = _dot4(
-                                    relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
-                                    fix_idx[c + 2], fix_idx[c + 3], js, je, pf, pf_end, pfn, line)
-                                tot[q, a, c] += s0
-                                tot[q, a, c + 1] += s1
-                                tot[q, a, c + 2] += s2
-                                tot[q, a, c + 3] += s3
-                            elif width == 3:
-                                s0, s1, s2, pf = _dot3(
-                                    relf, rb, co, fixf, fb, lf, fix_idx[c], fix_idx[c + 1],
-                                    fix_idx[c + 2], js, je, pf, pf_end, pfn, line)
-                                tot[q, a, c] += s0
-                                tot[q, a, c + 1] += s1
-                                tot[q, a, c + 2] += s2
-                            elif width == 2:
-                                s0, s1, pf = _dot2(relf, rb, co, fixf, fb, lf, fix_idx[c],
-                                                   fix_idx[c + 1], js, je, pf, pf_end, pfn, line)
-                                tot[q, a, c] += s0
-                                tot[q, a, c + 1] += s1
-                            else:
+                            else:  # one fixed layer a pass: each sum as in a vector pass
+                                width = 1
                                 s0, pf = _dot1(relf, rb, co, fixf, fb, lf, fix_idx[c], js, je,
                                                pf, pf_end, pfn, line)
                                 tot[q, a, c] += s0

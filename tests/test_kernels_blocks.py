@@ -64,10 +64,10 @@ def _inputs(rng, n, m, Lr, Lf, R, Q, B, *, two_mode, ranges, dtype=np.float64):
 # (n, m, Lr, Lf, R, Q, B, two_mode, ranges, path): path is what choose_tile must pick,
 # so each case is known to run the pass structure it is listed for
 CASES = [
-    (2, 2, 1, 1, 1, 1, 5, False, "full", 0),          # n = 2, _dot1
-    (3, 3, 1, 2, 1, 2, 7, False, "upper", 0),         # n = 3, _dot2, triangle
-    (5, 5, 2, 3, 1, 3, 9, False, "full", 0),          # _dot3 (scheme y, 3 predictors)
-    (7, 7, 1, 4, 1, 4, 17, False, "upper", 0),        # _dot4
+    (2, 2, 1, 1, 1, 1, 5, False, "full", 0),          # n = 2, one fixed layer
+    (3, 3, 1, 2, 1, 2, 7, False, "upper", 0),         # n = 3, 2 fixed layers, triangle
+    (5, 5, 2, 3, 1, 3, 9, False, "full", 0),          # 3 fixed layers (scheme y, 3 predictors)
+    (7, 7, 1, 4, 1, 4, 17, False, "upper", 0),        # 4 fixed layers
     (9, 9, 1, 9, 1, 9, 8, False, "ragged", 0),        # 4 + 4 + 1 fixed layers
     (6, 6, 2, 6, 1, 6, 3, False, "blocks", 0),        # 4 + 2, within-group ranges
     (11, 11, 3, 2, 2, 1, 10, False, "full", 0),       # R = 2, Q = 1: padding too costly

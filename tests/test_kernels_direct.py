@@ -115,6 +115,17 @@ def test_masked_moments_equals_numpy(n, m):
         np.testing.assert_allclose(out[2], ((vals - vals.mean()) ** 2).sum(), rtol=1e-12)
 
 
+def _spread_and_ranges(rng, vals, n, B, ranges):
+    """The layers of ``vals`` spread out to every other slot (so no two are consecutive:
+    the scalar passes read them), B relabellings, and full or upper-triangle ranges."""
+    spread = np.zeros(vals.shape[:2] + (2 * vals.shape[2],), dtype=vals.dtype)
+    spread[:, :, ::2] = vals
+    rows = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
+    start = np.arange(1, n + 1, dtype=np.int64) if ranges == "triangle" else \
+        np.zeros(n, dtype=np.int64)
+    return spread, rows, start, np.full(n, n, dtype=np.int64)
+
+
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 @pytest.mark.parametrize("n_rel,n_fix", [(3, 4), (4, 3), (6, 4), (3, 5)])
 @pytest.mark.parametrize("block", [1, 3])
@@ -130,12 +141,7 @@ def test_vector_tiles_same_bits_as_scalar(dtype, n_rel, n_fix, block, n, ranges)
     B = 5
     L = max(n_rel, n_fix) + 1  # one spare layer: 4-wide reads stay inside each record
     vals = rng.normal(size=(n, n, L)).astype(dtype)
-    spread = np.zeros((n, n, 2 * L), dtype=dtype)
-    spread[:, :, ::2] = vals
-    rows = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
-    start = np.arange(1, n + 1, dtype=np.int64) if ranges == "triangle" else \
-        np.zeros(n, dtype=np.int64)
-    stop = np.full(n, n, dtype=np.int64)
+    spread, rows, start, stop = _spread_and_ranges(rng, vals, n, B, ranges)
     got = {}
     for name, arr, step in (("vector", vals, 1), ("scalar", spread, 2)):
         rel_idx = np.arange(n_rel, dtype=np.int64) * step
@@ -160,8 +166,8 @@ def test_vector_one_layer_pass_same_bits_as_scalar(dtype, n_layers, fix_idx, blo
                                                    ranges):
     """One relabelled layer against consecutive fixed layers (scheme y, correlation) runs
     in vector registers (``kernels.gather.dot_vec``, 4-wide reads of the fixed records);
-    the same layers spread out (every other slot) run in the scalar passes ``_dot1`` ..
-    ``_dot4``. Both must give the same bits -- four chains over the columns (mod 4), one
+    the same layers spread out (every other slot) run in scalar passes of one layer each
+    (``_dot1``). Both must give the same bits -- four chains over the columns (mod 4), one
     fused multiply-add per term -- and match the plain-numpy twin. The fixed stack has no
     spare layer, so the last columns' 4-wide reads would leave the array: those columns
     are summed in scalars (the case of scheme y's stack of 3 predictors). Rows of 150
@@ -170,12 +176,7 @@ def test_vector_one_layer_pass_same_bits_as_scalar(dtype, n_layers, fix_idx, blo
     B = 5
     fix = rng.normal(size=(n, n, n_layers)).astype(dtype)
     rel = rng.normal(size=(n, n, 2)).astype(dtype)
-    spread = np.zeros((n, n, 2 * n_layers), dtype=dtype)
-    spread[:, :, ::2] = fix
-    rows = np.array([rng.permutation(n) for _ in range(B)], dtype=np.int64)
-    start = np.arange(1, n + 1, dtype=np.int64) if ranges == "triangle" else \
-        np.zeros(n, dtype=np.int64)
-    stop = np.full(n, n, dtype=np.int64)
+    spread, rows, start, stop = _spread_and_ranges(rng, fix, n, B, ranges)
     rel_idx = np.array([1], dtype=np.int64)
     got = {}
     for name, arr, step in (("vector", fix, 1), ("scalar", spread, 2)):
