@@ -30,7 +30,11 @@ permutation):
   (the four chains), one vector fused multiply-add per dyad instead of up to four scalar
   ones and their loads: the same bits as ``_dot1`` on each layer (scheme y at n = 2,000,
   two threads: 1.94 -> 1.4-1.5 ms per relabelling). The scalar passes of 2 to 4 layers
-  it replaced are gone: a layer outside a consecutive group runs in ``_dot1``.
+  it replaced are gone: a layer outside a consecutive group runs in ``_dot1``. When one
+  such group is all the pass does (scheme y with up to 4 predictors), two relabellings of
+  a block go through a row together (``dot_vec2``): each fixed record is loaded once for
+  both, and each relabelling keeps its own four chains in the same order (timed in turn
+  with one relabelling a pass: 1.61-1.81 against 1.67-2.01 ms at n = 2,000).
 - Vector tiles. When a tile's layers are consecutive in their records (the dsp and
   freedman-lane stacks of 3 predictors are), ``tile_vec`` keeps the twelve pairs' even and
   odd sums in six 4-lane vectors, reads each record with one 4-wide load and does three
@@ -295,8 +299,8 @@ def _dot_vec_python(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc):
             acc[chain + c] += u * float(fixf[o + c])
 
 
-def _dot_vec_codegen():
-    """LLVM IR of a one-layer pass with four <4 x double> accumulators.
+def _dot_vec_codegen(streams):
+    """LLVM IR of a one-layer pass with four <4 x double> accumulators per relabelling.
 
     For j in [j0, j1): u = rel[rb + co[j]] (widened to double) and v = fix[fb + (j - js) lf
     + f0 : +4] (one 4-wide load, widened), then acc_(j - js) mod 4 = fma(splat(u), v,
@@ -307,28 +311,44 @@ def _dot_vec_codegen():
     follows in the record and are dropped by the caller; the caller keeps every 4-wide
     read inside ``fixf``. acc (16,) float64 (chain 0's four lanes, then chain 1's, ...) is
     read on entry and written back.
+
+    ``streams`` = 2: two relabellings (rb, co) and (rb2, co2) share each fixed record's
+    load; acc (32,) holds the first's chains, then the second's, each summed as above.
     """
     def codegen(context, builder, signature, args):
-        (relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc) = args
-        rel_p, co_p, fix_p, acc_p = (_ir_data(context, builder, signature, args, at)
-                                     for at in (0, 2, 3, 10))
+        if streams == 1:
+            (relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc) = args
+            rbs, co_at, fix_at, acc_at = [rb], [2], 3, 10
+        else:
+            (relf, rb, co, rb2, co2, fixf, fb, lf, f0, j0, j1, js, acc) = args
+            rbs, co_at, fix_at, acc_at = [rb, rb2], [2, 4], 5, 12
+        rel_p, fix_p, acc_p = (_ir_data(context, builder, signature, args, at)
+                               for at in (0, fix_at, acc_at))
+        co_ps = [_ir_data(context, builder, signature, args, at) for at in co_at]
         i32, i64, dbl = ir.IntType(32), ir.IntType(64), ir.DoubleType()
         fma = cgutils.get_or_insert_function(
             builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
         zeros = ir.Constant(ir.VectorType(i32, 4), [0] * 4)
-        start = _ir_read_acc(builder, acc_p, 4)
+        start = _ir_read_acc(builder, acc_p, 4 * streams)  # stream s, chain t: 4 s + t
 
-        def column(jj, acc_t):
-            """The fused multiply-add of column jj into the chain ``acc_t``."""
-            g = builder.add(rb, builder.sext(builder.load(builder.gep(co_p, [jj])), i64))
-            u = builder.load(builder.gep(rel_p, [g]))
-            if u.type != dbl:
-                u = builder.fpext(u, dbl)
+        def column(jj, accs):
+            """The fused multiply-adds of column jj into one chain of each stream."""
             o = builder.add(builder.add(fb, builder.mul(builder.sub(jj, js), lf)), f0)
             v = _ir_load4(builder, fix_p, o)
-            s = builder.insert_element(ir.Constant(V4D, ir.Undefined), u, ir.Constant(i32, 0))
-            s = builder.shuffle_vector(s, s, zeros)
-            return builder.call(fma, [s, v, acc_t])  # acc_t += u * v, lane by lane
+            new = []
+            for rb_s, co_p, acc_t in zip(rbs, co_ps, accs):
+                g = builder.add(rb_s, builder.sext(builder.load(builder.gep(co_p, [jj])), i64))
+                u = builder.load(builder.gep(rel_p, [g]))
+                if u.type != dbl:
+                    u = builder.fpext(u, dbl)
+                sp = builder.insert_element(ir.Constant(V4D, ir.Undefined), u,
+                                            ir.Constant(i32, 0))
+                sp = builder.shuffle_vector(sp, sp, zeros)
+                new.append(builder.call(fma, [sp, v, acc_t]))  # acc_t += u * v, by lane
+            return new
+
+        def chain(vecs, t):
+            return [vecs[4 * s + t] for s in range(streams)]
 
         head, j, sums = _ir_loop_head(builder, "dot", j0, start)
         body = builder.append_basic_block("dot.body")
@@ -337,11 +357,15 @@ def _dot_vec_codegen():
         builder.cbranch(builder.icmp_signed("<", builder.add(j, ir.Constant(i64, 3)), j1),
                         body, tail)
         builder.position_at_end(body)  # columns j .. j + 3, one per chain
-        new = [column(builder.add(j, ir.Constant(i64, t)), sums[t]) for t in range(4)]
+        new = list(sums)
+        for t in range(4):
+            for s, vec in enumerate(column(builder.add(j, ir.Constant(i64, t)),
+                                           chain(sums, t))):
+                new[4 * s + t] = vec
         step = builder.block
         j.add_incoming(builder.add(j, ir.Constant(i64, 4)), step)
-        for t in range(4):
-            sums[t].add_incoming(new[t], step)
+        for x, vec in enumerate(new):
+            sums[x].add_incoming(vec, step)
         builder.branch(head)
         # at most three columns left, at offsets 0, 1, 2 (mod 4): chains 0, 1, 2 in turn
         builder.position_at_end(tail)
@@ -353,14 +377,15 @@ def _dot_vec_codegen():
             jj = builder.add(j, ir.Constant(i64, t))
             builder.cbranch(builder.icmp_signed("<", jj, j1), go, after)
             builder.position_at_end(go)
-            got = column(jj, ends[t])
+            got = column(jj, chain(ends, t))
             go_end = builder.block
             builder.branch(after)
             builder.position_at_end(after)
-            ph = builder.phi(V4D)
-            ph.add_incoming(ends[t], here)
-            ph.add_incoming(got, go_end)
-            ends[t] = ph
+            for s in range(streams):
+                ph = builder.phi(V4D)
+                ph.add_incoming(ends[4 * s + t], here)
+                ph.add_incoming(got[s], go_end)
+                ends[4 * s + t] = ph
         builder.branch(done)
         builder.position_at_end(done)
         _ir_write_acc(builder, acc_p, ends)
@@ -372,16 +397,32 @@ if config.DISABLE_JIT:
     def dot_vec(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc):
         """Pure-Python twin of the vector one-layer pass."""
         _dot_vec_python(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc)
+
+    def dot_vec2(relf, rb, co, rb2, co2, fixf, fb, lf, f0, j0, j1, js, acc):
+        """Pure-Python twin of the vector one-layer pass of two relabellings."""
+        _dot_vec_python(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc[:16])
+        _dot_vec_python(relf, rb2, co2, fixf, fb, lf, f0, j0, j1, js, acc[16:])
 else:
+    def _c_arrays(*arrays):
+        return all(isinstance(x, types.Array) and x.ndim == 1 and x.layout == "C"
+                   for x in arrays)
+
     @intrinsic
     def dot_vec(typingctx, relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc):
         """One relabelled layer against up to 4 consecutive fixed layers over columns
         [j0, j1), in vector registers (see ``_dot_vec_codegen``)."""
-        if not all(isinstance(x, types.Array) and x.ndim == 1 and x.layout == "C"
-                   for x in (relf, co, fixf, acc)):
+        if not _c_arrays(relf, co, fixf, acc):
             return None
         return (types.void(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, acc),
-                _dot_vec_codegen())
+                _dot_vec_codegen(1))
+
+    @intrinsic
+    def dot_vec2(typingctx, relf, rb, co, rb2, co2, fixf, fb, lf, f0, j0, j1, js, acc):
+        """``dot_vec`` of two relabellings at once, one load of each fixed record."""
+        if not _c_arrays(relf, co, co2, fixf, acc):
+            return None
+        return (types.void(relf, rb, co, rb2, co2, fixf, fb, lf, f0, j0, j1, js, acc),
+                _dot_vec_codegen(2))
 
 
 # --- fused gather + dot of one row against one fixed layer ------------------------------
@@ -392,6 +433,14 @@ else:
 # ``pf_n`` prefetches per 8 columns of the line offsets pf, pf + line, ... below pf_end.
 # It returns the sum and the next prefetch offset. (Four chains of fused multiply-adds
 # per sum instead of two: 2.34 -> 1.94 ms per relabelling for scheme y at n = 2,000.)
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _prefetch_rest(relf, pf, pf_end, line):
+    """The prefetches of a stored row a pass did not issue (its row was shorter)."""
+    while pf < pf_end:
+        prefetch(relf, np.uint64(pf))
+        pf += line
+
 
 @njit(inline="always", **KERNEL_OPTIONS)
 def _prefetch_some(relf, pf, pf_end, pf_n, line):
@@ -613,24 +662,69 @@ def _vec_dot_row(relf, rb, co, fixf, fb, lf, f0, width, js, je, pf, pf_end, pf_n
     ``dacc``: (16,) workspace.
     """
     dacc[:] = 0.0
-    safe = je  # columns [js, safe) can be read 4 wide
-    while safe > js and fb + (safe - 1 - js) * lf + f0 + 4 > fixf.shape[0]:
-        safe -= 1
+    safe = _safe_end(fixf, fb, lf, f0, js, je)  # columns [js, safe) can be read 4 wide
     j0 = js  # every call starts at an offset from js that is a multiple of 4
     while j0 < safe:
         j1 = min(j0 + VEC_COLUMNS, safe)
         pf = _prefetch_some(relf, pf, pf_end, pf_n * ((j1 - j0 + 7) // 8), line)
         dot_vec(relf, rb, co, fixf, fb, lf, f0, j0, j1, js, dacc)
         j0 = j1
-    for j in range(safe, je):
+    _scalar_columns(relf, rb, co, fixf, fb, lf, f0, width, js, safe, je, dacc)
+    _combine_chains(dacc, width)
+    return pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _safe_end(fixf, fb, lf, f0, js, je):
+    """The end of the columns [js, safe) whose 4-wide reads from fixed layer f0 stay inside
+    ``fixf`` (only the very last columns of the array can fail)."""
+    safe = je
+    while safe > js and fb + (safe - 1 - js) * lf + f0 + 4 > fixf.shape[0]:
+        safe -= 1
+    return safe
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _scalar_columns(relf, rb, co, fixf, fb, lf, f0, width, js, j0, je, dacc):
+    """Columns [j0, je) of a one-layer pass in scalars, into the chains of dacc (16,)."""
+    for j in range(j0, je):
         u = np.float64(relf[np.uint64(rb + co[np.uint64(j)])])
         chain = 4 * ((j - js) & 3)
         o = fb + (j - js) * lf + f0
         for t in range(width):
             dacc[chain + t] += u * np.float64(fixf[np.uint64(o + t)])
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _combine_chains(dacc, width):
+    """dacc[t] = (s0 + s1) + (s2 + s3) of lane t's four chains (dacc (16,))."""
     for t in range(width):
         dacc[t] = (dacc[t] + dacc[4 + t]) + (dacc[8 + t] + dacc[12 + t])
-    return pf
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def _vec_dot_row2(relf, rb, co, rb2, co2, fixf, fb, lf, f0, width, js, je, pf, pf_end, pf2,
+                  pf2_end, pf_n, line, dacc2):
+    """``_vec_dot_row`` of two relabellings at once (``dot_vec2``: one load of each fixed
+    record for both), each with its own prefetches; their sums in dacc2[:width] and
+    dacc2[16 : 16 + width], the same bits as two ``_vec_dot_row`` calls. ``dacc2``: (32,)."""
+    dacc2[:] = 0.0
+    safe = _safe_end(fixf, fb, lf, f0, js, je)
+    j0 = js
+    while j0 < safe:
+        j1 = min(j0 + VEC_COLUMNS, safe)
+        many = pf_n * ((j1 - j0 + 7) // 8)
+        pf = _prefetch_some(relf, pf, pf_end, many, line)
+        pf2 = _prefetch_some(relf, pf2, pf2_end, many, line)
+        dot_vec2(relf, rb, co, rb2, co2, fixf, fb, lf, f0, j0, j1, js, dacc2)
+        j0 = j1
+    one = dacc2[:16]
+    two = dacc2[16:]
+    _scalar_columns(relf, rb, co, fixf, fb, lf, f0, width, js, safe, je, one)
+    _scalar_columns(relf, rb2, co2, fixf, fb, lf, f0, width, js, safe, je, two)
+    _combine_chains(one, width)
+    _combine_chains(two, width)
+    return pf, pf2
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -754,6 +848,11 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     tile = choose_tile(n_rel, n_fix)
     vacc = np.zeros(24)  # accumulators of the vector tiles, even and odd (one row at a time)
     dacc = np.zeros(16)  # accumulators of the vector one-layer passes, four chains
+    dacc2 = np.zeros(32)  # the same for two relabellings at once
+    # one relabelled layer against up to 4 consecutive fixed layers (scheme y): two
+    # relabellings of a block share each pass, so each fixed record is loaded once for both
+    pair = tile == 0 and n_rel == 1 and 2 <= n_fix <= FIX_GROUP and _consecutive(fix_idx, 0,
+                                                                                n_fix)
     for b0 in range(0, n_perm, block):
         nb = min(block, n_perm - b0)
         for q in range(nb):
@@ -774,7 +873,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
             # prefetches per 8 columns so a stored row arrives AHEAD rows before its use
             eighths = (je - js + 7) // 8
             pf_n = (row_lines + eighths - 1) // eighths if eighths > 0 else 0
-            for q in range(nb):
+            q = 0
+            while q < nb:
                 b = b0 + q
                 co = coloff[q]
                 rb0 = row_perms[b, i] * rowlen
@@ -783,6 +883,21 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                 nxt = row_perms[b0 + t % nb, t // nb] * rowlen if t < n_rows * nb else rb0
                 pf = nxt
                 pf_end = nxt + row_lines * line
+                if pair and q + 1 < nb:  # this relabelling and the next, one pass
+                    rb2 = row_perms[b + 1, i] * rowlen
+                    t += 1
+                    nxt2 = row_perms[b0 + t % nb, t // nb] * rowlen if t < n_rows * nb else rb2
+                    pf2_end = nxt2 + row_lines * line
+                    pf, pf2 = _vec_dot_row2(relf, rb0 + rel_idx[0], co, rb2 + rel_idx[0],
+                                            coloff[q + 1], fixf, fb, lf, fix_idx[0], n_fix, js,
+                                            je, pf, pf_end, nxt2, pf2_end, pf_n, line, dacc2)
+                    for c in range(n_fix):
+                        tot[q, 0, c] += dacc2[c]
+                        tot[q + 1, 0, c] += dacc2[16 + c]
+                    _prefetch_rest(relf, pf, pf_end, line)
+                    _prefetch_rest(relf, pf2, pf2_end, line)
+                    q += 2
+                    continue
                 if tile == 34 or tile == 43:
                     pf = _tiles_row(relf, rb0, rel_idx, co, fixf, fb, lf, fix_idx, js, je, pf,
                                     pf_end, pf_n, line, tile, tot[q], lr, vacc)
@@ -804,9 +919,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                                                pf, pf_end, pfn, line)
                                 tot[q, a, c] += s0
                             c += width
-                while pf < pf_end:  # rows shorter than the next stored row
-                    prefetch(relf, np.uint64(pf))
-                    pf += line
+                _prefetch_rest(relf, pf, pf_end, line)
+                q += 1
         for q in range(nb):
             for a in range(n_rel):
                 for c in range(n_fix):
