@@ -9,7 +9,8 @@ below from its definition.
 import numpy as np
 import pytest
 
-from dyadperm.kernels.gather import GRAM_COLUMNS, cross_rows, gather_cross, identity_gram
+from dyadperm.kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, cross_rows, gather_cross,
+                                     gram_chunks, gram_from_sums, identity_gram)
 from dyadperm.kernels.sparse import GAP, PAIR_SUM, RECEIVER, SAME, SENDER, sparse_cross
 from reference import KERNEL_ATOL, KERNEL_RTOL, gather_cross_ref
 
@@ -380,3 +381,49 @@ def test_identity_gram_on_threads_same_bits(monkeypatch, directed):
         want[0, 0] = prep.n_dyads
         np.testing.assert_array_equal(got, want)
     assert len(calls) >= 2 * 6 and set(calls) == {2}
+
+
+def test_gram_chunks_add_chunks_and_gram_from_sums_against_numpy():
+    """The three pieces of the invariant Gram, each against numpy: ``gram_chunks`` writes
+    each chunk's sums [sum v_r, sum v_r v_s (s <= r)] (reference: numpy sums over the
+    chunk's cells, in float64); ``add_chunks`` adds the chunks in order (reference: the
+    same additions written as a Python loop, bit for bit); ``gram_from_sums`` places them
+    in the symmetric Gram of [1, layers] (reference: numpy's product over all cells)."""
+    rng = np.random.default_rng(3)
+    n = 2 * GRAM_COLUMNS + 9
+    rel = rng.normal(size=(n, n, 2))
+    fix = rng.normal(size=(n, n, 3))
+    start = rng.integers(0, n, n).astype(np.int64)
+    stop = np.minimum(n, start + rng.integers(0, n, n)).astype(np.int64)
+    rel_idx, fix_idx = np.array([1], np.int64), np.array([2, 0], np.int64)
+    first = chunk_slots(start, stop)
+    n_lay = 3
+    parts = np.full((first[-1], n_lay + n_lay * (n_lay + 1) // 2), np.nan)
+    gram_chunks(rel, rel_idx, fix, fix_idx, start, stop, first[:-1], parts)
+    slot = 0
+    for i in range(n):
+        for j0 in range(start[i], stop[i], GRAM_COLUMNS):
+            j1 = min(j0 + GRAM_COLUMNS, stop[i])
+            v = np.concatenate([rel[i, j0:j1][:, rel_idx], fix[i, j0:j1][:, fix_idx]], axis=1)
+            want = []
+            for r in range(n_lay):
+                want.append(v[:, r].sum())
+                want.extend(v[:, r] @ v[:, s] for s in range(r + 1))
+            np.testing.assert_allclose(parts[slot], want, rtol=1e-12, atol=1e-9)
+            slot += 1
+    assert slot == first[-1]
+    acc = np.zeros(parts.shape[1])
+    add_chunks(parts, acc)
+    loop = np.zeros(parts.shape[1])
+    for row in parts:
+        loop = loop + row
+    np.testing.assert_array_equal(acc, loop)
+    count = int(np.maximum(stop - start, 0).sum())
+    g = np.empty((1 + n_lay, 1 + n_lay))
+    gram_from_sums(acc, count, g)
+    cells = np.concatenate([np.concatenate([rel[i, start[i]:stop[i]][:, rel_idx],
+                                            fix[i, start[i]:stop[i]][:, fix_idx]], axis=1)
+                            for i in range(n)])
+    z = np.concatenate([np.ones((cells.shape[0], 1)), cells], axis=1)
+    np.testing.assert_allclose(g, z.T @ z, rtol=1e-11, atol=1e-8)
+    assert g[0, 0] == count == cells.shape[0]
