@@ -11,8 +11,9 @@ standardised layers the relabelling kernels read. ``fold_rows`` gets it in one s
   blocks of dyads as leaves: Demmel, Grigori, Hoemmen & Langou 2012, SIAM J. Sci. Comput.
   34:A206-A239 [memory]); each row's factor is then folded into the running one in row
   order. A row's factor depends on that row alone, so the result does not depend on how
-  the rows are split into calls (a study's files are read in blocks of rows, arrays in
-  memory in one call).
+  the rows are split into calls, and the two halves of the work can run apart:
+  ``row_factors`` makes the rows' own factors (rows of a call on threads of their own)
+  and ``fold_factors`` folds them in row order, the bits of ``fold_rows``.
 
 Rounding: the Householder sums (squared norms, dot products over a block of dyads) are
 reassociated so they run in vector registers (``SETUP_OPTIONS``); they run once per plan,
@@ -21,8 +22,8 @@ of jobs.
 
 ``stacks`` is a tuple of 3-d float64 or float32 arrays (all of one type), each (rows, m,
 L_s): the layers are those of the first stack, then the second's, ..., L in all; row r of
-every layer is row r of the call: row r of every layer is row r of the call (``mask`` and the column
-ranges are given for the same rows). Dyads are the cells (r, j) with col_start[r] <= j <
+every layer is row r of the call (``mask`` and the column ranges are given for the same
+rows). Dyads are the cells (r, j) with col_start[r] <= j <
 col_stop[r] where ``mask`` holds.
 """
 

@@ -53,8 +53,9 @@ REFINE_COND = 1e4
 # Dyads of a row folded into its QR factor at once (``kernels.tsqr.fold_rows``): the block
 # (5 x 256 float64 = 10 KB) stays in L1.
 QR_WIDTH = 256
-# Bytes of row factors (p x p float64 a row) ``qr_layers`` holds at once (a thread pool a
-# call: one call over all rows up to n = 2**18 / p^2 rows)
+# Bytes of the rows' own sums the setup holds at once before adding them in row order:
+# ``qr_layers``' row factors (p x p float64 a row: all rows at once up to 2**21 / p^2) and
+# the invariant Gram's chunk sums (``_gram_on_threads``)
 FACTOR_BYTES = 1 << 24
 
 
@@ -375,8 +376,9 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
         # a tuple of the stacks' rows, not a typed List of layers: getting an item of a
         # List counts a reference to the stack, and two threads counting on one stack
         # wait on each other (22-27 ms against 15 ms at n = 2,000)
-        row_factors(tuple(part[a:b] for part in parts), prep.mask[a:b], prep.col_start[a:b], prep.col_stop[a:b], bt,
-                    keep, facs[a - lo:b - lo], counts[a - lo:b - lo], False, False)
+        row_factors(tuple(part[a:b] for part in parts), prep.mask[a:b], prep.col_start[a:b],
+                    prep.col_stop[a:b], bt, keep, facs[a - lo:b - lo], counts[a - lo:b - lo],
+                    False, False)
 
     for lo in range(0, stack.shape[0], step):
         hi = min(lo + step, stack.shape[0])
@@ -524,24 +526,20 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
     with three predictors)."""
     rel_idx = [int(a) for a in rel_idx]
     fix_idx = [int(c) for c in fix_idx]
-    d = 1 + len(rel_idx) + len(fix_idx)
     if rel is fix:
         layers = sorted(set(rel_idx) | set(fix_idx))
         g = _gram_on_threads(prep, fix, layers, fix, [])
         where = [0] + [1 + layers.index(e) for e in rel_idx + fix_idx]
-        g0 = np.ascontiguousarray(g[np.ix_(where, where)])
-    else:
-        g0 = _gram_on_threads(prep, rel, rel_idx, fix, fix_idx)
-    # the column ranges may include cells off the dyad set (held as 0): count only dyads
-    g0[0, 0] = prep.n_dyads
-    return g0
+        return np.ascontiguousarray(g[np.ix_(where, where)])
+    return _gram_on_threads(prep, rel, rel_idx, fix, fix_idx)
 
 
 def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
                      fix_idx: list[int]) -> np.ndarray:
     """``identity_gram`` with the chunks' sums (``gram_chunks``) made on two threads, halves
     of each block of rows, and added in chunk order (``add_chunks``): the same bits. Blocks
-    of rows keep the chunks' sums under ``FACTOR_BYTES``."""
+    of rows keep the chunks' sums under ``FACTOR_BYTES``. G[0, 0] counts the dyads: the
+    column ranges may include cells off the dyad set (held as 0)."""
     n_lay = len(rel_idx) + len(fix_idx)
     ri, fi = np.asarray(rel_idx, np.int64), np.asarray(fix_idx, np.int64)
     first = chunk_slots(prep.col_start, prep.col_stop)
@@ -561,8 +559,7 @@ def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
         side_by_side(chunks, [slice(lo, mid), slice(mid, hi)], (hi - lo) * m * n_lay)
         add_chunks(parts, acc)
     g = np.empty((1 + n_lay, 1 + n_lay))
-    count = int(np.maximum(prep.col_stop - prep.col_start, 0).sum())
-    gram_from_sums(acc, count, g)
+    gram_from_sums(acc, prep.n_dyads, g)
     return g
 
 
