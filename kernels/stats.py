@@ -314,6 +314,10 @@ def is_symmetric(mat):
     return True
 
 
+#: The ``mask`` of ``any_nonfinite`` that counts every cell.
+NO_MASK = np.zeros((0, 0), dtype=np.bool_)
+
+
 @njit(**KERNEL_OPTIONS)
 def any_nonfinite(mat, mask, want_nan):
     """Whether some cell of ``mat`` (n, m, any strides) is NaN (``want_nan``) or infinite

@@ -239,6 +239,15 @@ def test_api_arguments_raise_input_error():
     with pytest.raises(dp.InputError, match=r"response has an infinite value at row '0', "
                                             r"column '1'; use NaN for a missing value"):
         dp.regress(np.where(np.eye(6) > 0, 0, np.inf) + y * 0 + 1, [x])
+    # networks are checked when they are read, attributes when given; a predictor made
+    # from finite attributes can still overflow (a gap of 2e308), caught when the design
+    # is prepared
+    attr = np.arange(6.0)
+    attr[2], attr[4] = 1e308, -1e308
+    with pytest.raises(dp.InputError, match=r"^'near' has an infinite value; use NaN for a "
+                                            r"missing value$"):
+        dp.regress(np.where(np.eye(6) > 0, 0, 1.0) + np.arange(36.0).reshape(6, 6),
+                   {"near": dp.gap(attr)})
     with pytest.raises(dp.InputError, match=r"too few nodes: got 2 x 2; need at least 3 nodes"):
         dp.regress(np.ones((2, 2)), [np.ones((2, 2))])
 

@@ -22,7 +22,7 @@ from scipy.linalg import solve_triangular
 
 from ..errors import DyadpermWarning, InputError
 from ..kernels.options import FIT_PIVOT, QR_PIVOT
-from ..kernels.stats import any_nonfinite, is_symmetric, masked_moments, masked_values
+from ..kernels.stats import NO_MASK, any_nonfinite, is_symmetric, masked_moments, masked_values
 from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .labels import label_order, some_labels
@@ -161,9 +161,13 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
         if mat.shape != resp.shape:
             raise InputError(f"predictor {name!r} has shape {mat.shape[0]} x {mat.shape[1]}; "
                              f"the response has {resp.shape[0]} x {resp.shape[1]}")
-    infinite = side_by_side(lambda a: _has_nonfinite(a, nan=False), mats,
+    # networks were checked for infinite values when their Dyadic was made; the
+    # predictors made from node attributes are checked here
+    made = [(name, mat) for name, mat, (_, dy) in zip(names + (resp.name,), mats, dyadics)
+            if dy is None]
+    infinite = side_by_side(lambda nm: _has_nonfinite(nm[1], nan=False), made,
                             resp.shape[0] * resp.shape[1])
-    for name, inf in zip(names + (resp.name,), infinite):
+    for (name, _), inf in zip(made, infinite):
         if inf:
             raise InputError(f"{name!r} has an infinite value; use NaN for a missing value")
 
@@ -337,7 +341,6 @@ def node_groups(groups: Any, labels: Sequence[str]) -> Any:
     return groups
 
 
-NO_MASK = np.zeros((0, 0), dtype=bool)
 
 
 def side_by_side(fn, items: Sequence[Any], cells: int) -> list:

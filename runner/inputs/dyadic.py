@@ -17,6 +17,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import InputError
+from ..kernels.stats import NO_MASK, any_nonfinite
 from .labels import as_labels, some_labels
 from .optional import is_frame, is_series, loaded_pandas
 
@@ -77,7 +78,7 @@ class Dyadic:
                                  " (give col_labels for two-mode data)")
         elif len(self.col_labels) != m:
             raise InputError(f"{what} has {m} columns but {len(self.col_labels)} column labels")
-        if np.isinf(v).any():
+        if any_nonfinite(v, NO_MASK, False):  # one pass, no temporary, stops at the first
             i, j = np.argwhere(np.isinf(v))[0]
             raise InputError(f"{what} has an infinite value at row {self.labels[i]!r}, column "
                              f"{self.col_node_labels[j]!r}; use NaN for a missing value")
@@ -159,10 +160,13 @@ def derived_values(kind: str, a: np.ndarray | None, b: np.ndarray | None, n: int
         return (a[:, None] == b[None, :]).astype(np.float64)
     if a.dtype.kind not in "fiub" or b.dtype.kind not in "fiub":
         raise InputError(f"derived predictor '{kind}' needs a numeric attribute; got text values")
-    if kind == "gap":
-        return np.abs(a[:, None].astype(np.float64) - b[None, :].astype(np.float64))
-    if kind == "pair_sum":
-        return a[:, None].astype(np.float64) + b[None, :].astype(np.float64)
+    # a value beyond float64 becomes infinite, which the design's check names (no numpy
+    # warning on the way)
+    with np.errstate(over="ignore"):
+        if kind == "gap":
+            return np.abs(a[:, None].astype(np.float64) - b[None, :].astype(np.float64))
+        if kind == "pair_sum":
+            return a[:, None].astype(np.float64) + b[None, :].astype(np.float64)
     raise InputError(f"unknown derived predictor kind {kind!r}")
 
 
