@@ -63,6 +63,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
+from .stats import dot_chains
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
@@ -1040,25 +1041,6 @@ def gather_gram(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col
 GRAM_COLUMNS = 256
 
 
-@njit(inline="always", **KERNEL_OPTIONS)
-def _dot_chunk(x, y, w):
-    """sum_t x[t] y[t], t < w, in four partial sums over t mod 4, combined as
-    (s0 + s1) + (s2 + s3): four independent chains the compiler can keep in one vector."""
-    s0 = 0.0
-    s1 = 0.0
-    s2 = 0.0
-    s3 = 0.0
-    w4 = w - w % 4
-    for t in range(0, w4, 4):
-        s0 += x[t] * y[t]
-        s1 += x[t + 1] * y[t + 1]
-        s2 += x[t + 2] * y[t + 2]
-        s3 += x[t + 3] * y[t + 3]
-    for t in range(w4, w):
-        s0 += x[t] * y[t]
-    return (s0 + s1) + (s2 + s3)
-
-
 @njit(**KERNEL_OPTIONS)
 def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
     """The sums of each chunk of cells, for ``identity_gram`` and its threads.
@@ -1067,7 +1049,7 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
     columns (the last shorter); chunk t of row i writes parts[first[i] + t] = [sum v_0,
     sum v_0 v_0, sum v_1, sum v_1 v_0, sum v_1 v_1, sum v_2, ...] over its cells: for each
     layer r of v = [rel layers, fix layers], the sum of v_r, then the sums of v_r v_s for
-    s <= r, each in four partial sums (``_dot_chunk``). Rows are independent, so calls
+    s <= r, each in four partial sums (``dot_chains``). Rows are independent, so calls
     over disjoint rows may run side by side.
 
     first : int64 (rows,), the slot of each row's first chunk (``chunk_slots``); parts : float64 (slots, T),
@@ -1096,10 +1078,10 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
             k = 0
             for r in range(n_lay):
                 x = buf[r]
-                out[k] = _dot_chunk(x, ones, w)
+                out[k] = dot_chains(x, ones, w)
                 k += 1
                 for s in range(r + 1):
-                    out[k] = _dot_chunk(x, buf[s], w)
+                    out[k] = dot_chains(x, buf[s], w)
                     k += 1
             slot += 1
             j0 += w
@@ -1146,7 +1128,7 @@ def identity_gram(rel, rel_idx, fix, fix_idx, col_start, col_stop, out):
     relabellings over data without NaN, without its per-value NaN tests and relabelling
     lookups. Each row's cells j in [col_start[i], col_stop[i]) are copied, GRAM_COLUMNS at
     a time, into a layer-major workspace; each entry adds that chunk's products in four
-    partial sums (``_dot_chunk``); chunks in increasing column order, rows in increasing
+    partial sums (``dot_chains``); chunks in increasing column order, rows in increasing
     order (``gram_chunks``, then ``add_chunks``; ``routes.linear`` runs the first on two
     threads over halves of the rows, the same bits). Deterministic: the order depends on
     the column ranges only.

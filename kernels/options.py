@@ -42,12 +42,6 @@ FASTMATH = {"nsz", "arcp", "contract", "afn"}
 
 KERNEL_OPTIONS = dict(nogil=True, cache=True, fastmath=FASTMATH, error_model="numpy")
 
-#: Options of the setup's sums (``kernels.tsqr``: Householder norms and dot products over a
-#: block of dyads): ``reassoc`` as well, so the sums run in vector registers. They run once per plan over one fixed order of rows and blocks, never
-#: per chunk, so a plan stays the same for any chunk size or number of jobs; only the
-#: compiled code (the CPU's vector width) decides the order.
-SETUP_OPTIONS = dict(KERNEL_OPTIONS, fastmath=FASTMATH | {"reassoc"})
-
 #: Options of element-wise setup kernels that must give numpy's bits: IEEE arithmetic
 #: (no reciprocal or contraction), so (x - mean) / sd is rounded as numpy rounds it.
 EXACT_OPTIONS = dict(nogil=True, cache=True, error_model="numpy")

@@ -150,6 +150,72 @@ def correlation_stats(gram, out):
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
+def dot_chains(x, y, w):
+    """sum_t x[t] y[t], t < w (1-d arrays), in four partial sums over t mod 4, combined as
+    (s0 + s1) + (s2 + s3): four independent chains the compiler can keep in one vector,
+    in an order the source fixes (no ``reassoc``), so every caller gets the same bits."""
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    w4 = w - w % 4
+    for t in range(0, w4, 4):
+        s0 += x[t] * y[t]
+        s1 += x[t + 1] * y[t + 1]
+        s2 += x[t + 2] * y[t + 2]
+        s3 += x[t + 3] * y[t + 3]
+    for t in range(w4, w):
+        s0 += x[t] * y[t]
+    return (s0 + s1) + (s2 + s3)
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
+def dot_chains16(x, y, w):
+    """sum_t x[t] y[t], t < w, in sixteen partial sums over t mod 16 (four vectors of four
+    lanes: about four times the throughput of ``dot_chains`` on long sums), the last w mod
+    16 terms in s0, added pairwise in an order the source fixes: every caller gets the
+    same bits."""
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    s4 = 0.0
+    s5 = 0.0
+    s6 = 0.0
+    s7 = 0.0
+    s8 = 0.0
+    s9 = 0.0
+    s10 = 0.0
+    s11 = 0.0
+    s12 = 0.0
+    s13 = 0.0
+    s14 = 0.0
+    s15 = 0.0
+    w16 = w - w % 16
+    for t in range(0, w16, 16):
+        s0 += x[t] * y[t]
+        s1 += x[t + 1] * y[t + 1]
+        s2 += x[t + 2] * y[t + 2]
+        s3 += x[t + 3] * y[t + 3]
+        s4 += x[t + 4] * y[t + 4]
+        s5 += x[t + 5] * y[t + 5]
+        s6 += x[t + 6] * y[t + 6]
+        s7 += x[t + 7] * y[t + 7]
+        s8 += x[t + 8] * y[t + 8]
+        s9 += x[t + 9] * y[t + 9]
+        s10 += x[t + 10] * y[t + 10]
+        s11 += x[t + 11] * y[t + 11]
+        s12 += x[t + 12] * y[t + 12]
+        s13 += x[t + 13] * y[t + 13]
+        s14 += x[t + 14] * y[t + 14]
+        s15 += x[t + 15] * y[t + 15]
+    for t in range(w16, w):
+        s0 += x[t] * y[t]
+    return ((((s0 + s8) + (s4 + s12)) + ((s2 + s10) + (s6 + s14)))
+            + (((s1 + s9) + (s5 + s13)) + ((s3 + s11) + (s7 + s15))))
+
+
+@njit(inline="always", **KERNEL_OPTIONS)
 def _masked_row_sum(mat, mask, i, shift, square):
     """sum over the row's masked cells of (x - shift) (or its square), in four partial
     sums over the columns j mod 4, combined as (s0 + s1) + (s2 + s3): four independent

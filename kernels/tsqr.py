@@ -15,10 +15,12 @@ standardised layers the relabelling kernels read. ``fold_rows`` gets it in one s
   ``row_factors`` makes the rows' own factors (rows of a call on threads of their own)
   and ``fold_factors`` folds them in row order, the bits of ``fold_rows``.
 
-Rounding: the Householder sums (squared norms, dot products over a block of dyads) are
-reassociated so they run in vector registers (``SETUP_OPTIONS``); they run once per plan,
-on one fixed order of rows and blocks, so a plan is the same for any chunk size or number
-of jobs.
+Rounding: the Householder sums (squared norms, dot products over a block of dyads) run
+in sixteen chains in an order the source fixes (``stats.dot_chains16``), so the compiled code
+cannot change it: a plan is the same for any chunk size, number of jobs or threads, and
+whichever kernel or process compiled the code. (They were reassociated by the compiler
+until a test found two kernels sharing this one rounding it differently, depending on
+which was compiled first.)
 
 ``stacks`` is a tuple of 3-d float64 or float32 arrays (all of one type), each (rows, m,
 L_s): the layers are those of the first stack, then the second's, ..., L in all; row r of
@@ -30,7 +32,8 @@ col_stop[r] where ``mask`` holds.
 import numpy as np
 from numba import njit
 
-from .options import KERNEL_OPTIONS, SETUP_OPTIONS
+from .options import KERNEL_OPTIONS
+from .stats import dot_chains16
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -56,16 +59,16 @@ def _load_block(stacks, r, j0, nb, intercept, bt):
             e += 1
 
 
-@njit(**SETUP_OPTIONS)
+@njit(**KERNEL_OPTIONS)
 def _fold_block(bt, nb, fac):
     """Fold the nb rows of bt' (bt is (p, width), one column per row) into the upper
     triangular ``fac`` (p, p): afterwards fac' fac gains bt' bt. bt is overwritten with the
-    Householder vectors."""
+    Householder vectors. Squared norms and dot products over the block sum in sixteen
+    chains (``stats.dot_chains16``)."""
     p = fac.shape[0]
     for c in range(p):
-        s = 0.0
-        for w in range(nb):
-            s += bt[c, w] * bt[c, w]
+        x = bt[c]
+        s = dot_chains16(x, x, nb)
         if s == 0.0:
             continue
         alpha = fac[c, c]
@@ -74,16 +77,14 @@ def _fold_block(bt, nb, fac):
         tau = (beta - alpha) / beta
         scale = 1.0 / (alpha - beta)
         for w in range(nb):
-            bt[c, w] *= scale  # v = [1; x / (alpha - beta)]
+            x[w] *= scale  # v = [1; x / (alpha - beta)]
         fac[c, c] = beta
         for c2 in range(c + 1, p):
-            g = fac[c, c2]
-            for w in range(nb):
-                g += bt[c, w] * bt[c2, w]  # v' y
-            g *= tau
+            y = bt[c2]
+            g = (fac[c, c2] + dot_chains16(x, y, nb)) * tau  # tau (v' y)
             fac[c, c2] -= g
             for w in range(nb):
-                bt[c2, w] -= g * bt[c, w]  # y - tau (v' y) v
+                y[w] -= g * x[w]  # y - tau (v' y) v
 
 
 @njit(**KERNEL_OPTIONS)

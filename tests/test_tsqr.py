@@ -8,7 +8,7 @@ Source of truth: R'R = D'D for any R factor of D, and the R factor of a full-ran
 unique up to the signs of its rows (common practice), so at full rank both are also
 compared with nonnegative diagonals (to the tolerance times the condition number, the
 forward error of a QR -- common practice); the kernel sums in
-another order (reassociated vector sums, TSQR blocks), hence ``KERNEL_RTOL`` relative to
+another order (four-chain sums, TSQR blocks), hence ``KERNEL_RTOL`` relative to
 the size of R.
 """
 
