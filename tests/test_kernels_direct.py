@@ -427,3 +427,38 @@ def test_gram_chunks_add_chunks_and_gram_from_sums_against_numpy():
     z = np.concatenate([np.ones((cells.shape[0], 1)), cells], axis=1)
     np.testing.assert_allclose(g, z.T @ z, rtol=1e-11, atol=1e-8)
     assert g[0, 0] == count == cells.shape[0]
+
+
+def _fma(a, b, c):
+    """a * b + c rounded once (exact rational arithmetic, then one rounding: the fused
+    multiply-add of IEEE 754)."""
+    from fractions import Fraction
+
+    return float(Fraction(a) * Fraction(b) + Fraction(c))
+
+
+@pytest.mark.parametrize("w", [0, 1, 3, 4, 7, 15, 16, 17, 35, 64])
+def test_dot_chains_in_their_stated_order(w):
+    """``kernels.stats.dot_chains`` and ``dot_chains16`` against the order their docstrings
+    state, written out with an exact fused multiply-add (bit for bit: the order is the
+    source's, whatever the compiled code), and against numpy's dot product (to rounding)."""
+    from dyadperm.kernels.stats import dot_chains, dot_chains16
+
+    rng = np.random.default_rng(w)
+    x, y = rng.normal(size=w + 3), rng.normal(size=w + 3)  # entries past w are not read
+    for fn, k in ((dot_chains, 4), (dot_chains16, 16)):
+        s = [0.0] * k
+        full = w - w % k
+        for t in range(full):
+            s[t % k] = _fma(x[t], y[t], s[t % k])
+        for t in range(full, w):
+            s[0] = _fma(x[t], y[t], s[0])
+        if k == 4:
+            want = (s[0] + s[1]) + (s[2] + s[3])
+        else:
+            def pair(a):
+                return (s[a] + s[a + 8]) + (s[a + 4] + s[a + 12])
+            want = (pair(0) + pair(2)) + (pair(1) + pair(3))
+        got = fn(x, y, w)
+        assert got == want, (fn.__name__, got, want)
+        np.testing.assert_allclose(got, x[:w] @ y[:w], rtol=1e-13, atol=1e-13)
