@@ -165,8 +165,8 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
     # predictors made from node attributes are checked here
     made = [(name, mat) for name, mat, (_, dy) in zip(names + (resp.name,), mats, dyadics)
             if dy is None]
-    infinite = side_by_side(lambda nm: _has_nonfinite(nm[1], nan=False), made,
-                            resp.shape[0] * resp.shape[1])
+    infinite = side_by_side(lambda mat: _has_nonfinite(mat, nan=False),
+                            [mat for _, mat in made], resp.shape[0] * resp.shape[1])
     for (name, _), inf in zip(made, infinite):
         if inf:
             raise InputError(f"{name!r} has an infinite value; use NaN for a missing value")
@@ -341,8 +341,6 @@ def node_groups(groups: Any, labels: Sequence[str]) -> Any:
     return groups
 
 
-
-
 def side_by_side(fn, items: Sequence[Any], cells: int) -> list:
     """[fn(item) for item in items], on ``SETUP_THREADS`` threads (in order) when the work
     is large enough to pay for them (``cells``: the matrix cells it reads, at least
@@ -352,6 +350,13 @@ def side_by_side(fn, items: Sequence[Any], cells: int) -> list:
         return [fn(item) for item in items]
     with ThreadPoolExecutor(max_workers=SETUP_THREADS) as pool:
         return list(pool.map(fn, items))
+
+
+def halves(lo: int, hi: int) -> list[slice]:
+    """Rows [lo, hi) as two slices (the first the longer by at most one), for the two
+    threads of ``side_by_side``."""
+    mid = (lo + hi + 1) // 2
+    return [slice(lo, mid), slice(mid, hi)]
 
 
 def _has_nonfinite(mat: np.ndarray, *, nan: bool, mask: np.ndarray | None = None) -> bool:

@@ -32,7 +32,7 @@ from ..inputs import design as _design
 from ..inputs import memory as _memory
 from ..inputs.design import (ObservedFit, Prepared, check_design, check_factor,
                              check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
-                             side_by_side, standardise)
+                             halves, side_by_side, standardise)
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, gather_cross, gather_gram,
                               gram_chunks, gram_from_sums)
@@ -175,13 +175,11 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     holds = prep.holds()
     # halves of the rows to two threads, every layer of a half on one (layers of one cell
     # share its cache line)
-    half = (n + 1) // 2
-
     def rows(part: slice) -> None:
         for pos, layer in enumerate(layers):
             standardise_layer(prep.matrices[layer][part], float(mean[layer]),
                               float(sd[layer]), holds[part], fill, out[part, :, pos])
-    side_by_side(rows, [slice(0, half), slice(half, n)], n * m)
+    side_by_side(rows, halves(0, n), n * m)
     return out
 
 
@@ -372,18 +370,18 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
             for _ in range(2)]
 
     def factors(task) -> None:
-        (a, b), (bt, keep) = task
+        rows, (bt, keep) = task
+        at = slice(rows.start - lo, rows.stop - lo)
         # a tuple of the stacks' rows, not a typed List of layers: getting an item of a
         # List counts a reference to the stack, and two threads counting on one stack
         # wait on each other (22-27 ms against 15 ms at n = 2,000)
-        row_factors(tuple(part[a:b] for part in parts), prep.mask[a:b], prep.col_start[a:b],
-                    prep.col_stop[a:b], bt, keep, facs[a - lo:b - lo], counts[a - lo:b - lo],
+        row_factors(tuple(part[rows] for part in parts), prep.mask[rows],
+                    prep.col_start[rows], prep.col_stop[rows], bt, keep, facs[at], counts[at],
                     False, False)
 
     for lo in range(0, stack.shape[0], step):
         hi = min(lo + step, stack.shape[0])
-        mid = (lo + hi + 1) // 2
-        side_by_side(factors, [((lo, mid), work[0]), ((mid, hi), work[1])],
+        side_by_side(factors, list(zip(halves(lo, hi), work)),
                      (hi - lo) * stack.shape[1] * n_layers)
         fold_factors(facs[:hi - lo], counts[:hi - lo], work[0][0], out, count)
     return out, int(count[0])
@@ -429,10 +427,8 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
         rinv = solve_triangular(np.triu(r), np.eye(n_layers))
         # the stack is C-ordered (its flat view is a view); cells are independent, so the
         # halves of its rows go to two threads
-        half = (stack.shape[0] + 1) // 2
         side_by_side(lambda rows: apply_upper(stack[rows].reshape(-1), n_layers, rinv),
-                     [slice(0, half), slice(half, stack.shape[0])],
-                     stack.shape[0] * stack.shape[1])
+                     halves(0, stack.shape[0]), stack.shape[0] * stack.shape[1])
         S = r @ S
         if first and np.linalg.cond(r) <= REFINE_COND:
             break
@@ -549,14 +545,13 @@ def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
     acc = np.zeros(width)
     for lo in range(0, n, step):
         hi = min(lo + step, n)
-        mid = (lo + hi + 1) // 2
         base = first[lo]
         parts = np.empty((first[hi] - base, width))
 
         def chunks(rows: slice) -> None:
             gram_chunks(rel[rows], ri, fix[rows], fi, prep.col_start[rows],
                         prep.col_stop[rows], first[rows] - base, parts)
-        side_by_side(chunks, [slice(lo, mid), slice(mid, hi)], (hi - lo) * m * n_lay)
+        side_by_side(chunks, halves(lo, hi), (hi - lo) * m * n_lay)
         add_chunks(parts, acc)
     g = np.empty((1 + n_lay, 1 + n_lay))
     gram_from_sums(acc, prep.n_dyads, g)
