@@ -63,7 +63,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
-from .stats import dot_chains
+from .chains import dot_chains, dot_chains2, dot_chains4
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
@@ -1059,8 +1059,21 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
     n_rel = rel_idx.shape[0]
     n_fix = fix_idx.shape[0]
     n_lay = n_rel + n_fix
-    buf = np.empty((n_lay, GRAM_COLUMNS))
-    ones = np.ones(GRAM_COLUMNS)
+    # wk[0] = ones, wk[1 + r] = layer r of the chunk; sum k of a chunk is the dot product
+    # of wk[px[k]] and wk[py[k]], taken four (then two) at a time (``dot_chains4``: the bits
+    # of ``dot_chains``, the sums' chains side by side instead of waiting on each other)
+    wk = np.empty((n_lay + 1, GRAM_COLUMNS))
+    wk[0, :] = 1.0
+    buf = wk[1:]
+    n_sums = n_lay + n_lay * (n_lay + 1) // 2
+    px = np.empty(n_sums, dtype=np.int64)
+    py = np.empty(n_sums, dtype=np.int64)
+    k = 0
+    for r in range(n_lay):
+        for s in range(r + 2):
+            px[k] = 1 + r
+            py[k] = s
+            k += 1
     for i in range(n_rows):
         slot = first[i]
         j0 = col_start[i]
@@ -1076,13 +1089,22 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
                     buf[n_rel + c, t] = fix[i, j0 + t, lc]
             out = parts[slot]
             k = 0
-            for r in range(n_lay):
-                x = buf[r]
-                out[k] = dot_chains(x, ones, w)
-                k += 1
-                for s in range(r + 1):
-                    out[k] = dot_chains(x, buf[s], w)
-                    k += 1
+            while k + 4 <= n_sums:
+                s0, s1, s2, s3 = dot_chains4(wk[px[k]], wk[py[k]], wk[px[k + 1]], wk[py[k + 1]],
+                                             wk[px[k + 2]], wk[py[k + 2]], wk[px[k + 3]],
+                                             wk[py[k + 3]], w)
+                out[k] = s0
+                out[k + 1] = s1
+                out[k + 2] = s2
+                out[k + 3] = s3
+                k += 4
+            if k + 2 <= n_sums:
+                s0, s1 = dot_chains2(wk[px[k]], wk[py[k]], wk[px[k + 1]], wk[py[k + 1]], w)
+                out[k] = s0
+                out[k + 1] = s1
+                k += 2
+            if k < n_sums:
+                out[k] = dot_chains(wk[px[k]], wk[py[k]], w)
             slot += 1
             j0 += w
 

@@ -439,10 +439,12 @@ def _fma(a, b, c):
 
 @pytest.mark.parametrize("w", [0, 1, 3, 4, 7, 15, 16, 17, 35, 64])
 def test_dot_chains_in_their_stated_order(w):
-    """``kernels.stats.dot_chains`` and ``dot_chains16`` against the order their docstrings
-    state, written out with an exact fused multiply-add (bit for bit: the order is the
-    source's, whatever the compiled code), and against numpy's dot product (to rounding)."""
-    from dyadperm.kernels.stats import dot_chains, dot_chains16
+    """``kernels.chains.dot_chains`` and ``dot_chains16`` (vector registers in LLVM IR)
+    against the order their docstrings state, written out with an exact fused multiply-add
+    (bit for bit: the order is the source's, whatever the compiled code), and against
+    numpy's dot product (to rounding); ``dot_chains2`` / ``dot_chains4`` against
+    ``dot_chains`` of each pair."""
+    from dyadperm.kernels.chains import dot_chains, dot_chains16
 
     rng = np.random.default_rng(w)
     x, y = rng.normal(size=w + 3), rng.normal(size=w + 3)  # entries past w are not read
@@ -462,3 +464,10 @@ def test_dot_chains_in_their_stated_order(w):
         got = fn(x, y, w)
         assert got == want, (fn.__name__, got, want)
         np.testing.assert_allclose(got, x[:w] @ y[:w], rtol=1e-13, atol=1e-13)
+    # several sums in one loop: each with dot_chains' bits
+    from dyadperm.kernels.chains import dot_chains2, dot_chains4
+
+    xs, ys = rng.normal(size=(4, w + 3)), rng.normal(size=(4, w + 3))
+    one = [dot_chains(xs[p], ys[p], w) for p in range(4)]
+    assert dot_chains2(xs[0], ys[0], xs[1], ys[1], w) == tuple(one[:2])
+    assert dot_chains4(xs[0], ys[0], xs[1], ys[1], xs[2], ys[2], xs[3], ys[3], w) == tuple(one)

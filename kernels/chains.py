@@ -1,0 +1,223 @@
+"""Dot products in fixed-order chains, in vector registers.
+
+A sum of many products is split into partial sums (chains) over t mod c, combined in an
+order the source fixes: the compiler may not reorder floating-point additions (no
+``reassoc``, ``options.py``), so every caller gets the same bits for any chunking or
+thread count. Written as scalar chains in numba, the sums compile to scalar fused
+multiply-adds (LLVM's vectorisers do not pack the chains into vectors); here each chain is a
+lane of a <4 x double> accumulator in LLVM IR, which performs the same operations in the
+same order (one fused multiply-add a term, lane by lane), four terms per instruction.
+
+- ``dot_chains(x, y, w)``: four chains, t mod 4, combined as (s0 + s1) + (s2 + s3).
+- ``dot_chains2`` / ``dot_chains4``: two or four such sums of different pairs in one loop
+  (each with ``dot_chains``' bits); their accumulators are independent, so the loop waits
+  on the adder's latency a half or a quarter as often.
+- ``dot_chains16(x, y, w)``: sixteen chains, t mod 16 (four accumulators), combined
+  pairwise as ((s0 + s8) + (s4 + s12) + ...) (below).
+
+In every one the last w mod 4 (``dot_chains16``: w mod 16) terms are added to chain 0 in
+increasing t. x and y are 1-d C-contiguous float64 arrays; terms t < w are read. With
+numba's JIT off the scalar twins (``_py_chains``: the same order, but a product and a sum
+where the kernels fuse them, so not the same bits) run.
+"""
+
+from llvmlite import ir
+from numba import config, njit, types
+from numba.core import cgutils
+from numba.extending import intrinsic
+
+from .options import KERNEL_OPTIONS
+
+V4D = ir.VectorType(ir.DoubleType(), 4)
+
+
+def _py_chains(xs, ys, w, k):
+    """The sums of the pairs (xs[p], ys[p]) in ``k`` chains (4 or 16), the scalar way."""
+    out = []
+    full = w - w % k
+    for x, y in zip(xs, ys):
+        s = [0.0] * k
+        for t in range(full):
+            s[t % k] += x[t] * y[t]
+        for t in range(full, w):
+            s[0] += x[t] * y[t]
+        if k == 4:
+            out.append((s[0] + s[1]) + (s[2] + s[3]))
+        else:
+            def pair(a):
+                return (s[a] + s[a + 8]) + (s[a + 4] + s[a + 12])
+            out.append((pair(0) + pair(2)) + (pair(1) + pair(3)))
+    return out
+
+
+def _chains_codegen(n_pairs, n_vec):
+    """IR of ``n_pairs`` dot products, each in ``n_vec`` <4 x double> accumulators.
+
+    Arguments: x_0, y_0, ..., x_{P-1}, y_{P-1}, w. Term t of pair p goes to lane t mod 4 of
+    accumulator (t div 4) mod n_vec while t < w - w mod (4 n_vec), as one fused
+    multiply-add; the rest to lane 0 of accumulator 0, in increasing t. Then the lanes are
+    combined: n_vec 1 as (l0 + l1) + (l2 + l3); n_vec 4 (chain c = 4 a + l) as
+    ((s0 + s8) + (s4 + s12) + ...), see ``_py_chains``.
+    """
+    step = 4 * n_vec
+
+    def codegen(context, builder, signature, args):
+        i32, i64 = ir.IntType(32), ir.IntType(64)
+        dbl = ir.DoubleType()
+        ptrs = [context.make_array(signature.args[a])(context, builder, args[a]).data
+                for a in range(2 * n_pairs)]
+        w = args[2 * n_pairs]
+        fma4 = cgutils.get_or_insert_function(
+            builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
+        fma1 = cgutils.get_or_insert_function(
+            builder.module, ir.FunctionType(dbl, [dbl, dbl, dbl]), "llvm.fma.f64")
+        zero = ir.Constant(V4D, [0.0] * 4)
+        full = builder.sub(w, builder.srem(w, ir.Constant(i64, step)))
+        entry = builder.block
+        head = builder.append_basic_block("chains.head")
+        body = builder.append_basic_block("chains.body")
+        after = builder.append_basic_block("chains.after")
+        builder.branch(head)
+        builder.position_at_end(head)
+        t = builder.phi(i64)
+        t.add_incoming(ir.Constant(i64, 0), entry)
+        accs = []
+        for _ in range(n_pairs * n_vec):
+            ph = builder.phi(V4D)
+            ph.add_incoming(zero, entry)
+            accs.append(ph)
+        builder.cbranch(builder.icmp_signed("<", t, full), body, after)
+        builder.position_at_end(body)
+        new = []
+        for p in range(n_pairs):
+            for a in range(n_vec):
+                at = builder.add(t, ir.Constant(i64, 4 * a))
+                xv = builder.load(builder.bitcast(builder.gep(ptrs[2 * p], [at]),
+                                                  V4D.as_pointer()), align=8)
+                yv = builder.load(builder.bitcast(builder.gep(ptrs[2 * p + 1], [at]),
+                                                  V4D.as_pointer()), align=8)
+                new.append(builder.call(fma4, [xv, yv, accs[p * n_vec + a]]))
+        t.add_incoming(builder.add(t, ir.Constant(i64, step)), builder.block)
+        for ph, val in zip(accs, new):
+            ph.add_incoming(val, builder.block)
+        builder.branch(head)
+        # the last w mod step terms into lane 0 of accumulator 0, in increasing t
+        builder.position_at_end(after)
+        lane0 = [builder.extract_element(accs[p * n_vec], ir.Constant(i32, 0))
+                 for p in range(n_pairs)]
+        tail_head = builder.append_basic_block("chains.tail")
+        tail_body = builder.append_basic_block("chains.tailbody")
+        done = builder.append_basic_block("chains.done")
+        builder.branch(tail_head)
+        builder.position_at_end(tail_head)
+        u = builder.phi(i64)
+        u.add_incoming(t, after)
+        s0 = []
+        for p in range(n_pairs):
+            ph = builder.phi(dbl)
+            ph.add_incoming(lane0[p], after)
+            s0.append(ph)
+        builder.cbranch(builder.icmp_signed("<", u, w), tail_body, done)
+        builder.position_at_end(tail_body)
+        for p in range(n_pairs):
+            xs = builder.load(builder.gep(ptrs[2 * p], [u]))
+            ys = builder.load(builder.gep(ptrs[2 * p + 1], [u]))
+            s0[p].add_incoming(builder.call(fma1, [xs, ys, s0[p]]), builder.block)
+        u.add_incoming(builder.add(u, ir.Constant(i64, 1)), builder.block)
+        builder.branch(tail_head)
+        builder.position_at_end(done)
+        sums = []
+        for p in range(n_pairs):
+            # chain c = 4 a + l is lane l of accumulator a
+            s = [builder.extract_element(accs[p * n_vec + c // 4], ir.Constant(i32, c % 4))
+                 for c in range(step)]
+            s[0] = s0[p]
+            add = builder.fadd
+            if n_vec == 1:
+                sums.append(add(add(s[0], s[1]), add(s[2], s[3])))
+            else:
+                def pair(a):
+                    return add(add(s[a], s[a + 8]), add(s[a + 4], s[a + 12]))
+                sums.append(add(add(pair(0), pair(2)), add(pair(1), pair(3))))
+        if n_pairs == 1:
+            return sums[0]
+        return context.make_tuple(builder, signature.return_type, sums)
+    return codegen
+
+
+def _chains_intrinsic(n_pairs, n_vec):
+    """An intrinsic taking x_0, y_0, ..., w (1-d C float64 arrays, an integer)."""
+    def typer(typingctx, *args):
+        arrays, w = args[:-1], args[-1]
+        if len(arrays) != 2 * n_pairs or not isinstance(w, types.Integer):
+            return None
+        if not all(isinstance(a, types.Array) and a.ndim == 1 and a.layout == "C"
+                   and a.dtype == types.float64 for a in arrays):
+            return None
+        ret = types.float64 if n_pairs == 1 else types.UniTuple(types.float64, n_pairs)
+        inner = _chains_codegen(n_pairs, n_vec)
+
+        def codegen(context, builder, signature, cargs):
+            cargs = list(cargs)
+            cargs[-1] = context.cast(builder, cargs[-1], signature.args[-1], types.int64)
+            return inner(context, builder, signature, cargs)
+        return ret(*args), codegen
+    return typer
+
+
+if config.DISABLE_JIT:
+    def dot_chains(x, y, w):
+        """Scalar twin of the four-chain dot product (JIT off)."""
+        return _py_chains([x], [y], w, 4)[0]
+
+    def dot_chains2(x0, y0, x1, y1, w):
+        """Scalar twin of two four-chain dot products (JIT off)."""
+        return tuple(_py_chains([x0, x1], [y0, y1], w, 4))
+
+    def dot_chains4(x0, y0, x1, y1, x2, y2, x3, y3, w):
+        """Scalar twin of four four-chain dot products (JIT off)."""
+        return tuple(_py_chains([x0, x1, x2, x3], [y0, y1, y2, y3], w, 4))
+
+    def dot_chains16(x, y, w):
+        """Scalar twin of the sixteen-chain dot product (JIT off)."""
+        return _py_chains([x], [y], w, 16)[0]
+else:
+    @intrinsic
+    def _chains1(typingctx, x, y, w):
+        return _chains_intrinsic(1, 1)(typingctx, x, y, w)
+
+    @intrinsic
+    def _chains2(typingctx, x0, y0, x1, y1, w):
+        return _chains_intrinsic(2, 1)(typingctx, x0, y0, x1, y1, w)
+
+    @intrinsic
+    def _chains4(typingctx, x0, y0, x1, y1, x2, y2, x3, y3, w):
+        return _chains_intrinsic(4, 1)(typingctx, x0, y0, x1, y1, x2, y2, x3, y3, w)
+
+    @intrinsic
+    def _chains16(typingctx, x, y, w):
+        return _chains_intrinsic(1, 4)(typingctx, x, y, w)
+
+    @njit(inline="always", **KERNEL_OPTIONS)
+    def dot_chains(x, y, w):
+        """sum_t x[t] y[t], t < w, in four chains over t mod 4 (the last w mod 4 terms in
+        chain 0), combined as (s0 + s1) + (s2 + s3); one vector accumulator."""
+        return _chains1(x, y, w)
+
+    @njit(inline="always", **KERNEL_OPTIONS)
+    def dot_chains2(x0, y0, x1, y1, w):
+        """(``dot_chains``(x0, y0, w), ``dot_chains``(x1, y1, w)) in one loop."""
+        return _chains2(x0, y0, x1, y1, w)
+
+    @njit(inline="always", **KERNEL_OPTIONS)
+    def dot_chains4(x0, y0, x1, y1, x2, y2, x3, y3, w):
+        """(``dot_chains``(x0, y0, w), ..., ``dot_chains``(x3, y3, w)) in one loop."""
+        return _chains4(x0, y0, x1, y1, x2, y2, x3, y3, w)
+
+    @njit(inline="always", **KERNEL_OPTIONS)
+    def dot_chains16(x, y, w):
+        """sum_t x[t] y[t], t < w, in sixteen chains over t mod 16 (the last w mod 16
+        terms in chain 0), combined pairwise: ((s0 + s8) + (s4 + s12)) + ((s2 + s10) +
+        (s6 + s14)), then the same of the odd chains, the two added."""
+        return _chains16(x, y, w)
+
