@@ -63,7 +63,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
-from .chains import dot_chains, dot_chains2, dot_chains4
+from .vector import dot_chains, dot_chains2, dot_chains4
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,

@@ -10,6 +10,7 @@ import numpy as np
 from numba import njit
 
 from .options import EXACT_OPTIONS, FIT_PIVOT_SQUARED, KERNEL_OPTIONS
+from .vector import RECORD_LANES, apply_records
 
 #: Numbers per relabelling and term that ``regression_stats`` writes into ``rows``.
 INTERVAL_WIDTH = 6
@@ -267,10 +268,20 @@ def apply_upper(flat, n_layers, rinv):
     Records go through layer-major workspaces ``APPLY_CHUNK`` at a time, so the sums run
     across records in vector registers (each record's own sum keeps its order).
 
+    Records of up to ``vector.RECORD_LANES`` values go through ``vector.apply_records``
+    instead (each record's sums in vector registers, the same order).
+
     flat : float64 or float32 (n_cells * L,), a C-ordered (n, m, L) stack flattened.
     """
     L = n_layers
     n_cells = flat.shape[0] // L
+    if L <= RECORD_LANES:
+        rpad = np.zeros((RECORD_LANES, RECORD_LANES))
+        for e in range(L):
+            for c in range(e, L):
+                rpad[e, c] = rinv[e, c]
+        apply_records(flat, np.int64(n_cells), np.int64(L), rpad)
+        return
     buf = np.empty((L, APPLY_CHUNK))
     acc = np.empty(APPLY_CHUNK)
     for q0 in range(0, n_cells, APPLY_CHUNK):

@@ -16,7 +16,7 @@ standardised layers the relabelling kernels read. ``fold_rows`` gets it in one s
   and ``fold_factors`` folds them in row order, the bits of ``fold_rows``.
 
 Rounding: the Householder sums (squared norms, dot products over a block of dyads) run
-in sixteen chains in an order the source fixes (``chains.dot_chains16``), so the compiled code
+in sixteen chains in an order the source fixes (``vector.dot_chains16``), so the compiled code
 cannot change it: a plan is the same for any chunk size, number of jobs or threads, and
 whichever kernel or process compiled the code. (They were reassociated by the compiler
 until a test found two kernels sharing this one rounding it differently, depending on
@@ -33,7 +33,7 @@ import numpy as np
 from numba import njit
 
 from .options import KERNEL_OPTIONS
-from .chains import dot_chains16
+from .vector import dot_chains16
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -64,7 +64,7 @@ def _fold_block(bt, nb, fac):
     """Fold the nb rows of bt' (bt is (p, width), one column per row) into the upper
     triangular ``fac`` (p, p): afterwards fac' fac gains bt' bt. bt is overwritten with the
     Householder vectors. Squared norms and dot products over the block sum in sixteen
-    chains (``chains.dot_chains16``)."""
+    chains (``vector.dot_chains16``)."""
     p = fac.shape[0]
     for c in range(p):
         x = bt[c]

@@ -6,6 +6,8 @@ the sparse path) for every attribute-derived predictor. Sources of truth: the tw
 below from its definition.
 """
 
+import os
+
 import numpy as np
 import pytest
 
@@ -439,12 +441,12 @@ def _fma(a, b, c):
 
 @pytest.mark.parametrize("w", [0, 1, 3, 4, 7, 15, 16, 17, 35, 64])
 def test_dot_chains_in_their_stated_order(w):
-    """``kernels.chains.dot_chains`` and ``dot_chains16`` (vector registers in LLVM IR)
+    """``kernels.vector.dot_chains`` and ``dot_chains16`` (vector registers in LLVM IR)
     against the order their docstrings state, written out with an exact fused multiply-add
     (bit for bit: the order is the source's, whatever the compiled code), and against
     numpy's dot product (to rounding); ``dot_chains2`` / ``dot_chains4`` against
     ``dot_chains`` of each pair."""
-    from dyadperm.kernels.chains import dot_chains, dot_chains16
+    from dyadperm.kernels.vector import dot_chains, dot_chains16
 
     rng = np.random.default_rng(w)
     x, y = rng.normal(size=w + 3), rng.normal(size=w + 3)  # entries past w are not read
@@ -465,9 +467,37 @@ def test_dot_chains_in_their_stated_order(w):
         assert got == want, (fn.__name__, got, want)
         np.testing.assert_allclose(got, x[:w] @ y[:w], rtol=1e-13, atol=1e-13)
     # several sums in one loop: each with dot_chains' bits
-    from dyadperm.kernels.chains import dot_chains2, dot_chains4
+    from dyadperm.kernels.vector import dot_chains2, dot_chains4
 
     xs, ys = rng.normal(size=(4, w + 3)), rng.normal(size=(4, w + 3))
     one = [dot_chains(xs[p], ys[p], w) for p in range(4)]
     assert dot_chains2(xs[0], ys[0], xs[1], ys[1], w) == tuple(one[:2])
     assert dot_chains4(xs[0], ys[0], xs[1], ys[1], xs[2], ys[2], xs[3], ys[3], w) == tuple(one)
+
+
+@pytest.mark.skipif(os.environ.get("NUMBA_DISABLE_JIT") == "1",
+                    reason="the scalar twin adds a product and a sum, not a fused multiply-add")
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_apply_upper_in_its_stated_order(dtype):
+    """``kernels.stats.apply_upper`` -- records of 1-8 values in vector registers
+    (``vector.apply_records``), longer ones through its layer-major workspaces -- against
+    the order its docstring states, written out with an exact fused multiply-add: each new
+    value sum_{e <= c} v_e R[e, c] from 0.0 in increasing e, then rounded to the stack's
+    type (bit for bit). R has entries below its diagonal that must not be read."""
+    from dyadperm.kernels.stats import apply_upper
+
+    rng = np.random.default_rng(3)
+    for L in range(1, 10):
+        cells = 23
+        stack = rng.normal(size=(cells, L)).astype(dtype)
+        rinv = rng.normal(size=(L, L))  # the lower part is not read
+        want = np.empty_like(stack)
+        for q in range(cells):
+            v = stack[q].astype(np.float64)
+            for c in range(L):
+                acc = 0.0
+                for e in range(c + 1):
+                    acc = _fma(float(v[e]), float(rinv[e, c]), acc)
+                want[q, c] = acc
+        apply_upper(stack.reshape(-1), L, rinv)
+        np.testing.assert_array_equal(stack, want, err_msg=f"L = {L}")

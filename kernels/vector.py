@@ -1,4 +1,8 @@
-"""Dot products in fixed-order chains, in vector registers.
+"""Kernels in LLVM IR vector code: dot products in fixed-order chains, and the triangular
+map of a layer stack's records (``apply_records``).
+
+Dot products in fixed-order chains
+----------------------------------
 
 A sum of many products is split into partial sums (chains) over t mod c, combined in an
 order the source fixes: the compiler may not reorder floating-point additions (no
@@ -19,6 +23,15 @@ In every one the last w mod 4 (``dot_chains16``: w mod 16) terms are added to ch
 increasing t. x and y are 1-d C-contiguous float64 arrays; terms t < w are read. With
 numba's JIT off the scalar twins (``_py_chains``: the same order, but a product and a sum
 where the kernels fuse them, so not the same bits) run.
+
+The triangular map of records
+-----------------------------
+``apply_records(flat, n_cells, L, rpad)``: each record v (L consecutive values of
+``flat``, float64 or float32) becomes v @ R, R upper triangular: new_c = sum_{e <= c} v_e
+R[e, c], one fused multiply-add a term in increasing e from 0.0, rounded to ``flat``'s type
+(the order of ``stats.apply_upper``). Each v_e is broadcast to a vector and multiplied into
+whole rows of R at once, so lane c also takes the terms e > c, whose R[e, c] is 0: adding
+a zero product leaves a sum as it is (only an exact zero may change its sign).
 """
 
 from llvmlite import ir
@@ -221,3 +234,96 @@ else:
         (s6 + s14)), then the same of the odd chains, the two added."""
         return _chains16(x, y, w)
 
+
+
+# Widest record ``apply_records`` takes (two vectors of four lanes).
+RECORD_LANES = 8
+
+
+def _records_codegen(context, builder, signature, args):
+    """IR of ``apply_records``: a switch over L = 1 .. RECORD_LANES, each case a loop over
+    the records with its own unrolled body (see the module docstring)."""
+    flat_t = signature.args[0]
+    flat, n_cells, L, rpad = args
+    i32, i64 = ir.IntType(32), ir.IntType(64)
+    dbl = ir.DoubleType()
+    data = context.make_array(flat_t)(context, builder, flat).data
+    rdata = context.make_array(signature.args[3])(context, builder, rpad).data
+    single = flat_t.dtype == types.float32
+    fma4 = cgutils.get_or_insert_function(
+        builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
+    zero = ir.Constant(V4D, [0.0] * 4)
+    splat_mask = ir.Constant(ir.VectorType(i32, 4), [0] * 4)
+    done = builder.append_basic_block("records.done")
+    switch = builder.switch(L, done)
+    for width in range(1, RECORD_LANES + 1):
+        case = builder.append_basic_block(f"records.{width}")
+        switch.add_case(ir.Constant(i64, width), case)
+        builder.position_at_end(case)
+        n_vec = (width + 3) // 4
+        # rows of R as vectors: rows[e][a] = R[e, 4a : 4a + 4]
+        rows = [[builder.load(builder.bitcast(
+            builder.gep(rdata, [ir.Constant(i64, e * RECORD_LANES + 4 * a)]),
+            V4D.as_pointer()), align=8) for a in range(n_vec)] for e in range(width)]
+        head = builder.append_basic_block(f"records.{width}.head")
+        body = builder.append_basic_block(f"records.{width}.body")
+        builder.branch(head)
+        builder.position_at_end(head)
+        q = builder.phi(i64)
+        q.add_incoming(ir.Constant(i64, 0), case)
+        builder.cbranch(builder.icmp_signed("<", q, n_cells), body, done)
+        builder.position_at_end(body)
+        base = builder.mul(q, ir.Constant(i64, width))
+        ptrs = [builder.gep(data, [builder.add(base, ir.Constant(i64, c))])
+                for c in range(width)]
+        accs = [zero] * n_vec
+        for e in range(width):
+            v = builder.load(ptrs[e])
+            if single:
+                v = builder.fpext(v, dbl)
+            vec = builder.insert_element(ir.Constant(V4D, ir.Undefined), v, ir.Constant(i32, 0))
+            vec = builder.shuffle_vector(vec, vec, splat_mask)
+            for a in range(n_vec):
+                if 4 * a + 3 >= e:  # a vector with some lane c >= e
+                    accs[a] = builder.call(fma4, [vec, rows[e][a], accs[a]])
+        for c in range(width):
+            out = builder.extract_element(accs[c // 4], ir.Constant(i32, c % 4))
+            if single:
+                out = builder.fptrunc(out, ir.FloatType())
+            builder.store(out, ptrs[c])
+        q.add_incoming(builder.add(q, ir.Constant(i64, 1)), builder.block)
+        builder.branch(head)
+    builder.position_at_end(done)
+    return context.get_dummy_value()
+
+
+def _py_records(flat, n_cells, L, rpad):
+    """Scalar twin of ``apply_records`` (JIT off): the same sums, e <= c only."""
+    for q in range(n_cells):
+        base = q * L
+        v = [float(flat[base + e]) for e in range(L)]
+        for c in range(L):
+            acc = 0.0
+            for e in range(c + 1):
+                acc += v[e] * rpad[e, c]
+            flat[base + c] = acc
+
+
+if config.DISABLE_JIT:
+    apply_records = _py_records
+else:
+    @intrinsic
+    def apply_records(typingctx, flat, n_cells, L, rpad):
+        """v @ R for each record of ``flat`` in place (module docstring). flat: 1-d C
+        float64 or float32 (n_cells * L values); n_cells, L: int64, 1 <= L <=
+        RECORD_LANES (other L: nothing is done); rpad: float64 (RECORD_LANES,
+        RECORD_LANES) C, R in its upper left corner and zeros elsewhere."""
+        if not (isinstance(flat, types.Array) and flat.ndim == 1 and flat.layout == "C"
+                and flat.dtype in (types.float64, types.float32)):
+            return None
+        if not (isinstance(rpad, types.Array) and rpad.ndim == 2 and rpad.layout == "C"
+                and rpad.dtype == types.float64):
+            return None
+        if not (n_cells == types.int64 and L == types.int64):
+            return None
+        return types.void(flat, n_cells, L, rpad), _records_codegen
