@@ -345,6 +345,37 @@ def any_nonfinite(mat, mask, want_nan):
     return False
 
 
+# What ``nonfinite_kinds`` reports, as bits.
+HAS_NAN = 1
+HAS_INF = 2
+# The largest finite float64: |x| <= it fails exactly for NaN and the infinities.
+_FINITE_MAX = 1.7976931348623157e308
+
+
+@njit(**KERNEL_OPTIONS)
+def nonfinite_kinds(mat):
+    """HAS_NAN | HAS_INF: which kinds of non-finite value ``mat`` (n, m, float, any strides)
+    holds. One pass: a row is tested at once (one comparison a cell, or-ed, which the
+    compiler vectorises), and only a row with a hit is read again to tell NaN from
+    infinity; stops once both are found."""
+    n, m = mat.shape
+    kinds = 0
+    for i in range(n):
+        bad = False
+        for j in range(m):
+            bad |= not (abs(mat[i, j]) <= _FINITE_MAX)
+        if bad:
+            for j in range(m):
+                x = mat[i, j]
+                if np.isnan(x):
+                    kinds |= HAS_NAN
+                elif np.isinf(x):
+                    kinds |= HAS_INF
+            if kinds == HAS_NAN | HAS_INF:
+                break
+    return kinds
+
+
 @njit(**KERNEL_OPTIONS)
 def place_rows(block, cols, out, out_rows, status):
     """out[out_rows[i], j] = block[i, cols[j]] cast to ``out``'s type, checking each value.

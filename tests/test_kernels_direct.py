@@ -311,6 +311,28 @@ def test_symmetry_and_value_scans_against_numpy(dtype):
         assert any_nonfinite(bad, mask, True) == bool((np.isnan(bad) & mask).any())
 
 
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_nonfinite_kinds_against_numpy(dtype):
+    """``nonfinite_kinds`` (a network's one scan when it is made) against numpy's isnan and
+    isinf (reference: numpy): none, NaN only, infinity only (either sign), both in one row
+    or in different rows, the last cell, strided and transposed views."""
+    from dyadperm.kernels.stats import HAS_INF, HAS_NAN, nonfinite_kinds
+
+    rng = np.random.default_rng(8)
+    base = rng.normal(size=(23, 19)).astype(dtype)
+    placements = [[], [(3, 4, np.nan)], [(22, 18, np.inf)], [(0, 0, -np.inf)],
+                  [(5, 1, np.nan), (5, 7, np.inf)], [(1, 1, np.inf), (20, 2, np.nan)]]
+    for cells in placements:
+        a = base.copy()
+        for i, j, val in cells:
+            a[i, j] = val
+        for view in (a, a.T, a[::2, ::3], a[1:, :-1]):
+            want = (HAS_NAN if np.isnan(view).any() else 0) | \
+                (HAS_INF if np.isinf(view).any() else 0)
+            assert nonfinite_kinds(view) == want, (cells, view.shape)
+
+
 def test_place_rows_against_numpy():
     """``place_rows`` (loading a network file: check, cast and place a block of rows)
     against numpy's fancy indexing and astype (reference: numpy): rows and columns put in

@@ -11,9 +11,7 @@ over the dyads (no N x p matrix is built at once).
 
 from __future__ import annotations
 
-import os
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
@@ -27,16 +25,13 @@ from .blocks import Blocks
 from .dyadic import Dyadic, NodeDerived, Reverse, _node_vector, as_dyadic, network_name
 from .labels import label_order, some_labels
 from .optional import is_frame, is_series
+from .threads import side_by_side
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).
 STREAM_DYADS = 1 << 20
 # Rows folded into a streaming QR at once: small enough for the Householder passes over
 # them to stay in cache (16384 x 6 float64 = 768 KB; measured 3x faster than 1M rows).
 QR_ROWS = 1 << 14
-# Threads the setup's per-layer kernels run on (numba kernels let go of the interpreter).
-# The work each thread gets never changes a result: layers are independent, and no sum
-# is split between threads.
-SETUP_THREADS = max(1, min(2, os.cpu_count() or 1))
 # Condition number (of the standardised design) above which a warning is given.
 COND_WARN = 1e6
 # Share of a collinear set's smallest singular vector above which a predictor is named in it.
@@ -234,8 +229,11 @@ def prepare(y: Any, predictors: Any, *, directed: bool | None = None, groups: An
             lower = np.tril_indices(n, -1)
             a[lower] = a.T[lower]
         internal.append(a)
+    # a network without NaN (seen when its Dyadic was made) has none on the dyad set;
+    # only the others are scanned
+    unsure = [a for a, (_, dy) in zip(internal, dyadics) if dy is None or dy.has_nan]
     complete = excluded is None and not any(side_by_side(
-        lambda a: _has_nonfinite(a, nan=True, mask=mask), internal, mask.size))
+        lambda a: _has_nonfinite(a, nan=True, mask=mask), unsure, mask.size))
     n_dyads = int(mask.sum())
     labels_out = tuple(labels)
     exact = None
@@ -339,24 +337,6 @@ def node_groups(groups: Any, labels: Sequence[str]) -> Any:
     if is_series(groups):
         return _node_vector(groups, labels, "groups")
     return groups
-
-
-def side_by_side(fn, items: Sequence[Any], cells: int) -> list:
-    """[fn(item) for item in items], on ``SETUP_THREADS`` threads (in order) when the work
-    is large enough to pay for them (``cells``: the matrix cells it reads, at least
-    STREAM_DYADS)."""
-    items = list(items)
-    if SETUP_THREADS < 2 or len(items) < 2 or cells < STREAM_DYADS:
-        return [fn(item) for item in items]
-    with ThreadPoolExecutor(max_workers=SETUP_THREADS) as pool:
-        return list(pool.map(fn, items))
-
-
-def halves(lo: int, hi: int) -> list[slice]:
-    """Rows [lo, hi) as two slices (the first the longer by at most one), for the two
-    threads of ``side_by_side``."""
-    mid = (lo + hi + 1) // 2
-    return [slice(lo, mid), slice(mid, hi)]
 
 
 def _has_nonfinite(mat: np.ndarray, *, nan: bool, mask: np.ndarray | None = None) -> bool:

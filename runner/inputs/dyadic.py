@@ -11,15 +11,16 @@ value per node and are turned into dyad values only when the engine needs them;
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 import numpy as np
 
 from ..errors import InputError
-from ..kernels.stats import NO_MASK, any_nonfinite
+from ..kernels.stats import HAS_INF, HAS_NAN, nonfinite_kinds
 from .labels import as_labels, some_labels
 from .optional import is_frame, is_series, loaded_pandas
+from .threads import halves, side_by_side
 
 DERIVED_KINDS = ("same", "gap", "sender", "receiver", "pair_sum")
 
@@ -57,6 +58,9 @@ class Dyadic:
     excluded: np.ndarray | None = None
     name: str | None = None
     source: Any = None
+    #: whether ``values`` held a NaN when the network was made (read then, with the check
+    #: for infinite values)
+    has_nan: bool = field(init=False, default=False, repr=False)
 
     def __post_init__(self) -> None:
         what = self.name or "network"
@@ -78,7 +82,12 @@ class Dyadic:
                                  " (give col_labels for two-mode data)")
         elif len(self.col_labels) != m:
             raise InputError(f"{what} has {m} columns but {len(self.col_labels)} column labels")
-        if any_nonfinite(v, NO_MASK, False):  # one pass, no temporary, stops at the first
+        # one pass on two threads (halves of the rows), no temporary
+        kinds = 0
+        for part in side_by_side(nonfinite_kinds, [v[rows] for rows in halves(0, n)], n * m):
+            kinds |= part
+        object.__setattr__(self, "has_nan", bool(kinds & HAS_NAN))
+        if kinds & HAS_INF:
             i, j = np.argwhere(np.isinf(v))[0]
             raise InputError(f"{what} has an infinite value at row {self.labels[i]!r}, column "
                              f"{self.col_node_labels[j]!r}; use NaN for a missing value")

@@ -32,7 +32,8 @@ from ..inputs import design as _design
 from ..inputs import memory as _memory
 from ..inputs.design import (ObservedFit, Prepared, check_design, check_factor,
                              check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
-                             halves, side_by_side, standardise)
+                             standardise)
+from ..inputs.threads import halves, side_by_side
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, gather_cross, gather_gram,
                               gram_chunks, gram_from_sums)
