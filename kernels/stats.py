@@ -7,7 +7,7 @@ from the Cholesky factor of T'GT (the R of a QR of the data), one permutation at
 """
 
 import numpy as np
-from numba import njit
+from numba import literal_unroll, njit
 
 from .options import EXACT_OPTIONS, FIT_PIVOT_SQUARED, KERNEL_OPTIONS
 from .vector import RECORD_LANES, apply_records
@@ -235,25 +235,41 @@ def masked_values(mat, mask, out):
                 k += 1
 
 
+# Columns of a row ``standardise_rows`` computes at once into its workspace (4 KB).
+STANDARDISE_COLUMNS = 512
+
+
 @njit(**EXACT_OPTIONS)
-def standardise_layer(mat, mean, sd, holds, fill, out):
-    """out = (mat - mean) / sd where ``holds``, else ``fill``: one layer of a stack.
+def standardise_rows(mats, means, sds, holds, fill, out):
+    """out[:, :, p] = (mats[p] - means[p]) / sds[p] where ``holds``, else ``fill``: the
+    layers of a stack, row by row (every layer of a row while the row's records stay in
+    cache). The bits of numpy's ``np.subtract(mat, mean, out=layer); layer /= sd;
+    layer[~holds] = fill``: the difference is rounded to ``out``'s type, then the quotient
+    (in float64) rounded again. A row's values are computed STANDARDISE_COLUMNS at a time
+    into a contiguous workspace, then stored into the records.
 
-    The bits of numpy's ``np.subtract(mat, mean, out=out); out /= sd; out[~holds] = fill``
-    in one pass: the difference is rounded to ``out``'s type, then the quotient (in
-    float64) rounded again. ``out`` may be ``mat`` itself (standardised in place).
-
-    mat : float64 (n, m), any strides; out : float64 or float32 (n, m), any strides;
-    holds : bool (n, m); mean, sd, fill : float.
+    mats : tuple of (n, m) float64 or float32 arrays, any strides (the layers; they may
+    be ``out``'s own layers: each cell is read before it is written); means, sds : float64
+    (L,); holds : bool (n, m); fill : float; out : float64 or float32 (n, m, L).
     """
-    n, m = mat.shape
+    n, m = holds.shape
+    buf = np.empty(STANDARDISE_COLUMNS)
     for i in range(n):
-        for j in range(m):
-            if holds[i, j]:
-                d = out.dtype.type(mat[i, j] - mean)
-                out[i, j] = np.float64(d) / sd
-            else:
-                out[i, j] = fill
+        pos = 0
+        for mat in literal_unroll(mats):
+            mean = means[pos]
+            sd = sds[pos]
+            for j0 in range(0, m, STANDARDISE_COLUMNS):
+                w = min(STANDARDISE_COLUMNS, m - j0)
+                src = mat[i, j0:j0 + w]
+                keep = holds[i, j0:j0 + w]
+                for t in range(w):
+                    d = out.dtype.type(src[t] - mean)
+                    buf[t] = np.float64(d) / sd if keep[t] else fill
+                dst = out[i, j0:j0 + w, pos]
+                for t in range(w):
+                    dst[t] = buf[t]
+            pos += 1
 
 
 # Records handled at once by ``apply_upper`` (L x 512 float64 workspaces stay in L1).

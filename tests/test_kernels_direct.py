@@ -235,12 +235,12 @@ def test_identity_gram_against_numpy(dtype, ranges):
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_setup_kernels_against_numpy(dtype):
     """The setup's element-wise kernels against the numpy they replace (reference: numpy):
-    ``standardise_layer`` gives the bits of subtract, divide and fill (the float32 stack
+    ``standardise_rows`` gives the bits of subtract, divide and fill (the float32 stack
     rounded twice, as numpy's in-place float32 arithmetic rounds); ``masked_values`` the
     values of ``mat[mask]`` in the same order; ``apply_upper`` each record times an upper
     triangular matrix (numpy's matrix product, to rounding), for rows longer and shorter
     than one workspace chunk."""
-    from dyadperm.kernels.stats import apply_upper, masked_values, standardise_layer
+    from dyadperm.kernels.stats import apply_upper, masked_values, standardise_rows
 
     rng = np.random.default_rng(11)
     n, m = 37, 29
@@ -251,9 +251,16 @@ def test_setup_kernels_against_numpy(dtype):
     np.subtract(mat, mean, out=want)
     want /= sd
     want[~holds] = np.nan
-    got = np.empty((n, m, 2), dtype=dtype)[:, :, 1]
-    standardise_layer(mat, mean, sd, holds, np.nan, got)
-    np.testing.assert_array_equal(got, want)
+    stack = np.empty((n, m, 2), dtype=dtype)
+    other = rng.normal(size=(m, n)).T  # a second layer, strided
+    standardise_rows((other, mat), np.array([0.5, mean]), np.array([2.0, sd]), holds, np.nan,
+                     stack)
+    np.testing.assert_array_equal(stack[:, :, 1], want)
+    want0 = np.empty((n, m), dtype=dtype)
+    np.subtract(other, 0.5, out=want0)
+    want0 /= 2.0
+    want0[~holds] = np.nan
+    np.testing.assert_array_equal(stack[:, :, 0], want0)
     col = np.empty((int(holds.sum()), 3))
     masked_values(mat, holds, col[:, 2])
     np.testing.assert_array_equal(col[:, 2], mat[holds])

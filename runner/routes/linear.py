@@ -39,7 +39,7 @@ from ..kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, gather_cros
                               gram_chunks, gram_from_sums)
 from ..kernels.tsqr import fold_factors, row_factors
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
-                             fill_gram, regression_stats, standardise_layer)
+                             fill_gram, regression_stats, standardise_rows)
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
 from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
                    summary)
@@ -174,12 +174,14 @@ def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
     # cells that hold dyad values: the dyad set, and for undirected data its mirror image
     # (relabelled reads land in either triangle)
     holds = prep.holds()
-    # halves of the rows to two threads, every layer of a half on one (layers of one cell
-    # share its cache line)
+    # halves of the rows to two threads, every layer of a row at once (the layers of a
+    # cell share its cache line)
+    means = np.ascontiguousarray(mean[layers], dtype=np.float64)
+    sds = np.ascontiguousarray(sd[layers], dtype=np.float64)
+
     def rows(part: slice) -> None:
-        for pos, layer in enumerate(layers):
-            standardise_layer(prep.matrices[layer][part], float(mean[layer]),
-                              float(sd[layer]), holds[part], fill, out[part, :, pos])
+        standardise_rows(tuple(prep.matrices[layer][part] for layer in layers), means, sds,
+                         holds[part], fill, out[part])
     side_by_side(rows, halves(0, n), n * m)
     return out
 
