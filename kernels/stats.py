@@ -10,7 +10,7 @@ import numpy as np
 from numba import literal_unroll, njit
 
 from .options import EXACT_OPTIONS, FIT_PIVOT_SQUARED, KERNEL_OPTIONS
-from .vector import RECORD_LANES, apply_records
+from .vector import RECORD_LANES, apply_records, masked_row_sum
 
 #: Numbers per relabelling and term that ``regression_stats`` writes into ``rows``.
 INTERVAL_WIDTH = 6
@@ -197,16 +197,27 @@ def masked_moments(mat, mask, out):
         with n + m, not n * m.
     """
     n, m = mat.shape
+    # rows of contiguous values: the row sums in vector registers (vector.masked_row_sum,
+    # the same order)
+    vec = mat.strides[1] == mat.itemsize
     count = 0
     total = 0.0
     for i in range(n):
         for j in range(m):
             count += mask[i, j]
-        total += _masked_row_sum(mat, mask, i, 0.0, False)  # sum_j x_ij over the row's dyads
+        # sum_j x_ij over the row's dyads
+        if vec:
+            total += masked_row_sum(mat, mask, np.int64(i), 0.0, False)
+        else:
+            total += _masked_row_sum(mat, mask, i, 0.0, False)
     mean = total / max(count, 1)
     m2 = 0.0
     for i in range(n):
-        m2 += _masked_row_sum(mat, mask, i, mean, True)  # sum_j (x_ij - mean)^2
+        # sum_j (x_ij - mean)^2
+        if vec:
+            m2 += masked_row_sum(mat, mask, np.int64(i), mean, True)
+        else:
+            m2 += _masked_row_sum(mat, mask, i, mean, True)
     out[0] = count
     out[1] = mean
     out[2] = m2

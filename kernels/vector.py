@@ -24,6 +24,14 @@ increasing t. x and y are 1-d C-contiguous float64 arrays; terms t < w are read.
 numba's JIT off the scalar twins (``_py_chains``: the same order, but a product and a sum
 where the kernels fuse them, so not the same bits) run.
 
+Masked row sums
+---------------
+``masked_row_sum(mat, mask, i, shift, square)``: the sum over row i's cells where
+``mask`` holds of (x - shift), or of its square, in four chains over j mod 4 (one lane
+each; the last m mod 4 cells in chain 0), combined as (s0 + s1) + (s2 + s3): the order of
+``stats._masked_row_sum``, with an unmasked cell adding 0.0. The square is rounded before
+it is added (a product, then a sum: no fused multiply-add), as there.
+
 The triangular map of records
 -----------------------------
 ``apply_records(flat, n_cells, L, rpad)``: each record v (L consecutive values of
@@ -327,3 +335,116 @@ else:
         if not (n_cells == types.int64 and L == types.int64):
             return None
         return types.void(flat, n_cells, L, rpad), _records_codegen
+
+
+def _row_sum_codegen(context, builder, signature, args):
+    """IR of ``masked_row_sum`` (module docstring): row i of ``mat`` (inner stride one
+    value) and of ``mask`` (C bool)."""
+    mat_t, mask_t = signature.args[0], signature.args[1]
+    mat, mask, i, shift, square = args
+    i32, i64, i8 = ir.IntType(32), ir.IntType(64), ir.IntType(8)
+    dbl = ir.DoubleType()
+    amat = context.make_array(mat_t)(context, builder, mat)
+    amask = context.make_array(mask_t)(context, builder, mask)
+    m = builder.extract_value(amat.shape, 1)
+    stride0 = builder.extract_value(amat.strides, 0)
+    elt = ir.FloatType() if mat_t.dtype == types.float32 else dbl
+    vec_elt = ir.VectorType(elt, 4)
+    row = builder.bitcast(builder.gep(builder.bitcast(amat.data, i8.as_pointer()),
+                                      [builder.mul(i, stride0)]), elt.as_pointer())
+    mrow = builder.gep(builder.bitcast(amask.data, i8.as_pointer()), [builder.mul(i, m)])
+    shift4 = builder.insert_element(ir.Constant(V4D, ir.Undefined), shift, ir.Constant(i32, 0))
+    shift4 = builder.shuffle_vector(shift4, shift4, ir.Constant(ir.VectorType(i32, 4), [0] * 4))
+    zero = ir.Constant(V4D, [0.0] * 4)
+    # llvm.arithmetic.fence: the square is rounded on its own; without it the backend
+    # fused it into the sum where the mask selects it (a masked fused multiply-add)
+    fence4 = cgutils.get_or_insert_function(
+        builder.module, ir.FunctionType(V4D, [V4D]), "llvm.arithmetic.fence.v4f64")
+    fence1 = cgutils.get_or_insert_function(
+        builder.module, ir.FunctionType(dbl, [dbl]), "llvm.arithmetic.fence.f64")
+    full = builder.sub(m, builder.srem(m, ir.Constant(i64, 4)))
+    sq = builder.icmp_unsigned("!=", square, ir.Constant(square.type, 0))
+    entry = builder.block
+    head = builder.append_basic_block("rowsum.head")
+    body = builder.append_basic_block("rowsum.body")
+    after = builder.append_basic_block("rowsum.after")
+    builder.branch(head)
+    builder.position_at_end(head)
+    j = builder.phi(i64)
+    j.add_incoming(ir.Constant(i64, 0), entry)
+    acc = builder.phi(V4D)
+    acc.add_incoming(zero, entry)
+    builder.cbranch(builder.icmp_signed("<", j, full), body, after)
+    builder.position_at_end(body)
+    x = builder.load(builder.bitcast(builder.gep(row, [j]), vec_elt.as_pointer()), align=4)
+    if elt != dbl:
+        x = builder.fpext(x, V4D)
+    d = builder.fsub(x, shift4)
+    d = builder.select(sq, builder.call(fence4, [builder.fmul(d, d)]), d)
+    keep = builder.load(builder.bitcast(builder.gep(mrow, [j]), ir.VectorType(i8, 4).as_pointer()),
+                        align=1)
+    keep = builder.icmp_unsigned("!=", keep, ir.Constant(ir.VectorType(i8, 4), [0] * 4))
+    new = builder.fadd(acc, builder.select(keep, d, zero))
+    j.add_incoming(builder.add(j, ir.Constant(i64, 4)), builder.block)
+    acc.add_incoming(new, builder.block)
+    builder.branch(head)
+    # the last m mod 4 cells into chain 0, in increasing j
+    builder.position_at_end(after)
+    lane0 = builder.extract_element(acc, ir.Constant(i32, 0))
+    tail_head = builder.append_basic_block("rowsum.tail")
+    tail_body = builder.append_basic_block("rowsum.tailbody")
+    done = builder.append_basic_block("rowsum.done")
+    builder.branch(tail_head)
+    builder.position_at_end(tail_head)
+    u = builder.phi(i64)
+    u.add_incoming(j, after)
+    s0 = builder.phi(dbl)
+    s0.add_incoming(lane0, after)
+    builder.cbranch(builder.icmp_signed("<", u, m), tail_body, done)
+    builder.position_at_end(tail_body)
+    x1 = builder.load(builder.gep(row, [u]))
+    if elt != dbl:
+        x1 = builder.fpext(x1, dbl)
+    x1 = builder.fsub(x1, shift)
+    x1 = builder.select(sq, builder.call(fence1, [builder.fmul(x1, x1)]), x1)
+    k1 = builder.icmp_unsigned("!=", builder.load(builder.gep(mrow, [u])), ir.Constant(i8, 0))
+    s0.add_incoming(builder.fadd(s0, builder.select(k1, x1, ir.Constant(dbl, 0.0))),
+                    builder.block)
+    u.add_incoming(builder.add(u, ir.Constant(i64, 1)), builder.block)
+    builder.branch(tail_head)
+    builder.position_at_end(done)
+    lanes = [s0] + [builder.extract_element(acc, ir.Constant(i32, c)) for c in (1, 2, 3)]
+    return builder.fadd(builder.fadd(lanes[0], lanes[1]), builder.fadd(lanes[2], lanes[3]))
+
+
+def _py_row_sum(mat, mask, i, shift, square):
+    """Scalar twin of ``masked_row_sum`` (JIT off)."""
+    m = mat.shape[1]
+    s = [0.0] * 4
+    full = m - m % 4
+    for j in range(m):
+        d = float(mat[i, j]) - shift
+        if square:
+            d *= d
+        s[j % 4 if j < full else 0] += d if mask[i, j] else 0.0
+    return (s[0] + s[1]) + (s[2] + s[3])
+
+
+if config.DISABLE_JIT:
+    masked_row_sum = _py_row_sum
+else:
+    @intrinsic
+    def masked_row_sum(typingctx, mat, mask, i, shift, square):
+        """Row i's masked sum of (x - shift) or its square (module docstring). mat: 2-d
+        float64 or float32 (values widened to float64), rows of contiguous values (the
+        caller checks its inner stride); mask: 2-d C bool of the same shape; i: int64;
+        shift: float64; square: bool."""
+        if not (isinstance(mat, types.Array) and mat.ndim == 2
+                and mat.dtype in (types.float64, types.float32)):
+            return None
+        if not (isinstance(mask, types.Array) and mask.ndim == 2 and mask.layout == "C"
+                and mask.dtype == types.boolean):
+            return None
+        if not (i == types.int64 and shift == types.float64 and square == types.boolean):
+            return None
+        return types.float64(mat, mask, i, shift, square), _row_sum_codegen

@@ -530,3 +530,27 @@ def test_apply_upper_in_its_stated_order(dtype):
                 want[q, c] = acc
         apply_upper(stack.reshape(-1), L, rinv)
         np.testing.assert_array_equal(stack, want, err_msg=f"L = {L}")
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_masked_moments_vector_rows_same_bits(dtype):
+    """``masked_moments`` sums rows of contiguous values in vector registers
+    (``vector.masked_row_sum``) and other rows with the scalar chains: the same order, so
+    the same bits (a C array against a strided copy of it: every row length mod 4, masked
+    cells, a fenced square that must not fuse into the sum); and numpy's mean and sum of
+    squared deviations to rounding (reference: numpy)."""
+    from dyadperm.kernels.stats import masked_moments
+
+    rng = np.random.default_rng(6)
+    for n, m in ((11, 1), (11, 2), (11, 3), (11, 4), (11, 5), (11, 9), (11, 67), (301, 301)):
+        a = (rng.normal(size=(n, m)) * 3.0 + 1.5).astype(dtype)
+        mask = rng.random((n, m)) < 0.85
+        strided = np.empty((n, 2 * m), dtype=dtype)[:, ::2]
+        strided[:] = a
+        vec, sca = np.empty(3), np.empty(3)
+        masked_moments(a, mask, vec)
+        masked_moments(strided, mask, sca)
+        np.testing.assert_array_equal(vec, sca, err_msg=f"m = {m}")
+        vals = a[mask].astype(np.float64)
+        np.testing.assert_allclose(vec, [vals.size, vals.mean(), ((vals - vals.mean()) ** 2).sum()],
+                                   rtol=1e-12)
