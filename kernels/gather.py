@@ -63,7 +63,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
-from .vector import dot_chains, dot_chains2, dot_chains4
+from .vector import dot_chains, dot_chains2, dot_chains4, ir_loop_head
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
@@ -180,24 +180,6 @@ def _ir_load4(builder, ptr, at):
     return builder.fpext(raw, ir.VectorType(dbl, 4)) if elt != dbl else raw
 
 
-def _ir_loop_head(builder, name, j0, start):
-    """Open a loop over j from j0 carrying the vectors ``start``: branch to and position
-    at its head block; returns (head, j phi, the vectors' phis). The caller adds the
-    incoming values of the loop's back edge."""
-    entry = builder.block
-    head = builder.append_basic_block(f"{name}.head")
-    builder.branch(head)
-    builder.position_at_end(head)
-    j = builder.phi(ir.IntType(64))
-    j.add_incoming(j0, entry)
-    sums = []
-    for vec in start:
-        ph = builder.phi(vec.type)
-        ph.add_incoming(vec, entry)
-        sums.append(ph)
-    return head, j, sums
-
-
 def _tile_vec_codegen(swap):
     """LLVM IR of a 3 x 4 tile loop with six <4 x double> accumulators.
 
@@ -235,7 +217,7 @@ def _tile_vec_codegen(swap):
                 new.append(builder.call(fma, [s, lanes, sums[a]]))  # s_a. += split_a * lanes
             return new
 
-        head, j, sums = _ir_loop_head(builder, "tile", j0, start)
+        head, j, sums = ir_loop_head(builder, "tile", j0, start)
         body = builder.append_basic_block("tile.body")
         last = builder.append_basic_block("tile.last")
         one = builder.append_basic_block("tile.one")
@@ -351,7 +333,7 @@ def _dot_vec_codegen(streams):
         def chain(vecs, t):
             return [vecs[4 * s + t] for s in range(streams)]
 
-        head, j, sums = _ir_loop_head(builder, "dot", j0, start)
+        head, j, sums = ir_loop_head(builder, "dot", j0, start)
         body = builder.append_basic_block("dot.body")
         tail = builder.append_basic_block("dot.tail")
         done = builder.append_basic_block("dot.done")

@@ -52,6 +52,24 @@ from .options import KERNEL_OPTIONS
 V4D = ir.VectorType(ir.DoubleType(), 4)
 
 
+def ir_loop_head(builder, name, j0, start):
+    """Open a loop over j from j0 carrying the values ``start`` (vectors or scalars):
+    branch to and position at its head block; returns (head, j phi, the values' phis).
+    The caller adds the incoming values of the loop's back edge."""
+    entry = builder.block
+    head = builder.append_basic_block(f"{name}.head")
+    builder.branch(head)
+    builder.position_at_end(head)
+    j = builder.phi(ir.IntType(64))
+    j.add_incoming(j0, entry)
+    sums = []
+    for vec in start:
+        ph = builder.phi(vec.type)
+        ph.add_incoming(vec, entry)
+        sums.append(ph)
+    return head, j, sums
+
+
 def _py_chains(xs, ys, w, k):
     """The sums of the pairs (xs[p], ys[p]) in ``k`` chains (4 or 16), the scalar way."""
     out = []
@@ -94,19 +112,10 @@ def _chains_codegen(n_pairs, n_vec):
             builder.module, ir.FunctionType(dbl, [dbl, dbl, dbl]), "llvm.fma.f64")
         zero = ir.Constant(V4D, [0.0] * 4)
         full = builder.sub(w, builder.srem(w, ir.Constant(i64, step)))
-        entry = builder.block
-        head = builder.append_basic_block("chains.head")
+        head, t, accs = ir_loop_head(builder, "chains", ir.Constant(i64, 0),
+                                     [zero] * (n_pairs * n_vec))
         body = builder.append_basic_block("chains.body")
         after = builder.append_basic_block("chains.after")
-        builder.branch(head)
-        builder.position_at_end(head)
-        t = builder.phi(i64)
-        t.add_incoming(ir.Constant(i64, 0), entry)
-        accs = []
-        for _ in range(n_pairs * n_vec):
-            ph = builder.phi(V4D)
-            ph.add_incoming(zero, entry)
-            accs.append(ph)
         builder.cbranch(builder.icmp_signed("<", t, full), body, after)
         builder.position_at_end(body)
         new = []
@@ -126,18 +135,9 @@ def _chains_codegen(n_pairs, n_vec):
         builder.position_at_end(after)
         lane0 = [builder.extract_element(accs[p * n_vec], ir.Constant(i32, 0))
                  for p in range(n_pairs)]
-        tail_head = builder.append_basic_block("chains.tail")
+        tail_head, u, s0 = ir_loop_head(builder, "chains.tail", t, lane0)
         tail_body = builder.append_basic_block("chains.tailbody")
         done = builder.append_basic_block("chains.done")
-        builder.branch(tail_head)
-        builder.position_at_end(tail_head)
-        u = builder.phi(i64)
-        u.add_incoming(t, after)
-        s0 = []
-        for p in range(n_pairs):
-            ph = builder.phi(dbl)
-            ph.add_incoming(lane0[p], after)
-            s0.append(ph)
         builder.cbranch(builder.icmp_signed("<", u, w), tail_body, done)
         builder.position_at_end(tail_body)
         for p in range(n_pairs):
@@ -364,16 +364,9 @@ def _row_sum_codegen(context, builder, signature, args):
         builder.module, ir.FunctionType(dbl, [dbl]), "llvm.arithmetic.fence.f64")
     full = builder.sub(m, builder.srem(m, ir.Constant(i64, 4)))
     sq = builder.icmp_unsigned("!=", square, ir.Constant(square.type, 0))
-    entry = builder.block
-    head = builder.append_basic_block("rowsum.head")
+    head, j, (acc,) = ir_loop_head(builder, "rowsum", ir.Constant(i64, 0), [zero])
     body = builder.append_basic_block("rowsum.body")
     after = builder.append_basic_block("rowsum.after")
-    builder.branch(head)
-    builder.position_at_end(head)
-    j = builder.phi(i64)
-    j.add_incoming(ir.Constant(i64, 0), entry)
-    acc = builder.phi(V4D)
-    acc.add_incoming(zero, entry)
     builder.cbranch(builder.icmp_signed("<", j, full), body, after)
     builder.position_at_end(body)
     x = builder.load(builder.bitcast(builder.gep(row, [j]), vec_elt.as_pointer()), align=4)
@@ -391,15 +384,9 @@ def _row_sum_codegen(context, builder, signature, args):
     # the last m mod 4 cells into chain 0, in increasing j
     builder.position_at_end(after)
     lane0 = builder.extract_element(acc, ir.Constant(i32, 0))
-    tail_head = builder.append_basic_block("rowsum.tail")
+    tail_head, u, (s0,) = ir_loop_head(builder, "rowsum.tail", j, [lane0])
     tail_body = builder.append_basic_block("rowsum.tailbody")
     done = builder.append_basic_block("rowsum.done")
-    builder.branch(tail_head)
-    builder.position_at_end(tail_head)
-    u = builder.phi(i64)
-    u.add_incoming(j, after)
-    s0 = builder.phi(dbl)
-    s0.add_incoming(lane0, after)
     builder.cbranch(builder.icmp_signed("<", u, m), tail_body, done)
     builder.position_at_end(tail_body)
     x1 = builder.load(builder.gep(row, [u]))
