@@ -63,7 +63,8 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
-from .vector import dot_chains, dot_chains2, dot_chains4, ir_loop_head
+from .vector import (RECORD_LANES, dot_chains, dot_chains2, dot_chains4, ir_loop_head,
+                     records_to_rows)
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
@@ -1023,6 +1024,19 @@ def gather_gram(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col
 GRAM_COLUMNS = 256
 
 
+@njit(inline="always", **KERNEL_OPTIONS)
+def _all_layers(stack, idx):
+    """Whether ``idx`` names every layer of ``stack`` in order (0, 1, ..., L - 1), with
+    L at most ``vector.RECORD_LANES`` (and at least one)."""
+    L = stack.shape[2]
+    if idx.shape[0] != L or L == 0 or L > RECORD_LANES:
+        return False
+    for a in range(L):
+        if idx[a] != a:
+            return False
+    return True
+
+
 @njit(**KERNEL_OPTIONS)
 def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
     """The sums of each chunk of cells, for ``identity_gram`` and its threads.
@@ -1056,19 +1070,32 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
             px[k] = 1 + r
             py[k] = s
             k += 1
+    # a stack whose layers are all taken, in order, is copied record by record
+    # (vector.records_to_rows, four records at a time)
+    rel_all = _all_layers(rel, rel_idx)
+    fix_all = _all_layers(fix, fix_idx)
+    m_rel, m_fix = rel.shape[1], fix.shape[1]
     for i in range(n_rows):
         slot = first[i]
         j0 = col_start[i]
         while j0 < col_stop[i]:
             w = min(GRAM_COLUMNS, col_stop[i] - j0)
-            for a in range(n_rel):
-                la = rel_idx[a]
-                for t in range(w):
-                    buf[a, t] = rel[i, j0 + t, la]
-            for c in range(n_fix):
-                lc = fix_idx[c]
-                for t in range(w):
-                    buf[n_rel + c, t] = fix[i, j0 + t, lc]
+            if rel_all:
+                records_to_rows(rel.reshape(-1), np.int64((i * m_rel + j0) * n_rel),
+                                np.int64(n_rel), np.int64(w), wk, np.int64(1))
+            else:
+                for a in range(n_rel):
+                    la = rel_idx[a]
+                    for t in range(w):
+                        buf[a, t] = rel[i, j0 + t, la]
+            if fix_all:
+                records_to_rows(fix.reshape(-1), np.int64((i * m_fix + j0) * n_fix),
+                                np.int64(n_fix), np.int64(w), wk, np.int64(1 + n_rel))
+            else:
+                for c in range(n_fix):
+                    lc = fix_idx[c]
+                    for t in range(w):
+                        buf[n_rel + c, t] = fix[i, j0 + t, lc]
             out = parts[slot]
             k = 0
             while k + 4 <= n_sums:

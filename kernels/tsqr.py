@@ -33,7 +33,7 @@ import numpy as np
 from numba import njit
 
 from .options import KERNEL_OPTIONS
-from .vector import dot_chains16
+from .vector import RECORD_LANES, dot_chains16, records_to_rows
 
 
 @njit(inline="always", **KERNEL_OPTIONS)
@@ -51,7 +51,13 @@ def _load_block(stacks, r, j0, nb, intercept, bt):
             dst[w] = 1.0
         e = 1
     for part in stacks:
-        for c in range(part.shape[2]):
+        m, L = part.shape[1], part.shape[2]
+        if L <= RECORD_LANES:  # the records' layers to rows, four records at a time
+            records_to_rows(part.reshape(-1), np.int64((r * m + j0) * L), np.int64(L),
+                            np.int64(nb), bt, np.int64(e))
+            e += L
+            continue
+        for c in range(L):
             dst = bt[e]
             seg = part[r, j0:j0 + nb, c]
             for w in range(nb):

@@ -24,6 +24,13 @@ increasing t. x and y are 1-d C-contiguous float64 arrays; terms t < w are read.
 numba's JIT off the scalar twins (``_py_chains``: the same order, but a product and a sum
 where the kernels fuse them, so not the same bits) run.
 
+Records to rows
+---------------
+``records_to_rows(flat, start, L, nb, bt, row0)``: bt[row0 + c, w] = flat[start + w L + c]
+for c < L, w < nb (widened to float64): nb records of a layer stack into one row per
+layer (the layer-major blocks of the QR fold and the Gram). Four records at a time: each
+layer's four values go to its row with one vector store. Only copies: no value changes.
+
 Masked row sums
 ---------------
 ``masked_row_sum(mat, mask, i, shift, square)``: the sum over row i's cells where
@@ -435,3 +442,83 @@ else:
         if not (i == types.int64 and shift == types.float64 and square == types.boolean):
             return None
         return types.float64(mat, mask, i, shift, square), _row_sum_codegen
+
+
+def _records_rows_codegen(context, builder, signature, args):
+    """IR of ``records_to_rows`` (module docstring): a switch over L = 1 .. RECORD_LANES,
+    each case four records a step (then one at a time)."""
+    flat_t, bt_t = signature.args[0], signature.args[4]
+    flat, start, L, nb, bt, row0 = args
+    i32, i64 = ir.IntType(32), ir.IntType(64)
+    dbl = ir.DoubleType()
+    data = context.make_array(flat_t)(context, builder, flat).data
+    abt = context.make_array(bt_t)(context, builder, bt)
+    width = builder.extract_value(abt.shape, 1)
+    single = flat_t.dtype == types.float32
+    src = builder.gep(data, [start])
+    done = builder.append_basic_block("rows.done")
+    switch = builder.switch(L, done)
+    for lanes in range(1, RECORD_LANES + 1):
+        case = builder.append_basic_block(f"rows.{lanes}")
+        switch.add_case(ir.Constant(i64, lanes), case)
+        builder.position_at_end(case)
+        dst = [builder.gep(abt.data, [builder.mul(builder.add(row0, ir.Constant(i64, c)), width)])
+               for c in range(lanes)]
+        full = builder.sub(nb, builder.srem(nb, ir.Constant(i64, 4)))
+
+        def value(w, c):
+            v = builder.load(builder.gep(src, [builder.add(builder.mul(
+                w, ir.Constant(i64, lanes)), ir.Constant(i64, c))]))
+            return builder.fpext(v, dbl) if single else v
+
+        head, w, _ = ir_loop_head(builder, f"rows.{lanes}.four", ir.Constant(i64, 0), [])
+        body = builder.append_basic_block(f"rows.{lanes}.body")
+        rest = builder.append_basic_block(f"rows.{lanes}.rest")
+        builder.cbranch(builder.icmp_signed("<", w, full), body, rest)
+        builder.position_at_end(body)
+        for c in range(lanes):
+            vec = ir.Constant(V4D, ir.Undefined)
+            for t in range(4):
+                vec = builder.insert_element(
+                    vec, value(builder.add(w, ir.Constant(i64, t)), c), ir.Constant(i32, t))
+            builder.store(vec, builder.bitcast(builder.gep(dst[c], [w]), V4D.as_pointer()),
+                          align=8)
+        w.add_incoming(builder.add(w, ir.Constant(i64, 4)), builder.block)
+        builder.branch(head)
+        builder.position_at_end(rest)
+        head1, u, _ = ir_loop_head(builder, f"rows.{lanes}.one", w, [])
+        body1 = builder.append_basic_block(f"rows.{lanes}.onebody")
+        builder.cbranch(builder.icmp_signed("<", u, nb), body1, done)
+        builder.position_at_end(body1)
+        for c in range(lanes):
+            builder.store(value(u, c), builder.gep(dst[c], [u]))
+        u.add_incoming(builder.add(u, ir.Constant(i64, 1)), builder.block)
+        builder.branch(head1)
+    builder.position_at_end(done)
+    return context.get_dummy_value()
+
+
+def _py_records_rows(flat, start, L, nb, bt, row0):
+    """Twin of ``records_to_rows`` (JIT off)."""
+    for c in range(L):
+        for w in range(nb):
+            bt[row0 + c, w] = flat[start + w * L + c]
+
+
+if config.DISABLE_JIT:
+    records_to_rows = _py_records_rows
+else:
+    @intrinsic
+    def records_to_rows(typingctx, flat, start, L, nb, bt, row0):
+        """Records of ``flat`` (1-d C float64 or float32) into rows of ``bt`` (2-d C
+        float64), module docstring; start, L (1 .. RECORD_LANES; other L: nothing is
+        done), nb, row0: int64."""
+        if not (isinstance(flat, types.Array) and flat.ndim == 1 and flat.layout == "C"
+                and flat.dtype in (types.float64, types.float32)):
+            return None
+        if not (isinstance(bt, types.Array) and bt.ndim == 2 and bt.layout == "C"
+                and bt.dtype == types.float64):
+            return None
+        if not all(x == types.int64 for x in (start, L, nb, row0)):
+            return None
+        return types.void(flat, start, L, nb, bt, row0), _records_rows_codegen

@@ -554,3 +554,28 @@ def test_masked_moments_vector_rows_same_bits(dtype):
         vals = a[mask].astype(np.float64)
         np.testing.assert_allclose(vec, [vals.size, vals.mean(), ((vals - vals.mean()) ** 2).sum()],
                                    rtol=1e-12)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_records_to_rows_against_numpy(dtype):
+    """``vector.records_to_rows`` (the layer-major blocks of the QR fold and the Gram)
+    against numpy's transpose of the same records (reference: numpy): every record width
+    it takes, counts that are and are not multiples of four, an offset start and target
+    row; cells it must not write stay as they were."""
+    from numba import njit
+
+    from dyadperm.kernels.vector import RECORD_LANES, records_to_rows
+
+    @njit
+    def call(flat, start, L, nb, bt, row0):  # an intrinsic runs inside compiled code only
+        records_to_rows(flat, np.int64(start), np.int64(L), np.int64(nb), bt, np.int64(row0))
+
+    rng = np.random.default_rng(12)
+    for L in range(1, RECORD_LANES + 1):
+        for nb in (0, 1, 3, 4, 7, 21):
+            flat = rng.normal(size=5 + L * (nb + 2)).astype(dtype)
+            bt = np.full((L + 3, 24), -7.0)
+            want = bt.copy()
+            want[2:2 + L, :nb] = flat[5:5 + L * nb].reshape(nb, L).T
+            call(flat, 5, L, nb, bt, 2)
+            np.testing.assert_array_equal(bt, want, err_msg=f"L = {L}, nb = {nb}")
