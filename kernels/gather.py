@@ -63,8 +63,8 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from .options import KERNEL_OPTIONS
-from .vector import (RECORD_LANES, dot_chains, dot_chains2, dot_chains4, ir_loop_head,
-                     records_to_rows)
+from .vector import (RECORD_LANES, apply_records, dot_chains, dot_chains2, dot_chains4,
+                     ir_loop_head, records_to_rows)
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
 # permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
@@ -1019,6 +1019,9 @@ def gather_gram(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col
                 out[b, r, s] = out[b, s, r]
 
 
+# ``gram_chunks`` without a map of the records.
+NO_RECORDS = np.zeros((0, 0))
+
 # Columns of a row copied into the layer-major workspace of ``identity_gram`` at once
 # (L x 256 float64: 8 KB per layer, so a 4-layer chunk stays in the first-level cache).
 GRAM_COLUMNS = 256
@@ -1038,8 +1041,15 @@ def _all_layers(stack, idx):
 
 
 @njit(**KERNEL_OPTIONS)
-def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
+def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts,
+                rpad=NO_RECORDS):
     """The sums of each chunk of cells, for ``identity_gram`` and its threads.
+
+    With ``rpad`` (``vector.apply_records``' padded R, float64 (RECORD_LANES,
+    RECORD_LANES)), each row of ``fix`` (every record, all its layers; ``fix`` may be
+    ``rel``) is first mapped in place, v -> v R, as ``stats.apply_upper`` maps it (the same
+    bits), and its sums are then taken while the row is in cache: one pass over the stack
+    instead of two. ``fix`` then has at most RECORD_LANES layers.
 
     Row i's cells j in [col_start[i], col_stop[i]) are cut into chunks of GRAM_COLUMNS
     columns (the last shorter); chunk t of row i writes parts[first[i] + t] = [sum v_0,
@@ -1075,7 +1085,10 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts):
     rel_all = _all_layers(rel, rel_idx)
     fix_all = _all_layers(fix, fix_idx)
     m_rel, m_fix = rel.shape[1], fix.shape[1]
+    mapped = rpad.shape[0] > 0
     for i in range(n_rows):
+        if mapped:
+            apply_records(fix[i].reshape(-1), np.int64(m_fix), np.int64(fix.shape[2]), rpad)
         slot = first[i]
         j0 = col_start[i]
         while j0 < col_stop[i]:

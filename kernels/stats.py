@@ -288,6 +288,18 @@ APPLY_CHUNK = 512
 
 
 @njit(**KERNEL_OPTIONS)
+def padded_upper(rinv):
+    """The upper triangle of ``rinv`` (L, L), L <= RECORD_LANES, in the top left corner of
+    a (RECORD_LANES, RECORD_LANES) float64 array of zeros: ``vector.apply_records``' R."""
+    L = rinv.shape[0]
+    rpad = np.zeros((RECORD_LANES, RECORD_LANES))
+    for e in range(L):
+        for c in range(e, L):
+            rpad[e, c] = rinv[e, c]
+    return rpad
+
+
+@njit(**KERNEL_OPTIONS)
 def apply_upper(flat, n_layers, rinv):
     """Each record v of ``flat`` (n_cells x L values, C order) becomes v @ rinv, in place
     (rinv upper triangular (L, L) float64): new_c = sum_{e <= c} v_e rinv[e, c], summed in
@@ -303,11 +315,7 @@ def apply_upper(flat, n_layers, rinv):
     L = n_layers
     n_cells = flat.shape[0] // L
     if L <= RECORD_LANES:
-        rpad = np.zeros((RECORD_LANES, RECORD_LANES))
-        for e in range(L):
-            for c in range(e, L):
-                rpad[e, c] = rinv[e, c]
-        apply_records(flat, np.int64(n_cells), np.int64(L), rpad)
+        apply_records(flat, np.int64(n_cells), np.int64(L), padded_upper(rinv))
         return
     buf = np.empty((L, APPLY_CHUNK))
     acc = np.empty(APPLY_CHUNK)

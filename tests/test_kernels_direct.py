@@ -579,3 +579,36 @@ def test_records_to_rows_against_numpy(dtype):
             want[2:2 + L, :nb] = flat[5:5 + L * nb].reshape(nb, L).T
             call(flat, 5, L, nb, bt, 2)
             np.testing.assert_array_equal(bt, want, err_msg=f"L = {L}, nb = {nb}")
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_gram_chunks_with_the_map_same_bits(dtype):
+    """``gram_chunks`` with ``rpad`` maps each row of ``fix`` (v -> v R) and then sums it:
+    the bits of ``apply_upper`` over the whole stack followed by ``gram_chunks`` without a
+    map (one stack as both arguments, as dsp has it; and a separate relabelled stack, as y
+    has it), with column ranges that leave cells outside them (mapped all the same)."""
+    from dyadperm.kernels.stats import apply_upper, padded_upper
+
+    rng = np.random.default_rng(9)
+    n = GRAM_COLUMNS + 13
+    start = rng.integers(0, 5, n).astype(np.int64)
+    stop = np.maximum(start, n - rng.integers(0, 5, n)).astype(np.int64)
+    first = chunk_slots(start, stop)
+    rinv = np.triu(rng.normal(size=(4, 4)))
+    for same in (True, False):
+        fix = rng.normal(size=(n, n, 4)).astype(dtype)
+        rel = fix if same else rng.normal(size=(n, n, 1)).astype(dtype)
+        rel_idx = np.arange(4 if same else 1, dtype=np.int64)
+        fix_idx = np.arange(0 if same else 4, dtype=np.int64)
+        n_lay = rel_idx.size + fix_idx.size
+        width = n_lay + n_lay * (n_lay + 1) // 2
+        fix2 = fix.copy()
+        rel2 = fix2 if same else rel
+        apply_upper(fix2.reshape(-1), 4, rinv)
+        want = np.empty((first[-1], width))
+        gram_chunks(rel2, rel_idx, fix2, fix_idx, start, stop, first[:-1], want)
+        got = np.empty((first[-1], width))
+        gram_chunks(rel, rel_idx, fix, fix_idx, start, stop, first[:-1], got,
+                    padded_upper(rinv))
+        np.testing.assert_array_equal(fix, fix2)
+        np.testing.assert_array_equal(got, want)

@@ -35,11 +35,12 @@ from ..inputs.design import (ObservedFit, Prepared, check_design, check_factor,
                              standardise)
 from ..inputs.threads import halves, side_by_side
 from ..kernels.options import FIT_PIVOT
-from ..kernels.gather import (GRAM_COLUMNS, add_chunks, chunk_slots, gather_cross, gather_gram,
-                              gram_chunks, gram_from_sums)
+from ..kernels.gather import (GRAM_COLUMNS, NO_RECORDS, add_chunks, chunk_slots, gather_cross,
+                              gather_gram, gram_chunks, gram_from_sums)
 from ..kernels.tsqr import fold_factors, row_factors
+from ..kernels.vector import RECORD_LANES
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
-                             fill_gram, regression_stats, standardise_rows)
+                             fill_gram, padded_upper, regression_stats, standardise_rows)
 from ..settings import SCHEMES, STATISTICS, check_regression  # noqa: F401  (re-exported)
 from .plan import (Plan, interval_reason, interval_summary, chunk_size_for, dense_identity, groups_fingerprint, input_fingerprints,
                    summary)
@@ -303,12 +304,12 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     if scheme == "y":
         rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
         fix = _stack(prep, xs, mean, sd, storage, overwrite)
-        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, response=rel,
-                                 classical=classical)
+        S, fit, pending = _orthonormalise(fix, prep, pivot, mean, sd, response=rel,
+                                          classical=classical)
         rel_idx, fix_idx = [0], xs
     else:
         rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
-        S, fit = _orthonormalise(fix, prep, pivot, mean, sd, classical=classical)
+        S, fit, pending = _orthonormalise(fix, prep, pivot, mean, sd, classical=classical)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
     d = 1 + R + Q
@@ -345,7 +346,7 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
             cols.append({pos: rkk * val for pos, val in basis(k - 1, rpos).items()})
         transforms[j] = _transform(cols, d)
         scale[j] = np.sign(rkk) if statistic == "t" else sd[k] / (sd[j] * rkk)
-    gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx)
+    gram0 = _identity_gram(prep, rel, rel_idx, fix, fix_idx, pending)
     return Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64), gram0,
                 transforms, np.arange(k, dtype=np.int64), scale), fit
 
@@ -392,10 +393,14 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
 
 def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.ndarray,
                     sd: np.ndarray, response: np.ndarray | None = None,
-                    classical: bool = False) -> tuple[np.ndarray, ObservedFit | None]:
+                    classical: bool = False
+                    ) -> tuple[np.ndarray, ObservedFit | None, np.ndarray | None]:
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
-    with (old layers) = (new layers) @ S, and (with ``classical``) the classical fit, else
-    None. One pass of a streaming QR, and a second one when the layers' condition number
+    with (old layers) = (new layers) @ S, (with ``classical``) the classical fit, else
+    None, and the last map still to be made, or None. The last map of records v -> v
+    R^-1 is left to the invariant Gram, which makes it row by row as it sums the rows
+    (``gather.gram_chunks``: one pass over the stack instead of two), when the records
+    are short enough for it (``RECORD_LANES``). One pass of a streaming QR, and a second one when the layers' condition number
     is above ``REFINE_COND``: it restores the orthogonality the first loses to rounding on
     ill-conditioned layers (q = Z R^-1 with R from a backward-stable QR is orthonormal to
     about machine epsilon times the condition number: common practice, "twice is
@@ -428,14 +433,19 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
             full[:, :n_layers] = r[:, :n_layers] @ S
         r = r[:n_layers, :n_layers]
         rinv = solve_triangular(np.triu(r), np.eye(n_layers))
+        S = r @ S
+        last = not first or np.linalg.cond(r) <= REFINE_COND
+        if last and n_layers <= RECORD_LANES:
+            break  # the invariant Gram makes this map (``gram_chunks``)
         # the stack is C-ordered (its flat view is a view); cells are independent, so the
         # halves of its rows go to two threads
         side_by_side(lambda rows: apply_upper(stack[rows].reshape(-1), n_layers, rinv),
                      halves(0, stack.shape[0]), stack.shape[0] * stack.shape[1])
-        S = r @ S
-        if first and np.linalg.cond(r) <= REFINE_COND:
+        rinv = None
+        if last:
             break
-    return S, fit_from_factor(prep, full, mean, sd, cond) if classical else None
+    fit = fit_from_factor(prep, full, mean, sd, cond) if classical else None
+    return S, fit, rinv
 
 
 def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
@@ -516,8 +526,11 @@ def _check_gram(gobs: np.ndarray, prep: Prepared) -> None:
                    prep.response_name, where=where)
 
 
-def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
-    """The invariant Gram of a complete-data plan (``kernels.gather.identity_gram``).
+def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx,
+                   rinv: np.ndarray | None = None) -> np.ndarray:
+    """The invariant Gram of a complete-data plan (``kernels.gather.identity_gram``); with
+    ``rinv``, the records of ``fix`` are first mapped in place, v -> v rinv, row by row
+    as the rows are summed (``_orthonormalise``'s last map).
 
     When the relabelled and fixed layers are layers of one stack (dsp, Freedman-Lane),
     the Gram of the distinct layers is summed once and spread over both (each entry is the
@@ -527,14 +540,14 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx) -> np.ndarray:
     fix_idx = [int(c) for c in fix_idx]
     if rel is fix:
         layers = sorted(set(rel_idx) | set(fix_idx))
-        g = _gram_on_threads(prep, fix, layers, fix, [])
+        g = _gram_on_threads(prep, fix, layers, fix, [], rinv)
         where = [0] + [1 + layers.index(e) for e in rel_idx + fix_idx]
         return np.ascontiguousarray(g[np.ix_(where, where)])
-    return _gram_on_threads(prep, rel, rel_idx, fix, fix_idx)
+    return _gram_on_threads(prep, rel, rel_idx, fix, fix_idx, rinv)
 
 
 def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
-                     fix_idx: list[int]) -> np.ndarray:
+                     fix_idx: list[int], rinv: np.ndarray | None = None) -> np.ndarray:
     """``identity_gram`` with the chunks' sums (``gram_chunks``) made on two threads, halves
     of each block of rows, and added in chunk order (``add_chunks``): the same bits. Blocks
     of rows keep the chunks' sums under ``FACTOR_BYTES``. G[0, 0] counts the dyads: the
@@ -546,6 +559,7 @@ def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
     n, m = prep.mask.shape
     step = max(2, FACTOR_BYTES // (8 * width * max(1, -(-m // GRAM_COLUMNS))))
     acc = np.zeros(width)
+    rpad = NO_RECORDS if rinv is None else padded_upper(rinv)
     for lo in range(0, n, step):
         hi = min(lo + step, n)
         base = first[lo]
@@ -553,7 +567,7 @@ def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
 
         def chunks(rows: slice) -> None:
             gram_chunks(rel[rows], ri, fix[rows], fi, prep.col_start[rows],
-                        prep.col_stop[rows], first[rows] - base, parts)
+                        prep.col_stop[rows], first[rows] - base, parts, rpad)
         side_by_side(chunks, halves(lo, hi), (hi - lo) * m * n_lay)
         add_chunks(parts, acc)
     g = np.empty((1 + n_lay, 1 + n_lay))
