@@ -44,7 +44,11 @@ KERNEL_OPTIONS = dict(nogil=True, cache=True, fastmath=FASTMATH, error_model="nu
 
 #: Options of element-wise setup kernels that must give numpy's bits: IEEE arithmetic
 #: (no reciprocal or contraction), so (x - mean) / sd is rounded as numpy rounds it.
-EXACT_OPTIONS = dict(nogil=True, cache=True, error_model="numpy")
+#: ``fastmath=False`` is written out: numba compiles a kernel that leaves it unset with
+#: the fastmath of the kernel that calls it first (``Flags.inherit_if_not_set``), and then
+#: serves that compiled code to every caller -- a division by sd became a multiplication
+#: by its reciprocal when a fastmath kernel called the stack's writer.
+EXACT_OPTIONS = dict(nogil=True, cache=True, error_model="numpy", fastmath=False)
 
 #: Relative pivot every fit from Gram matrices needs (module docstring).
 FIT_PIVOT = 1e-5

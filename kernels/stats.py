@@ -251,7 +251,7 @@ STANDARDISE_COLUMNS = 512
 
 
 @njit(**EXACT_OPTIONS)
-def standardise_rows(mats, means, sds, holds, fill, out):
+def standardise_rows(mats, means, sds, holds, fill, out, r0, r1):
     """out[:, :, p] = (mats[p] - means[p]) / sds[p] where ``holds``, else ``fill``: the
     layers of a stack, row by row (every layer of a row while the row's records stay in
     cache). The bits of numpy's ``np.subtract(mat, mean, out=layer); layer /= sd;
@@ -261,11 +261,12 @@ def standardise_rows(mats, means, sds, holds, fill, out):
 
     mats : tuple of (n, m) float64 or float32 arrays, any strides (the layers; they may
     be ``out``'s own layers: each cell is read before it is written); means, sds : float64
-    (L,); holds : bool (n, m); fill : float; out : float64 or float32 (n, m, L).
+    (L,); holds : bool (n, m); fill : float; out : float64 or float32 (n, m, L);
+    r0, r1 : the rows [r0, r1) written.
     """
-    n, m = holds.shape
+    m = holds.shape[1]
     buf = np.empty(STANDARDISE_COLUMNS)
-    for i in range(n):
+    for i in range(r0, r1):
         pos = 0
         for mat in literal_unroll(mats):
             mean = means[pos]

@@ -33,6 +33,7 @@ import numpy as np
 from numba import njit
 
 from .options import KERNEL_OPTIONS
+from .stats import standardise_rows
 from .vector import RECORD_LANES, dot_chains16, records_to_rows
 
 
@@ -176,6 +177,19 @@ def row_factors(stacks, mask, col_start, col_stop, bt, keep, facs, counts, inter
     for r in range(mask.shape[0]):
         counts[r] = _row_factor(stacks, mask, col_start, col_stop, r, bt, keep, facs[r],
                                 intercept, skip_nan)
+
+
+@njit(**KERNEL_OPTIONS)
+def stack_factors(mats, means, sds, holds, fill, out, more, mask, col_start, col_stop, bt,
+                  keep, facs, counts):
+    """``row_factors`` of the stacks (out,) + more, each row of ``out`` first written from
+    ``mats`` (``stats.standardise_rows``: the layer stack's values, the same bits) and
+    folded while it is in cache: one pass over the stack instead of two. ``more``: a
+    tuple of stacks already written (possibly empty)."""
+    for r in range(mask.shape[0]):
+        standardise_rows(mats, means, sds, holds, fill, out, r, r + 1)
+        counts[r] = _row_factor((out,) + more, mask, col_start, col_stop, r, bt, keep,
+                                facs[r], False, False)
 
 
 @njit(**KERNEL_OPTIONS)

@@ -254,7 +254,7 @@ def test_setup_kernels_against_numpy(dtype):
     stack = np.empty((n, m, 2), dtype=dtype)
     other = rng.normal(size=(m, n)).T  # a second layer, strided
     standardise_rows((other, mat), np.array([0.5, mean]), np.array([2.0, sd]), holds, np.nan,
-                     stack)
+                     stack, 0, n)
     np.testing.assert_array_equal(stack[:, :, 1], want)
     want0 = np.empty((n, m), dtype=dtype)
     np.subtract(other, 0.5, out=want0)
@@ -612,3 +612,36 @@ def test_gram_chunks_with_the_map_same_bits(dtype):
                     padded_upper(rinv))
         np.testing.assert_array_equal(fix, fix2)
         np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_stack_factors_writes_numpys_bits(dtype):
+    """``tsqr.stack_factors`` writes each row of the layer stack (``stats.standardise_rows``,
+    called from a fastmath kernel) and folds it: the stack has numpy's bits of (x - mean)
+    / sd (reference: numpy; the division must not become a multiplication by the
+    reciprocal, which the writer inherited from its caller until its options said
+    ``fastmath=False``), and the row factors are ``row_factors``' of that stack."""
+    from dyadperm.kernels.tsqr import row_factors, stack_factors
+
+    rng = np.random.default_rng(14)
+    n, m = 23, 37
+    mats = tuple(rng.normal(loc=0.3, scale=1.7, size=(n, m)) for _ in range(3))
+    means, sds = np.array([0.31, 0.29, 0.3]), np.array([1.7, 1.69, 1.71])
+    holds = rng.random((n, m)) < 0.9
+    mask = holds.copy()
+    start, stop = np.zeros(n, np.int64), np.full(n, m, np.int64)
+    out = np.empty((n, m, 3), dtype=dtype)
+    bt, keep = np.empty((3, 16)), np.empty(16, dtype=bool)
+    facs, counts = np.empty((n, 3, 3)), np.empty(n, np.int64)
+    stack_factors(mats, means, sds, holds, 0.0, out, (), mask, start, stop, bt, keep, facs,
+                  counts)
+    for c in range(3):
+        want = np.empty((n, m), dtype=dtype)
+        np.subtract(mats[c], means[c], out=want)
+        want /= sds[c]
+        want[~holds] = 0.0
+        np.testing.assert_array_equal(out[:, :, c], want)
+    facs2, counts2 = np.empty_like(facs), np.empty_like(counts)
+    row_factors((out,), mask, start, stop, bt, keep, facs2, counts2, False, False)
+    np.testing.assert_array_equal(facs, facs2)
+    np.testing.assert_array_equal(counts, counts2)

@@ -37,7 +37,7 @@ from ..inputs.threads import halves, side_by_side
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import (GRAM_COLUMNS, NO_RECORDS, add_chunks, chunk_slots, gather_cross,
                               gather_gram, gram_chunks, gram_from_sums)
-from ..kernels.tsqr import fold_factors, row_factors
+from ..kernels.tsqr import fold_factors, row_factors, stack_factors
 from ..kernels.vector import RECORD_LANES
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
                              fill_gram, padded_upper, regression_stats, standardise_rows)
@@ -159,30 +159,55 @@ def owned_base(prep: Prepared, layers: list[int], dtype) -> np.ndarray | None:
     return base
 
 
-def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
-           storage: str = "float64", overwrite: bool = False) -> np.ndarray:
-    """(n, m, L) standardised layers; off the dyad set 0 (complete data) or NaN (masked).
+@dataclass(frozen=True)
+class StackSource:
+    """What a layer stack is written from: ``prep``'s matrices ``layers``, standardised
+    with ``means`` and ``sds`` where ``holds``, ``fill`` elsewhere (``stats.
+    standardise_rows``)."""
+
+    layers: list[int]
+    means: np.ndarray
+    sds: np.ndarray
+    holds: np.ndarray
+    fill: float
+
+    def mats(self, prep: Prepared, rows: slice) -> tuple:
+        return tuple(prep.matrices[layer][rows] for layer in self.layers)
+
+
+def _stack_target(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
+                  storage: str = "float64",
+                  overwrite: bool = False) -> tuple[np.ndarray, StackSource]:
+    """The (n, m, L) array of a layer stack, not written yet, and what to write it from.
 
     ``storage="float32"`` halves the memory and traffic of the layers; kernels still
     accumulate in float64. ``overwrite``: when the inputs are the layers of one array in
-    this layout (``owned_base``), standardise them in place and return that array.
+    this layout (``owned_base``), that array (standardised in place when written).
     """
     n, m = prep.mask.shape
     out = owned_base(prep, layers, STORAGE[storage]) if overwrite else None
     if out is None:
         out = np.empty((n, m, len(layers)), dtype=STORAGE[storage])
-    fill = 0.0 if prep.complete else np.nan
     # cells that hold dyad values: the dyad set, and for undirected data its mirror image
     # (relabelled reads land in either triangle)
-    holds = prep.holds()
+    source = StackSource(list(layers), np.ascontiguousarray(mean[layers], dtype=np.float64),
+                         np.ascontiguousarray(sd[layers], dtype=np.float64), prep.holds(),
+                         0.0 if prep.complete else np.nan)
+    return out, source
+
+
+def _stack(prep: Prepared, layers: list[int], mean: np.ndarray, sd: np.ndarray,
+           storage: str = "float64", overwrite: bool = False) -> np.ndarray:
+    """(n, m, L) standardised layers; off the dyad set 0 (complete data) or NaN (masked);
+    see ``_stack_target``."""
+    out, src = _stack_target(prep, layers, mean, sd, storage, overwrite)
+    n, m = prep.mask.shape
+
     # halves of the rows to two threads, every layer of a row at once (the layers of a
     # cell share its cache line)
-    means = np.ascontiguousarray(mean[layers], dtype=np.float64)
-    sds = np.ascontiguousarray(sd[layers], dtype=np.float64)
-
     def rows(part: slice) -> None:
-        standardise_rows(tuple(prep.matrices[layer][part] for layer in layers), means, sds,
-                         holds[part], fill, out[part])
+        standardise_rows(src.mats(prep, part), src.means, src.sds, src.holds[part], src.fill,
+                         out[part], 0, part.stop - part.start)
     side_by_side(rows, halves(0, n), n * m)
     return out
 
@@ -301,15 +326,19 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
     k = prep.k
     xs = list(range(k))
     pivot = fit_pivot(prep, storage)
+    # the stack of the layers made orthonormal is written row by row as the first QR pass
+    # folds its rows (``qr_layers`` with a source)
     if scheme == "y":
         rel = _stack(prep, [k], mean, sd, storage, overwrite)  # the standardised response
-        fix = _stack(prep, xs, mean, sd, storage, overwrite)
+        fix, source = _stack_target(prep, xs, mean, sd, storage, overwrite)
         S, fit, pending = _orthonormalise(fix, prep, pivot, mean, sd, response=rel,
-                                          classical=classical)
+                                          classical=classical, source=source)
         rel_idx, fix_idx = [0], xs
     else:
-        rel = fix = _stack(prep, xs + [k], mean, sd, storage, overwrite)
-        S, fit, pending = _orthonormalise(fix, prep, pivot, mean, sd, classical=classical)
+        fix, source = _stack_target(prep, xs + [k], mean, sd, storage, overwrite)
+        rel = fix
+        S, fit, pending = _orthonormalise(fix, prep, pivot, mean, sd, classical=classical,
+                                          source=source)
         rel_idx, fix_idx = (xs, xs + [k]) if scheme == "dsp" else (xs + [k], xs)
     R, Q = len(rel_idx), len(fix_idx)
     d = 1 + R + Q
@@ -351,8 +380,8 @@ def _complete_pass(prep: Prepared, scheme: str, statistic: str, storage: str,
                 transforms, np.arange(k, dtype=np.int64), scale), fit
 
 
-def qr_layers(prep: Prepared, stack: np.ndarray,
-              more: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+def qr_layers(prep: Prepared, stack: np.ndarray, more: np.ndarray | None = None,
+              source: StackSource | None = None) -> tuple[np.ndarray, int]:
     """The R factor (L, L) of the layers of ``stack`` (n, m, L) -- then those of ``more``,
     a stack of the same shape and type -- over the dyad set (R'R = Z'Z), and the number of
     dyads: the streaming QR of ``kernels.tsqr`` over blocks of rows (float32 layers are
@@ -361,6 +390,9 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
     Each row's own factor depends on that row alone, so the rows of a block are factored
     on two threads (``row_factors``, halves of the block) and the factors folded into the
     running one in row order (``fold_factors``): the bits of one ``fold_rows`` pass.
+
+    With ``source``, ``stack`` is written first, each row just before it is folded
+    (``tsqr.stack_factors``): the bits of ``_stack`` then this, in one pass.
     """
     parts = [stack] if more is None else [stack, more]
     n_layers = sum(part.shape[2] for part in parts)
@@ -379,9 +411,16 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
         # a tuple of the stacks' rows, not a typed List of layers: getting an item of a
         # List counts a reference to the stack, and two threads counting on one stack
         # wait on each other (22-27 ms against 15 ms at n = 2,000)
-        row_factors(tuple(part[rows] for part in parts), prep.mask[rows],
-                    prep.col_start[rows], prep.col_stop[rows], bt, keep, facs[at], counts[at],
-                    False, False)
+        if source is None:
+            row_factors(tuple(part[rows] for part in parts), prep.mask[rows],
+                        prep.col_start[rows], prep.col_stop[rows], bt, keep, facs[at],
+                        counts[at], False, False)
+        else:
+            stack_factors(source.mats(prep, rows), source.means, source.sds,
+                          source.holds[rows], source.fill, stack[rows],
+                          tuple(part[rows] for part in parts[1:]), prep.mask[rows],
+                          prep.col_start[rows], prep.col_stop[rows], bt, keep, facs[at],
+                          counts[at])
 
     for lo in range(0, stack.shape[0], step):
         hi = min(lo + step, stack.shape[0])
@@ -393,14 +432,15 @@ def qr_layers(prep: Prepared, stack: np.ndarray,
 
 def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.ndarray,
                     sd: np.ndarray, response: np.ndarray | None = None,
-                    classical: bool = False
+                    classical: bool = False, source: StackSource | None = None
                     ) -> tuple[np.ndarray, ObservedFit | None, np.ndarray | None]:
     """Make the layers of ``stack`` orthonormal over the dyad set, in place; return S
     with (old layers) = (new layers) @ S, (with ``classical``) the classical fit, else
     None, and the last map still to be made, or None. The last map of records v -> v
     R^-1 is left to the invariant Gram, which makes it row by row as it sums the rows
     (``gather.gram_chunks``: one pass over the stack instead of two), when the records
-    are short enough for it (``RECORD_LANES``). One pass of a streaming QR, and a second one when the layers' condition number
+    are short enough for it (``RECORD_LANES``). With ``source``, the stack is not
+    written yet: the first pass writes it as it folds it. One pass of a streaming QR, and a second one when the layers' condition number
     is above ``REFINE_COND``: it restores the orthogonality the first loses to rounding on
     ill-conditioned layers (q = Z R^-1 with R from a backward-stable QR is orthonormal to
     about machine epsilon times the condition number: common practice, "twice is
@@ -420,7 +460,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
     cond = 1.0
     full = None
     for first in (True, False):
-        r, count = qr_layers(prep, stack, response)
+        r, count = qr_layers(prep, stack, response, source if first else None)
         if count < n_layers:
             raise InputError(f"too few dyads for the model: {count} dyads for "
                              f"{n_layers} layers")
