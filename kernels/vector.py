@@ -173,14 +173,23 @@ def _chains_codegen(n_pairs, n_vec):
     return codegen
 
 
+FLOATS = (types.float64, types.float32)
+
+
+def _c_array(x, ndim, dtypes) -> bool:
+    """Whether the numba type ``x`` is a C-contiguous array of ``ndim`` dimensions and
+    one of ``dtypes`` (what the intrinsics here take)."""
+    return (isinstance(x, types.Array) and x.ndim == ndim and x.layout == "C"
+            and x.dtype in dtypes)
+
+
 def _chains_intrinsic(n_pairs, n_vec):
     """An intrinsic taking x_0, y_0, ..., w (1-d C float64 arrays, an integer)."""
     def typer(typingctx, *args):
         arrays, w = args[:-1], args[-1]
         if len(arrays) != 2 * n_pairs or not isinstance(w, types.Integer):
             return None
-        if not all(isinstance(a, types.Array) and a.ndim == 1 and a.layout == "C"
-                   and a.dtype == types.float64 for a in arrays):
+        if not all(_c_array(a, 1, (types.float64,)) for a in arrays):
             return None
         ret = types.float64 if n_pairs == 1 else types.UniTuple(types.float64, n_pairs)
         inner = _chains_codegen(n_pairs, n_vec)
@@ -255,6 +264,20 @@ else:
 RECORD_LANES = 8
 
 
+def _width_cases(builder, L, name):
+    """A switch over the record width L = 1 .. RECORD_LANES (any other L goes straight to
+    the end): returns the end block and [(width, its case block)], each case to be
+    filled by the caller and to branch to the end block."""
+    done = builder.append_basic_block(f"{name}.done")
+    switch = builder.switch(L, done)
+    cases = []
+    for width in range(1, RECORD_LANES + 1):
+        case = builder.append_basic_block(f"{name}.{width}")
+        switch.add_case(ir.Constant(ir.IntType(64), width), case)
+        cases.append((width, case))
+    return done, cases
+
+
 def _records_codegen(context, builder, signature, args):
     """IR of ``apply_records``: a switch over L = 1 .. RECORD_LANES, each case a loop over
     the records with its own unrolled body (see the module docstring)."""
@@ -269,11 +292,8 @@ def _records_codegen(context, builder, signature, args):
         builder.module, ir.FunctionType(V4D, [V4D, V4D, V4D]), "llvm.fma.v4f64")
     zero = ir.Constant(V4D, [0.0] * 4)
     splat_mask = ir.Constant(ir.VectorType(i32, 4), [0] * 4)
-    done = builder.append_basic_block("records.done")
-    switch = builder.switch(L, done)
-    for width in range(1, RECORD_LANES + 1):
-        case = builder.append_basic_block(f"records.{width}")
-        switch.add_case(ir.Constant(i64, width), case)
+    done, cases = _width_cases(builder, L, "records")
+    for width, case in cases:
         builder.position_at_end(case)
         n_vec = (width + 3) // 4
         # rows of R as vectors: rows[e][a] = R[e, 4a : 4a + 4]
@@ -333,11 +353,7 @@ else:
         float64 or float32 (n_cells * L values); n_cells, L: int64, 1 <= L <=
         RECORD_LANES (other L: nothing is done); rpad: float64 (RECORD_LANES,
         RECORD_LANES) C, R in its upper left corner and zeros elsewhere."""
-        if not (isinstance(flat, types.Array) and flat.ndim == 1 and flat.layout == "C"
-                and flat.dtype in (types.float64, types.float32)):
-            return None
-        if not (isinstance(rpad, types.Array) and rpad.ndim == 2 and rpad.layout == "C"
-                and rpad.dtype == types.float64):
+        if not (_c_array(flat, 1, FLOATS) and _c_array(rpad, 2, (types.float64,))):
             return None
         if not (n_cells == types.int64 and L == types.int64):
             return None
@@ -436,8 +452,7 @@ else:
         if not (isinstance(mat, types.Array) and mat.ndim == 2
                 and mat.dtype in (types.float64, types.float32)):
             return None
-        if not (isinstance(mask, types.Array) and mask.ndim == 2 and mask.layout == "C"
-                and mask.dtype == types.boolean):
+        if not _c_array(mask, 2, (types.boolean,)):
             return None
         if not (i == types.int64 and shift == types.float64 and square == types.boolean):
             return None
@@ -456,11 +471,8 @@ def _records_rows_codegen(context, builder, signature, args):
     width = builder.extract_value(abt.shape, 1)
     single = flat_t.dtype == types.float32
     src = builder.gep(data, [start])
-    done = builder.append_basic_block("rows.done")
-    switch = builder.switch(L, done)
-    for lanes in range(1, RECORD_LANES + 1):
-        case = builder.append_basic_block(f"rows.{lanes}")
-        switch.add_case(ir.Constant(i64, lanes), case)
+    done, cases = _width_cases(builder, L, "rows")
+    for lanes, case in cases:
         builder.position_at_end(case)
         dst = [builder.gep(abt.data, [builder.mul(builder.add(row0, ir.Constant(i64, c)), width)])
                for c in range(lanes)]
@@ -513,11 +525,7 @@ else:
         """Records of ``flat`` (1-d C float64 or float32) into rows of ``bt`` (2-d C
         float64), module docstring; start, L (1 .. RECORD_LANES; other L: nothing is
         done), nb, row0: int64."""
-        if not (isinstance(flat, types.Array) and flat.ndim == 1 and flat.layout == "C"
-                and flat.dtype in (types.float64, types.float32)):
-            return None
-        if not (isinstance(bt, types.Array) and bt.ndim == 2 and bt.layout == "C"
-                and bt.dtype == types.float64):
+        if not (_c_array(flat, 1, FLOATS) and _c_array(bt, 2, (types.float64,))):
             return None
         if not all(x == types.int64 for x in (start, L, nb, row0)):
             return None
