@@ -1086,6 +1086,8 @@ def gram_chunks(rel, rel_idx, fix, fix_idx, col_start, col_stop, first, parts,
     fix_all = _all_layers(fix, fix_idx)
     m_rel, m_fix = rel.shape[1], fix.shape[1]
     mapped = rpad.shape[0] > 0
+    if mapped and fix.shape[2] > RECORD_LANES:
+        raise ValueError("gram_chunks: the map takes records of at most RECORD_LANES values")
     for i in range(n_rows):
         if mapped:
             apply_records(fix[i].reshape(-1), np.int64(m_fix), np.int64(fix.shape[2]), rpad)

@@ -172,6 +172,7 @@ class StackSource:
     fill: float
 
     def mats(self, prep: Prepared, rows: slice) -> tuple:
+        """The source layers' ``rows``, a tuple (what ``standardise_rows`` reads)."""
         return tuple(prep.matrices[layer][rows] for layer in self.layers)
 
 
@@ -440,8 +441,10 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
     R^-1 is left to the invariant Gram, which makes it row by row as it sums the rows
     (``gather.gram_chunks``: one pass over the stack instead of two), when the records
     are short enough for it (``RECORD_LANES``). With ``source``, the stack is not
-    written yet: the first pass writes it as it folds it. One pass of a streaming QR, and a second one when the layers' condition number
-    is above ``REFINE_COND``: it restores the orthogonality the first loses to rounding on
+    written yet: the first pass writes it as it folds it.
+
+    One pass of a streaming QR, and a second one when the layers' condition number is
+    above ``REFINE_COND``: it restores the orthogonality the first loses to rounding on
     ill-conditioned layers (q = Z R^-1 with R from a backward-stable QR is orthonormal to
     about machine epsilon times the condition number: common practice, "twice is
     enough").
@@ -459,6 +462,7 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
     S = np.eye(n_layers)
     cond = 1.0
     full = None
+    pending = None
     for first in (True, False):
         r, count = qr_layers(prep, stack, response, source if first else None)
         if count < n_layers:
@@ -476,16 +480,16 @@ def _orthonormalise(stack: np.ndarray, prep: Prepared, pivot: float, mean: np.nd
         S = r @ S
         last = not first or np.linalg.cond(r) <= REFINE_COND
         if last and n_layers <= RECORD_LANES:
-            break  # the invariant Gram makes this map (``gram_chunks``)
+            pending = rinv  # the invariant Gram makes this map (``gram_chunks``)
+            break
         # the stack is C-ordered (its flat view is a view); cells are independent, so the
         # halves of its rows go to two threads
         side_by_side(lambda rows: apply_upper(stack[rows].reshape(-1), n_layers, rinv),
                      halves(0, stack.shape[0]), stack.shape[0] * stack.shape[1])
-        rinv = None
         if last:
             break
     fit = fit_from_factor(prep, full, mean, sd, cond) if classical else None
-    return S, fit, rinv
+    return S, fit, pending
 
 
 def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
