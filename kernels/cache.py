@@ -10,10 +10,10 @@ sends the cache of this folder's kernels to
     $XDG_CACHE_HOME/dyadperm                  when set, else
     ~/.cache/dyadperm
 
-in a subfolder keyed by the package version and a hash of every kernel source file. A new
-version, or any edit of a kernel file (also of a helper that other files inline, which
-numba's own per-file check misses), gets a fresh folder: stale machine code is never
-loaded. Old folders are harmless and may be deleted at any time. Only this package's
+in a subfolder keyed by the package version and a hash of this folder's path and every
+kernel source file. A new version, or any edit of a kernel file (also of a helper that
+other files inline, which numba's own per-file check misses), gets a fresh folder: stale
+machine code is never loaded; another copy of the same sources elsewhere gets its own. Old folders are harmless and may be deleted at any time. Only this package's
 kernels are affected; other numba code in the same process keeps numba's own settings.
 
 If the folder cannot be made or written, the kernels are compiled into a folder of the
@@ -48,6 +48,10 @@ def _version() -> str:
 
 def _source_hash() -> str:
     h = hashlib.sha256()
+    # The folder too: numba's cached code names the module it was compiled from, so two
+    # copies of the same sources (a second checkout, a copy for an experiment) sharing a
+    # folder would load each other's code and fail to import the other's module.
+    h.update(str(KERNEL_DIR).encode())
     for path in sorted(KERNEL_DIR.glob("*.py")):
         h.update(path.name.encode())
         h.update(path.read_bytes())

@@ -64,6 +64,25 @@ def test_folder_is_keyed_by_version_and_kernel_sources(monkeypatch, tmp_path):
     assert cache.cache_dir() != folder
 
 
+def test_a_copy_of_the_kernels_elsewhere_neither_shares_nor_breaks_the_cache(tmp_path):
+    # Found when an experiment copied the kernel folder: with the cache keyed by the sources
+    # alone, the copy and the package shared a folder, and the package then loaded code
+    # compiled from the copy and failed to import the copy's module.
+    import shutil
+
+    copy = tmp_path / "src" / "kernelcopy"
+    shutil.copytree(KERNEL_DIR, copy, ignore=shutil.ignore_patterns("__pycache__"))
+    root = tmp_path / "cache"
+    compile_copy = (f"import sys; sys.path.insert(0, {str(copy.parent)!r})\n"
+                    + _COMPILE_ONE.replace("dyadperm.kernels", "kernelcopy"))
+    first = _run({"DYADPERM_CACHE_DIR": str(root)}, code=compile_copy)
+    assert first.returncode == 0, first.stderr[-2000:]
+    second = _run({"DYADPERM_CACHE_DIR": str(root)})
+    assert second.returncode == 0, second.stderr[-2000:]
+    used = {Path(p.stdout.strip().splitlines()[-1]) for p in (first, second)}
+    assert len(used) == 2 and all(u.parent == root for u in used)
+
+
 def test_kernels_compile_into_the_user_folder_not_the_package(tmp_path):
     before = set(_cache_files(KERNEL_DIR))
     proc = _run({"DYADPERM_CACHE_DIR": str(tmp_path)})
