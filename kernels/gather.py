@@ -11,9 +11,10 @@ permutation):
   row is small enough for the first-level caches, so the random column reads hit cache
   once the row is there.
 - Prefetch of rows ahead. While row i of permutation b is gathered, the stored row that
-  the step AHEAD steps later will read (steps run over the block's permutations, then
-  rows) is requested line by line (a software prefetch, spread over the
-  gather so it streams at memory bandwidth instead of waiting on one miss at a time).
+  the step ``ahead`` steps later will read (steps run over the block's permutations, then
+  rows; as many steps as ``PREFETCH_BYTES`` of stored rows allow, at most ``AHEAD``) is
+  requested line by line (a software prefetch, spread over the gather so it streams at
+  memory bandwidth instead of waiting on one miss at a time).
 - Blocks of permutations. ``block`` permutations go through row i one after the other,
   so the fixed row i (all its fixed layers) is loaded from memory once per block, not
   once per permutation.
@@ -67,7 +68,7 @@ from .vector import (RECORD_LANES, apply_records, dot_chains, dot_chains2, dot_c
                      ir_loop_head, records_to_rows)
 
 # Cap of the automatic block, and the bytes of column offsets (int32, one row per
-# permutation of the block) it may keep in cache. Prefetching runs AHEAD steps of (row,
+# permutation of the block) it may keep in cache. Prefetching runs a few steps of (row,
 # permutation) ahead, so only a few stored rows are in flight whatever the block; the
 # block's own working set is its column offsets. Measured on the 2-core EPYC (dsp tile,
 # ms per permutation): n = 10,000 float32 block 1/4/6 141/124/124; n = 5000 float32
@@ -87,9 +88,16 @@ CACHE_LINE = 64
 # 302-316, float32 109 vs 111; dsp n = 5000 float64 46 vs 65; n = 2000 dsp 7.1 vs 9.1,
 # y 2.65 vs 2.83.
 PREFETCH_LOCALITY = 2
-# Rows ahead whose stored rows are prefetched while a row is gathered (3 measured better
-# than 1 or 2 with two threads at n = 2000 on the benchmark machine).
+# Steps ahead whose stored rows are prefetched while a row is gathered: as many as fit in
+# PREFETCH_BYTES of stored rows, 1 to AHEAD. The rows in flight share the second-level
+# cache (1 MiB a core on the benchmark machine) with the row being gathered, the fixed row
+# and the block's column offsets; past it they are evicted before use and the gathers
+# wait on the third level. Measured on the 2-core EPYC, dsp tile, two threads, ms per
+# relabelling (median of 6-8 rounds timed in turn): n = 2,000 float64 (rows of 64 KB) 3
+# steps better than 1 or 2; n = 10,000 float32 (160 KB) 3 / 2 / 1 steps 182 / 112 / 118;
+# n = 5,000 float64 (160 KB) 44 / 43 / 45; n = 10,000 float64 (320 KB) 390 / 327 / 207.
 AHEAD = 3
+PREFETCH_BYTES = 384 * 1024
 
 
 if config.DISABLE_JIT:
@@ -830,6 +838,7 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
     line = max(1, CACHE_LINE // relf.itemsize)  # elements per cache line
     row_lines = (rowlen + line - 1) // line
     tile = choose_tile(n_rel, n_fix)
+    ahead = max(1, min(AHEAD, PREFETCH_BYTES // (rowlen * relf.itemsize)))
     vacc = np.zeros(24)  # accumulators of the vector tiles, even and odd (one row at a time)
     dacc = np.zeros(16)  # accumulators of the vector one-layer passes, four chains
     dacc2 = np.zeros(32)  # the same for two relabellings at once
@@ -843,8 +852,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
             for j in range(m):
                 # offset of column col_perms[b, j] inside a stored row
                 coloff[q, j] = np.int32(col_perms[b0 + q, j] * lr)
-        # the stored rows of the first AHEAD steps (a step: row i of one permutation)
-        for t in range(min(AHEAD, n_rows * nb)):
+        # the stored rows of the first steps (a step: row i of one permutation)
+        for t in range(min(ahead, n_rows * nb)):
             pf = row_perms[b0 + t % nb, t // nb] * rowlen
             for _ in range(row_lines):
                 prefetch(relf, np.uint64(pf))
@@ -854,7 +863,7 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
             js = col_start[i]
             je = col_stop[i]
             fb = (i * m + js) * lf
-            # prefetches per 8 columns so a stored row arrives AHEAD rows before its use
+            # prefetches per 8 columns so a stored row arrives ``ahead`` steps before its use
             eighths = (je - js + 7) // 8
             pf_n = (row_lines + eighths - 1) // eighths if eighths > 0 else 0
             q = 0
@@ -862,8 +871,8 @@ def cross_rows(relf, n_rel_cols, rel_idx, fixf, n_fix_cols, fix_idx, row_perms, 
                 b = b0 + q
                 co = coloff[q]
                 rb0 = row_perms[b, i] * rowlen
-                # the stored row of the step AHEAD steps on (steps run q fastest)
-                t = i * nb + q + AHEAD
+                # the stored row of the step ``ahead`` steps on (steps run q fastest)
+                t = i * nb + q + ahead
                 nxt = row_perms[b0 + t % nb, t // nb] * rowlen if t < n_rows * nb else rb0
                 pf = nxt
                 pf_end = nxt + row_lines * line
