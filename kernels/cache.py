@@ -13,8 +13,9 @@ sends the cache of this folder's kernels to
 in a subfolder keyed by the package version and a hash of this folder's path and every
 kernel source file. A new version, or any edit of a kernel file (also of a helper that
 other files inline, which numba's own per-file check misses), gets a fresh folder: stale
-machine code is never loaded; another copy of the same sources elsewhere gets its own. Old folders are harmless and may be deleted at any time. Only this package's
-kernels are affected; other numba code in the same process keeps numba's own settings.
+machine code is never loaded; another copy of the same sources elsewhere gets its own.
+Old folders are harmless and may be deleted at any time. Only this package's kernels are
+affected; other numba code in the same process keeps numba's own settings.
 
 If the folder cannot be made or written, the kernels are compiled into a folder of the
 system's temporary directory for this process (with a warning), never into the package.

@@ -46,7 +46,7 @@ permutation):
   latency (one chain per lane ran at one dyad per fused multiply-add latency). Each
   column also prefetches the relabelled record GATHER_AHEAD columns on into the
   first-level cache: a wide stored row sits in the second level, and its random reads
-  waited on that level's latency (dsp, n = 10,000 float32: 121 -> 98 ms a relabelling).
+  waited on that level's latency (dsp, n = 10,000 float32: 108 -> 92 ms a relabelling).
 
 Summation order (what makes results bit-identical for any chunk size, number of jobs or
 block size): for each permutation b and pair (a, c), the products of row i are summed in
@@ -214,14 +214,14 @@ def _tile_vec_codegen(swap):
     (one 4-wide load each, widened to double), then for a = 0, 1, 2:
     acc_a = fma(splat(u[a]), v, acc_a) -- or, with ``swap``, fma(splat(v[a]), u, acc_a) --
     into the even set of accumulators for even j - js and the odd set for odd j - js (j0 -
-    js must be even). Each column also prefetches into the first-level cache the relabelled
-    record of column min(j + GATHER_AHEAD, jl - 1) (jl: the end of the row's columns, so
-    ``co`` is never read past them). Each lane is one (relabelled, fixed) pair's partial sum, in
+    js must be even). Each lane is one (relabelled, fixed) pair's partial sum, in
     increasing j, with one fused multiply-add per term: the same operations, in the same
-    order, as the scalar tiles, so the results are the same bits. Two sets of sums make
-    two independent chains of fused multiply-adds per lane, so the loop waits on the
-    adder's latency half as often. acc (24,) float64 (even set, then odd set) is read on
-    entry and written back.
+    order, as the scalar tiles, so the results are the same bits. Each column also
+    prefetches into the first-level cache the relabelled record of column min(j +
+    GATHER_AHEAD, jl - 1) (jl: the end of the row's columns, so ``co`` is never read past
+    them); a hint, no value changes. Two sets of sums make two independent chains of
+    fused multiply-adds per lane, so the loop waits on the adder's latency half as often.
+    acc (24,) float64 (even set, then odd set) is read on entry and written back.
     """
     def codegen(context, builder, signature, args):
         (relf, rb, co, fixf, fb, lf, r0, f0, j0, j1, js, jl, acc) = args
