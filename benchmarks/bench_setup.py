@@ -9,6 +9,12 @@ classical fit read off its QR factor, invariant Gram) in a fresh subprocess, bes
 - statistics: means and spreads, the standardised layer stack, the orthonormalisation
   (one QR pass, two for ill-conditioned layers) with the classical fit, the invariant
   Gram (``linear.build_statistics``);
+- the price of fresh memory on this machine: a new array the size of the float64 stack
+  written for the first time, then again, before any plan. On a virtual machine whose
+  host takes freed pages back, a first write costs far more than the write itself (seen:
+  1.6 s against 0.1 s for 800 MB); the plans timed after it then get pages this probe
+  already paid for, as in a process that has run before, and its line says what the
+  first plan of a fresh process pays on top;
 - not part of this plan: the fingerprints (SHA-256 of each input, ``plan.
   input_fingerprints``), taken only for a run file (or first, when a study's layers are
   standardised in place), and the QR of the float64 inputs (``design.observed_fit``),
@@ -52,6 +58,17 @@ def child(n: int, scheme: str, repeats: int) -> dict:
     small = {k: v[:50, :50].copy() for k, v in xs.items()}
     linear.plan(y[:50, :50].copy(), small, scheme=scheme, statistic="t")  # loads kernels
     best: dict[str, float] = {}
+    # the machine's price of fresh memory: a stack-sized array written for the first time
+    # (page faults; on a virtual machine whose host has taken back freed pages, several
+    # times the write itself), then written again
+    t0 = time.perf_counter()
+    fresh = np.empty((n, n, K + 1))
+    fresh.fill(1.0)
+    t1 = time.perf_counter()
+    fresh.fill(2.0)
+    best["(stack-sized array: first write)"] = t1 - t0
+    best["(the same, written again)"] = time.perf_counter() - t1
+    del fresh
     for _ in range(repeats):
         t = {}
         t0 = time.perf_counter()
