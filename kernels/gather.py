@@ -89,7 +89,8 @@ CACHE_LINE = 64
 # rows ahead does not evict the lines of the row being gathered. Measured against 3 (all
 # levels) on the 2-core EPYC, ms per permutation: dsp n = 10,000 float64 231-242 vs
 # 302-316, float32 109 vs 111; dsp n = 5000 float64 46 vs 65; n = 2000 dsp 7.1 vs 9.1,
-# y 2.65 vs 2.83.
+# y 2.65 vs 2.83. On a 2-core Intel Xeon (2 MB L2 a core), later: dsp n = 10,000 float32
+# 109 vs 115 ms with 3, but float64 230 vs 225 and n = 2,000 float64 6.35 vs 5.58.
 PREFETCH_LOCALITY = 2
 # Steps ahead whose stored rows are prefetched while a row is gathered: as many as fit in
 # PREFETCH_BYTES of stored rows, 1 to AHEAD. The rows in flight share the second-level
@@ -99,6 +100,8 @@ PREFETCH_LOCALITY = 2
 # relabelling (median of 6-8 rounds timed in turn): n = 2,000 float64 (rows of 64 KB) 3
 # steps better than 1 or 2; n = 10,000 float32 (160 KB) 3 / 2 / 1 steps 182 / 112 / 118;
 # n = 5,000 float64 (160 KB) 44 / 43 / 45; n = 10,000 float64 (320 KB) 390 / 327 / 207.
+# On a 2-core Intel Xeon with 2 MB L2 a core, 768 KB (so 4 steps at n = 10,000 float32)
+# was no better: 118-120 vs 115 ms.
 AHEAD = 3
 PREFETCH_BYTES = 384 * 1024
 # The vector tiles also ask for the record of the column GATHER_AHEAD columns on, into the
