@@ -23,7 +23,6 @@ from typing import Any
 import joblib
 import numpy as np
 
-from .api import correlate, regress
 from .errors import DyadpermWarning, InputError
 from .pipeline.pvalues import mc_standard_error
 from .pipeline.stopping import _CANCELLED
@@ -91,13 +90,18 @@ class PlanEstimate:
                          "enumerates them all (exact p-values, no Monte Carlo error)")
         lines.append(f"  timing run: {self.timed_permutations:,} relabellings in "
                      f"{self.timed_seconds:.2f} s with {self.workers} worker(s) "
-                     f"({self.rate:,.0f} relabellings/s after the first chunk)")
+                     f"({_rate(self.rate)} relabellings/s over its last round of chunks)")
         lines.append(f"  expected time for {self.run_permutations:,} relabellings: "
                      f"{_duration(self.seconds)} with {self.workers} worker(s) "
                      f"(this machine has {self.machine_cores} cores)")
         lines.append(f"  set it with: permutations = {self.run_permutations} in [test], or "
                      f"--permutations {self.run_permutations}")
         return "\n".join(lines)
+
+
+def _rate(rate: float) -> str:
+    """A rate with three significant figures (8.33, 175, 1,234)."""
+    return f"{rate:,.0f}" if rate >= 100 else f"{rate:.3g}"
 
 
 def _duration(seconds: float) -> str:
@@ -131,13 +135,14 @@ def plan_study(study: Any, *, precision: float, alpha: float | None = None, jobs
 
     Notes
     -----
-    The timing run is the study itself through ``dyadperm.regress``/``correlate`` with the
-    study's settings, random relabellings and no run file: a one-chunk run first loads the
+    The timing run is the study itself, as ``Study.run`` calls the engine (``Study.
+    _engine``: the file's model, storage, intervals and layers loaded in place), with
+    random relabellings, no run file and no stop rule: a one-chunk run first loads the
     compiled kernels, then a run with ``jobs`` workers is timed by its progress callback
     and ended once ``budget`` seconds have passed after its first chunk (or when it is
-    done). Expected time = time to the first finished chunk (reading aside: preparing the
-    inputs, the observed fit, the first chunks) + the remaining relabellings at the rate
-    measured after the first round of chunks.
+    done). Expected time = the timing run's time to its last finished chunk (reading the
+    inputs, the observed fit and the first chunks included) + the remaining relabellings
+    at the rate of its last round of chunks (``steady_rate``).
     """
     st = study if isinstance(study, Study) else load_study(study)
     t = st.spec["test"]
@@ -175,16 +180,12 @@ def plan_study(study: Any, *, precision: float, alpha: float | None = None, jobs
     if not marks:  # pragma: no cover - every run reports at least one chunk
         raise InputError(f"{st.path.name}: the timing run reported no progress")
     done = marks[-1][1]
-    first_t, first_done = marks[0][0] - t0, marks[0][1]
+    first_t = marks[0][0] - t0
+    rate = steady_rate(marks, workers) if len(marks) > 1 else done / max(end - t0, 1e-9)
     if done >= run_perms:  # the whole run fitted in the budget: its time is the answer
         seconds = end - t0
-        rate = (done - first_done) / max(marks[-1][0] - marks[0][0], 1e-9) \
-            if len(marks) > 1 else done / max(seconds, 1e-9)
-    else:
-        k0 = min(workers, len(marks) - 2)  # skip the first round of chunks
-        (ta, da), (tb, db) = marks[k0], marks[-1]
-        rate = (db - da) / max(tb - ta, 1e-9)
-        seconds = first_t + (run_perms - first_done) / rate
+    else:  # the time so far, then the rest at the steady rate
+        seconds = marks[-1][0] - t0 + (run_perms - done) / rate
     return PlanEstimate(study=st.path.name, precision=float(precision), alpha=float(a),
                         permutations=need, relabellings=count, exact=exact, workers=workers,
                         machine_cores=cores, timed_permutations=int(done),
@@ -202,8 +203,25 @@ def _relabelling_count(st: Any) -> int:
     return math.prod(math.factorial(int(s)) for s in sizes)
 
 
+def steady_rate(marks: list[tuple[float, int]], workers: int) -> float:
+    """Relabellings a second over the last ``workers`` chunks of a run's progress marks
+    (time, relabellings done), never counting the first chunk (it carries the setup).
+
+    Workers that started together finish their chunks together, so marks come in bursts
+    of up to ``workers`` at nearly one instant; from one mark to the mark ``workers``
+    later, each worker has finished one chunk whatever the burst, where two marks of one
+    burst would span no time at all. With fewer marks than that, from the second mark
+    (from the first when there are only two). ``marks``: at least two, in order.
+    """
+    last = len(marks) - 1
+    k = max(last - workers, min(1, last - 1))  # with few marks: from the second (or first)
+    (ta, da), (tb, db) = marks[k], marks[-1]
+    return (db - da) / max(tb - ta, 1e-9)
+
+
 def _run_study_quietly(st: Any, *, permutations: int, jobs: int, progress: Any) -> Any:
-    """The study's own engine call (as Study.run makes it) without a run file."""
+    """The study's own engine call (``Study._engine``, what ``Study.run`` calls: the same
+    model, storage, intervals and in-place layers) without a run file or stop rule."""
     t = st.spec["test"]
     common = dict(permutations=permutations, seed=0, jobs=jobs,
                   directed=st.spec["study"]["directed"], groups=st.groups, dyads=t["dyads"],
@@ -211,8 +229,4 @@ def _run_study_quietly(st: Any, *, permutations: int, jobs: int, progress: Any) 
     with warnings.catch_warnings():
         # the study's own warnings (collinearity ...) belong to its run, not to its timing
         warnings.simplefilter("ignore", category=DyadpermWarning)
-        if t["kind"] == "correlation":
-            (predictor,) = st.predictors.values()
-            return correlate(st.response, predictor, method=t["method"], **common)
-        return regress(st.response, dict(st.predictors), model=t["model"],
-                                scheme=t["scheme"], statistic=t["statistic"], **common)
+        return st._engine(common)

@@ -59,7 +59,6 @@ class Study(StudyInputs):
         The engine's result of ``dyadperm.regress`` (kind = regression) or
         ``dyadperm.correlate`` (kind = correlation).
         """
-        response, predictors = self.response, self.predictors
         t = self.spec["test"]
         if permutations is not None:
             permutations = _integer(permutations, 1, None, _arg_error("permutations"))
@@ -92,13 +91,21 @@ class Study(StudyInputs):
             shard=shard,
             provenance={"study_text": self.text, "study_path": str(self.path)},
             stop=rule,
-            storage=t["storage"],
         )
+        return self._engine(common, ci=ci)
+
+    def _engine(self, common: dict, *, ci: Any = None) -> Any:
+        """``dyadperm.regress`` (or ``correlate``) of the study's networks with the file's
+        model, storage and intervals and the run settings ``common`` (their keyword
+        arguments): what ``run`` calls, and the timing run of ``planning.plan_study``, so
+        that one times what the other runs."""
+        t = self.spec["test"]
+        response, predictors = self.response, self.predictors
         if self.layers_in_place:
             # the run may standardise the layers in place (even a failed one, part way):
             # whoever reads the networks next gets them from the files again
             self._spent = True
-        common["overwrite_inputs"] = self.layers_in_place
+        common = dict(common, storage=t["storage"], overwrite_inputs=self.layers_in_place)
         if t["kind"] == "correlation":
             (predictor,) = predictors.values()
             return _api.correlate(response, predictor, method=t["method"], **common)

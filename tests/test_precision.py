@@ -184,6 +184,45 @@ def test_plan_study_says_when_enumeration_is_smaller(tmp_path):
     assert "enumerates them all" in est.text()
 
 
+def test_steady_rate_spans_one_round_of_bursting_chunks():
+    # marks (seconds, relabellings done) as a 10,000-node dsp study's timing run reported
+    # them: two workers finishing chunks of 16 together. Worked by hand: from (19.72, 32)
+    # to (26.05, 64), 32 relabellings in 6.33 s; two marks of one burst (26.05, 48) and
+    # (26.05, 64) span no time and gave the 175 relabellings/s a plan once printed.
+    marks = [(19.71, 16), (19.72, 32), (26.05, 48), (26.05, 64)]
+    assert planning.steady_rate(marks, 2) == pytest.approx(32 / 6.33)
+    # staggered chunks of 8, one a second: 16 relabellings in the last 2 s
+    stagger = [(float(t), 8 * t) for t in range(1, 6)]
+    assert planning.steady_rate(stagger, 2) == pytest.approx(8.0)
+    # fewer marks than a round: from the second mark (the first carries the setup) ...
+    assert planning.steady_rate([(5.0, 10), (6.0, 20), (8.0, 30)], 4) == pytest.approx(5.0)
+    # ... or from the first when there are only two
+    assert planning.steady_rate([(5.0, 10), (7.0, 30)], 4) == pytest.approx(10.0)
+
+
+def test_plan_times_the_study_as_run_runs_it(tmp_path, monkeypatch):
+    # the timing run must run what `run` runs: the file's storage, its intervals and its
+    # layers loaded in place (a float32 study once timed its run in float64, with twice
+    # the memory)
+    path = _study(tmp_path, n=12, extra_test='storage = "float32"\nci = 0.9\n')
+    calls = []
+    regress = dp.api.regress
+
+    def spy(*args, **kwargs):
+        calls.append({k: kwargs.get(k) for k in ("storage", "overwrite_inputs", "ci", "out")})
+        return regress(*args, **kwargs)
+
+    monkeypatch.setattr(dp.api, "regress", spy)
+    planning.plan_study(path, precision=0.002, jobs=1, budget=0.2)
+    study = dp.load_study(path)
+    assert study.layers_in_place
+    study.run(permutations=5)
+    planned, run = calls[1], calls[-1]  # calls[0]: the plan's warm-up
+    assert len(calls) == 3
+    assert planned == dict(run, out=None) == {"storage": "float32", "overwrite_inputs": True,
+                                              "ci": 0.9, "out": None}
+
+
 # --------------------------------------------------------------------------- stop rules
 
 def test_stop_rule_validation():
