@@ -545,6 +545,8 @@ class StudyInputs:
     def _fresh(self) -> None:
         """Read the network files again when a run has standardised the layers in place."""
         if self._spent:
+            # let the spent layers go first, so the networks are never held twice
+            self._response, self._predictors = None, {}  # type: ignore[assignment]
             fresh = self._reload()
             self._response, self._predictors = fresh.response, fresh.predictors
             self._spent = False
