@@ -224,6 +224,29 @@ def masked_moments(mat, mask, out):
 
 
 @njit(**KERNEL_OPTIONS)
+def column_summary(block, observed, nonzero, total, low, high):
+    """Fold the values of ``block`` (N, L), row by row, into each column's summary.
+
+    For each column c, over its values that are not NaN: observed[c] and nonzero[c]
+    (int64) count them and those that are not 0, total[c] adds them in row order, low[c]
+    and high[c] keep the least and the greatest (float64; start them at +inf and -inf).
+    What ``dyadperm check`` prints of each network, one pass over a block of dyads.
+    """
+    for r in range(block.shape[0]):
+        for c in range(block.shape[1]):
+            x = block[r, c]
+            if x == x:  # not NaN
+                observed[c] += 1
+                if x != 0.0:
+                    nonzero[c] += 1
+                total[c] += x
+                if x < low[c]:
+                    low[c] = x
+                if x > high[c]:
+                    high[c] = x
+
+
+@njit(**KERNEL_OPTIONS)
 def masked_values(mat, mask, out):
     """Copy the cells of ``mat`` where ``mask`` holds, in row-major order, into ``out``.
 

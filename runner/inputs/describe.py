@@ -15,9 +15,10 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..kernels.stats import column_summary
 from . import memory
-from .design import (check_design, dyads_phrase, fit_pivot, fold_rows, iter_dyad_rows, prepare,
-                     standardised_condition)
+from .design import (STREAM_DYADS, check_design, dyads_phrase, fit_pivot, fold_rows,
+                     iter_dyad_rows, prepare, standardised_condition)
 from .sparse import NETWORK, SparseNetwork, prepare_sparse
 from .study_file import read_study
 from .waves import is_waves, prepare_waves, wave_lines
@@ -103,24 +104,32 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
     complete = 0
     sums = np.zeros((len(names) + 1, len(names) + 1))
     r_acc = np.zeros((0, prep.k + 1))
+    # each network's counts, extremes and sum, block by block over the dyad set (no
+    # temporary the size of a matrix)
+    L = len(names)
+    observed = np.zeros(L, dtype=np.int64)
+    nonzero = np.zeros(L, dtype=np.int64)
+    total = np.zeros(L)
+    low = np.full(L, np.inf)
+    high = np.full(L, -np.inf)
     for block in iter_dyad_rows(prep, prep.matrices if prep.exact is None else prep.exact):
         ok = ~np.isnan(block).any(axis=1)
         complete += int(ok.sum())
         z = np.concatenate([np.ones((int(ok.sum()), 1)), block[ok]], axis=1)
         sums += z.T @ z
         r_acc = fold_rows(r_acc, z[:, :prep.k + 1])  # R of [1, X] over the complete dyads
+        column_summary(block, observed, nonzero, total, low, high)
     for idx, (name, role) in enumerate(zip(names, roles)):
-        vals = prep.matrices[idx][prep.mask]
-        fin = vals[~np.isnan(vals)]
-        miss = int(vals.size - fin.size)
+        obs = int(observed[idx])
+        miss = prep.n_dyads - obs
         nets.append(NetworkSummary(
-            name, role, int(fin.size), miss, int(np.count_nonzero(fin)),
-            float(fin.min()) if fin.size else float("nan"),
-            float(fin.max()) if fin.size else float("nan"),
-            float(fin.mean()) if fin.size else float("nan"),
+            name, role, obs, miss, int(nonzero[idx]),
+            float(low[idx]) if obs else float("nan"),
+            float(high[idx]) if obs else float("nan"),
+            float(total[idx] / obs) if obs else float("nan"),
             _symmetric_input(prep.matrices[idx], prep)))
-        if vals.size and miss / vals.size > MOSTLY_MISSING:
-            notes.append(f"{name!r} is mostly missing ({miss:,} of {vals.size:,} dyads)")
+        if prep.n_dyads and miss / prep.n_dyads > MOSTLY_MISSING:
+            notes.append(f"{name!r} is mostly missing ({miss:,} of {prep.n_dyads:,} dyads)")
     k = prep.k
     n = max(sums[0, 0], 1.0)
     mean = sums[0, 1:] / n
@@ -150,16 +159,26 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
 
 
 def _symmetric_input(mat: np.ndarray, prep) -> bool:
+    """Whether a one-mode network equals its transpose (missing values read as 0; in a
+    panel, wave by wave), compared a block of rows at a time against the same columns."""
     if prep.two_mode:
         return False
     if not prep.directed:
         return True
-    a = np.where(np.isnan(mat), 0.0, mat)
-    if prep.waves > 1:  # each wave's block of the interleaved columns
-        n = a.shape[0]
-        cube = a.reshape(n, n, prep.waves)
-        return bool(np.array_equal(cube, cube.transpose(1, 0, 2)))
-    return bool(np.array_equal(a, a.T))
+    n = mat.shape[0]
+    w = max(prep.waves, 1)
+    step = max(1, STREAM_DYADS // max(mat.shape[1], 1))
+    for i0 in range(0, n, step):
+        i1 = min(i0 + step, n)
+        rows = np.asarray(mat[i0:i1])
+        cols = np.asarray(mat[:, i0 * w:i1 * w])
+        rows = np.where(np.isnan(rows), 0.0, rows)
+        cols = np.where(np.isnan(cols), 0.0, cols)
+        # rows[i, j w + t] (node i0 + i to node j at wave t) against cols[j, i w + t]
+        if not np.array_equal(rows.reshape(i1 - i0, n, w),
+                              cols.reshape(n, i1 - i0, w).transpose(1, 0, 2)):
+            return False
+    return True
 
 
 def route_lines(st) -> tuple[str, ...]:
