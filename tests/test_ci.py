@@ -21,6 +21,7 @@ import scipy.sparse as sp
 from scipy.stats import binom
 
 import dyadperm as dp
+from dyadperm.output.table import ci_text
 from reference import exact_pvalues
 
 ALPHA = 0.05
@@ -202,3 +203,20 @@ def test_study_file_and_cli_take_ci(tmp_path, monkeypatch, capsys):
         code = int(exc.code or 0)
     assert code == 0
     assert "90% CI" in capsys.readouterr().out
+
+
+def test_long_intervals_keep_their_column_apart():
+    # ends below 1e-3 print as "-4.012e-05", so an interval with both ends negative takes
+    # 24 characters; the column had 23 and ran into the standard error before it
+    rng = np.random.default_rng(9)
+    y, xs = _data(rng, 12)
+    res = dp.regress(y, {"a": -1e4 * xs[0], "b": 1e4 * xs[1]}, permutations=99, seed=2)
+    texts = [ci_text(res, i) for i in range(len(res.terms))]
+    assert max(len(t) for t in texts) >= 24
+    lines = res.table().splitlines()
+    head = next(line for line in lines if "95% CI" in line)
+    end = head.index("95% CI") + len("95% CI")
+    for term, text in zip(res.terms, texts):
+        row = next(line for line in lines if line.startswith(term + " "))
+        at = row.index(text)
+        assert row[at - 1] == " " and at + len(text) == end  # right-aligned under its label

@@ -155,7 +155,9 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
     cols = [(f"{'term':<{w}}", w), (f"{est_name:>11}", 11), (f"{'std.error':>11}", 11)]
     label = ci_label(res)
     if label is not None:
-        cols.append((f"{label:>23}", 23))
+        # wide enough for the longest interval and a space before it
+        ci_w = max(23, 2 + max(len(ci_text(res, i)) for i in range(len(res.terms))))
+        cols.append((f"{label:>{ci_w}}", ci_w))
     if kind == "regression":
         cols.append((f"{res.statistic:>9}", 9))
     cols += [(f"{'p':>9}", 9), (f"{'MC s.e.':>9}", 9), (f"{P_RANGE:>21}", 21)]
@@ -168,7 +170,7 @@ def format_table(res: Any, *, alpha: float | None = None) -> str:
     for i, term in enumerate(res.terms):
         row = f"{term:<{w}}{_num(est[i], 11)}{_num(res.se[i], 11)}"
         if label is not None:
-            row += f"{ci_text(res, i):>23}"
+            row += f"{ci_text(res, i):>{ci_w}}"
         if kind == "regression":
             row += _num(res.stat[i], 9, 3)
         tested_i = np.isfinite(res.p[i])
