@@ -116,7 +116,7 @@ from .pipeline.engine import parallel_map
 from .pipeline.permutations import draw_from, draw_many_from, enumerate_exact
 from .pipeline.pvalues import clopper_pearson, pvalues
 from .routes.linear import build_statistics, fit_pivot, shared_statistics
-from .settings import EXACT_LIMIT, SCHEMES, STATISTICS, entropy_of
+from .settings import EXACT_LIMIT, SCHEMES, STATISTICS, check_output_file, entropy_of
 
 __all__ = ["CalibrationResult", "Replicate", "calibrate", "calibrate_study",
            "simulated_response", "plot_calibration", "check_plot_path"]
@@ -841,9 +841,7 @@ def check_plot_path(path: str | Path) -> Path:
         known = ", ".join("." + s for s in sorted(kinds))
         raise InputError(f"plot file {path}: the suffix must be one of {known}; "
                          f"got {path.suffix or 'none'!r}")
-    if not path.parent.is_dir():
-        raise InputError(f"plot file {path}: no such folder {path.parent}")
-    return path
+    return check_output_file(path, "plot file")
 
 
 # The look of the figure, matching the result plots (runner/plots.py): print-friendly

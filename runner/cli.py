@@ -22,6 +22,7 @@ from .inputs.describe import describe_study
 from .output.report import make_report
 from .pipeline import store
 from .planning import plan_study
+from .settings import check_output_file
 from .study import load_study
 
 app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -112,6 +113,8 @@ def run(
     storage: Optional[str] = typer.Option(None, help=_STORAGE_HELP),
 ) -> None:
     """Run a study and print its table (and keep a run file with --out)."""
+    if out is not None:  # before the networks are read
+        check_output_file(out, "run file")
     st = load_study(study, storage=storage)
     target = out if out is not None else st.output
     if target is not None and Path(target).exists():
@@ -184,6 +187,7 @@ def merge(
     """Join shard run files of one run, after checking they belong together."""
     if out.exists():
         raise RunFileError(f"{out}: exists; choose a new file for the merged run")
+    check_output_file(out, "run file")
     hdr = store.merge(out, shards)
     typer.echo(f"merged {len(shards)} shards ({hdr.permutations:,} permutations) into {out}")
 

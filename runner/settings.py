@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Callable, Mapping
 
 import numpy as np
@@ -224,6 +225,18 @@ class RunOptions:
         return self.progress if callable(self.progress) else None
 
 
+def check_output_file(path: Any, what: str) -> Path:
+    """A file a command will write, checked before any work: not a folder, and in a folder
+    that exists (a missing folder would otherwise surface only when the file is made, after
+    the work). ``what`` names it in the error ("run file", "CSV file", ...)."""
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{what} {path}: is a folder; name a file")
+    if not path.parent.is_dir():
+        raise InputError(f"{what} {path}: no such folder {path.parent}")
+    return path
+
+
 def run_options(*, permutations: Any = 10_000, seed: Any = None, jobs: Any = 1,
                 exact: Any = "auto", chunk_size: Any = None, out: Any = None,
                 progress: Any = False, backend: Any = "threads", scheduler: Any = None,
@@ -252,6 +265,8 @@ def run_options(*, permutations: Any = 10_000, seed: Any = None, jobs: Any = 1,
         raise InputError(f"backend must be one of {', '.join(BACKENDS)}; got {backend!r}")
     if (backend == "dask") != (scheduler is not None):
         raise InputError("backend 'dask' and a scheduler address go together")
+    if out is not None:
+        check_output_file(out, "run file")
     shard = shard or ""
     if shard:
         parse_shard(shard)

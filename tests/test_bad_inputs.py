@@ -216,6 +216,16 @@ def test_bad_command_lines(study, capsys, tmp_path):
     code, _ = _run_cli(["run", path, "--out", out, "--quiet"], capsys)
     assert code == 0 and out.exists()
     _check_bad(["run", path, "--out", out, "--quiet"], capsys, r"run file exists")
+    # files to write in a folder that is not there: refused before any work, not when the
+    # file is made (a run file after the whole setup, as an internal error)
+    missing = tmp_path / "nofolder"
+    _check_bad(["run", path, "--out", missing / "r.h5"], capsys,
+               r"run file .*r\.h5: no such folder .*nofolder$")
+    _check_bad(["report", out, "--csv", missing / "r.csv"], capsys,
+               r"CSV file .*r\.csv: no such folder .*nofolder$")
+    _check_bad(["report", out, "--html", tmp_path], capsys, r"HTML file .*: is a folder; name a file")
+    _check_bad(["merge", missing / "m.h5", out], capsys, r"run file .*m\.h5: no such folder")
+    assert not missing.exists()
 
 
 def test_api_arguments_raise_input_error():
@@ -231,6 +241,7 @@ def test_api_arguments_raise_input_error():
             ({"seed": -1}, r"seed must be a whole number >= 0, a numpy SeedSequence or None"),
             ({"chunk_size": 0}, r"chunk_size must be a whole number >= 1; got 0"),
             ({"storage": "float16"}, r"storage must be one of float64, float32; got 'float16'"),
+            ({"out": "nofolder/r.h5"}, r"run file nofolder/r\.h5: no such folder nofolder"),
             ({"dyads": "within"}, r"dyads: 'within' and 'all' need groups")]:
         with pytest.raises(dp.InputError, match=match):
             dp.regress(y, [x], **kwargs)

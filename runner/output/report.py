@@ -23,6 +23,7 @@ import numpy as np
 from ..errors import InputError
 from ..pipeline import store
 from ..pipeline.run import open_result
+from ..settings import check_output_file
 from . import plots
 from .result import TERM_COLUMNS, _plain, term_rows
 from .table import (NOTE_ADJUSTED, NOTE_CI, NOTE_INTERVAL, NOTE_ONE, NOTE_P, P_RANGE, _alpha,
@@ -236,6 +237,10 @@ def make_report(run_file: Any, *, as_json: bool = False, csv_file: Any = None,
                 plots: Any = None, html_file: Any = None,
                 alpha: float | None = None) -> Report:
     """Read a run file and produce the report pieces asked for (the CLI's ``report``)."""
+    if csv_file is not None:
+        csv_file = check_output_file(csv_file, "CSV file")
+    if html_file is not None:
+        html_file = check_output_file(html_file, "HTML file")
     res = open_result(run_file)
     a = _alpha(res, alpha)
     prov = provenance(run_file)
