@@ -66,3 +66,17 @@ def test_network_summaries_match_numpy(tmp_path, rng, monkeypatch, storage, bloc
     missing = got["sparse"].missing
     assert f"'sparse' is mostly missing ({missing:,} of {N * (N - 1):,} dyads)" in summary.notes
     assert not any("'y' is mostly missing" in note for note in summary.notes)
+
+
+def test_missing_dyads_are_said_to_take_the_slower_path(tmp_path, rng):
+    # one missing value among the dyads switches every relabelling to sums over its own
+    # complete dyads (README, "Missing dyads"); complete data get no such note
+    nets = {"y": rng.normal(size=(N, N)), "sym": rng.normal(size=(N, N)),
+            "sparse": rng.normal(size=(N, N))}
+    notes = describe_study(_study(tmp_path, nets, "float64")).notes
+    assert not any("are missing" in note for note in notes)
+    nets["y"][3, 4] = np.nan
+    notes = describe_study(_study(tmp_path, nets, "float64")).notes
+    want = f"1 of {N * (N - 1):,} dyads are missing in some network: every relabelling"
+    assert any(note.startswith(want) and "`dyadperm plan` times a run" in note
+               for note in notes)

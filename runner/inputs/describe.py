@@ -130,6 +130,11 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
             _symmetric_input(prep.matrices[idx], prep)))
         if prep.n_dyads and miss / prep.n_dyads > MOSTLY_MISSING:
             notes.append(f"{name!r} is mostly missing ({miss:,} of {prep.n_dyads:,} dyads)")
+    if 0 < complete < prep.n_dyads:
+        notes.append(f"{prep.n_dyads - complete:,} of {prep.n_dyads:,} dyads are missing in "
+                     "some network: every relabelling then sums over its own complete dyads, "
+                     "one pass over every dyad per tested term, many times slower than "
+                     "complete data (`dyadperm plan` times a run)")
     k = prep.k
     n = max(sums[0, 0], 1.0)
     mean = sums[0, 1:] / n
