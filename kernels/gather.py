@@ -1057,6 +1057,81 @@ def gather_gram(rel, rel_idx, fix, fix_idx, row_perms, col_perms, col_start, col
                 out[b, r, s] = out[b, s, r]
 
 
+@njit(**KERNEL_OPTIONS)
+def _subtract_cell(rel, rel_idx, fix, fix_idx, pi, pj, i, j, v, gram):
+    """gram -= v v' for v = [1, rel[pi, pj, rel_idx], fix[i, j, fix_idx]] (lower triangle
+    and diagonal; ``subtract_missing`` mirrors them)."""
+    n_rel = rel_idx.shape[0]
+    for a in range(n_rel):
+        v[1 + a] = rel[pi, pj, rel_idx[a]]
+    for c in range(fix_idx.shape[0]):
+        v[1 + n_rel + c] = fix[i, j, fix_idx[c]]
+    for r in range(v.shape[0]):
+        for q in range(r + 1):
+            gram[r, q] -= v[r] * v[q]
+
+
+@njit(**KERNEL_OPTIONS)
+def subtract_missing(rel, rel_idx, fix, fix_idx, row_perms, col_perms, fix_cells, fix_keys,
+                     rel_cells, mask, out):
+    """Take from each permutation's Gram (``fill_gram`` over layers whose missing values
+    are held as 0) the dyads that are not complete under that permutation.
+
+    With missing values read as 0, a sum over the whole dyad set D differs from the sum
+    over a permutation's complete dyads only at the dyads where some value of v = [1,
+    relabelled layers, fixed layers] is missing; there the products of the observed values
+    went in (and the 1 of the count). Those dyads are the fixed cells ``fix_cells`` (in
+    D, a fixed layer missing; the same for every permutation) and, for permutation b, the
+    dyads (i, j) of D that b reads from a stored cell of ``rel_cells`` (a relabelled layer
+    missing there): i = row_perms[b]^-1 of its row, j = col_perms[b]^-1 of its column.
+    Each such dyad's v v' is subtracted once, in the order of ``fix_cells``, then of
+    ``rel_cells`` (a dyad already among the fixed cells is skipped), so the result does not
+    depend on which permutations share a call.
+
+    rel, fix : float64 or float32 (n, m, L) with missing values 0; rel_idx, fix_idx : int64;
+    row_perms (B, n_src), col_perms (B, m) : int64; fix_cells : int64 (K, 2), rows (i, j);
+    fix_keys : int64 (K,), i m + j, increasing (fix_cells in that order); rel_cells :
+    int64 (K', 2), stored cells (a, b); mask : bool (n, m), the dyad set D; out : float64
+    (B, d, d), changed in place.
+    """
+    n_perm = row_perms.shape[0]
+    m = col_perms.shape[1]
+    d = out.shape[1]
+    v = np.empty(d)
+    v[0] = 1.0
+    inv_r = np.empty(rel.shape[0], dtype=np.int64)
+    inv_c = np.empty(m, dtype=np.int64)
+    low = np.zeros((d, d))
+    for b in range(n_perm):
+        low[:, :] = 0.0
+        for t in range(fix_cells.shape[0]):
+            i = fix_cells[t, 0]
+            j = fix_cells[t, 1]
+            _subtract_cell(rel, rel_idx, fix, fix_idx, row_perms[b, i], col_perms[b, j], i, j,
+                           v, low)
+        if rel_cells.shape[0] > 0:
+            for i in range(row_perms.shape[1]):
+                inv_r[row_perms[b, i]] = i
+            for j in range(m):
+                inv_c[col_perms[b, j]] = j
+        for t in range(rel_cells.shape[0]):
+            i = inv_r[rel_cells[t, 0]]
+            j = inv_c[rel_cells[t, 1]]
+            if not mask[i, j]:
+                continue
+            if fix_keys.shape[0] > 0:
+                at = np.searchsorted(fix_keys, i * m + j)
+                if at < fix_keys.shape[0] and fix_keys[at] == i * m + j:
+                    continue
+            _subtract_cell(rel, rel_idx, fix, fix_idx, rel_cells[t, 0], rel_cells[t, 1], i, j,
+                           v, low)
+        for r in range(d):
+            for q in range(r + 1):
+                out[b, r, q] += low[r, q]
+                if q != r:
+                    out[b, q, r] += low[r, q]
+
+
 # ``gram_chunks`` without a map of the records.
 NO_RECORDS = np.zeros((0, 0))
 

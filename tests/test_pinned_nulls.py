@@ -48,6 +48,8 @@ def _inputs():
 
 def _cases():
     d = _inputs()
+    d["yf"] = d["y"].copy()
+    d["yf"][1, 2] = d["yf"][4, 7] = np.nan
     X = {"x1": d["x1"], "x2": d["x2"], "near": dp.gap(d["attr"]), "kin": dp.same(d["cat"])}
     common = dict(permutations=120, seed=17, chunk_size=32)
     cases = {}
@@ -57,6 +59,9 @@ def _cases():
                 d["y"], X, scheme=s, statistic=t, **common)
         cases[f"linear-missing-{scheme}"] = lambda s=scheme: dp.regress(
             d["ym"], {"x1": d["x1"], "x2": d["x2"]}, scheme=s, **common)
+        # two missing values: the complete-data kernel with the incomplete dyads taken out
+        cases[f"linear-fewmissing-{scheme}"] = lambda s=scheme: dp.regress(
+            d["yf"], {"x1": d["x1"], "x2": d["x2"]}, scheme=s, **common)
         cases[f"linear-groups-{scheme}"] = lambda s=scheme: dp.regress(
             d["y"], {"x1": d["x1"], "near": dp.gap(d["attr"])}, scheme=s, groups=d["groups"],
             **common)

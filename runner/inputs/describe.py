@@ -132,9 +132,11 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
             notes.append(f"{name!r} is mostly missing ({miss:,} of {prep.n_dyads:,} dyads)")
     if 0 < complete < prep.n_dyads:
         notes.append(f"{prep.n_dyads - complete:,} of {prep.n_dyads:,} dyads are missing in "
-                     "some network: every relabelling then sums over its own complete dyads, "
-                     "one pass over every dyad per tested term, many times slower than "
-                     "complete data (`dyadperm plan` times a run)")
+                     "some network: every relabelling fits over its own complete dyads, one "
+                     "pass per tested term; with few missing values (up to about 5% of the "
+                     "dyads) the complete-data kernel and a correction at the missing ones, "
+                     "else a sum over the complete dyads one by one, many times slower "
+                     "(`dyadperm plan` times a run)")
     k = prep.k
     n = max(sums[0, 0], 1.0)
     mean = sums[0, 1:] / n

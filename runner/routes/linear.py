@@ -21,7 +21,7 @@ permutation's complete dyads (``gather_gram``), one pass per tested term.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Sequence
 
 import numpy as np
@@ -30,13 +30,13 @@ from scipy.linalg import solve_triangular
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs import memory as _memory
-from ..inputs.design import (ObservedFit, Prepared, check_design, check_factor,
-                             check_response, dyads_phrase, fit_from_factor, iter_dyad_rows,
-                             standardise)
+from ..inputs.design import (STREAM_DYADS, ObservedFit, Prepared, check_design,
+                             check_factor, check_response, dyads_phrase, fit_from_factor,
+                             iter_dyad_rows, standardise)
 from ..inputs.threads import halves, side_by_side
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import (GRAM_COLUMNS, NO_RECORDS, add_chunks, chunk_slots, gather_cross,
-                              gather_gram, gram_chunks, gram_from_sums)
+                              gather_gram, gram_chunks, gram_from_sums, subtract_missing)
 from ..kernels.tsqr import fold_factors, row_factors, stack_factors
 from ..kernels.vector import RECORD_LANES
 from ..kernels.stats import (INTERVAL_WIDTH as WIDTH, NO_ROWS, apply_upper, correlation_stats,
@@ -55,6 +55,11 @@ REFINE_COND = 1e4
 # Dyads of a row folded into its QR factor at once (``kernels.tsqr.fold_rows``): the block
 # (5 x 256 float64 = 10 KB) stays in L1.
 QR_WIDTH = 256
+# Missing dyad values up to which a route with missing data runs the complete-data kernel
+# and corrects each relabelling's Gram at the incomplete dyads (``_zero_missing``), as a
+# share of the dyads; above it every relabelling sums its complete dyads one by one
+# (``gather_gram``).
+MISSING_SHARE = 0.05
 # Bytes of the rows' own sums the setup holds at once before adding them in row order:
 # ``qr_layers``' row factors (p x p float64 a row: all rows at once up to 2**21 / p^2) and
 # the invariant Gram's chunk sums (``_gram_on_threads``)
@@ -73,6 +78,9 @@ class Pass:
     transforms: np.ndarray  # (K, d, p + 1)
     terms: np.ndarray  # (K,) columns of the statistics this pass fills
     scale: np.ndarray  # (K,)
+    #: missing values held as 0 (``_zero_missing``): (fix_cells, fix_keys, rel_cells, mask)
+    #: of ``gather.subtract_missing``, which takes the incomplete dyads out of each Gram
+    missing: tuple | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -104,14 +112,15 @@ class GramStatistics:
         statistics, then (with intervals) each term's interval numbers."""
         n_perm = row_perms.shape[0]
         out = np.empty((n_perm, self.k + self.extra))
+        crosses = self._crosses(row_perms, col_perms)
         for ps in self.passes:
             d = 1 + ps.rel_idx.shape[0] + ps.fix_idx.shape[0]
             gram = np.empty((n_perm, d, d))
             if ps.gram0 is not None:
-                cross = np.empty((n_perm, ps.rel_idx.shape[0], ps.fix_idx.shape[0]))
-                gather_cross(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, row_perms, col_perms,
-                             self.col_start, self.col_stop, cross)
-                fill_gram(cross, ps.gram0, gram)
+                fill_gram(crosses[id(ps)], ps.gram0, gram)
+                if ps.missing is not None:
+                    subtract_missing(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, row_perms,
+                                     col_perms, *ps.missing, gram)
             else:
                 gather_gram(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, row_perms, col_perms,
                             self.col_start, self.col_stop, gram)
@@ -128,6 +137,35 @@ class GramStatistics:
                 for t, j in enumerate(ps.terms if self.ci_scale is not None else ()):
                     out[:, self.k + WIDTH * j:self.k + WIDTH * (j + 1)] = rows[:, t]
         return out
+
+    def _crosses(self, row_perms: np.ndarray, col_perms: np.ndarray) -> dict[int, np.ndarray]:
+        """The relabelled-by-fixed products of each pass with an invariant Gram, by the
+        pass's id. Passes over the same two stacks (the corrected passes of missing data,
+        one per tested term) share one kernel pass over the union of their layers; each
+        pair's sum is the same whichever other layers a pass holds (``gather_cross``'s
+        order depends on the tile shape only, and tiles of 3 x 4 and 4 x 3 sum alike)."""
+        groups: dict[tuple[int, int], list[Pass]] = {}
+        for ps in self.passes:
+            if ps.gram0 is not None:
+                groups.setdefault((id(ps.rel), id(ps.fix)), []).append(ps)
+        crosses: dict[int, np.ndarray] = {}
+        n_perm = row_perms.shape[0]
+        for group in groups.values():
+            first = group[0]
+            if len(group) == 1:
+                rel_u, fix_u = first.rel_idx.tolist(), first.fix_idx.tolist()
+            else:
+                rel_u = sorted(set().union(*(ps.rel_idx.tolist() for ps in group)))
+                fix_u = sorted(set().union(*(ps.fix_idx.tolist() for ps in group)))
+            every = np.empty((n_perm, len(rel_u), len(fix_u)))
+            gather_cross(first.rel, np.asarray(rel_u, np.int64), first.fix,
+                         np.asarray(fix_u, np.int64), row_perms, col_perms, self.col_start,
+                         self.col_stop, every)
+            for ps in group:
+                ra = [rel_u.index(a) for a in ps.rel_idx.tolist()]
+                fc = [fix_u.index(c) for c in ps.fix_idx.tolist()]
+                crosses[id(ps)] = np.ascontiguousarray(every[:, ra][:, :, fc])
+        return crosses
 
     def chunk_size(self) -> int:
         """Permutations per chunk: one chunk's kernel work (dyads x cross products) near
@@ -278,8 +316,7 @@ def build_statistics(prep: Prepared, *, scheme: str, statistic: str, storage: st
         # t = beta / sqrt(RSS / df): the kernels' df is N - p; the model's N - p - absorbed
         p = prep.k + 1
         factor = np.sqrt((prep.n_dyads - p - absorbed) / (prep.n_dyads - p))
-        passes = [Pass(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, ps.gram0, ps.transforms,
-                       ps.terms, ps.scale * factor) for ps in passes]
+        passes = [replace(ps, scale=ps.scale * factor) for ps in passes]
     ci_scale = sd[prep.k] / sd[:prep.k] if interval else None
     return GramStatistics(tuple(passes), prep.k - prep.fixed, False, statistic == "t",
                           prep.col_start, prep.col_stop, prep.n_dyads, ci_scale, fit)
@@ -547,7 +584,74 @@ def _masked_passes(prep: Prepared, scheme: str, statistic: str, storage: str,
         passes.append(Pass(rel, np.asarray(rel_idx, np.int64), fix, np.asarray(fix_idx, np.int64),
                            None, transforms, np.asarray(terms, np.int64) - prep.fixed,
                            np.ascontiguousarray(scale)))
-    return passes
+    return _zero_missing(prep, passes)
+
+
+def _nan_cells(stack: np.ndarray, layer: int, where: np.ndarray) -> np.ndarray:
+    """Sorted flat indices i m + j of the cells of ``where`` whose ``layer`` is NaN, found a
+    block of rows at a time."""
+    n, m = where.shape
+    step = max(1, STREAM_DYADS // max(m, 1))
+    found = [np.flatnonzero(np.isnan(stack[i0:i0 + step, :, layer]) & where[i0:i0 + step])
+             + i0 * m for i0 in range(0, n, step)]
+    return np.concatenate(found) if found else np.zeros(0, np.int64)
+
+
+def _zero_missing(prep: Prepared, passes: list[Pass]) -> list[Pass]:
+    """Masked passes as complete-data passes plus corrections, when few values are missing.
+
+    Read with its missing values held as 0, a layer stack gives each relabelling's Gram
+    over the whole dyad set from the complete-data kernel (``gather_cross``, and the
+    invariant Gram once); ``gather.subtract_missing`` then takes out the dyads that are not
+    complete under that relabelling: the same Gram as ``gather_gram`` sums dyad by dyad
+    (the same products, added in another order), at the cost of the complete-data pass and
+    of the missing cells. Used when the cells to correct, over every pass, are at most
+    ``MISSING_SHARE`` of the dyads (all passes or none: they may share a stack); else the
+    passes are returned as they are. The stacks' missing values are set to 0 in place.
+    """
+    mask = prep.mask
+    holds = prep.holds()
+    budget = MISSING_SHARE * prep.n_dyads
+    found: dict[tuple[int, int, bool], np.ndarray] = {}
+
+    def cells(stack: np.ndarray, layers: np.ndarray, in_set: bool) -> np.ndarray:
+        keys = []
+        for layer in layers.tolist():
+            key = (id(stack), layer, in_set)
+            if key not in found:
+                found[key] = _nan_cells(stack, layer, mask if in_set else holds)
+            keys.append(found[key])
+        return np.unique(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+
+    lists = []
+    for ps in passes:
+        fix_keys = cells(ps.fix, ps.fix_idx, True)  # dyads whose fixed value is missing
+        rel_keys = cells(ps.rel, ps.rel_idx, False)  # stored cells a relabelling may read
+        if fix_keys.size + rel_keys.size > budget:
+            return passes
+        lists.append((fix_keys, rel_keys))
+    stacks = {id(a): a for ps in passes for a in (ps.rel, ps.fix)}
+    for stack in stacks.values():
+        step = max(1, STREAM_DYADS // max(stack.shape[1], 1))
+        for i0 in range(0, stack.shape[0], step):
+            block = stack[i0:i0 + step]
+            block[np.isnan(block)] = 0.0
+    out = []
+    whole: dict[int, np.ndarray] = {}  # a stack's invariant Gram of all its layers, once
+    for ps, (fix_keys, rel_keys) in zip(passes, lists):
+        m_fix, m_rel = ps.fix.shape[1], ps.rel.shape[1]
+        fix_cells = np.stack([fix_keys // m_fix, fix_keys % m_fix], axis=1).astype(np.int64)
+        rel_cells = np.stack([rel_keys // m_rel, rel_keys % m_rel], axis=1).astype(np.int64)
+        if ps.rel is ps.fix:  # dsp, freedman-lane: one stack, one pass over it for all
+            every = list(range(ps.rel.shape[2]))
+            if id(ps.rel) not in whole:
+                whole[id(ps.rel)] = _identity_gram(prep, ps.rel, every, ps.fix, [])
+            where = [0] + [1 + e for e in ps.rel_idx.tolist() + ps.fix_idx.tolist()]
+            gram0 = np.ascontiguousarray(whole[id(ps.rel)][np.ix_(where, where)])
+        else:
+            gram0 = _identity_gram(prep, ps.rel, ps.rel_idx, ps.fix, ps.fix_idx)
+        out.append(replace(ps, gram0=gram0, missing=(fix_cells, fix_keys, rel_cells, mask)))
+    return out
 
 
 def _check_gram(gobs: np.ndarray, prep: Prepared) -> None:
@@ -666,6 +770,9 @@ def shared_statistics(plans: Sequence[GramStatistics], j: int, batch) -> list[np
             d = ps.gram0.shape[0]
             gram = np.empty((n_perm, d, d))
             fill_gram(cross, ps.gram0, gram)
+            if ps.missing is not None:
+                subtract_missing(ps.rel, ps.rel_idx, ps.fix, ps.fix_idx, rows, cols,
+                                 *ps.missing, gram)
             t = int(np.flatnonzero(ps.terms == j)[0])
             stats = np.empty((n_perm, 1))
             regression_stats(gram, np.ascontiguousarray(ps.transforms[t:t + 1]),
