@@ -17,8 +17,8 @@ import numpy as np
 from ..errors import InputError
 from ..kernels.stats import column_summary
 from . import memory
-from .design import (STREAM_DYADS, check_design, dyads_phrase, fit_pivot, fold_rows,
-                     iter_dyad_rows, prepare, standardised_condition)
+from .design import (MISSING_SHARE, STREAM_DYADS, check_design, dyads_phrase, fit_pivot,
+                     fold_rows, iter_dyad_rows, prepare, standardised_condition)
 from .sparse import NETWORK, SparseNetwork, prepare_sparse
 from .study_file import read_study
 from .waves import is_waves, prepare_waves, wave_lines
@@ -133,8 +133,9 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
     if 0 < complete < prep.n_dyads:
         notes.append(f"{prep.n_dyads - complete:,} of {prep.n_dyads:,} dyads are missing in "
                      "some network: every relabelling fits over its own complete dyads, one "
-                     "pass per tested term; with few missing values (up to about 5% of the "
-                     "dyads) the complete-data kernel and a correction at the missing ones, "
+                     f"pass per tested term; with few missing values (up to about "
+                     f"{MISSING_SHARE:.0%} of the dyads) the complete-data kernel and a "
+                     "correction at the missing ones, "
                      "else a sum over the complete dyads one by one, many times slower "
                      "(`dyadperm plan` times a run)")
     k = prep.k

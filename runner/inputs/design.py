@@ -29,6 +29,11 @@ from .threads import side_by_side
 
 # Rows of dyads handled at once by streaming passes (keeps temporaries small).
 STREAM_DYADS = 1 << 20
+# Missing dyad values up to which the dense linear route runs the complete-data kernel and
+# corrects each relabelling's Gram at the incomplete dyads (``routes.linear._zero_missing``),
+# as a share of the dyads (counted over every pass); above it every relabelling sums its
+# complete dyads one by one (``gather_gram``). ``dyadperm check`` quotes it.
+MISSING_SHARE = 0.05
 # Rows folded into a streaming QR at once: small enough for the Householder passes over
 # them to stay in cache (16384 x 6 float64 = 768 KB; measured 3x faster than 1M rows).
 QR_ROWS = 1 << 14

@@ -30,9 +30,9 @@ from scipy.linalg import solve_triangular
 from ..errors import InputError, NumericalError
 from ..inputs import design as _design
 from ..inputs import memory as _memory
-from ..inputs.design import (STREAM_DYADS, ObservedFit, Prepared, check_design,
-                             check_factor, check_response, dyads_phrase, fit_from_factor,
-                             iter_dyad_rows, standardise)
+from ..inputs.design import (MISSING_SHARE, STREAM_DYADS, ObservedFit, Prepared,
+                             check_design, check_factor, check_response, dyads_phrase,
+                             fit_from_factor, iter_dyad_rows, standardise)
 from ..inputs.threads import halves, side_by_side
 from ..kernels.options import FIT_PIVOT
 from ..kernels.gather import (GRAM_COLUMNS, NO_RECORDS, add_chunks, chunk_slots, gather_cross,
@@ -55,11 +55,6 @@ REFINE_COND = 1e4
 # Dyads of a row folded into its QR factor at once (``kernels.tsqr.fold_rows``): the block
 # (5 x 256 float64 = 10 KB) stays in L1.
 QR_WIDTH = 256
-# Missing dyad values up to which a route with missing data runs the complete-data kernel
-# and corrects each relabelling's Gram at the incomplete dyads (``_zero_missing``), as a
-# share of the dyads; above it every relabelling sums its complete dyads one by one
-# (``gather_gram``).
-MISSING_SHARE = 0.05
 # Bytes of the rows' own sums the setup holds at once before adding them in row order:
 # ``qr_layers``' row factors (p x p float64 a row: all rows at once up to 2**21 / p^2) and
 # the invariant Gram's chunk sums (``_gram_on_threads``)
