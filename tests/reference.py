@@ -163,6 +163,18 @@ def correlation_stats_ref(gram):
     return cov / np.sqrt(va * vb)
 
 
+
+def column_summary_ref(block):
+    """Twin of ``kernels.stats.column_summary`` from zero: per column, over the values that
+    are not NaN, (count, count of nonzero ones, sum, min, max); min and max are +inf and
+    -inf for a column with none."""
+    out = []
+    for col in np.asarray(block, dtype=np.float64).T:
+        fin = col[~np.isnan(col)]
+        out.append((fin.size, np.count_nonzero(fin), fin.sum(),
+                    fin.min() if fin.size else np.inf, fin.max() if fin.size else -np.inf))
+    return out
+
 # --- dyad sets, vectors, relabelling ------------------------------------------------------
 def dyads(n: int, m: int | None = None, directed: bool = True, two_mode: bool = False):
     """Index arrays (rows, cols) of the dyad set (methods.md, "Dyads and relabelling").

@@ -11,6 +11,8 @@ import pytest
 
 from dyadperm.inputs import describe
 from dyadperm.inputs.describe import describe_study
+from dyadperm.kernels.stats import column_summary
+from reference import KERNEL_ATOL, KERNEL_RTOL, column_summary_ref
 
 N = 23
 
@@ -80,3 +82,29 @@ def test_missing_dyads_are_said_to_take_the_slower_path(tmp_path, rng):
     want = f"1 of {N * (N - 1):,} dyads are missing in some network: every relabelling"
     assert any(note.startswith(want) and "`dyadperm plan` times a run" in note
                for note in notes)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_column_summary_kernel_against_its_twin(rng, dtype):
+    # blocks folded one after another, as check folds its row blocks; the last column is
+    # all missing, one column has no zero and one only zeros and NaN
+    blocks = []
+    for _ in range(3):
+        b = rng.normal(size=(40, 5)).astype(dtype)
+        b[rng.random((40, 5)) < 0.2] = 0.0
+        b[rng.random((40, 5)) < 0.15] = np.nan
+        b[:, 1] = np.where(np.isnan(b[:, 1]), 1.5, b[:, 1] + 10.0)
+        b[:, 3] = np.where(rng.random(40) < 0.5, np.nan, 0.0)
+        b[:, 4] = np.nan
+        blocks.append(b)
+    observed = np.zeros(5, np.int64)
+    nonzero = np.zeros(5, np.int64)
+    total = np.zeros(5)
+    low, high = np.full(5, np.inf), np.full(5, -np.inf)
+    for b in blocks:
+        column_summary(b, observed, nonzero, total, low, high)
+    want = column_summary_ref(np.concatenate(blocks))
+    for c, (count, nz, sm, lo, hi) in enumerate(want):
+        assert (observed[c], nonzero[c], low[c], high[c]) == (count, nz, lo, hi)
+        assert total[c] == pytest.approx(sm, rel=KERNEL_RTOL, abs=KERNEL_ATOL)
+    assert observed[4] == 0 and low[4] == np.inf and nonzero[3] == 0
