@@ -16,7 +16,10 @@ Because relabelling is linear in each layer, residuals relabel as the same combi
 of relabelled layers, so no residual matrix is ever stored. Complete data over a dyad set
 that every relabelling maps onto itself need only the relabelled-by-fixed block per
 permutation (``gather_cross``); data with missing values need the full Gram over each
-permutation's complete dyads (``gather_gram``), one pass per tested term.
+permutation's complete dyads, one pass per tested term: with few missing values the
+complete-data kernel over layers that hold them as 0, less the incomplete dyads
+(``_zero_missing``, ``gather.subtract_missing``), else the sum over the complete dyads one
+by one (``gather_gram``).
 """
 
 from __future__ import annotations
