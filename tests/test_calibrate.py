@@ -29,6 +29,7 @@ from pathlib import Path
 import dyadperm as dp
 from dyadperm import InputError
 from dyadperm.calibrate import OLS, plot_calibration, simulated_response
+from dyadperm.routes import linear
 from dyadperm.routes.linear import build_statistics as build_plan
 from reference import (INTERVAL_RTOL, P_ATOL, SCHEMES, design, dyads, exact_pvalues,
                        random_pvalues, scheme_stat, vec)
@@ -197,11 +198,15 @@ def test_exact_enumeration_matches_the_oracle():
                     assert got[j, s, r] == pytest.approx(p_ref, abs=P_ATOL)
 
 
-def test_missing_values_and_groups_follow_the_engine():
-    # Missing dyads take the engine's masked passes. The y scheme is checked against
-    # statsmodels OLS on the complete dyads of each relabelled response; dsp and
+@pytest.mark.parametrize("share", [0.05, 1.0])
+def test_missing_values_and_groups_follow_the_engine(monkeypatch, share):
+    # Missing dyads take the engine's masked passes: with 10% missing, summed dyad by dyad
+    # (share 0.05); forced through the complete-data kernel with the incomplete dyads
+    # taken out (share 1.0, calibrate's shared relabelling pass included). The y scheme
+    # is checked against statsmodels OLS on the complete dyads of each relabelled response; dsp and
     # Freedman-Lane against the engine's plan built afresh from the simulated response
     # (the masked path that the scheme oracle tests pin), over the same relabellings.
+    monkeypatch.setattr(linear, "MISSING_SHARE", share)
     rng = np.random.default_rng(8606)
     n, M, seed = 12, 49, 86
     Y, X1, X2 = _confounded(rng, n)
