@@ -203,9 +203,10 @@ def test_missing_values_and_groups_follow_the_engine(monkeypatch, share):
     # Missing dyads take the engine's masked passes: with 10% missing, summed dyad by dyad
     # (share 0.05); forced through the complete-data kernel with the incomplete dyads
     # taken out (share 1.0, calibrate's shared relabelling pass included). The y scheme
-    # is checked against statsmodels OLS on the complete dyads of each relabelled response; dsp and
-    # Freedman-Lane against the engine's plan built afresh from the simulated response
-    # (the masked path that the scheme oracle tests pin), over the same relabellings.
+    # is checked against statsmodels OLS on the complete dyads of each relabelled
+    # response; dsp and Freedman-Lane against the engine's plan built afresh from the
+    # simulated response (the masked path that the scheme oracle tests pin), over the
+    # same relabellings.
     monkeypatch.setattr(linear, "MISSING_SHARE", share)
     rng = np.random.default_rng(8606)
     n, M, seed = 12, 49, 86
