@@ -133,11 +133,10 @@ def describe_study(path: str | Path, *, storage: str | None = None) -> StudySumm
     if 0 < complete < prep.n_dyads:
         notes.append(f"{prep.n_dyads - complete:,} of {prep.n_dyads:,} dyads are missing in "
                      "some network: every relabelling fits over its own complete dyads, one "
-                     f"pass per tested term; with few missing values (up to about "
+                     "pass per tested term; with few missing values (up to about "
                      f"{MISSING_SHARE:.0%} of the dyads) the complete-data kernel and a "
-                     "correction at the missing ones, "
-                     "else a sum over the complete dyads one by one, many times slower "
-                     "(`dyadperm plan` times a run)")
+                     "correction at the missing ones, else a sum over the complete dyads one "
+                     "by one, many times slower (`dyadperm plan` times a run)")
     k = prep.k
     n = max(sums[0, 0], 1.0)
     mean = sums[0, 1:] / n

@@ -150,11 +150,14 @@ class GramStatistics:
         n_perm = row_perms.shape[0]
         for group in groups.values():
             first = group[0]
-            if len(group) == 1:
-                rel_u, fix_u = first.rel_idx.tolist(), first.fix_idx.tolist()
-            else:
-                rel_u = sorted(set().union(*(ps.rel_idx.tolist() for ps in group)))
-                fix_u = sorted(set().union(*(ps.fix_idx.tolist() for ps in group)))
+            if len(group) == 1:  # the pass's own layers, as they are
+                cross = np.empty((n_perm, first.rel_idx.size, first.fix_idx.size))
+                gather_cross(first.rel, first.rel_idx, first.fix, first.fix_idx, row_perms,
+                             col_perms, self.col_start, self.col_stop, cross)
+                crosses[id(first)] = cross
+                continue
+            rel_u = sorted(set().union(*(ps.rel_idx.tolist() for ps in group)))
+            fix_u = sorted(set().union(*(ps.fix_idx.tolist() for ps in group)))
             every = np.empty((n_perm, len(rel_u), len(fix_u)))
             gather_cross(first.rel, np.asarray(rel_u, np.int64), first.fix,
                          np.asarray(fix_u, np.int64), row_perms, col_perms, self.col_start,
@@ -643,9 +646,8 @@ def _zero_missing(prep: Prepared, passes: list[Pass]) -> list[Pass]:
         if ps.rel is ps.fix:  # dsp, freedman-lane: one stack, one pass over it for all
             every = list(range(ps.rel.shape[2]))
             if id(ps.rel) not in whole:
-                whole[id(ps.rel)] = _identity_gram(prep, ps.rel, every, ps.fix, [])
-            where = [0] + [1 + e for e in ps.rel_idx.tolist() + ps.fix_idx.tolist()]
-            gram0 = np.ascontiguousarray(whole[id(ps.rel)][np.ix_(where, where)])
+                whole[id(ps.rel)] = _gram_on_threads(prep, ps.rel, every, ps.rel, [])
+            gram0 = _spread(whole[id(ps.rel)], every, ps.rel_idx, ps.fix_idx)
         else:
             gram0 = _identity_gram(prep, ps.rel, ps.rel_idx, ps.fix, ps.fix_idx)
         out.append(replace(ps, gram0=gram0, missing=(fix_cells, fix_keys, rel_cells, mask)))
@@ -686,10 +688,16 @@ def _identity_gram(prep: Prepared, rel, rel_idx, fix, fix_idx,
     fix_idx = [int(c) for c in fix_idx]
     if rel is fix:
         layers = sorted(set(rel_idx) | set(fix_idx))
-        g = _gram_on_threads(prep, fix, layers, fix, [], rinv)
-        where = [0] + [1 + layers.index(e) for e in rel_idx + fix_idx]
-        return np.ascontiguousarray(g[np.ix_(where, where)])
+        return _spread(_gram_on_threads(prep, fix, layers, fix, [], rinv), layers, rel_idx,
+                       fix_idx)
     return _gram_on_threads(prep, rel, rel_idx, fix, fix_idx, rinv)
+
+
+def _spread(g: np.ndarray, layers: list[int], rel_idx, fix_idx) -> np.ndarray:
+    """The Gram of v = [1, rel_idx layers, fix_idx layers] of one stack, from ``g``, the
+    Gram of [1, ``layers``] (which holds every layer named)."""
+    where = [0] + [1 + layers.index(int(e)) for e in list(rel_idx) + list(fix_idx)]
+    return np.ascontiguousarray(g[np.ix_(where, where)])
 
 
 def _gram_on_threads(prep: Prepared, rel, rel_idx: list[int], fix,
